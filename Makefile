@@ -1,0 +1,31 @@
+# veil: `make demo` runs the main job on the committed sample, `make test` runs every check.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed-dev
+
+.PHONY: demo test lint typecheck unit clean
+
+$(STAMP): pyproject.toml
+	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[dev]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/python -m veil.demo
+
+lint: $(STAMP)
+	$(BIN)/ruff check service client tests scripts
+	$(BIN)/ruff format --check service client tests scripts
+
+typecheck: $(STAMP)
+	$(BIN)/mypy
+
+unit: $(STAMP)
+	$(BIN)/pytest
+
+test: lint typecheck unit
+
+clean:
+	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache .hypothesis

@@ -1,0 +1,67 @@
+"""What a fitted eraser exports: its affine low-rank map plus the statistics later stages need."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.lowrank import AffineLowRankMap
+from veil.moments import MomentState
+from veil.postprocess import unit_normalize
+
+Float64Array = NDArray[np.float64]
+
+
+@dataclass(frozen=True, eq=False)
+class EraserArtifact:
+    """A fitted eraser, independent of the estimator class that produced it.
+
+    Attributes
+    ----------
+    method : str
+        ``"leace"``, ``"meanproj"``, ``"inlp"`` or ``"rlace"``.
+    params : mapping
+        The estimator's constructor parameters.
+    map : AffineLowRankMap
+        ``x' = x - U Vᵀ (x - μ)``.
+    normalize : bool
+        Whether served vectors are re-normalised to unit length after erasure.
+    moments : MomentState
+        Raw-space statistics of the fitting data: the whitening statistics
+        (mean and covariance) and, for a categorical attribute, class means
+        and priors.  Drift and leakage checks compare live traffic to these.
+    history : list of dict
+        Per-iteration record of iterative methods (empty otherwise).
+    """
+
+    method: str
+    params: Mapping[str, Any]
+    map: AffineLowRankMap
+    normalize: bool
+    moments: MomentState
+    history: list[dict[str, float]] = field(default_factory=list)
+
+    @property
+    def classes(self) -> NDArray[np.generic] | None:
+        return self.moments.labels
+
+    @property
+    def class_means(self) -> Float64Array | None:
+        return None if self.moments.labels is None else self.moments.class_means
+
+    @property
+    def class_priors(self) -> Float64Array | None:
+        return None if self.moments.labels is None else self.moments.class_priors
+
+    @property
+    def covariance(self) -> Float64Array:
+        return self.moments.covariance_xx
+
+    def apply(self, x: NDArray[np.floating]) -> NDArray[np.floating]:
+        """Erase a batch exactly as it is served (re-normalised if the artifact says so)."""
+        out = self.map.apply(x)
+        return unit_normalize(out) if self.normalize else out

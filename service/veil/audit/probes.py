@@ -1,0 +1,117 @@
+"""Held-out probes of the attribute: linear (logistic / ridge) and nonlinear (MLP)."""
+
+from __future__ import annotations
+
+import warnings
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+from sklearn.base import BaseEstimator, TransformerMixin
+from sklearn.exceptions import ConvergenceWarning
+from sklearn.linear_model import LogisticRegression, RidgeCV
+from sklearn.metrics import balanced_accuracy_score, r2_score
+from sklearn.model_selection import KFold, StratifiedKFold, cross_val_predict
+from sklearn.neural_network import MLPClassifier
+from sklearn.pipeline import Pipeline, make_pipeline
+
+from veil.audit.report import ProbeScore, RegressionScore
+from veil.audit.stats import wilson_interval
+
+# A coordinate whose spread is below this share of the typical spread is
+# treated as dead.  Embedding models carry such coordinates (MiniLM has
+# values near 1e-33); scaling them to unit variance lets a probe read
+# rounding-level content no dot product downstream can see.
+DEAD_SPREAD = 1e-6
+
+
+class FlooredScaler(TransformerMixin, BaseEstimator):  # type: ignore[misc]
+    """Standardise features, flooring each scale at ``DEAD_SPREAD`` times the typical spread."""
+
+    def fit(self, X: NDArray[np.floating], y: object = None) -> FlooredScaler:
+        self.mean_ = X.mean(axis=0)
+        spread = X.std(axis=0)
+        typical = float(np.sqrt(np.mean(spread**2)))
+        self.scale_ = np.maximum(spread, DEAD_SPREAD * max(typical, np.finfo(np.float64).tiny))
+        return self
+
+    def transform(self, X: NDArray[np.floating]) -> NDArray[np.float64]:
+        return np.asarray((X - self.mean_) / self.scale_)
+
+
+def count_dead_features(x: NDArray[np.floating]) -> int:
+    """Number of coordinates whose spread is below ``DEAD_SPREAD`` of the typical spread."""
+    spread = np.asarray(x, dtype=np.float64).std(axis=0)
+    typical = float(np.sqrt(np.mean(spread**2)))
+    return int(np.count_nonzero(spread < DEAD_SPREAD * typical))
+
+
+def linear_probe(random_state: int) -> Pipeline:
+    return make_pipeline(FlooredScaler(), LogisticRegression(max_iter=3000, random_state=random_state))
+
+
+def nonlinear_probe(random_state: int) -> Pipeline:
+    return make_pipeline(
+        FlooredScaler(),
+        MLPClassifier(
+            hidden_layer_sizes=(128,),
+            alpha=1e-3,
+            early_stopping=True,
+            max_iter=300,
+            random_state=random_state,
+        ),
+    )
+
+
+def probe_folds(codes: NDArray[np.intp], folds: int) -> int:
+    """Stratified folds the smallest class allows (at most ``folds``); refuses fewer than 2."""
+    smallest = int(np.bincount(codes).min())
+    if smallest < 2:
+        raise ValueError(
+            f"every class needs at least 2 held-out rows to probe leakage; the smallest class has {smallest}"
+        )
+    return min(folds, smallest)
+
+
+def classification_score(
+    model: Any, x: NDArray[np.floating], codes: NDArray[np.intp], *, folds: int, random_state: int
+) -> ProbeScore:
+    """Cross-validated held-out accuracy of ``model`` predicting ``codes`` from ``x``.
+
+    Every row is predicted by a probe that never saw it; the majority
+    baseline is the accuracy of always predicting the commonest class.
+    """
+    splitter = StratifiedKFold(n_splits=probe_folds(codes, folds), shuffle=True, random_state=random_state)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        predicted = cross_val_predict(model, x, codes, cv=splitter)
+    hits = int(np.count_nonzero(predicted == codes))
+    low, high = wilson_interval(hits, codes.size)
+    return ProbeScore(
+        accuracy=hits / codes.size,
+        balanced_accuracy=float(balanced_accuracy_score(codes, predicted)),
+        majority=float(np.bincount(codes).max() / codes.size),
+        interval_low=low,
+        interval_high=high,
+        n=int(codes.size),
+    )
+
+
+def cross_val_labels(
+    model: Any, x: NDArray[np.floating], codes: NDArray[np.intp], *, folds: int, random_state: int
+) -> NDArray[np.intp]:
+    """Held-out predictions of ``model`` for every row (for task probes)."""
+    splitter = StratifiedKFold(n_splits=probe_folds(codes, folds), shuffle=True, random_state=random_state)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        return np.asarray(cross_val_predict(model, x, codes, cv=splitter))
+
+
+def regression_score(
+    x: NDArray[np.floating], target: NDArray[np.float64], *, folds: int, random_state: int
+) -> RegressionScore:
+    """Cross-validated held-out R² of a ridge probe (mean over attribute columns)."""
+    splitter = KFold(n_splits=min(folds, target.shape[0]), shuffle=True, random_state=random_state)
+    model = make_pipeline(FlooredScaler(), RidgeCV(alphas=np.logspace(-3, 3, 13)))
+    predicted = cross_val_predict(model, x, target, cv=splitter)
+    return RegressionScore(r2=float(r2_score(target, predicted)), n=int(target.shape[0]))

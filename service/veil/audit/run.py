@@ -1,0 +1,232 @@
+"""Run the audit of a fitted eraser on held-out data."""
+
+from __future__ import annotations
+
+from typing import TypeVar
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+from sklearn.model_selection import train_test_split
+from sklearn.utils.validation import check_array, check_is_fitted
+
+from veil._validation import encode_attribute
+from veil.audit import geometry, probes
+from veil.audit.report import AuditReport, Leakage, ProbeScore, RegressionScore, Retrieval, Utility
+from veil.erasers._base import BaseEraser
+from veil.linalg import whiten, whitening_factors
+
+E = TypeVar("E", bound=BaseEraser)
+NEIGHBOURS = 10
+
+
+def _class_mean_gap(white: NDArray[np.float64], codes: NDArray[np.intp]) -> float:
+    """Largest distance between a class mean and the overall mean of whitened rows; 0 if they coincide."""
+    overall = white.mean(axis=0)
+    return max(float(np.linalg.norm(white[codes == c].mean(axis=0) - overall)) for c in np.unique(codes))
+
+
+def _class_mean_noise_floor(codes: NDArray[np.intp], rank: int) -> float:
+    """The gap sampling alone produces for the smallest class, with no attribute signal at all.
+
+    With ``rank`` whitened unit-variance coordinates, a class mean of ``n_c``
+    rows sits ``sqrt(rank (1/n_c - 1/n))`` from the overall mean in expectation.
+    """
+    smallest = int(np.bincount(codes).min())
+    return float(np.sqrt(rank * (1 / smallest - 1 / codes.size)))
+
+
+def audit(
+    eraser: BaseEraser,
+    X: ArrayLike,
+    z: object,
+    *,
+    task: object = None,
+    folds: int = 5,
+    nonlinear: bool = True,
+    random_state: int = 0,
+) -> AuditReport:
+    """Measure leakage and utility of a fitted eraser on data it never saw.
+
+    Probes are scored by stratified cross-validation inside the held-out
+    rows, so every figure comes from a probe that never saw the row it
+    predicts, and the eraser never saw any of them.
+
+    Parameters
+    ----------
+    eraser : BaseEraser
+        A fitted eraser.  What is audited is ``eraser.transform``: exactly
+        what would be served, re-normalisation included.
+    X : array-like of shape (n_heldout, d)
+        Held-out embeddings.
+    z : array-like of shape (n_heldout,) or (n_heldout, m)
+        Held-out attribute: labels (classification probes) or a numeric
+        matrix (ridge R² probes).
+    task : array-like of shape (n_heldout,), optional
+        Task labels for utility figures (task probe accuracy, TPR gap,
+        neighbour task share).
+    folds : int, default=5
+        Cross-validation folds of the probes.
+    nonlinear : bool, default=True
+        Also run an MLP probe (slower).
+    random_state : int, default=0
+        Seeds the folds and the probes.
+
+    Returns
+    -------
+    AuditReport
+    """
+    check_is_fitted(eraser, "map_")
+    raw = check_array(X, dtype=(np.float64, np.float32))
+    attribute = encode_attribute(z, raw.shape[0])
+    erased = eraser.transform(raw)
+    notes: list[str] = []
+    gap_before: float | None
+    gap_after: float | None
+    noise_floor: float | None
+
+    if attribute.labels is not None:
+        codes = np.argmax(attribute.matrix, axis=1)
+        model = probes.linear_probe(random_state)
+        linear_before: ProbeScore | RegressionScore = probes.classification_score(
+            model, raw, codes, folds=folds, random_state=random_state
+        )
+        linear_after: ProbeScore | RegressionScore = probes.classification_score(
+            model, erased, codes, folds=folds, random_state=random_state
+        )
+        nonlinear_before = nonlinear_after = None
+        if nonlinear:
+            mlp = probes.nonlinear_probe(random_state)
+            nonlinear_before = probes.classification_score(mlp, raw, codes, folds=folds, random_state=random_state)
+            nonlinear_after = probes.classification_score(mlp, erased, codes, folds=folds, random_state=random_state)
+        # Whitened by the fitting data's covariance, so before and after are
+        # measured in the same units.
+        eigenvectors, scale = whitening_factors(eraser.moments_.covariance_xx)
+        gap_before = _class_mean_gap(whiten(raw, eigenvectors, scale), codes)
+        gap_after = _class_mean_gap(whiten(erased, eigenvectors, scale), codes)
+        noise_floor = _class_mean_noise_floor(codes, scale.size)
+    else:
+        codes = None
+        linear_before = probes.regression_score(raw, attribute.matrix, folds=folds, random_state=random_state)
+        linear_after = probes.regression_score(erased, attribute.matrix, folds=folds, random_state=random_state)
+        nonlinear_before = nonlinear_after = None
+        gap_before = gap_after = noise_floor = None
+
+    neighbours_raw = geometry.nearest_neighbours(raw, NEIGHBOURS)
+    neighbours_erased = geometry.nearest_neighbours(erased, NEIGHBOURS)
+    task_codes = None if task is None else _task_codes(task, raw.shape[0])
+    task_before = task_after = tpr_before = tpr_after = None
+    if task_codes is not None:
+        model = probes.linear_probe(random_state)
+        predicted_before = probes.cross_val_labels(model, raw, task_codes, folds=folds, random_state=random_state)
+        predicted_after = probes.cross_val_labels(model, erased, task_codes, folds=folds, random_state=random_state)
+        task_before = float(np.mean(predicted_before == task_codes))
+        task_after = float(np.mean(predicted_after == task_codes))
+        if codes is not None and attribute.labels is not None and attribute.labels.size == 2:
+            tpr_before = geometry.tpr_gap_rms(task_codes, predicted_before, codes)
+            tpr_after = geometry.tpr_gap_rms(task_codes, predicted_after, codes)
+    utility = Utility(
+        relative_distortion=geometry.relative_distortion(raw, erased),
+        mean_cosine=geometry.mean_cosine(raw, erased),
+        knn_overlap_at_10=geometry.neighbour_overlap(neighbours_raw, neighbours_erased),
+        task_accuracy_before=task_before,
+        task_accuracy_after=task_after,
+        tpr_gap_rms_before=tpr_before,
+        tpr_gap_rms_after=tpr_after,
+    )
+
+    retrieval = None
+    if codes is not None:
+        retrieval = Retrieval(
+            attribute_share_before=geometry.neighbour_label_share(neighbours_raw, codes),
+            attribute_share_after=geometry.neighbour_label_share(neighbours_erased, codes),
+            attribute_base_rate=geometry.label_base_rate(codes),
+            task_share_before=None
+            if task_codes is None
+            else geometry.neighbour_label_share(neighbours_raw, task_codes),
+            task_share_after=None
+            if task_codes is None
+            else geometry.neighbour_label_share(neighbours_erased, task_codes),
+            task_base_rate=None if task_codes is None else geometry.label_base_rate(task_codes),
+        )
+
+    dead = probes.count_dead_features(raw)
+    if dead:
+        notes.append(
+            f"{dead} coordinate(s) have almost no spread; erasure leaves them as they are, and a model "
+            "that rescales them to unit variance may read attribute content at rounding level"
+        )
+    rows_per_dim = eraser.moments_.count / raw.shape[1]
+    if rows_per_dim < 25:
+        notes.append(
+            f"the eraser was fitted on {eraser.moments_.count} rows for {raw.shape[1]} dimensions; "
+            "held-out leakage shrinks as the fitting sample grows relative to the dimension"
+        )
+    if (
+        isinstance(linear_after, ProbeScore)
+        and nonlinear_after is not None
+        and nonlinear_after.interval_low > max(linear_after.accuracy, linear_after.majority)
+    ):
+        notes.append(
+            "a nonlinear probe recovers more than a linear one: linear erasure does not remove nonlinear traces"
+        )
+    return AuditReport(
+        method=eraser.method,
+        rank=eraser.map_.rank,
+        n_heldout=int(raw.shape[0]),
+        dim=int(raw.shape[1]),
+        leakage=Leakage(
+            linear_before,
+            linear_after,
+            nonlinear_before,
+            nonlinear_after,
+            gap_before,
+            gap_after,
+            noise_floor,
+        ),
+        utility=utility,
+        retrieval=retrieval,
+        notes=notes,
+    )
+
+
+def _task_codes(task: object, n_rows: int) -> NDArray[np.intp]:
+    encoded = encode_attribute(task, n_rows, require_categorical=True)
+    return np.asarray(np.argmax(encoded.matrix, axis=1), dtype=np.intp)
+
+
+def fit_and_audit(
+    eraser: E,
+    X: ArrayLike,
+    z: object,
+    *,
+    task: object = None,
+    holdout: float = 0.3,
+    random_state: int = 0,
+    folds: int = 5,
+    nonlinear: bool = True,
+) -> tuple[E, AuditReport]:
+    """Split off a held-out part (stratified by the attribute), fit on the rest, audit on it.
+
+    Returns
+    -------
+    (eraser, report)
+        The fitted eraser and its :class:`AuditReport`.
+    """
+    raw = check_array(X, dtype=(np.float64, np.float32))
+    attribute = encode_attribute(z, raw.shape[0])
+    z_array = np.asarray(z)
+    stratify = z_array if attribute.labels is not None else None
+    indices = np.arange(raw.shape[0])
+    fit_rows, held_rows = train_test_split(indices, test_size=holdout, random_state=random_state, stratify=stratify)
+    task_array = None if task is None else np.asarray(task)
+    eraser.fit(raw[fit_rows], z_array[fit_rows])
+    report = audit(
+        eraser,
+        raw[held_rows],
+        z_array[held_rows],
+        task=None if task_array is None else task_array[held_rows],
+        folds=folds,
+        nonlinear=nonlinear,
+        random_state=random_state,
+    )
+    return eraser, report

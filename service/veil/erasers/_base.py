@@ -1,0 +1,202 @@
+"""What every veil eraser shares: validation, the factored transform, counterfactuals, export."""
+
+from __future__ import annotations
+
+from abc import abstractmethod
+from typing import Any, ClassVar
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+from sklearn.base import BaseEstimator, TransformerMixin
+from sklearn.utils.validation import check_is_fitted, validate_data
+
+from veil._validation import EncodedAttribute, check_enough_rows, encode_attribute
+from veil.artifact import EraserArtifact
+from veil.lowrank import AffineLowRankMap
+from veil.moments import MomentState
+from veil.postprocess import unit_normalize
+
+FLOAT_DTYPES = (np.float64, np.float32)
+
+
+class BaseEraser(TransformerMixin, BaseEstimator):  # type: ignore[misc]
+    """Base class of the erasers: a fitted eraser is an :class:`AffineLowRankMap`.
+
+    Subclasses set, in ``fit``, ``map_`` (the map), ``moments_`` (raw-space
+    statistics of the fitting data) and ``n_features_in_``.
+    """
+
+    method: ClassVar[str]
+    normalize: bool
+    map_: AffineLowRankMap
+    moments_: MomentState
+    _requires_categorical: ClassVar[bool] = False
+
+    def __sklearn_tags__(self) -> Any:
+        tags = super().__sklearn_tags__()
+        # The attribute z plays the role of y: no fit without it.
+        tags.target_tags.required = True
+        tags.transformer_tags.preserves_dtype = ["float64", "float32"]
+        return tags
+
+    # -- validation -----------------------------------------------------
+    def _validate_fit_input(
+        self, x: ArrayLike, z: object, *, reset: bool
+    ) -> tuple[NDArray[np.floating], EncodedAttribute]:
+        array = validate_data(self, x, reset=reset, dtype=FLOAT_DTYPES, ensure_min_samples=1)
+        return array, encode_attribute(z, array.shape[0], require_categorical=self._requires_categorical)
+
+    def _set_fitted(self, mapping: AffineLowRankMap, moments: MomentState) -> None:
+        self.map_ = mapping
+        self.moments_ = moments
+        self.classes_ = moments.labels
+
+    # -- the fitted map -------------------------------------------------
+    @property
+    def mean_(self) -> NDArray[np.float64]:
+        """``μ``, the centring point of the map, shape (d,)."""
+        check_is_fitted(self, "map_")
+        return self.map_.mean
+
+    @property
+    def rank_(self) -> int:
+        """Number of directions the eraser removes."""
+        check_is_fitted(self, "map_")
+        return self.map_.rank
+
+    def transform(self, X: ArrayLike) -> NDArray[np.floating]:
+        """Erase the attribute from each row.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+
+        Returns
+        -------
+        X_erased : ndarray of shape (n_samples, n_features)
+            float32 for float32 input, float64 otherwise; unit-length rows
+            when ``normalize=True``.
+        """
+        check_is_fitted(self, "map_")
+        array = validate_data(self, X, reset=False, dtype=FLOAT_DTYPES)
+        out = self.map_.apply(array)
+        return unit_normalize(out) if self.normalize else out
+
+    def _target_mean(self, target: object) -> NDArray[np.float64]:
+        moments: MomentState = self.moments_
+        if moments.labels is not None:
+            matches = np.flatnonzero(moments.labels == np.asarray(target))
+            if matches.size != 1:
+                raise ValueError(f"unknown target class {target!r}; the classes are {moments.labels.tolist()}")
+            return np.asarray(moments.class_means[matches[0]])
+        value = np.asarray(target, dtype=np.float64).reshape(-1)
+        if value.shape != moments.mean_z.shape or not np.all(np.isfinite(value)):
+            raise ValueError(f"the target must be a finite attribute vector of length {moments.mean_z.size}")
+        # E[x | z] under the linear model of x on z fitted by the same moments.
+        slope = moments.cross_covariance @ np.linalg.pinv(moments.covariance_zz, hermitian=True)
+        return moments.mean_x + slope @ (value - moments.mean_z)
+
+    def counterfactual(self, X: ArrayLike, target: object) -> NDArray[np.floating]:
+        """Erase, then give every row the attribute component of ``target``.
+
+        ``x_cf = x' + U Vᵀ (μ_target - μ)``: a ranking re-run on ``x_cf`` is the
+        ranking "as if" every row had the target class.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+        target : label or array-like of shape (m,)
+            A class label for a categorical attribute; an attribute vector for
+            a numeric one (its conditional mean comes from the linear
+            regression of ``x`` on ``z``).
+
+        Returns
+        -------
+        X_cf : ndarray of shape (n_samples, n_features)
+        """
+        check_is_fitted(self, "map_")
+        array = validate_data(self, X, reset=False, dtype=FLOAT_DTYPES)
+        out = self.map_.apply(array)
+        out += self.map_.shift_towards(self._target_mean(target)).astype(out.dtype)
+        return unit_normalize(out) if self.normalize else out
+
+    def export(self) -> EraserArtifact:
+        """The fitted eraser as an :class:`EraserArtifact` (for the registry and the service)."""
+        check_is_fitted(self, "map_")
+        return EraserArtifact(
+            method=self.method,
+            params=self.get_params(deep=False),
+            map=self.map_,
+            normalize=bool(self.normalize),
+            moments=self.moments_,
+            history=list(getattr(self, "history_", [])),
+        )
+
+
+class MomentEraser(BaseEraser):
+    """An eraser that is a function of :class:`MomentState` alone: chunked, merged or whole, the same."""
+
+    @abstractmethod
+    def _map_from_moments(self, moments: MomentState) -> AffineLowRankMap: ...
+
+    def fit(self, X: ArrayLike, z: object) -> MomentEraser:
+        """Fit the eraser.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            Embeddings.
+        z : array-like of shape (n_samples,) or (n_samples, m)
+            Class labels of the attribute, or a numeric attribute matrix.
+
+        Returns
+        -------
+        self
+        """
+        array, attribute = self._validate_fit_input(X, z, reset=True)
+        return self._fit_state(MomentState.from_batch(array, attribute))
+
+    def partial_fit(self, X: ArrayLike, z: object) -> MomentEraser:
+        """Add a chunk of rows; after each call the eraser is that of all rows so far.
+
+        Classes may appear in any chunk.  Until two classes (and more rows than
+        classes) have been seen, the eraser is not usable.
+
+        Returns
+        -------
+        self
+        """
+        first = not hasattr(self, "moments_")
+        array, attribute = self._validate_fit_input(X, z, reset=first)
+        chunk = MomentState.from_batch(array, attribute)
+        merged = chunk if first else self.moments_.merge(chunk)
+        self.moments_ = merged
+        try:
+            check_enough_rows(merged.count, merged.labels)
+        except ValueError:
+            # Not enough seen yet: keep accumulating, but do not serve a map.
+            if hasattr(self, "map_"):
+                del self.map_
+            return self
+        self._set_fitted(self._map_from_moments(merged), merged)
+        return self
+
+    def fit_moments(self, moments: MomentState) -> MomentEraser:
+        """Fit from precomputed (for example merged) moments.
+
+        Parameters
+        ----------
+        moments : MomentState
+            Statistics of all the fitting rows, e.g. the merge of per-worker states.
+
+        Returns
+        -------
+        self
+        """
+        self.n_features_in_ = moments.n_features
+        return self._fit_state(moments)
+
+    def _fit_state(self, moments: MomentState) -> MomentEraser:
+        check_enough_rows(moments.count, moments.labels)
+        self._set_fitted(self._map_from_moments(moments), moments)
+        return self

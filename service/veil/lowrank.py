@@ -1,0 +1,102 @@
+"""The one form every veil eraser takes: an affine low-rank map.
+
+``x' = x - U Vᵀ (x - μ)``, with ``U`` and ``V`` of shape (d, k) and k a handful
+of directions.  For row-major batches this is ``X' = X - (X - μ) V Uᵀ``; it is
+applied as ``X - (X V - μ V) Uᵀ`` so a batch costs O(n·d·k), needs no centred
+copy of ``X``, and never touches a d×d matrix.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from numpy.typing import NDArray
+
+Float64Array = NDArray[np.float64]
+FloatArray = NDArray[np.floating]
+
+
+def _frozen(array: NDArray[np.floating]) -> Float64Array:
+    out = np.array(array, dtype=np.float64, order="C", copy=True)
+    out.setflags(write=False)
+    return out
+
+
+@dataclass(frozen=True, eq=False)
+class AffineLowRankMap:
+    """``x' = x - U Vᵀ (x - μ)``: centre, remove the span of ``U`` along ``V``, re-centre.
+
+    Parameters
+    ----------
+    mean : ndarray of shape (d,)
+        ``μ``, the centring point.
+    u : ndarray of shape (d, k)
+        ``U``: the directions removed from the embedding.
+    v : ndarray of shape (d, k)
+        ``V``: the read-out of the component to remove.  ``V = U`` for an
+        orthogonal projection (INLP, R-LACE, mean projection).
+    """
+
+    mean: Float64Array
+    u: Float64Array
+    v: Float64Array
+    _cast: dict[np.dtype[np.floating], tuple[FloatArray, FloatArray, FloatArray]] = field(
+        default_factory=dict, init=False, repr=False
+    )
+
+    def __post_init__(self) -> None:
+        mean, u, v = _frozen(self.mean), _frozen(self.u), _frozen(self.v)
+        if mean.ndim != 1 or u.ndim != 2 or u.shape != v.shape or u.shape[0] != mean.shape[0]:
+            raise ValueError(f"inconsistent map shapes: mean {mean.shape}, U {u.shape}, V {v.shape}")
+        if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(u)) and np.all(np.isfinite(v))):
+            raise ValueError("the map's mean or factors contain NaN or infinity")
+        object.__setattr__(self, "mean", mean)
+        object.__setattr__(self, "u", u)
+        object.__setattr__(self, "v", v)
+
+    @property
+    def dim(self) -> int:
+        """Embedding dimension d."""
+        return int(self.mean.shape[0])
+
+    @property
+    def rank(self) -> int:
+        """Number of directions k removed."""
+        return int(self.u.shape[1])
+
+    def _factors(self, dtype: np.dtype[np.floating]) -> tuple[FloatArray, FloatArray, FloatArray]:
+        # Cast once per dtype so float32 batches stay float32 end to end.
+        cached = self._cast.get(dtype)
+        if cached is None:
+            v = self.v.astype(dtype)
+            cached = (v, (self.mean @ self.v).astype(dtype), np.ascontiguousarray(self.u.T.astype(dtype)))
+            self._cast[dtype] = cached
+        return cached
+
+    def component(self, x: FloatArray) -> FloatArray:
+        """The part removed from each row, ``(x - μ) V Uᵀ``, shape (n, d), in ``x``'s dtype."""
+        v, mean_v, u_t = self._factors(x.dtype)
+        coefficients = x @ v
+        coefficients -= mean_v
+        return coefficients @ u_t
+
+    def apply(self, x: FloatArray) -> FloatArray:
+        """Erase a batch ``x`` of shape (n, d); returns a new array of the same dtype."""
+        if x.ndim != 2 or x.shape[1] != self.dim:
+            raise ValueError(f"expected a batch of shape (n, {self.dim}), got {x.shape}")
+        out = self.component(x)
+        np.subtract(x, out, out=out)
+        return out
+
+    def shift_towards(self, target_mean: Float64Array) -> Float64Array:
+        """``U Vᵀ (m - μ)``: the component a row at mean ``m`` carries, shape (d,)."""
+        return np.asarray(((np.asarray(target_mean, dtype=np.float64) - self.mean) @ self.v) @ self.u.T)
+
+    def to_dense(self) -> tuple[Float64Array, Float64Array]:
+        """The same map as ``x' = A x + b`` with a dense ``A`` (d, d).
+
+        For tests and baselines only: the serving path never builds ``A``.
+        """
+        a = np.eye(self.dim) - self.u @ self.v.T
+        return a, self.u @ (self.v.T @ self.mean)

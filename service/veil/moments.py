@@ -1,0 +1,186 @@
+"""Mergeable first and second moments of embeddings and their attribute.
+
+Every moment-based eraser (LEACE, mean projection, INLP with the moments
+classifier) is a function of these statistics alone, so fitting in chunks,
+on many workers or in one pass gives the same eraser.  States merge with the
+pairwise update of Chan, Golub and LeVeque for co-moments, which stays
+accurate where the naive ``E[xxᵀ] - μμᵀ`` loses digits.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil._validation import EncodedAttribute
+
+Float64Array = NDArray[np.float64]
+
+
+@dataclass(frozen=True, eq=False)
+class MomentState:
+    """Count, means and centred co-moments of ``x`` (d features) and ``z`` (m columns).
+
+    Attributes
+    ----------
+    count : int
+        Number of rows seen.
+    mean_x : ndarray of shape (d,)
+    mean_z : ndarray of shape (m,)
+    comoment_xx : ndarray of shape (d, d)
+        ``Σ (x - x̄)(x - x̄)ᵀ`` over the rows seen.
+    comoment_xz : ndarray of shape (d, m)
+        ``Σ (x - x̄)(z - z̄)ᵀ``.
+    comoment_zz : ndarray of shape (m, m)
+        ``Σ (z - z̄)(z - z̄)ᵀ``.
+    labels : ndarray of shape (m,) or None
+        Class label of each column of ``z`` when the attribute is categorical.
+    """
+
+    count: int
+    mean_x: Float64Array
+    mean_z: Float64Array
+    comoment_xx: Float64Array
+    comoment_xz: Float64Array
+    comoment_zz: Float64Array
+    labels: NDArray[np.generic] | None
+
+    @classmethod
+    def from_batch(cls, x: NDArray[np.floating], attribute: EncodedAttribute) -> MomentState:
+        """Moments of one batch of rows ``x`` (n, d) with their encoded attribute."""
+        x64 = np.asarray(x, dtype=np.float64)
+        z64 = attribute.matrix
+        count = x64.shape[0]
+        if count == 0:
+            return cls.empty(x64.shape[1], z64.shape[1], attribute.labels)
+        mean_x = x64.mean(axis=0)
+        mean_z = z64.mean(axis=0)
+        xc = x64 - mean_x
+        zc = z64 - mean_z
+        return cls(
+            count=count,
+            mean_x=mean_x,
+            mean_z=mean_z,
+            comoment_xx=xc.T @ xc,
+            comoment_xz=xc.T @ zc,
+            comoment_zz=zc.T @ zc,
+            labels=attribute.labels,
+        )
+
+    @classmethod
+    def empty(cls, d: int, m: int, labels: NDArray[np.generic] | None = None) -> MomentState:
+        """A state that has seen no rows."""
+        return cls(0, np.zeros(d), np.zeros(m), np.zeros((d, d)), np.zeros((d, m)), np.zeros((m, m)), labels)
+
+    @property
+    def n_features(self) -> int:
+        return int(self.mean_x.shape[0])
+
+    def _with_labels(self, labels: NDArray[np.generic]) -> MomentState:
+        """Re-index the categorical columns onto ``labels`` (a superset).
+
+        A class this state never saw had indicator 0 on all its rows, so its
+        mean, and every co-moment with it, is exactly zero.
+        """
+        assert self.labels is not None
+        position = np.searchsorted(labels, self.labels)
+        m = labels.size
+        mean_z = np.zeros(m)
+        mean_z[position] = self.mean_z
+        xz = np.zeros((self.n_features, m))
+        xz[:, position] = self.comoment_xz
+        zz = np.zeros((m, m))
+        zz[np.ix_(position, position)] = self.comoment_zz
+        return MomentState(self.count, self.mean_x, mean_z, self.comoment_xx, xz, zz, labels)
+
+    def _aligned(self, other: MomentState) -> tuple[MomentState, MomentState]:
+        if self.n_features != other.n_features:
+            raise ValueError(f"cannot merge moments of {self.n_features} and {other.n_features} features")
+        if (self.labels is None) != (other.labels is None):
+            raise ValueError("cannot merge moments of a categorical and a numeric attribute")
+        if self.labels is None or other.labels is None:
+            if self.mean_z.shape != other.mean_z.shape:
+                raise ValueError(
+                    f"cannot merge attribute matrices of {self.mean_z.size} and {other.mean_z.size} columns"
+                )
+            return self, other
+        if (self.labels.dtype.kind in "US") != (other.labels.dtype.kind in "US"):
+            raise ValueError("attribute labels changed type between batches (strings vs numbers)")
+        if np.array_equal(self.labels, other.labels):
+            return self, other
+        union = np.union1d(self.labels, other.labels)
+        return self._with_labels(union), other._with_labels(union)
+
+    def merge(self, other: MomentState) -> MomentState:
+        """The state of the union of the rows of ``self`` and ``other``.
+
+        Pairwise update: with ``δ = mean_b - mean_a`` and ``n = n_a + n_b``,
+        ``M = M_a + M_b + (n_a n_b / n) δ_x δ_zᵀ`` (Chan, Golub and LeVeque).
+        """
+        a, b = self._aligned(other)
+        if b.count == 0:
+            return a
+        if a.count == 0:
+            return b
+        n = a.count + b.count
+        delta_x = b.mean_x - a.mean_x
+        delta_z = b.mean_z - a.mean_z
+        weight = a.count * b.count / n
+        return MomentState(
+            count=n,
+            mean_x=a.mean_x + delta_x * (b.count / n),
+            mean_z=a.mean_z + delta_z * (b.count / n),
+            comoment_xx=a.comoment_xx + b.comoment_xx + weight * np.outer(delta_x, delta_x),
+            comoment_xz=a.comoment_xz + b.comoment_xz + weight * np.outer(delta_x, delta_z),
+            comoment_zz=a.comoment_zz + b.comoment_zz + weight * np.outer(delta_z, delta_z),
+            labels=a.labels,
+        )
+
+    def _require_rows(self) -> None:
+        if self.count == 0:
+            raise ValueError("no rows have been seen yet")
+
+    @property
+    def covariance_xx(self) -> Float64Array:
+        """Population covariance of ``x``, shape (d, d)."""
+        self._require_rows()
+        return self.comoment_xx / self.count
+
+    @property
+    def cross_covariance(self) -> Float64Array:
+        """Population cross-covariance ``Cov(x, z)``, shape (d, m)."""
+        self._require_rows()
+        return self.comoment_xz / self.count
+
+    @property
+    def covariance_zz(self) -> Float64Array:
+        """Population covariance of ``z``, shape (m, m)."""
+        self._require_rows()
+        return self.comoment_zz / self.count
+
+    @property
+    def class_priors(self) -> Float64Array:
+        """Share of rows in each class (categorical attributes only), shape (m,)."""
+        self._require_categorical()
+        return self.mean_z.copy()
+
+    @property
+    def class_means(self) -> Float64Array:
+        """Mean of ``x`` in each class, shape (m, d).
+
+        For an indicator column, ``Cov(x, z_c) = p_c (μ_c - μ)``; classes that
+        have no rows get the overall mean.
+        """
+        self._require_categorical()
+        priors = self.mean_z
+        offsets = np.zeros((priors.size, self.n_features))
+        seen = priors > 0
+        offsets[seen] = (self.cross_covariance[:, seen] / priors[seen]).T
+        return self.mean_x + offsets
+
+    def _require_categorical(self) -> None:
+        self._require_rows()
+        if self.labels is None:
+            raise ValueError("class statistics need a categorical (1-D) attribute")

@@ -1,0 +1,122 @@
+"""The audit's figures against independent references and hand-worked cases."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from scipy import stats
+from sklearn.linear_model import LogisticRegression
+from sklearn.model_selection import StratifiedKFold, cross_val_predict
+from sklearn.neighbors import NearestNeighbors
+
+from veil import LeaceEraser
+from veil.audit import AuditReport, ProbeScore, RegressionScore, audit, fit_and_audit, geometry
+from veil.audit.stats import wilson_interval
+
+from .conftest import planted
+
+
+@pytest.mark.parametrize(("k", "n"), [(0, 10), (7, 10), (50, 100), (999, 1000), (1000, 1000)])
+def test_wilson_interval_matches_scipy(k: int, n: int) -> None:
+    # Reference: scipy.stats.binomtest(...).proportion_ci(method="wilson").
+    expected = stats.binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson")
+    low, high = wilson_interval(k, n)
+    assert low == pytest.approx(expected.low, abs=1e-9)
+    assert high == pytest.approx(expected.high, abs=1e-9)
+
+
+def test_neighbours_match_scikit_learn_cosine_search() -> None:
+    # Reference: sklearn.neighbors.NearestNeighbors with the cosine metric.
+    x = np.random.default_rng(0).normal(size=(300, 12))
+    ours = geometry.nearest_neighbours(x, 10)
+    theirs = NearestNeighbors(n_neighbors=11, metric="cosine").fit(x).kneighbors(x, return_distance=False)[:, 1:]
+    assert geometry.neighbour_overlap(ours, theirs) == pytest.approx(1.0)
+
+
+def test_label_base_rate_is_the_share_of_same_label_pairs() -> None:
+    codes = np.array([0, 0, 0, 1, 1])  # worked by hand: (3·2 + 2·1) / (5·4) = 0.4
+    assert geometry.label_base_rate(codes) == pytest.approx(0.4)
+
+
+def test_tpr_gap_worked_example() -> None:
+    task = np.array([0, 0, 0, 0, 1, 1, 1, 1])
+    group = np.array([0, 0, 1, 1, 0, 0, 1, 1])
+    predicted = np.array([0, 0, 0, 1, 1, 0, 1, 1])
+    # Task 0: TPR 1.0 in group 0, 0.5 in group 1; task 1: 0.5 vs 1.0 → RMS of (0.5, -0.5) = 0.5.
+    assert geometry.tpr_gap_rms(task, predicted, group) == pytest.approx(0.5)
+
+
+def test_relative_distortion_and_cosine_of_a_known_move() -> None:
+    x = np.array([[1.0, 0.0], [-1.0, 0.0]])
+    moved = np.array([[1.0, 1.0], [-1.0, 1.0]])
+    assert geometry.relative_distortion(x, moved) == pytest.approx(1.0)  # moved by 1, spread 1
+    assert geometry.mean_cosine(x, moved) == pytest.approx(np.sqrt(0.5))
+
+
+def test_audit_probe_matches_a_plain_scikit_learn_cross_validation() -> None:
+    x, z = planted(n=1500, d=10, seed=3)
+    x = x + np.random.default_rng(3).normal(scale=2.0, size=x.shape)  # weaken the signal: accuracy below 1
+    eraser = LeaceEraser().fit(x[:750], z[:750])
+    report = audit(eraser, x[750:], z[750:], nonlinear=False, random_state=0)
+    before = report.leakage.linear_before
+    assert isinstance(before, ProbeScore)
+    # Reference: the same folds with scikit-learn's own cross_val_predict.
+    folds = StratifiedKFold(5, shuffle=True, random_state=0)
+    standardised = (x[750:] - x[750:].mean(0)) / x[750:].std(0)
+    reference = cross_val_predict(LogisticRegression(max_iter=3000), standardised, z[750:], cv=folds)
+    assert 0.6 < before.accuracy < 0.99
+    assert before.accuracy == pytest.approx(np.mean(reference == z[750:]), abs=0.01)
+    assert before.interval_low < before.accuracy < before.interval_high
+    assert before.majority == pytest.approx(np.bincount(z[750:]).max() / 750)
+
+
+def test_audit_of_planted_data_shows_leakage_removed_and_utility_kept() -> None:
+    x, z = planted(n=8000, d=12, seed=4)
+    task = (x[:, 0] + x[:, 1] > 0).astype(int)
+    _, report = fit_and_audit(LeaceEraser(), x, z, task=task, holdout=0.5, random_state=0)
+    before, after = report.leakage.linear_before, report.leakage.linear_after
+    assert isinstance(before, ProbeScore)
+    assert isinstance(after, ProbeScore)
+    assert before.gap > 0.2
+    assert after.gap < 0.03
+    assert report.leakage.guardedness_gap_after is not None
+    assert report.leakage.guardedness_noise_floor is not None
+    assert report.leakage.guardedness_gap_after < 3 * report.leakage.guardedness_noise_floor
+    assert 0 < report.utility.relative_distortion < 0.5
+    assert report.retrieval is not None
+    assert report.retrieval.attribute_share_after < report.retrieval.attribute_share_before
+    assert report.utility.task_accuracy_after is not None
+    assert report.utility.task_accuracy_after > 0.8
+
+
+def test_a_continuous_attribute_is_probed_with_ridge_r2() -> None:
+    rng = np.random.default_rng(5)
+    age = rng.uniform(20, 70, size=4000)
+    x = rng.normal(size=(4000, 8)) + np.outer(age - 45, rng.normal(size=8)) * 0.05
+    _, report = fit_and_audit(LeaceEraser(), x, age[:, None], holdout=0.5, nonlinear=False)
+    assert isinstance(report.leakage.linear_before, RegressionScore)
+    assert isinstance(report.leakage.linear_after, RegressionScore)
+    assert report.leakage.linear_before.r2 > 0.5
+    assert report.leakage.linear_after.r2 < 0.01
+
+
+def test_report_round_trips_through_json() -> None:
+    x, z = planted(n=1200, d=6, seed=6)
+    _, report = fit_and_audit(LeaceEraser(), x, z, task=(x[:, 0] > 0).astype(int), nonlinear=True)
+    text = report.to_json()
+    assert AuditReport.from_json(text) == report
+    assert json.loads(text)["leakage"]["linear_after"]["n"] == report.n_heldout
+    assert "linear probe accuracy" in report.format_table()
+
+
+def test_audit_notes_dead_coordinates_of_real_embeddings(profiles) -> None:  # type: ignore[no-untyped-def]
+    eraser = LeaceEraser().fit(profiles.x_fit, profiles.z_fit)
+    report = audit(eraser, profiles.x_held, profiles.z_held, nonlinear=False)
+    assert any("almost no spread" in note for note in report.notes)
+    after = report.leakage.linear_after
+    assert isinstance(after, ProbeScore)
+    # The floored scaler must not let the probe read the dead coordinates
+    # (an unfloored standard scaler recovers the attribute almost perfectly).
+    assert after.accuracy < 0.7
