@@ -10,7 +10,7 @@ from sklearn.exceptions import ConvergenceWarning
 from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import StratifiedKFold, cross_val_score
 
-from veil import INLPEraser, LeaceEraser, MeanProjectionEraser
+from veil import INLPEraser, LeaceEraser, MeanProjectionEraser, RLACEEraser
 from veil.erasers import BaseEraser
 
 from .conftest import Split, planted
@@ -99,3 +99,12 @@ def test_held_out_probe_on_real_embeddings_is_far_below_raw_leakage(profiles: Sp
     after = cross_val_score(LogisticRegression(max_iter=2000), erased, profiles.z_held, cv=folds).mean()
     assert raw - majority > 0.45
     assert abs(after - majority) < 0.1
+
+
+def test_rlace_of_rank_one_removes_most_linear_signal_from_real_embeddings(profiles: Split) -> None:
+    # R-LACE has no exact guarantee; this pins today's figure (measured 0.63
+    # against a majority of 0.51 and 0.99 before erasure) so it can only improve.
+    folds = StratifiedKFold(5, shuffle=True, random_state=0)
+    erased = RLACEEraser(rank=1, random_state=0).fit(profiles.x_fit, profiles.z_fit).transform(profiles.x_held)
+    after = cross_val_score(LogisticRegression(max_iter=2000), erased, profiles.z_held, cv=folds).mean()
+    assert after - _majority(profiles.z_held) < 0.15

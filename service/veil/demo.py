@@ -27,7 +27,7 @@ def main() -> None:
         LeaceEraser(),
         MeanProjectionEraser(),
         INLPEraser(classifier="moments", max_iter=40, random_state=0),
-        RLACEEraser(rank=2, max_iter=150, random_state=0),
+        RLACEEraser(rank=1, random_state=0),
     ]
     for eraser in erasers:
         started = time.perf_counter()
