@@ -28,6 +28,13 @@ class EncodedAttribute:
     def is_categorical(self) -> bool:
         return self.labels is not None
 
+    @property
+    def codes(self) -> NDArray[np.intp]:
+        """Class index of each row (categorical attributes), shape (n,)."""
+        if self.labels is None:
+            raise ValueError("class codes need a categorical (1-D) attribute")
+        return np.asarray(np.argmax(self.matrix, axis=1), dtype=np.intp)
+
 
 def _as_label_array(z: NDArray[np.generic]) -> NDArray[np.generic]:
     if z.dtype == object:
@@ -105,3 +112,9 @@ def check_enough_rows(n_rows: int, labels: NDArray[np.generic] | None) -> None:
         )
     if n_rows <= labels.size:
         raise ValueError(f"need more rows than classes: got {n_rows} rows for {labels.size} classes")
+
+
+def check_positive_int(name: str, value: object) -> None:
+    """Refuse an estimator parameter that must be a positive integer."""
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
+        raise ValueError(f"{name} must be a positive integer, got {value!r}")

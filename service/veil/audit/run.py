@@ -85,7 +85,7 @@ def audit(
     noise_floor: float | None
 
     if attribute.labels is not None:
-        codes = np.argmax(attribute.matrix, axis=1)
+        codes = attribute.codes
         model = probes.linear_probe(random_state)
         linear_before: ProbeScore | RegressionScore = probes.classification_score(
             model, raw, codes, folds=folds, random_state=random_state
@@ -190,8 +190,7 @@ def audit(
 
 
 def _task_codes(task: object, n_rows: int) -> NDArray[np.intp]:
-    encoded = encode_attribute(task, n_rows, require_categorical=True)
-    return np.asarray(np.argmax(encoded.matrix, axis=1), dtype=np.intp)
+    return encode_attribute(task, n_rows, require_categorical=True).codes
 
 
 def fit_and_audit(

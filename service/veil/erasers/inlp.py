@@ -15,7 +15,7 @@ from sklearn.svm import LinearSVC
 from sklearn.utils import check_random_state
 from sklearn.utils.metaestimators import available_if
 
-from veil._validation import EncodedAttribute, check_enough_rows
+from veil._validation import EncodedAttribute, check_enough_rows, check_positive_int
 from veil.erasers._base import BaseEraser
 from veil.erasers._discriminant import expected_accuracy, fit_discriminant
 from veil.linalg import orthonormal_basis
@@ -127,14 +127,12 @@ class INLPEraser(BaseEraser):
     def _check_params(self) -> None:
         if self.classifier not in CLASSIFIERS:
             raise ValueError(f"classifier must be one of {CLASSIFIERS}, got {self.classifier!r}")
-        if not isinstance(self.max_iter, (int, np.integer)) or self.max_iter < 1:
-            raise ValueError(f"max_iter must be a positive integer, got {self.max_iter!r}")
+        check_positive_int("max_iter", self.max_iter)
+        check_positive_int("patience", self.patience)
         if not 0.0 < self.validation_fraction < 1.0:
             raise ValueError(f"validation_fraction must be in (0, 1), got {self.validation_fraction}")
         if self.tol < 0:
             raise ValueError(f"tol must be non-negative, got {self.tol}")
-        if not isinstance(self.patience, (int, np.integer)) or self.patience < 1:
-            raise ValueError(f"patience must be a positive integer, got {self.patience!r}")
 
     def _split_seed(self) -> int:
         return int(check_random_state(self.random_state).randint(0, 2**31 - 1))
@@ -163,7 +161,7 @@ class INLPEraser(BaseEraser):
         array, attribute = self._validate_fit_input(X, z, reset=True)
         check_enough_rows(array.shape[0], attribute.labels)
         self.split_seed_ = self._split_seed()
-        codes = np.argmax(attribute.matrix, axis=1)
+        codes = attribute.codes
         held_out = give_every_class_both_parts(
             holdout_mask(array.shape[0], fraction=self.validation_fraction, seed=self.split_seed_), codes
         )
@@ -197,7 +195,7 @@ class INLPEraser(BaseEraser):
         )
         if repair:
             # A whole in-memory fit may fix a small sample's split; a stream cannot.
-            held_out = give_every_class_both_parts(held_out, np.argmax(attribute.matrix, axis=1))
+            held_out = give_every_class_both_parts(held_out, attribute.codes)
         self.n_rows_seen_ += array.shape[0]
         train = MomentState.from_batch(array[~held_out], _rows(attribute, ~held_out))
         valid = MomentState.from_batch(array[held_out], _rows(attribute, held_out))

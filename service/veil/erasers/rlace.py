@@ -6,7 +6,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from sklearn.utils import check_random_state
 
-from veil._validation import check_enough_rows
+from veil._validation import check_enough_rows, check_positive_int
 from veil.erasers._base import BaseEraser
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
@@ -135,14 +135,11 @@ class RLACEEraser(BaseEraser):
         self.normalize = normalize
 
     def _check_params(self, d: int) -> None:
-        if not isinstance(self.rank, (int, np.integer)) or self.rank < 1:
-            raise ValueError(f"rank must be a positive integer, got {self.rank!r}")
+        check_positive_int("rank", self.rank)
         if self.rank >= d:
             raise ValueError(f"rank {self.rank} is too large: it must be below the dimension {d}")
         for name in ("max_iter", "classifier_steps", "batch_size"):
-            value = getattr(self, name)
-            if not isinstance(value, (int, np.integer)) or value < 1:
-                raise ValueError(f"{name} must be a positive integer, got {value!r}")
+            check_positive_int(name, getattr(self, name))
 
     def fit(self, X: ArrayLike, z: object) -> RLACEEraser:
         """Fit the eraser.
