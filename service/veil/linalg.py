@@ -74,3 +74,31 @@ def whitening_factors(covariance: Float64Array, *, rtol: float | None = None) ->
 def whiten(x: NDArray[np.floating], eigenvectors: Float64Array, scale: Float64Array) -> Float64Array:
     """Apply ``W`` from :func:`whitening_factors` to the rows of ``x`` (shape (n, d) → (n, r))."""
     return (np.asarray(x, dtype=np.float64) @ eigenvectors) * scale
+
+
+def restrict_to_support(q: Float64Array, covariance: Float64Array, *, rtol: float | None = None) -> Float64Array:
+    """Orthonormal basis of the columns of ``q`` projected onto the support of ``covariance``.
+
+    Along a direction where the fitting data has no spread (a dead
+    coordinate of an embedding model), removing a component changes nothing
+    for that data, but a removed direction with a part there would *write*
+    the removed component into it at tiny scale, where a probe that rescales
+    features can read it back.  Restricting the directions to the support
+    prevents that.
+
+    Parameters
+    ----------
+    q : ndarray of shape (d, k)
+    covariance : ndarray of shape (d, d)
+    rtol : float, optional
+        Eigenvalue cut-off of the support, as in :func:`whitening_factors`.
+
+    Returns
+    -------
+    ndarray of shape (d, k')
+        ``k' <= k``.
+    """
+    if q.shape[1] == 0:
+        return q
+    support, _ = whitening_factors(covariance, rtol=rtol)
+    return orthonormal_basis(support @ (support.T @ q))

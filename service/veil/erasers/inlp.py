@@ -18,7 +18,7 @@ from sklearn.utils.metaestimators import available_if
 from veil._validation import EncodedAttribute, check_enough_rows, check_positive_int
 from veil.erasers._base import BaseEraser
 from veil.erasers._discriminant import expected_accuracy, fit_discriminant
-from veil.linalg import orthonormal_basis
+from veil.linalg import orthonormal_basis, restrict_to_support
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
 from veil.splitting import give_every_class_both_parts, holdout_mask
@@ -294,6 +294,7 @@ class INLPEraser(BaseEraser):
         self.history_ = history
         self.n_iter_ = len(history)
         self.converged_ = converged
+        q = restrict_to_support(q, moments.covariance_xx)
         self._set_fitted(AffineLowRankMap(mean=moments.mean_x, u=q, v=q), moments)
 
 

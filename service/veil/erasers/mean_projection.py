@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from veil.erasers._base import MomentEraser
-from veil.linalg import orthonormal_basis
+from veil.linalg import orthonormal_basis, restrict_to_support
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
 
@@ -36,5 +36,5 @@ class MeanProjectionEraser(MomentEraser):
         self.normalize = normalize
 
     def _map_from_moments(self, moments: MomentState) -> AffineLowRankMap:
-        q = orthonormal_basis(moments.cross_covariance)
+        q = restrict_to_support(orthonormal_basis(moments.cross_covariance), moments.covariance_xx)
         return AffineLowRankMap(mean=moments.mean_x, u=q, v=q)

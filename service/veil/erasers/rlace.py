@@ -8,6 +8,7 @@ from sklearn.utils import check_random_state
 
 from veil._validation import check_enough_rows, check_positive_int
 from veil.erasers._base import BaseEraser
+from veil.linalg import restrict_to_support
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
 
@@ -208,7 +209,7 @@ class RLACEEraser(BaseEraser):
         # classifier's loss came closest to that of knowing nothing.
         projection = best_projection
         _, eigenvectors = np.linalg.eigh(projection)
-        q = eigenvectors[:, ::-1][:, : self.rank]
+        q = restrict_to_support(eigenvectors[:, ::-1][:, : self.rank], moments.covariance_xx)
         self.history_ = history
         self.n_iter_ = self.max_iter
         self.relaxed_projection_ = projection
