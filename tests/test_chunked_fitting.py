@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pytest
 from numpy.typing import NDArray
+from sklearn.exceptions import ConvergenceWarning
 
 from veil import INLPEraser, LeaceEraser, MeanProjectionEraser, MomentState
 from veil._validation import encode_attribute
@@ -88,3 +91,15 @@ def test_the_same_attribute_of_another_type_cannot_be_merged() -> None:
     eraser = LeaceEraser().partial_fit(x[:20], np.arange(20) % 2)
     with pytest.raises(ValueError, match="changed type"):
         eraser.partial_fit(x[20:], np.array(["a", "b"] * 10))
+
+
+def test_only_a_whole_fit_warns_that_inlp_did_not_converge() -> None:
+    x, z = planted(n=2000, d=10, seed=7)
+    streamed = INLPEraser(classifier="moments", max_iter=1, tol=0.0, random_state=0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ConvergenceWarning)
+        for rows in np.array_split(np.arange(2000), 4):
+            streamed.partial_fit(x[rows], z[rows])
+    assert not streamed.converged_
+    with pytest.warns(ConvergenceWarning, match="raise max_iter"):
+        INLPEraser(classifier="moments", max_iter=1, tol=0.0, random_state=0).fit(x, z)

@@ -209,7 +209,10 @@ class INLPEraser(BaseEraser):
             # A first chunk must itself be a valid fitting set when it is all there is.
             check_enough_rows(self.moments_.count, self.moments_.labels)
         if _has_classes(train) and _has_classes(valid):
-            self._finish(self._moment_step(train, valid), self.moments_)
+            # A stream is expected to be unconverged until enough rows have
+            # arrived; only a whole fit warns (scikit-learn's partial_fit
+            # estimators do the same).
+            self._finish(self._moment_step(train, valid), self.moments_, warn=repair)
         else:
             self.__dict__.pop("map_", None)
             if repair:
@@ -264,7 +267,7 @@ class INLPEraser(BaseEraser):
 
         return step
 
-    def _finish(self, step: Step, moments: MomentState) -> None:
+    def _finish(self, step: Step, moments: MomentState, *, warn: bool = True) -> None:
         d = moments.n_features
         q = np.zeros((d, 0))
         history: list[dict[str, float]] = []
@@ -283,7 +286,7 @@ class INLPEraser(BaseEraser):
                 q = grown
                 break
             q = grown
-        if not converged:
+        if warn and not converged:
             warnings.warn(
                 f"INLP stopped after {len(history)} classifiers with held-out accuracy "
                 f"{history[-1]['accuracy']:.3f} above majority {history[-1]['majority']:.3f} + tol; "
