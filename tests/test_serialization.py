@@ -15,6 +15,7 @@ from veil.serialization import (
     DESCRIPTION_FILE,
     ArtifactFormatError,
     content_digest,
+    file_sha256,
     read_artifact,
     write_artifact,
 )
@@ -47,52 +48,51 @@ def test_the_same_eraser_has_the_same_digest_whenever_it_is_written(tmp_path: Pa
     assert content_digest(other) != content_digest(artifact)
 
 
-def test_a_flipped_byte_in_the_arrays_is_refused(tmp_path: Path) -> None:
+@pytest.fixture
+def saved(tmp_path: Path) -> Path:
+    """A LEACE artifact written to a fresh directory."""
     x, z = planted(n=300, d=5, seed=3)
     write_artifact(LeaceEraser().fit(x, z).export(), tmp_path / "v")
-    path = tmp_path / "v" / ARRAYS_FILE
+    return tmp_path / "v"
+
+
+def test_a_flipped_byte_in_the_arrays_is_refused(saved: Path) -> None:
+    path = saved / ARRAYS_FILE
     data = bytearray(path.read_bytes())
     data[len(data) // 2] ^= 0x01
     path.write_bytes(bytes(data))
     with pytest.raises(ArtifactFormatError, match="does not match its sha256"):
-        read_artifact(tmp_path / "v")
+        read_artifact(saved)
 
 
-def test_a_changed_description_is_refused(tmp_path: Path) -> None:
-    x, z = planted(n=300, d=5, seed=4)
-    write_artifact(LeaceEraser().fit(x, z).export(), tmp_path / "v")
-    path = tmp_path / "v" / DESCRIPTION_FILE
+def test_a_changed_description_is_refused(saved: Path) -> None:
+    path = saved / DESCRIPTION_FILE
     description = json.loads(path.read_text())
     description["normalize"] = True
     path.write_text(json.dumps(description))
     with pytest.raises(ArtifactFormatError, match="content digest does not match"):
-        read_artifact(tmp_path / "v")
+        read_artifact(saved)
 
 
-def test_pickled_object_arrays_are_never_loaded(tmp_path: Path) -> None:
-    x, z = planted(n=300, d=5, seed=5)
-    write_artifact(LeaceEraser().fit(x, z).export(), tmp_path / "v")
-    arrays_path = tmp_path / "v" / ARRAYS_FILE
+def test_pickled_object_arrays_are_never_loaded(saved: Path) -> None:
+    arrays_path = saved / ARRAYS_FILE
     with np.load(arrays_path) as stored:
         arrays = {name: stored[name] for name in stored.files}
     arrays["labels"] = np.array([object(), object()], dtype=object)
     np.savez(arrays_path, **arrays)
     # Make the checksums agree, as a forger would, so only the pickle guard stands in the way.
-    from veil.serialization import file_sha256
-
-    description_path = tmp_path / "v" / DESCRIPTION_FILE
+    description_path = saved / DESCRIPTION_FILE
     description = json.loads(description_path.read_text())
     description["arrays_sha256"] = file_sha256(arrays_path)
     description_path.write_text(json.dumps(description))
     with pytest.raises(ArtifactFormatError, match="unreadable artifact"):
-        read_artifact(tmp_path / "v")
+        read_artifact(saved)
 
 
-def test_missing_files_and_non_empty_targets_are_refused(tmp_path: Path) -> None:
+def test_missing_files_and_non_empty_targets_are_refused(saved: Path, tmp_path: Path) -> None:
     with pytest.raises(ArtifactFormatError, match="is missing"):
         read_artifact(tmp_path / "nothing")
     x, z = planted(n=300, d=5, seed=6)
-    write_artifact(LeaceEraser().fit(x, z).export(), tmp_path / "v")
     with pytest.raises(FileExistsError, match="non-empty directory"):
-        write_artifact(LeaceEraser().fit(x, z).export(), tmp_path / "v")
-    assert zipfile.is_zipfile(tmp_path / "v" / ARRAYS_FILE)
+        write_artifact(LeaceEraser().fit(x, z).export(), saved)
+    assert zipfile.is_zipfile(saved / ARRAYS_FILE)

@@ -10,6 +10,7 @@ the zip container, so the same eraser always has the same digest.
 from __future__ import annotations
 
 import hashlib
+import io
 import json
 import os
 from pathlib import Path
@@ -106,14 +107,13 @@ def write_artifact(artifact: EraserArtifact, directory: Path) -> str:
     directory.mkdir(parents=True, exist_ok=True)
     if any(directory.iterdir()):
         raise FileExistsError(f"refusing to write an artifact into the non-empty directory {directory}")
-    arrays_path = directory / ARRAYS_FILE
-    with arrays_path.open("wb") as handle:
-        # No object arrays are ever written, so no reader ever needs pickle.
-        np.savez(handle, allow_pickle=False, **artifact_arrays(artifact))
-        handle.flush()
-        os.fsync(handle.fileno())
+    buffer = io.BytesIO()
+    # No object arrays are ever written, so no reader ever needs pickle.
+    np.savez(buffer, allow_pickle=False, **artifact_arrays(artifact))
+    arrays_bytes = buffer.getvalue()
+    _write_synced(directory / ARRAYS_FILE, arrays_bytes)
     description = artifact_description(artifact)
-    description["arrays_sha256"] = file_sha256(arrays_path)
+    description["arrays_sha256"] = hashlib.sha256(arrays_bytes).hexdigest()
     description["content_digest"] = content_digest(artifact)
     _write_synced(directory / DESCRIPTION_FILE, json.dumps(description, indent=2, sort_keys=True).encode())
     return str(description["content_digest"])
