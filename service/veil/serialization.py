@@ -1,8 +1,8 @@
 """Write and read an :class:`EraserArtifact` as plain files: NumPy arrays and a JSON description.
 
-A saved artifact is a directory with ``arrays.npz`` (read with
-``allow_pickle=False``, so loading never runs code) and ``artifact.json``
-(method, parameters, shapes, history and the sha256 of the arrays file).
+An artifact is two files: ``arrays.npz`` (read with ``allow_pickle=False``,
+so loading never runs code) and ``artifact.json`` (method, parameters,
+shapes, history and the sha256 of the arrays file).
 :func:`content_digest` hashes the arrays and description themselves, not
 the zip container, so the same eraser always has the same digest.
 """
@@ -12,8 +12,8 @@ from __future__ import annotations
 import hashlib
 import io
 import json
-import os
-from pathlib import Path
+import zipfile
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
@@ -83,65 +83,57 @@ def content_digest(artifact: EraserArtifact) -> str:
     return digest.hexdigest()
 
 
-def file_sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
+def encode_artifact(artifact: EraserArtifact) -> dict[str, bytes]:
+    """The artifact as file contents by file name: ``arrays.npz`` and ``artifact.json``.
 
-
-def _write_synced(path: Path, data: bytes) -> None:
-    with path.open("wb") as handle:
-        handle.write(data)
-        handle.flush()
-        os.fsync(handle.fileno())
-
-
-def write_artifact(artifact: EraserArtifact, directory: Path) -> str:
-    """Write the artifact into an empty or new ``directory``; returns its :func:`content_digest`.
-
-    Files are written and fsynced in full; a caller that needs the whole
-    directory to appear at once writes it under a temporary name and renames it.
+    Storage is the caller's business (a registry writes these files and makes
+    them visible at once); the bytes are the same whoever stores them.
     """
-    directory.mkdir(parents=True, exist_ok=True)
-    if any(directory.iterdir()):
-        raise FileExistsError(f"refusing to write an artifact into the non-empty directory {directory}")
     buffer = io.BytesIO()
     # No object arrays are ever written, so no reader ever needs pickle.
     np.savez(buffer, allow_pickle=False, **artifact_arrays(artifact))
     arrays_bytes = buffer.getvalue()
-    _write_synced(directory / ARRAYS_FILE, arrays_bytes)
     description = artifact_description(artifact)
     description["arrays_sha256"] = hashlib.sha256(arrays_bytes).hexdigest()
     description["content_digest"] = content_digest(artifact)
-    _write_synced(directory / DESCRIPTION_FILE, json.dumps(description, indent=2, sort_keys=True).encode())
-    return str(description["content_digest"])
+    return {
+        ARRAYS_FILE: arrays_bytes,
+        DESCRIPTION_FILE: json.dumps(description, indent=2, sort_keys=True).encode(),
+    }
 
 
-def read_artifact(directory: Path) -> EraserArtifact:
-    """Read and verify an artifact written by :func:`write_artifact`.
+def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> EraserArtifact:
+    """Read and verify an artifact from the file contents :func:`encode_artifact` made.
+
+    Parameters
+    ----------
+    files : mapping of str to bytes
+        At least ``arrays.npz`` and ``artifact.json``.
+    source : str
+        Where the files came from, for error messages.
 
     Raises
     ------
     ArtifactFormatError
-        A file is missing or unreadable, a checksum or the content digest
-        does not match, or the arrays are inconsistent.
+        A file is missing, a checksum or the content digest does not match,
+        or the arrays are inconsistent.
     """
-    description_path, arrays_path = directory / DESCRIPTION_FILE, directory / ARRAYS_FILE
-    for path in (description_path, arrays_path):
-        if not path.is_file():
-            raise ArtifactFormatError(f"{path} is missing")
+    for name in (DESCRIPTION_FILE, ARRAYS_FILE):
+        if name not in files:
+            raise ArtifactFormatError(f"{source}: {name} is missing")
     try:
-        description = json.loads(description_path.read_text(encoding="utf-8"))
+        description = json.loads(files[DESCRIPTION_FILE].decode("utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError) as error:
-        raise ArtifactFormatError(f"{description_path} is not valid JSON: {error}") from None
+        raise ArtifactFormatError(f"{source}: {DESCRIPTION_FILE} is not valid JSON: {error}") from None
     if not isinstance(description, dict) or description.get("format_version") != FORMAT_VERSION:
-        raise ArtifactFormatError(f"{description_path} is not a veil artifact of format {FORMAT_VERSION}")
-    if file_sha256(arrays_path) != description.get("arrays_sha256"):
-        raise ArtifactFormatError(f"{arrays_path} does not match its sha256: the file is damaged or was changed")
+        raise ArtifactFormatError(f"{source}: {DESCRIPTION_FILE} is not a veil artifact of format {FORMAT_VERSION}")
+    arrays_bytes = files[ARRAYS_FILE]
+    if hashlib.sha256(arrays_bytes).hexdigest() != description.get("arrays_sha256"):
+        raise ArtifactFormatError(
+            f"{source}: {ARRAYS_FILE} does not match its sha256: the file is damaged or was changed"
+        )
     try:
-        with np.load(arrays_path, allow_pickle=False) as stored:
+        with np.load(io.BytesIO(arrays_bytes), allow_pickle=False) as stored:
             arrays = {name: stored[name] for name in stored.files}
         artifact = EraserArtifact(
             method=str(description["method"]),
@@ -155,8 +147,8 @@ def read_artifact(directory: Path) -> EraserArtifact:
             ),
             history=list(description["history"]),
         )
-    except (KeyError, ValueError, TypeError, OSError) as error:
-        raise ArtifactFormatError(f"{directory} holds an unreadable artifact: {error}") from None
+    except (KeyError, ValueError, TypeError, OSError, zipfile.BadZipFile) as error:
+        raise ArtifactFormatError(f"{source} holds an unreadable artifact: {error}") from None
     if content_digest(artifact) != description.get("content_digest"):
-        raise ArtifactFormatError(f"{directory}: the content digest does not match the stored one")
+        raise ArtifactFormatError(f"{source}: the content digest does not match the stored one")
     return artifact

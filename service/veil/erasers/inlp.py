@@ -21,6 +21,7 @@ from veil.erasers._discriminant import expected_accuracy, fit_discriminant
 from veil.linalg import orthonormal_basis, restrict_to_support
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
+from veil.progress import advance
 from veil.splitting import give_every_class_both_parts, holdout_mask
 
 Float64Array = NDArray[np.float64]
@@ -275,6 +276,7 @@ class INLPEraser(BaseEraser):
         quiet = 0  # consecutive classifiers that met the stopping rule
         for iteration in range(self.max_iter):
             weights, accuracy, majority = step(q)
+            advance("INLP classifiers", iteration + 1, self.max_iter)
             quiet = quiet + 1 if accuracy <= majority + self.tol else 0
             if quiet >= self.patience:
                 history.append({"iteration": iteration, "accuracy": accuracy, "majority": majority, "rank": q.shape[1]})

@@ -11,6 +11,7 @@ from veil.erasers._base import BaseEraser
 from veil.linalg import restrict_to_support
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
+from veil.progress import advance
 
 Float64Array = NDArray[np.float64]
 
@@ -204,6 +205,7 @@ class RLACEEraser(BaseEraser):
                 best_distance, best_projection = abs(loss - prior_entropy), projection
             projection = fantope_projection(projection + step, self.rank)
             history.append({"iteration": iteration, "loss": loss})
+            advance("R-LACE iterations", iteration + 1, self.max_iter)
 
         # The game oscillates; keep the projection against which the
         # classifier's loss came closest to that of knowing nothing.

@@ -1,0 +1,176 @@
+"""The version card: everything an auditor or the service needs to know about one stored eraser, as JSON.
+
+A card records the method and parameters, the shape of the map, the fitting
+data's fingerprint and split, the full held-out audit, a summary of the
+reference statistics (the arrays are in ``reference.npz``), the alert
+thresholds, library versions, and who made it when.
+"""
+
+from __future__ import annotations
+
+import math
+import platform
+from datetime import UTC, datetime
+from importlib import metadata
+from typing import Any
+
+from veil.artifact import EraserArtifact
+from veil.audit.report import AuditReport, ProbeScore, RegressionScore
+from veil.datasource import LabelledSample
+from veil.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
+from veil.thresholds import AlertThresholds
+
+CARD_FORMAT = 1
+_LIBRARIES = ("veil", "numpy", "scipy", "scikit-learn")
+
+
+def _finite(value: Any) -> Any:
+    """JSON-safe: NumPy scalars to Python, NaN/inf to None (strict JSON has neither), recursively."""
+    if hasattr(value, "item") and not isinstance(value, (list, dict, str)):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, dict):
+        return {str(k): _finite(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_finite(v) for v in value]
+    return value
+
+
+def software_versions() -> dict[str, str]:
+    versions = {"python": platform.python_version()}
+    for library in _LIBRARIES:
+        try:
+            versions[library] = metadata.version(library)
+        except metadata.PackageNotFoundError:
+            versions[library] = "unknown"
+    return versions
+
+
+def build_card(
+    *,
+    name: str,
+    artifact: EraserArtifact,
+    sample: LabelledSample,
+    fit_rows: int,
+    split_seed: int,
+    holdout: float,
+    audit: AuditReport,
+    reference: ReferenceStatistics,
+    thresholds: AlertThresholds,
+    user: str,
+    notes: list[str],
+) -> dict[str, Any]:
+    """The card of a freshly fitted version (a JSON-safe dict)."""
+    classes = [] if artifact.classes is None else [str(c) for c in artifact.classes]
+    card = {
+        "card_format": CARD_FORMAT,
+        "name": name,
+        "method": artifact.method,
+        "params": dict(artifact.params),
+        "normalize": artifact.normalize,
+        "dim": artifact.map.dim,
+        "rank": artifact.map.rank,
+        "dtype": str(sample.embeddings.dtype),
+        "attribute": {"key": sample.attribute_key, "classes": classes, "priors": reference.class_priors.tolist()},
+        "task": None if sample.task_key is None else {"key": sample.task_key},
+        "data": {
+            "fingerprint_sha256": sample.fingerprint,
+            "files": {path.rsplit("/", 1)[-1]: digest for path, digest in sample.files.items()},
+            "rows": sample.rows,
+            "fit_rows": fit_rows,
+            "heldout_rows": audit.n_heldout,
+        },
+        "split": {"kind": "row-index hash", "seed": split_seed, "holdout": holdout},
+        "audit": audit.to_dict(),
+        "reference": {
+            "file": REFERENCE_FILE,
+            "erased_variance_share": reference.erased_variance_share,
+            "leading_components": min(LEADING_COMPONENTS, artifact.map.dim),
+            "pre_erasure_probe": "logistic regression on standardised raw embeddings, fitted on the fit rows",
+        },
+        "thresholds": thresholds.to_dict(),
+        "software": software_versions(),
+        "created_at": datetime.now(UTC).isoformat(timespec="seconds"),
+        "created_by": user,
+        "notes": notes,
+    }
+    return dict(_finite(card))
+
+
+def card_audit(card: dict[str, Any]) -> AuditReport:
+    return AuditReport.from_dict(card["audit"])
+
+
+def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
+    """The figures people compare between versions, as (label, text) pairs."""
+    audit = card_audit(card)
+    lk, ut = audit.leakage, audit.utility
+    rows = [
+        ("method", f"{card['method']} (rank {card['rank']}, dim {card['dim']})"),
+        ("created", f"{card['created_at']} by {card['created_by']}"),
+        ("data", f"{card['data']['rows']} rows, sha256 {card['data']['fingerprint_sha256'][:16]}…"),
+        ("split", f"{card['split']['holdout']:.0%} held out, seed {card['split']['seed']}"),
+    ]
+    if isinstance(lk.linear_after, ProbeScore) and isinstance(lk.linear_before, ProbeScore):
+        rows.append(("majority baseline", f"{lk.linear_after.majority:.3f}"))
+        rows.append(("linear probe before", f"{lk.linear_before.accuracy:.3f}"))
+        rows.append(
+            (
+                "linear probe after",
+                f"{lk.linear_after.accuracy:.3f} [{lk.linear_after.interval_low:.3f}, "
+                f"{lk.linear_after.interval_high:.3f}]",
+            )
+        )
+    elif isinstance(lk.linear_after, RegressionScore) and isinstance(lk.linear_before, RegressionScore):
+        rows.append(("ridge R² before / after", f"{lk.linear_before.r2:.3f} / {lk.linear_after.r2:.3f}"))
+    if lk.nonlinear_after is not None and lk.nonlinear_before is not None:
+        rows.append(
+            ("MLP probe before / after", f"{lk.nonlinear_before.accuracy:.3f} / {lk.nonlinear_after.accuracy:.3f}")
+        )
+    rows += [
+        ("relative distortion", f"{ut.relative_distortion:.4f}"),
+        ("mean cosine(x, x')", f"{ut.mean_cosine:.4f}"),
+        ("10-NN overlap", f"{ut.knn_overlap_at_10:.3f}"),
+    ]
+    if ut.task_accuracy_after is not None and ut.task_accuracy_before is not None:
+        rows.append(("task accuracy before / after", f"{ut.task_accuracy_before:.3f} / {ut.task_accuracy_after:.3f}"))
+    if audit.retrieval is not None:
+        rt = audit.retrieval
+        rows.append(
+            (
+                "10-NN sharing attribute",
+                f"{rt.attribute_share_before:.3f} → {rt.attribute_share_after:.3f} (base {rt.attribute_base_rate:.3f})",
+            )
+        )
+    return rows
+
+
+def format_card(version_id: str, card: dict[str, Any]) -> str:
+    """The card for a terminal: headline figures, the full audit table, thresholds and provenance."""
+    lines = [f"{card['name']} {version_id}"]
+    width = max(len(label) for label, _ in _headline(card))
+    lines += [f"  {label:{width}}  {text}" for label, text in _headline(card)]
+    attribute = card["attribute"]
+    lines.append(f"  {'attribute':{width}}  {attribute['key']}: {', '.join(attribute['classes'])}")
+    if card.get("task"):
+        lines.append(f"  {'task':{width}}  {card['task']['key']}")
+    lines.append(f"  {'parameters':{width}}  " + ", ".join(f"{k}={v}" for k, v in sorted(card["params"].items())))
+    lines += ["", card_audit(card).format_table(), "", "alert thresholds (warn / alert):"]
+    lines += [f"  {figure}: {band['warn']} / {band['alert']}" for figure, band in card["thresholds"].items()]
+    lines.append("software: " + ", ".join(f"{k} {v}" for k, v in card["software"].items()))
+    lines += [f"note: {note}" for note in card.get("notes", [])]
+    return "\n".join(lines)
+
+
+def compare_cards(left_id: str, left: dict[str, Any], right_id: str, right: dict[str, Any]) -> str:
+    """Two versions' headline figures side by side."""
+    left_rows, right_rows = dict(_headline(left)), dict(_headline(right))
+    labels = list(dict.fromkeys([*left_rows, *right_rows]))
+    width = max(len(label) for label in labels)
+    column = max(len(left_id), *(len(v) for v in left_rows.values()))
+    lines = [f"{'':{width}}  {left_id:{column}}  {right_id}"]
+    lines += [
+        f"{label:{width}}  {left_rows.get(label, '-'):{column}}  {right_rows.get(label, '-')}" for label in labels
+    ]
+    return "\n".join(lines)

@@ -1,0 +1,139 @@
+"""The ``veil`` command line: arguments only; each subcommand names the function in :mod:`veil.cli.commands` it runs."""
+
+from __future__ import annotations
+
+import argparse
+import os
+
+from veil.corpus import DEFAULT_CHUNK_ROWS
+from veil.datasource import DEFAULT_EMBEDDINGS_KEY
+from veil.fitting import METHODS, method_parameters
+from veil.registry import DEFAULT_ALIAS
+
+DEFAULT_REGISTRY = "./veil-registry"
+
+
+def _method_options_help() -> str:
+    lines = ["method options (--option KEY=VALUE, repeatable):"]
+    for method in METHODS:
+        options = ", ".join(f"{key}={value!r}" for key, value in sorted(method_parameters(method).items()))
+        lines.append(f"  {method}: {options or '(none)'}")
+    return "\n".join(lines)
+
+
+def _common_options() -> argparse.ArgumentParser:
+    """Options every subcommand takes, after its name: ``veil versions NAME --registry R``."""
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument(
+        "--registry",
+        default=os.environ.get("VEIL_REGISTRY", DEFAULT_REGISTRY),
+        help="registry directory or fsspec URL (default: $VEIL_REGISTRY, else ./veil-registry)",
+    )
+    common.add_argument(
+        "--progress",
+        choices=("auto", "always", "never"),
+        default="auto",
+        help="progress bars on stderr: when stderr is a terminal (auto), always, or never",
+    )
+    return common
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="veil",
+        description="Fit, store, inspect, promote and apply erasers that keep a protected attribute out of embeddings.",
+    )
+    common = [_common_options()]
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    fit = commands.add_parser(
+        "fit",
+        parents=common,
+        help="fit an eraser on a labelled sample, audit it on held-out rows, store it as a new version",
+        epilog=_method_options_help(),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    fit.add_argument("--data", required=True, help="labelled sample: .npz, .npy (with --labels) or .parquet")
+    fit.add_argument("--attribute", required=True, help="key or column of the protected attribute")
+    fit.add_argument("--task", help="key or column of a task label, for utility figures")
+    fit.add_argument("--labels", help="labels for .npy input: a .npy (the attribute) or a .csv with a header")
+    fit.add_argument(
+        "--embeddings", default=DEFAULT_EMBEDDINGS_KEY, help="key (.npz) or column (.parquet) of the embeddings"
+    )
+    fit.add_argument("--method", required=True, choices=sorted(METHODS))
+    fit.add_argument("--option", action="append", default=[], metavar="KEY=VALUE", help="a method option")
+    fit.add_argument("--name", required=True, help="the eraser's name in the registry, e.g. profiles-minilm")
+    fit.add_argument("--alias", help="point this alias (e.g. live) at the new version")
+    fit.add_argument("--reason", default="", help="recorded in the history when --alias moves")
+    fit.add_argument("--holdout", type=float, default=0.2, help="share of rows held out for the audit (default 0.2)")
+    fit.add_argument("--seed", type=int, default=0, help="seeds the split, probes and randomised methods")
+    fit.add_argument("--normalize", action="store_true", help="re-normalise served vectors to unit length")
+    fit.add_argument(
+        "--probes", choices=("all", "linear"), default="all", help="audit with linear and MLP probes, or linear only"
+    )
+    fit.set_defaults(handler="fit")
+
+    versions = commands.add_parser(
+        "versions", parents=common, help="list the versions of an eraser and the aliases on them"
+    )
+    versions.add_argument("name")
+    versions.add_argument("--json", action="store_true", help="machine-readable output")
+    versions.set_defaults(handler="versions")
+
+    show = commands.add_parser("show", parents=common, help="show a version's card")
+    show.add_argument("name")
+    show.add_argument("version", help="a version id, its sequence number (3 or v3), or an alias")
+    show.add_argument("--json", action="store_true", help="print the card as JSON")
+    show.set_defaults(handler="show")
+
+    compare = commands.add_parser("compare", parents=common, help="two versions' figures side by side")
+    compare.add_argument("name")
+    compare.add_argument("left")
+    compare.add_argument("right")
+    compare.set_defaults(handler="compare")
+
+    promote = commands.add_parser("promote", parents=common, help="point an alias at a version (verified first)")
+    promote.add_argument("name")
+    promote.add_argument("version")
+    promote.add_argument("--alias", default=DEFAULT_ALIAS)
+    promote.add_argument("--reason", default="")
+    promote.add_argument(
+        "--allow-dimension-change", action="store_true", help="accept a version of another dimension than the alias's"
+    )
+    promote.set_defaults(handler="promote")
+
+    rollback = commands.add_parser("rollback", parents=common, help="move an alias back to its previous target")
+    rollback.add_argument("name")
+    rollback.add_argument("--alias", default=DEFAULT_ALIAS)
+    rollback.add_argument("--reason", default="")
+    rollback.add_argument("--allow-dimension-change", action="store_true")
+    rollback.set_defaults(handler="rollback")
+
+    history = commands.add_parser("history", parents=common, help="every promote and rollback, in order")
+    history.add_argument("name")
+    history.add_argument("--json", action="store_true", help="machine-readable output")
+    history.set_defaults(handler="history")
+
+    verify = commands.add_parser("verify", parents=common, help="check every checksum; exit 1 on any failure")
+    verify.add_argument("name", nargs="?")
+    verify.set_defaults(handler="verify")
+
+    report = commands.add_parser("report", parents=common, help="write a version's self-contained HTML report")
+    report.add_argument("name")
+    report.add_argument("version")
+    report.add_argument("--out", required=True, help="the .html file to write")
+    report.set_defaults(handler="report")
+
+    apply = commands.add_parser(
+        "apply", parents=common, help="clean a whole corpus offline (.npy or Parquet) with a stored version"
+    )
+    apply.add_argument("name")
+    target = apply.add_mutually_exclusive_group()
+    target.add_argument("--version", help="a version id or sequence number")
+    target.add_argument("--alias", help=f"an alias (default {DEFAULT_ALIAS})")
+    apply.add_argument("--in", dest="source", required=True, help="the corpus: .npy or .parquet")
+    apply.add_argument("--out", dest="target", required=True, help="the cleaned corpus, same format")
+    apply.add_argument("--embeddings", default=DEFAULT_EMBEDDINGS_KEY, help="the Parquet embedding column")
+    apply.add_argument("--chunk-rows", type=int, default=DEFAULT_CHUNK_ROWS, help="rows cleaned at a time")
+    apply.set_defaults(handler="apply")
+    return parser

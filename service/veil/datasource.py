@@ -1,0 +1,258 @@
+"""Read a labelled sample for the fitting job: ``.npz``, ``.npy`` with a labels file, or Parquet.
+
+==========  =====================================================================
+input       where embeddings and labels come from
+==========  =====================================================================
+``.npz``    arrays by key: the embeddings key (default ``embedding``), the attribute and task keys
+``.npy``    a 2-D array; labels in ``--labels``: a ``.npy`` (the attribute) or a ``.csv`` with a header
+Parquet     a list or fixed-size-list column of numbers per row, plus label columns
+==========  =====================================================================
+
+Every file read is hashed (sha256) so the version card records exactly which
+data fitted it.  Nothing is ever unpickled.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.errors import DataError
+from veil.progress import advance
+from veil.tables import embedding_matrix
+
+DEFAULT_EMBEDDINGS_KEY = "embedding"
+_HASH_BLOCK = 8 << 20
+PARQUET_SUFFIXES = (".parquet", ".pq")
+
+
+@dataclass(frozen=True, eq=False)
+class LabelledSample:
+    """Embeddings with their attribute (and optional task) labels, and where they came from.
+
+    Attributes
+    ----------
+    embeddings : ndarray of shape (n, d), float32 or float64
+    attribute : ndarray of shape (n,)
+    attribute_key : str
+    task : ndarray of shape (n,) or None
+    task_key : str or None
+    files : dict of str to str
+        sha256 of every file read, by path.
+    """
+
+    embeddings: NDArray[np.floating]
+    attribute: NDArray[Any]
+    attribute_key: str
+    task: NDArray[Any] | None
+    task_key: str | None
+    files: dict[str, str]
+
+    @property
+    def rows(self) -> int:
+        return int(self.embeddings.shape[0])
+
+    @property
+    def fingerprint(self) -> str:
+        """One sha256 over every file's sha256, in path order."""
+        joined = "\n".join(f"{Path(path).name} {digest}" for path, digest in sorted(self.files.items()))
+        return hashlib.sha256(joined.encode()).hexdigest()
+
+
+def file_sha256(path: Path) -> str:
+    """sha256 of a file, read in blocks (progress reported for large files)."""
+    digest = hashlib.sha256()
+    size = path.stat().st_size
+    done = 0
+    with path.open("rb") as handle:
+        for block in iter(lambda: handle.read(_HASH_BLOCK), b""):
+            digest.update(block)
+            done += len(block)
+            if size > 4 * _HASH_BLOCK:
+                advance(f"hashing {path.name} (MB)", done >> 20, size >> 20)
+    return digest.hexdigest()
+
+
+def _check_file(path: Path) -> None:
+    if not path.exists():
+        raise DataError(f"{path} does not exist")
+    if not path.is_file():
+        raise DataError(f"{path} is not a file")
+
+
+def check_embeddings(matrix: NDArray[Any], *, source: str) -> NDArray[np.floating]:
+    """A 2-D matrix of finite numbers (float32 kept, other numbers as float64); refuses anything else."""
+    if matrix.ndim != 2:
+        raise DataError(f"{source}: embeddings must be a 2-D array (rows × dimensions), got shape {matrix.shape}")
+    if matrix.dtype.kind not in "fiu":
+        raise DataError(f"{source}: embeddings must be numbers, got dtype {matrix.dtype}")
+    if matrix.shape[0] == 0 or matrix.shape[1] == 0:
+        raise DataError(f"{source}: embeddings are empty (shape {matrix.shape})")
+    out = matrix if matrix.dtype in (np.float32, np.float64) else matrix.astype(np.float64)
+    if not np.isfinite(out).all():
+        row = int(np.flatnonzero(~np.isfinite(out).all(axis=1))[0])
+        raise DataError(f"{source}: embeddings hold NaN or infinite values (first at row {row})")
+    return out
+
+
+def _labels(values: NDArray[Any], *, key: str, rows: int, source: str) -> NDArray[Any]:
+    if values.ndim != 1:
+        raise DataError(f"{source}: labels {key!r} must be one value per row, got shape {values.shape}")
+    if values.shape[0] != rows:
+        raise DataError(f"{source}: labels {key!r} have {values.shape[0]} rows but the embeddings have {rows}")
+    if values.dtype.kind == "O":
+        raise DataError(f"{source}: labels {key!r} must be numbers or strings")
+    if values.dtype.kind == "f" and not np.isfinite(values).all():
+        raise DataError(f"{source}: labels {key!r} hold NaN or infinite values")
+    return values
+
+
+def _npz_arrays(path: Path, keys: list[str]) -> dict[str, NDArray[Any]]:
+    try:
+        with np.load(path, allow_pickle=False) as stored:
+            missing = [key for key in keys if key not in stored.files]
+            if missing:
+                raise DataError(f"{path} has no array {missing[0]!r}; it holds {', '.join(sorted(stored.files))}")
+            return {key: stored[key] for key in keys}
+    except DataError:
+        raise
+    except ValueError as error:
+        raise DataError(f"{path}: cannot read an array without unpickling it ({error})") from None
+    except (OSError, EOFError) as error:
+        raise DataError(f"{path} is not a readable .npz file ({error})") from None
+
+
+def _npy_array(path: Path) -> NDArray[Any]:
+    try:
+        array: NDArray[Any] = np.load(path, mmap_mode="r", allow_pickle=False)
+    except ValueError as error:
+        raise DataError(f"{path}: cannot read the array without unpickling it ({error})") from None
+    except (OSError, EOFError) as error:
+        raise DataError(f"{path} is not a readable .npy file ({error})") from None
+    return array
+
+
+def _csv_columns(path: Path, keys: list[str]) -> dict[str, NDArray[Any]]:
+    try:
+        text = path.read_text(encoding="utf-8")
+    except UnicodeDecodeError:
+        raise DataError(f"{path} is not UTF-8 text") from None
+    reader = csv.DictReader(io.StringIO(text))
+    header = reader.fieldnames or []
+    missing = [key for key in keys if key not in header]
+    if missing:
+        raise DataError(f"{path} has no column {missing[0]!r}; its header is {', '.join(header) or '(empty)'}")
+    rows = list(reader)
+    return {key: np.array([row[key] for row in rows], dtype=str) for key in keys}
+
+
+def _parquet_arrays(path: Path, embeddings_key: str, keys: list[str]) -> tuple[NDArray[Any], dict[str, NDArray[Any]]]:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    try:
+        parquet = pq.ParquetFile(path)
+    except (pa.ArrowInvalid, OSError) as error:
+        raise DataError(f"{path} is not a readable Parquet file ({error})") from None
+    names = parquet.schema_arrow.names
+    for key in [embeddings_key, *keys]:
+        if key not in names:
+            raise DataError(f"{path} has no column {key!r}; its columns are {', '.join(names)}")
+    blocks: list[NDArray[Any]] = []
+    labels: dict[str, list[NDArray[Any]]] = {key: [] for key in keys}
+    first_row = 0
+    for group in range(parquet.num_row_groups):
+        table = parquet.read_row_group(group, columns=[embeddings_key, *keys])
+        blocks.append(embedding_matrix(table.column(embeddings_key), name=embeddings_key, first_row=first_row))
+        if blocks[-1].shape[1] != blocks[0].shape[1]:
+            raise DataError(
+                f"{path}: column {embeddings_key!r} mixes dimensions: {blocks[0].shape[1]} in the first row group, "
+                f"{blocks[-1].shape[1]} from row {first_row}"
+            )
+        for key in keys:
+            column = table.column(key)
+            if column.null_count:
+                raise DataError(f"{path}: column {key!r} has missing labels in rows {first_row}..")
+            labels[key].append(column.to_numpy())
+        first_row += table.num_rows
+        advance(f"reading {path.name} (row groups)", group + 1, parquet.num_row_groups)
+    if not blocks:
+        raise DataError(f"{path} has no rows")
+    return np.concatenate(blocks), {key: np.concatenate(parts) for key, parts in labels.items()}
+
+
+def load_labelled_sample(
+    path: str | Path,
+    *,
+    attribute: str,
+    task: str | None = None,
+    embeddings_key: str = DEFAULT_EMBEDDINGS_KEY,
+    labels: str | Path | None = None,
+) -> LabelledSample:
+    """Read embeddings and labels for a fit.
+
+    Parameters
+    ----------
+    path : path
+        ``.npz``, ``.npy`` or Parquet (``.parquet``/``.pq``).
+    attribute : str
+        Key or column of the protected attribute.
+    task : str, optional
+        Key or column of a task label, for utility figures.
+    embeddings_key : str, default="embedding"
+        Key (``.npz``) or column (Parquet) of the embeddings.
+    labels : path, optional
+        For ``.npy`` input: a ``.npy`` holding the attribute, or a ``.csv``
+        with a header naming the attribute (and task) columns.
+
+    Raises
+    ------
+    DataError
+        With a message naming the file and the problem.
+    """
+    data_path = Path(path)
+    _check_file(data_path)
+    keys = [attribute] if task is None else [attribute, task]
+    files = {str(data_path): file_sha256(data_path)}
+    suffix = data_path.suffix.lower()
+    if labels is not None and suffix != ".npy":
+        raise DataError(f"a separate labels file goes with .npy embeddings, not with {suffix} input")
+    if suffix == ".npz":
+        arrays = _npz_arrays(data_path, [embeddings_key, *keys])
+        matrix, columns = arrays.pop(embeddings_key), arrays
+    elif suffix == ".npy":
+        if labels is None:
+            raise DataError(f"{data_path} holds embeddings only; give the labels file (.npy or .csv) too")
+        labels_path = Path(labels)
+        _check_file(labels_path)
+        files[str(labels_path)] = file_sha256(labels_path)
+        matrix = _npy_array(data_path)
+        if labels_path.suffix.lower() == ".csv":
+            columns = _csv_columns(labels_path, keys)
+        elif labels_path.suffix.lower() == ".npy":
+            if task is not None:
+                raise DataError(f"{labels_path} holds one label array; put attribute and task in a .csv to use both")
+            columns = {attribute: np.asarray(_npy_array(labels_path))}
+        else:
+            raise DataError(f"labels must be a .npy or .csv file, not {labels_path.name}")
+    elif suffix in PARQUET_SUFFIXES:
+        matrix, columns = _parquet_arrays(data_path, embeddings_key, keys)
+    else:
+        raise DataError(f"{data_path}: unsupported input {suffix or '(no suffix)'}; use .npz, .npy or .parquet")
+    embeddings = check_embeddings(np.asarray(matrix), source=str(data_path))
+    rows = embeddings.shape[0]
+    return LabelledSample(
+        embeddings=embeddings,
+        attribute=_labels(columns[attribute], key=attribute, rows=rows, source=str(data_path)),
+        attribute_key=attribute,
+        task=None if task is None else _labels(columns[task], key=task, rows=rows, source=str(data_path)),
+        task_key=task,
+        files=files,
+    )

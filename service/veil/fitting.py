@@ -1,0 +1,232 @@
+"""The offline fitting job: split, fit, audit on held-out rows, and store an immutable version with its card.
+
+:func:`fit_version` is what ``veil fit`` runs; it is as usable from a
+notebook or a scheduler as from the command line.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil._validation import encode_attribute
+from veil.audit import audit
+from veil.audit.probes import probe_folds
+from veil.audit.report import AuditReport
+from veil.card import build_card
+from veil.datasource import LabelledSample
+from veil.erasers import BaseEraser, INLPEraser, LeaceEraser, MeanProjectionEraser, RLACEEraser
+from veil.errors import DataError
+from veil.reference import REFERENCE_FILE, ReferenceStatistics
+from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
+from veil.registry.naming import check_name
+from veil.reporting import PLOT_DATA_FILE, REPORT_FILE, PlotData, render_report
+from veil.serialization import encode_artifact
+from veil.splitting import give_every_class_both_parts, holdout_mask
+from veil.thresholds import AlertThresholds
+
+METHODS: dict[str, type[BaseEraser]] = {
+    "leace": LeaceEraser,
+    "meanproj": MeanProjectionEraser,
+    "inlp": INLPEraser,
+    "rlace": RLACEEraser,
+}
+# The probes score by cross-validation inside the held-out rows.
+AUDIT_FOLDS = 5
+
+
+def method_parameters(method: str) -> dict[str, Any]:
+    """The parameters ``method`` accepts, with their defaults (``normalize`` and ``random_state`` excluded)."""
+    if method not in METHODS:
+        raise DataError(f"unknown method {method!r}; choose one of {', '.join(METHODS)}")
+    defaults = METHODS[method]().get_params()
+    return {key: value for key, value in defaults.items() if key not in ("normalize", "random_state")}
+
+
+def _convert(method: str, key: str, text: str, default: Any) -> Any:
+    """``text`` as the type of the parameter's default (a JSON literal where the default is None)."""
+    try:
+        if isinstance(default, bool):
+            if text.lower() not in ("true", "false"):
+                raise ValueError(text)
+            return text.lower() == "true"
+        if isinstance(default, int):
+            return int(text)
+        if isinstance(default, float):
+            return float(text)
+        if isinstance(default, str):
+            return text
+        return json.loads(text)
+    except ValueError:
+        kind = type(default).__name__ if default is not None else "JSON value"
+        raise DataError(f"{method} parameter {key}={text!r} is not a valid {kind}") from None
+
+
+def parse_parameters(method: str, assignments: Sequence[str]) -> dict[str, Any]:
+    """``["max_iter=30", "classifier=moments"]`` as typed keyword arguments of ``method``'s eraser.
+
+    Raises
+    ------
+    DataError
+        An assignment without ``=``, or a parameter the method does not have
+        (the message lists those it has).
+    """
+    known = method_parameters(method)
+    parsed: dict[str, Any] = {}
+    for assignment in assignments:
+        key, separator, text = assignment.partition("=")
+        key = key.strip().replace("-", "_")
+        if not separator or not key:
+            raise DataError(f"method options are KEY=VALUE, got {assignment!r}")
+        if key not in known:
+            raise DataError(f"{method} has no option {key!r}; its options are {', '.join(sorted(known))}")
+        parsed[key] = _convert(method, key, text.strip(), known[key])
+    return parsed
+
+
+@dataclass(frozen=True)
+class FitOutcome:
+    """What a fit stored: the new version's id, its audit and card, and the alias move if one was asked for."""
+
+    version_id: str
+    audit: AuditReport
+    card: dict[str, Any]
+    promotion: HistoryEvent | None
+
+
+def _split(
+    sample: LabelledSample, codes: NDArray[np.intp], labels: NDArray[Any], holdout: float, seed: int
+) -> NDArray[np.bool_]:
+    if not 0.0 < holdout < 1.0:
+        raise DataError(f"the held-out share must be between 0 and 1, got {holdout}")
+    held = give_every_class_both_parts(holdout_mask(sample.rows, fraction=holdout, seed=seed), codes)
+    counts = np.bincount(codes[held], minlength=labels.size)
+    smallest = int(np.argmin(counts))
+    if counts[smallest] < 2:
+        raise DataError(
+            f"class {labels[smallest]!r} of {sample.attribute_key!r} has {int(counts[smallest])} held-out row(s); "
+            "the audit needs at least 2 per class: add rows or raise the held-out share"
+        )
+    if int(np.count_nonzero(~held)) <= sample.embeddings.shape[1] // 10:
+        raise DataError(f"only {int(np.count_nonzero(~held))} rows are left to fit on; lower the held-out share")
+    return held
+
+
+def fit_version(
+    sample: LabelledSample,
+    *,
+    registry: Registry,
+    name: str,
+    method: str,
+    params: Mapping[str, Any] | None = None,
+    holdout: float = 0.2,
+    seed: int = 0,
+    normalize: bool = False,
+    nonlinear: bool = True,
+    alias: str | None = None,
+    reason: str = "",
+    thresholds: AlertThresholds | None = None,
+) -> FitOutcome:
+    """Fit an eraser on part of ``sample``, audit it on the rest, and store it as a new version of ``name``.
+
+    Parameters
+    ----------
+    sample : LabelledSample
+        Embeddings with a categorical attribute (and optionally a task label).
+    registry : Registry
+    name : str
+        The eraser's name in the registry (one per embedding space and attribute).
+    method : {"leace", "meanproj", "inlp", "rlace"}
+    params : mapping, optional
+        Keyword arguments of the method's eraser (see :func:`parse_parameters`).
+    holdout : float, default=0.2
+        Share of rows held out for the audit, drawn by a seeded hash of the row index.
+    seed : int, default=0
+        Seeds the split, the probes and any randomised method.
+    normalize : bool, default=False
+        Re-normalise served vectors to unit length.
+    nonlinear : bool, default=True
+        Also audit with an MLP probe.
+    alias : str, optional
+        Point this alias at the new version once it is stored.
+    reason : str
+        Recorded in the history if an alias is moved.
+    thresholds : AlertThresholds, optional
+        Alert levels of the live checks (the defaults otherwise).
+
+    Raises
+    ------
+    DataError
+        The sample or the options cannot make a version; nothing is written.
+    """
+    check_name(name)
+    if alias is not None:
+        check_name(alias, what="alias")
+    options = dict(params or {})
+    unknown = sorted(set(options) - set(method_parameters(method)))
+    if unknown:
+        raise DataError(f"{method} has no option {unknown[0]!r}")
+    if "random_state" in METHODS[method]().get_params():
+        options["random_state"] = seed
+    eraser = METHODS[method](**options, normalize=normalize)
+
+    attribute = encode_attribute(sample.attribute, sample.rows, require_categorical=True)
+    labels, codes = attribute.labels, attribute.codes
+    if labels is None or labels.size < 2:
+        raise DataError(f"attribute {sample.attribute_key!r} has a single class; erasure needs at least two")
+    held = _split(sample, codes, labels, holdout, seed)
+    fit_rows = ~held
+    x = sample.embeddings
+    notes: list[str] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            eraser.fit(x[fit_rows], sample.attribute[fit_rows])
+        except ValueError as error:
+            raise DataError(f"{method} cannot fit this sample: {error}") from None
+    notes += sorted({str(w.message) for w in caught if issubclass(w.category, UserWarning)})
+    folds = min(AUDIT_FOLDS, probe_folds(codes[held], AUDIT_FOLDS))
+    report = audit(
+        eraser,
+        x[held],
+        sample.attribute[held],
+        task=None if sample.task is None else sample.task[held],
+        folds=folds,
+        nonlinear=nonlinear,
+        random_state=seed,
+    )
+    artifact = eraser.export()
+    reference = ReferenceStatistics.from_fit(artifact, x[fit_rows], codes[fit_rows], random_state=seed)
+    plots = PlotData.from_heldout(x[held], eraser.transform(x[held]), codes[held], seed=seed)
+    card = build_card(
+        name=name,
+        artifact=artifact,
+        sample=sample,
+        fit_rows=int(np.count_nonzero(fit_rows)),
+        split_seed=seed,
+        holdout=holdout,
+        audit=report,
+        reference=reference,
+        thresholds=thresholds or AlertThresholds(),
+        user=current_user(),
+        notes=notes + list(report.notes),
+    )
+    files = encode_artifact(artifact)
+    files[CARD_FILE] = json.dumps(card, indent=2, sort_keys=True, allow_nan=False).encode()
+    files[REFERENCE_FILE] = reference.to_bytes()
+    files[PLOT_DATA_FILE] = plots.to_bytes()
+
+    def report_page(version_id: str) -> dict[str, bytes]:
+        return {REPORT_FILE: render_report(version_id, card, artifact.history, plots).encode()}
+
+    version_id = registry.add_version(name, files, derived=report_page)
+    promotion = None
+    if alias is not None:
+        promotion = registry.promote(name, version_id, alias=alias, reason=reason or f"fitted by veil fit ({method})")
+    return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion)

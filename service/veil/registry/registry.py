@@ -1,0 +1,457 @@
+"""The versioned eraser registry: immutable versions, aliases that point at them, and a history of every move.
+
+Layout under the registry root (a directory or an fsspec URL)::
+
+    <name>/versions/<version id>/   the version's files; checksums.json (the seal) last
+    <name>/aliases/<alias>.json     {"alias", "version", "event", "dim"}
+    <name>/history/<event>.json     one file per promote or rollback, numbered 00000001, 00000002, ...
+    <name>/lock                     serialises promotes, rollbacks and new sequence numbers
+
+A version id is ``v<sequence>-<hash>``: the hash is the sha256 of the
+version's file checksums, so the id names the content and verifying a
+version recomputes it.  History events are written before the alias they
+move (an intent log): if a writer dies between the two, the alias still
+names its old, complete target, and the next writer finishes the move.
+"""
+
+from __future__ import annotations
+
+import getpass
+import hashlib
+import json
+import os
+from collections.abc import Callable, Iterator, Mapping
+from contextlib import AbstractContextManager
+from dataclasses import asdict, dataclass
+from datetime import UTC, datetime
+from typing import Any
+
+from veil.artifact import EraserArtifact
+from veil.registry.errors import IntegrityError, InvalidReferenceError, NotFoundError, PromotionError
+from veil.registry.naming import check_name, format_version_id, parse_sequence, parse_version_id
+from veil.registry.storage import Storage, open_storage
+from veil.serialization import ArtifactFormatError, decode_artifact
+
+CARD_FILE = "card.json"
+SEAL_FILE = "checksums.json"
+DEFAULT_ALIAS = "live"
+LOCK_TIMEOUT_SECONDS = 30.0
+_EVENT_DIGITS = 8
+
+
+def current_user() -> str:
+    """Who is acting: ``VEIL_USER`` if set (CI jobs set it), else the login name."""
+    return os.environ.get("VEIL_USER") or getpass.getuser()
+
+
+def _now() -> str:
+    return datetime.now(UTC).isoformat(timespec="seconds")
+
+
+def _checksums(files: Mapping[str, bytes]) -> dict[str, dict[str, Any]]:
+    return {
+        name: {"sha256": hashlib.sha256(data).hexdigest(), "bytes": len(data)} for name, data in sorted(files.items())
+    }
+
+
+def _content_hash(checksums: Mapping[str, Mapping[str, Any]]) -> str:
+    return hashlib.sha256(json.dumps(checksums, sort_keys=True).encode()).hexdigest()
+
+
+@dataclass(frozen=True)
+class VersionSummary:
+    """One line of ``veil versions``."""
+
+    id: str
+    sequence: int
+    created_at: str
+    created_by: str
+    method: str
+    dim: int
+    rank: int
+
+
+@dataclass(frozen=True, eq=False)
+class StoredVersion:
+    """A version read back and verified: its files, its card and its eraser."""
+
+    name: str
+    id: str
+    files: Mapping[str, bytes]
+    card: Mapping[str, Any]
+    artifact: EraserArtifact
+
+
+@dataclass(frozen=True)
+class AliasState:
+    alias: str
+    version: str
+    event: int
+    dim: int
+
+
+@dataclass(frozen=True)
+class HistoryEvent:
+    """One promote or rollback; ``applied`` is False only for a move a crashed writer left unfinished."""
+
+    event: int
+    time: str
+    user: str
+    alias: str
+    action: str
+    from_version: str | None
+    to_version: str
+    reason: str
+    applied: bool = True
+
+    def to_dict(self) -> dict[str, Any]:
+        data = asdict(self)
+        data.pop("applied")
+        return data
+
+
+@dataclass(frozen=True)
+class VerificationResult:
+    name: str
+    version: str
+    ok: bool
+    problem: str | None = None
+
+
+class Registry:
+    """Versions, aliases and history of named erasers, on a local directory or an fsspec URL.
+
+    Parameters
+    ----------
+    url : str or path-like
+        A directory (created on first write) or a URL such as ``memory://reg``
+        or ``s3://bucket/veil``.
+    storage : Storage, optional
+        Use this backend instead of opening ``url``.
+    """
+
+    def __init__(self, url: str | os.PathLike[str], *, storage: Storage | None = None) -> None:
+        self.storage = storage if storage is not None else open_storage(url)
+        self.url = self.storage.url
+
+    # ----------------------------------------------------------------- reading
+
+    def names(self) -> list[str]:
+        """Every eraser name with at least one visible version."""
+        return [name for name in self.storage.list("") if self._is_name(name) and self._version_ids(name)]
+
+    @staticmethod
+    def _is_name(value: str) -> bool:
+        try:
+            check_name(value)
+        except InvalidReferenceError:
+            return False
+        return True
+
+    def _version_ids(self, name: str) -> list[str]:
+        found = []
+        for entry in self.storage.list(f"{name}/versions"):
+            parsed = parse_version_id(entry)
+            # Without its seal a version is still being written, or its writer died: it is not there.
+            if parsed is not None and self.storage.exists(f"{name}/versions/{entry}/{SEAL_FILE}"):
+                found.append((parsed[0], entry))
+        return [entry for _, entry in sorted(found)]
+
+    def _require_name(self, name: str) -> list[str]:
+        check_name(name)
+        ids = self._version_ids(name)
+        if not ids:
+            raise NotFoundError(f"no eraser named {name!r} in the registry {self.url}")
+        return ids
+
+    def versions(self, name: str) -> list[VersionSummary]:
+        """The visible versions of ``name``, oldest first (cards read, not verified)."""
+        summaries = []
+        for version_id in self._require_name(name):
+            card = self._read_card(name, version_id)
+            summaries.append(
+                VersionSummary(
+                    id=version_id,
+                    sequence=int(version_id[1:].split("-")[0]),
+                    created_at=str(card.get("created_at", "")),
+                    created_by=str(card.get("created_by", "")),
+                    method=str(card.get("method", "")),
+                    dim=int(card.get("dim", 0)),
+                    rank=int(card.get("rank", 0)),
+                )
+            )
+        return summaries
+
+    def _read_card(self, name: str, version_id: str) -> dict[str, Any]:
+        try:
+            card = json.loads(self.storage.read(f"{name}/versions/{version_id}/{CARD_FILE}"))
+        except (FileNotFoundError, ValueError) as error:
+            raise IntegrityError(f"{name} {version_id}: the card is missing or unreadable ({error})") from None
+        if not isinstance(card, dict):
+            raise IntegrityError(f"{name} {version_id}: the card is not a JSON object")
+        return card
+
+    def resolve(self, name: str, reference: str) -> str:
+        """The full version id ``reference`` stands for: a full id, a sequence (``3``, ``v3``) or an alias."""
+        ids = self._require_name(name)
+        if reference in ids:
+            return reference
+        if parse_version_id(reference) is not None:
+            raise NotFoundError(f"{name} has no version {reference}")
+        sequence = parse_sequence(reference)
+        if sequence is not None:
+            for version_id in ids:
+                if int(version_id[1:].split("-")[0]) == sequence:
+                    return version_id
+            raise NotFoundError(f"{name} has no version with sequence number {sequence}")
+        check_name(reference, what="version or alias")
+        state = self.alias(name, reference)
+        if state is None:
+            raise NotFoundError(f"{name} has no version or alias called {reference!r}")
+        return state.version
+
+    def read_version(self, name: str, reference: str) -> StoredVersion:
+        """Read a version and verify every file against its checksum; raises :class:`IntegrityError` if any fails."""
+        version_id = self.resolve(name, reference)
+        base = f"{name}/versions/{version_id}"
+        try:
+            seal = json.loads(self.storage.read(f"{base}/{SEAL_FILE}"))
+            expected: dict[str, dict[str, Any]] = seal["files"]
+            derived = set(seal["derived"])
+        except (FileNotFoundError, ValueError, KeyError, TypeError) as error:
+            raise IntegrityError(f"{name} {version_id}: {SEAL_FILE} is missing or unreadable ({error})") from None
+        files: dict[str, bytes] = {}
+        for file_name, record in sorted(expected.items()):
+            try:
+                data = self.storage.read(f"{base}/{file_name}")
+            except FileNotFoundError:
+                raise IntegrityError(f"{name} {version_id}: {file_name} is missing") from None
+            if hashlib.sha256(data).hexdigest() != record.get("sha256"):
+                raise IntegrityError(f"{name} {version_id}: {file_name} does not match its sha256 (damaged or changed)")
+            files[file_name] = data
+        content = {file_name: record for file_name, record in expected.items() if file_name not in derived}
+        if not _content_hash(content).startswith(version_id.split("-")[1]):
+            raise IntegrityError(f"{name} {version_id}: the checksums do not match the version id")
+        card = self._read_card(name, version_id)
+        try:
+            artifact = decode_artifact(files, source=f"{name} {version_id}")
+        except ArtifactFormatError as error:
+            raise IntegrityError(str(error)) from None
+        return StoredVersion(name=name, id=version_id, files=files, card=card, artifact=artifact)
+
+    def verify(self, name: str | None = None) -> list[VerificationResult]:
+        """Verify every visible version of ``name`` (or of every eraser), and that each alias names a good one."""
+        results = []
+        for each in [name] if name is not None else self.names():
+            good = set()
+            for version_id in self._require_name(each):
+                try:
+                    self.read_version(each, version_id)
+                except IntegrityError as error:
+                    results.append(VerificationResult(each, version_id, False, str(error)))
+                else:
+                    good.add(version_id)
+                    results.append(VerificationResult(each, version_id, True))
+            for state in self.aliases(each).values():
+                if state.version not in good:
+                    results.append(
+                        VerificationResult(each, state.version, False, f"alias {state.alias!r} names a bad version")
+                    )
+        return results
+
+    # ----------------------------------------------------------------- aliases and history
+
+    def alias(self, name: str, alias: str) -> AliasState | None:
+        check_name(alias, what="alias")
+        try:
+            data = json.loads(self.storage.read(f"{name}/aliases/{alias}.json"))
+            return AliasState(alias=alias, version=str(data["version"]), event=int(data["event"]), dim=int(data["dim"]))
+        except FileNotFoundError:
+            return None
+        except (ValueError, KeyError, TypeError) as error:
+            raise IntegrityError(f"{name}: alias {alias!r} is unreadable ({error})") from None
+
+    def aliases(self, name: str) -> dict[str, AliasState]:
+        found = {}
+        for entry in self.storage.list(f"{name}/aliases"):
+            alias = entry.removesuffix(".json")
+            if entry.endswith(".json") and self._is_name(alias):
+                state = self.alias(name, alias)
+                if state is not None:
+                    found[alias] = state
+        return found
+
+    def history(self, name: str) -> list[HistoryEvent]:
+        """Every promote and rollback of ``name``, in order."""
+        check_name(name)
+        states = self.aliases(name)
+        events = []
+        for entry in self.storage.list(f"{name}/history"):
+            if not (entry.endswith(".json") and entry[:-5].isdigit()):
+                continue
+            try:
+                data = json.loads(self.storage.read(f"{name}/history/{entry}"))
+                event = HistoryEvent(
+                    event=int(data["event"]),
+                    time=str(data["time"]),
+                    user=str(data["user"]),
+                    alias=str(data["alias"]),
+                    action=str(data["action"]),
+                    from_version=data["from_version"],
+                    to_version=str(data["to_version"]),
+                    reason=str(data["reason"]),
+                )
+            except (ValueError, KeyError, TypeError) as error:
+                raise IntegrityError(f"{name}: history event {entry} is unreadable ({error})") from None
+            state = states.get(event.alias)
+            applied = state is not None and state.event >= event.event
+            events.append(event if applied else HistoryEvent(**{**event.to_dict(), "applied": False}))
+        return sorted(events, key=lambda e: e.event)
+
+    # ----------------------------------------------------------------- writing
+
+    def _locked(self, name: str) -> AbstractContextManager[None]:
+        return self.storage.lock(f"{name}/lock", timeout=LOCK_TIMEOUT_SECONDS)
+
+    def add_version(
+        self,
+        name: str,
+        files: Mapping[str, bytes],
+        *,
+        derived: Callable[[str], Mapping[str, bytes]] | None = None,
+    ) -> str:
+        """Store a new immutable version of ``name``; returns its id.
+
+        ``files`` must hold a card and an eraser that decodes: a version that
+        could not be served is never stored.  ``derived``, given the new id,
+        returns further files made from it (a report page that names its
+        version); they are checksummed like the rest but are not part of the
+        content hash.  The version becomes visible in one step, complete, or
+        not at all.
+        """
+        check_name(name)
+        if CARD_FILE not in files:
+            raise ValueError(f"a version needs a {CARD_FILE}")
+        if SEAL_FILE in files:
+            raise ValueError(f"{SEAL_FILE} is written by the registry")
+        try:
+            decode_artifact(files, source="the new version")
+        except ArtifactFormatError as error:
+            raise IntegrityError(str(error)) from None
+        content_hash = _content_hash(_checksums(files))
+        with self._locked(name):
+            sequence = 1 + max((int(v[1:].split("-")[0]) for v in self._version_ids(name)), default=0)
+            version_id = format_version_id(sequence, content_hash)
+            extra = dict(derived(version_id)) if derived is not None else {}
+            clash = sorted(set(extra) & {*files, SEAL_FILE})
+            if clash:
+                raise ValueError(f"a derived file may not replace {clash[0]}")
+            seal = {"version": version_id, "files": _checksums({**files, **extra}), "derived": sorted(extra)}
+            payload = {**files, **extra, SEAL_FILE: json.dumps(seal, indent=2, sort_keys=True).encode()}
+            self.storage.publish(f"{name}/versions/{version_id}", payload, seal=SEAL_FILE)
+        return version_id
+
+    def promote(
+        self,
+        name: str,
+        reference: str,
+        *,
+        alias: str = DEFAULT_ALIAS,
+        reason: str = "",
+        user: str | None = None,
+        allow_dimension_change: bool = False,
+    ) -> HistoryEvent:
+        """Point ``alias`` at a version (verified first) and record the move.
+
+        Raises
+        ------
+        IntegrityError
+            The version fails verification; the alias is left as it was.
+        PromotionError
+            The version's dimension differs from the alias's current one and
+            ``allow_dimension_change`` is False.
+        """
+        check_name(alias, what="alias")
+        with self._locked(name):
+            self._finish_interrupted_moves(name)
+            target = self.read_version(name, reference)
+            return self._move(name, alias, "promote", target, reason, user, allow_dimension_change)
+
+    def rollback(
+        self,
+        name: str,
+        *,
+        alias: str = DEFAULT_ALIAS,
+        reason: str = "",
+        user: str | None = None,
+        allow_dimension_change: bool = False,
+    ) -> HistoryEvent:
+        """Move ``alias`` back to the target it had before its latest promote that is not yet rolled back."""
+        check_name(alias, what="alias")
+        with self._locked(name):
+            self._finish_interrupted_moves(name)
+            self._require_name(name)
+            if self.alias(name, alias) is None:
+                raise PromotionError(f"{name} has no alias {alias!r} to roll back")
+            undo_stack: list[str | None] = []
+            for event in self.history(name):
+                if event.alias == alias and event.action == "promote":
+                    undo_stack.append(event.from_version)
+                elif event.alias == alias and event.action == "rollback" and undo_stack:
+                    undo_stack.pop()
+            if not undo_stack or undo_stack[-1] is None:
+                raise PromotionError(f"{name}: alias {alias!r} has no earlier version to roll back to")
+            target = self.read_version(name, undo_stack[-1])
+            return self._move(name, alias, "rollback", target, reason, user, allow_dimension_change)
+
+    def _move(
+        self,
+        name: str,
+        alias: str,
+        action: str,
+        target: StoredVersion,
+        reason: str,
+        user: str | None,
+        allow_dimension_change: bool,
+    ) -> HistoryEvent:
+        current = self.alias(name, alias)
+        dim = target.artifact.map.dim
+        if current is not None and current.dim != dim and not allow_dimension_change:
+            raise PromotionError(
+                f"{name} {target.id} has dimension {dim} but alias {alias!r} serves dimension {current.dim}; "
+                "pass the dimension-change flag if every caller is ready for it"
+            )
+        number = 1 + max((int(e[:-5]) for e in self._event_files(name)), default=0)
+        event = HistoryEvent(
+            event=number,
+            time=_now(),
+            user=user or current_user(),
+            alias=alias,
+            action=action,
+            from_version=None if current is None else current.version,
+            to_version=target.id,
+            reason=reason,
+        )
+        # The event first, then the alias: a crash in between leaves the alias on its old, complete target.
+        if not self.storage.create_once(self._event_path(name, number), json.dumps(event.to_dict()).encode()):
+            raise PromotionError(f"{name}: history event {number} appeared while the lock was held")
+        self._write_alias(name, AliasState(alias=alias, version=target.id, event=number, dim=dim))
+        return event
+
+    def _event_files(self, name: str) -> Iterator[str]:
+        return (e for e in self.storage.list(f"{name}/history") if e.endswith(".json") and e[:-5].isdigit())
+
+    @staticmethod
+    def _event_path(name: str, number: int) -> str:
+        return f"{name}/history/{number:0{_EVENT_DIGITS}d}.json"
+
+    def _write_alias(self, name: str, state: AliasState) -> None:
+        self.storage.replace(f"{name}/aliases/{state.alias}.json", json.dumps(asdict(state)).encode())
+
+    def _finish_interrupted_moves(self, name: str) -> None:
+        """Complete a move whose writer died after recording it and before moving the alias."""
+        for event in self.history(name):
+            if not event.applied:
+                dim = int(self._read_card(name, event.to_version).get("dim", 0))
+                state = AliasState(alias=event.alias, version=event.to_version, event=event.event, dim=dim)
+                self._write_alias(name, state)

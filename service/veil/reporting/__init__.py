@@ -1,0 +1,6 @@
+"""The per-version HTML report: the data its plots need, and the page itself."""
+
+from veil.reporting.html import REPORT_FILE, render_report
+from veil.reporting.plotdata import PLOT_DATA_FILE, PlotData
+
+__all__ = ["PLOT_DATA_FILE", "REPORT_FILE", "PlotData", "render_report"]

@@ -1,0 +1,211 @@
+"""Render a version's report as one self-contained HTML page (plots inlined as SVG, no external resources)."""
+
+from __future__ import annotations
+
+import html
+import io
+from collections.abc import Callable, Sequence
+from typing import Any
+
+import matplotlib
+
+matplotlib.use("Agg")  # no display on servers; must precede pyplot
+import matplotlib.pyplot as plt
+import numpy as np
+from matplotlib.figure import Figure
+
+from veil.audit.report import AuditReport, ProbeScore
+from veil.card import card_audit
+from veil.reporting.plotdata import PlotData
+
+REPORT_FILE = "report.html"
+_STYLE = """
+body { font: 15px/1.45 system-ui, sans-serif; margin: 2em auto; max-width: 1080px; color: #1d2430; padding: 0 1em; }
+h1 { font-size: 1.6em; margin-bottom: .2em; }
+h2 { font-size: 1.2em; margin-top: 1.8em; border-bottom: 1px solid #d8dde6; }
+table { border-collapse: collapse; margin: .6em 0; } td, th { padding: .25em .8em; border-bottom: 1px solid #eef0f4; }
+th { text-align: left; font-weight: 600; } .muted { color: #5b6575; }
+.caution { background: #fff6e0; border-left: 4px solid #e0a800; padding: .6em 1em; margin: 1em 0; }
+figure { margin: 1em 0; } figure svg { max-width: 100%; height: auto; }
+pre { background: #f5f7fa; padding: .8em; overflow-x: auto; font-size: 13px; }
+"""
+_BEFORE, _AFTER = "#8a94a6", "#2b6cb0"
+_CAUTION = (
+    "Linear erasure removes what a linear model can read; nonlinear models may still recover traces (see the MLP "
+    "figures). Every figure here holds for the data measured and its distribution only. This report is no legal "
+    "or compliance guarantee: defer to local law and qualified review."
+)
+
+
+def _svg(draw: Callable[[Figure], None], size: tuple[float, float]) -> str:
+    with plt.rc_context({"svg.hashsalt": "veil-report", "font.size": 10, "svg.fonttype": "none"}):
+        figure = plt.figure(figsize=size)
+        try:
+            draw(figure)
+            figure.tight_layout()
+            buffer = io.StringIO()
+            figure.savefig(buffer, format="svg")
+        finally:
+            plt.close(figure)
+    text = buffer.getvalue()
+    return text[text.index("<svg") :]
+
+
+def _leakage_plot(audit: AuditReport) -> Callable[[Figure], None]:
+    lk = audit.leakage
+    pairs = [("linear probe", lk.linear_before, lk.linear_after)]
+    if lk.nonlinear_before is not None and lk.nonlinear_after is not None:
+        pairs.append(("MLP probe", lk.nonlinear_before, lk.nonlinear_after))
+
+    def draw(figure: Figure) -> None:
+        axes = figure.add_subplot()
+        majority = None
+        for index, (_, before, after) in enumerate(pairs):
+            for offset, score, colour, when in ((-0.18, before, _BEFORE, "before"), (0.18, after, _AFTER, "after")):
+                if not isinstance(score, ProbeScore):
+                    continue
+                majority = score.majority
+                error = [[score.accuracy - score.interval_low], [score.interval_high - score.accuracy]]
+                axes.bar(index + offset, score.accuracy, width=0.34, color=colour, label=when if index == 0 else None)
+                axes.errorbar(index + offset, score.accuracy, yerr=error, color="#1d2430", capsize=4)
+        if majority is not None:
+            axes.axhline(majority, color="#c53030", linestyle="--", linewidth=1, label=f"majority {majority:.3f}")
+        axes.set_xticks(range(len(pairs)), [p[0] for p in pairs])
+        axes.set_ylim(0, 1.05)
+        axes.set_ylabel("held-out accuracy (95% interval)")
+        axes.legend(loc="lower right")
+
+    return draw
+
+
+def _history_plot(method: str, history: Sequence[dict[str, float]]) -> Callable[[Figure], None] | None:
+    if not history:
+        return None
+    steps = [h["iteration"] + 1 for h in history]
+
+    def draw(figure: Figure) -> None:
+        axes = figure.add_subplot()
+        if method == "inlp":
+            axes.plot(steps, [h["accuracy"] for h in history], marker="o", color=_AFTER, label="classifier accuracy")
+            axes.plot(steps, [h["majority"] for h in history], linestyle="--", color="#c53030", label="majority")
+            axes.set_xlabel("INLP iteration (classifier removed)")
+            axes.set_ylabel("validation accuracy")
+        else:
+            axes.plot(steps, [h["loss"] for h in history], color=_AFTER, linewidth=1, label="classifier loss")
+            axes.set_xlabel("R-LACE iteration")
+            axes.set_ylabel("adversary cross-entropy (higher = less leakage)")
+        axes.legend(loc="best")
+
+    return draw
+
+
+def _scatter_plot(plots: PlotData, classes: Sequence[str]) -> Callable[[Figure], None]:
+    def draw(figure: Figure) -> None:
+        colours = plt.get_cmap("tab10")
+        for position, (title, points) in enumerate(
+            (("before erasure", plots.plane_before), ("after erasure", plots.plane_after)), start=1
+        ):
+            axes = figure.add_subplot(1, 2, position)
+            for code, label in enumerate(classes):
+                chosen = plots.plane_codes == code
+                axes.scatter(
+                    points[chosen, 0], points[chosen, 1], s=6, alpha=0.6, color=colours(code % 10), label=label
+                )
+            axes.set_title(f"held-out rows {title}: leading two principal axes")
+            axes.set_xlabel("PC 1")
+            axes.set_ylabel("PC 2")
+            axes.legend(loc="best", markerscale=2)
+
+    return draw
+
+
+def _distortion_plot(plots: PlotData) -> Callable[[Figure], None]:
+    def draw(figure: Figure) -> None:
+        axes = figure.add_subplot()
+        axes.hist(plots.distortion, bins=50, color=_AFTER)
+        mean = float(np.mean(plots.distortion))
+        axes.axvline(mean, color="#c53030", linestyle="--", linewidth=1, label=f"mean {mean:.4f}")
+        axes.set_xlabel("‖x' − x‖² / E‖x − μ‖² per held-out vector")
+        axes.set_ylabel("vectors")
+        axes.legend()
+
+    return draw
+
+
+def _retrieval_plot(audit: AuditReport) -> Callable[[Figure], None] | None:
+    rt = audit.retrieval
+    if rt is None:
+        return None
+    groups = [("attribute", rt.attribute_share_before, rt.attribute_share_after, rt.attribute_base_rate)]
+    if rt.task_share_before is not None and rt.task_share_after is not None and rt.task_base_rate is not None:
+        groups.append(("task", rt.task_share_before, rt.task_share_after, rt.task_base_rate))
+
+    def draw(figure: Figure) -> None:
+        axes = figure.add_subplot()
+        for index, (_, before, after, base) in enumerate(groups):
+            axes.bar(index - 0.18, before, width=0.34, color=_BEFORE, label="before" if index == 0 else None)
+            axes.bar(index + 0.18, after, width=0.34, color=_AFTER, label="after" if index == 0 else None)
+            axes.hlines(
+                base,
+                index - 0.4,
+                index + 0.4,
+                color="#c53030",
+                linestyle="--",
+                label="_" if index else "base rate",
+            )
+        axes.set_xticks(range(len(groups)), [f"neighbours sharing the {g[0]}" for g in groups])
+        axes.set_ylim(0, 1.05)
+        axes.set_ylabel("share of 10 nearest neighbours (cosine)")
+        axes.legend(loc="lower right")
+
+    return draw
+
+
+def _table(rows: Sequence[tuple[str, str]]) -> str:
+    cells = "".join(f"<tr><th>{html.escape(a)}</th><td>{html.escape(b)}</td></tr>" for a, b in rows)
+    return f"<table>{cells}</table>"
+
+
+def _figure(title: str, draw: Callable[[Figure], None] | None, size: tuple[float, float], missing: str) -> str:
+    body = _svg(draw, size) if draw is not None else f'<p class="muted">{html.escape(missing)}</p>'
+    return f'<h2>{html.escape(title)}</h2><figure class="plot">{body}</figure>'
+
+
+def render_report(version_id: str, card: dict[str, Any], history: Sequence[dict[str, float]], plots: PlotData) -> str:
+    """The report page of one version, from its card, the eraser's iteration history and the plot data."""
+    audit = card_audit(card)
+    classes = card["attribute"]["classes"]
+    summary = [
+        ("eraser", f"{card['name']} {version_id}"),
+        ("method", f"{card['method']}, rank {card['rank']}, dimension {card['dim']}, {card['dtype']}"),
+        ("attribute", f"{card['attribute']['key']} ({', '.join(classes)})"),
+        ("fitting data", f"{card['data']['rows']} rows ({card['data']['fit_rows']} fit, {audit.n_heldout} held out)"),
+        ("data sha256", card["data"]["fingerprint_sha256"]),
+        ("split", f"row-index hash, seed {card['split']['seed']}, {card['split']['holdout']:.0%} held out"),
+        ("created", f"{card['created_at']} by {card['created_by']}"),
+        ("software", ", ".join(f"{k} {v}" for k, v in card["software"].items())),
+    ]
+    thresholds = [
+        (figure, f"warn {band['warn']}, alert {band['alert']}") for figure, band in card["thresholds"].items()
+    ]
+    iterations_missing = f"{card['method']} is fitted in closed form: there are no iterations to plot."
+    sections = [
+        f"<h1>veil report: {html.escape(card['name'])} {html.escape(version_id)}</h1>",
+        f'<p class="caution">{html.escape(_CAUTION)}</p>',
+        "<h2>Version</h2>" + _table(summary),
+        _figure("Leakage before and after erasure", _leakage_plot(audit), (7, 3.6), ""),
+        _figure("Fitting iterations", _history_plot(card["method"], history), (7, 3.2), iterations_missing),
+        _figure("Held-out embeddings, coloured by attribute", _scatter_plot(plots, classes), (11, 4.4), ""),
+        _figure("Per-vector distortion", _distortion_plot(plots), (7, 3.2), ""),
+        _figure("Retrieval: who the nearest neighbours are", _retrieval_plot(audit), (7, 3.4), "No retrieval figures."),
+        f"<h2>Full audit</h2><pre>{html.escape(audit.format_table())}</pre>",
+        "<h2>Alert thresholds of the live checks</h2>" + _table(thresholds),
+    ]
+    notes = card.get("notes", [])
+    if notes:
+        sections.append("<h2>Notes</h2><ul>" + "".join(f"<li>{html.escape(n)}</li>" for n in notes) + "</ul>")
+    title = html.escape(f"veil report {card['name']} {version_id}")
+    return (
+        f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{title}</title>'
+        f"<style>{_STYLE}</style></head><body>{''.join(sections)}</body></html>"
+    )

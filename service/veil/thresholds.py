@@ -1,0 +1,59 @@
+"""Alert thresholds of the drift and leakage checks, stored in every version's card.
+
+Each figure has a ``warn`` and an ``alert`` level; a check's status is the
+worst level any figure reaches.  The defaults are common-practice starting
+points, not derived values: tune them per eraser from the figures its own
+traffic shows when nothing is wrong.
+
+==========================  ===========================================================================
+figure                      meaning
+==========================  ===========================================================================
+``leakage_gap``             |probe accuracy − majority| on erased live vectors (labels or pseudo-labels)
+``mean_shift``              distance of the live mean from the fit's, in the fit's whitened units,
+                            beyond what sampling alone gives for the sample size
+``covariance_shift``        relative Frobenius distance of the whitened live covariance from identity
+``erased_variance_ratio``   share of live variance in the erased directions ÷ the fit data's share
+``prior_shift``             total-variation distance between live and fitted class priors
+==========================  ===========================================================================
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, fields
+from typing import Any
+
+
+@dataclass(frozen=True)
+class Band:
+    """``warn`` ≤ ``alert``; a figure at or above a level reaches it."""
+
+    warn: float
+    alert: float
+
+    def __post_init__(self) -> None:
+        if not (math.isfinite(self.warn) and math.isfinite(self.alert) and 0 <= self.warn <= self.alert):
+            raise ValueError(f"a threshold band needs 0 <= warn <= alert, got warn={self.warn}, alert={self.alert}")
+
+
+@dataclass(frozen=True)
+class AlertThresholds:
+    """The levels at which each drift or leakage figure warns or alerts."""
+
+    leakage_gap: Band = Band(0.02, 0.05)
+    mean_shift: Band = Band(0.5, 1.0)
+    covariance_shift: Band = Band(0.25, 0.5)
+    erased_variance_ratio: Band = Band(2.0, 4.0)
+    prior_shift: Band = Band(0.1, 0.2)
+
+    def to_dict(self) -> dict[str, dict[str, float]]:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> AlertThresholds:
+        """Thresholds from a card or settings; figures left out keep their defaults, unknown ones are refused."""
+        known = {f.name for f in fields(cls)}
+        unknown = sorted(set(data) - known)
+        if unknown:
+            raise ValueError(f"unknown threshold {unknown[0]!r}; known: {', '.join(sorted(known))}")
+        return cls(**{key: Band(float(value["warn"]), float(value["alert"])) for key, value in data.items()})
