@@ -17,6 +17,7 @@ from __future__ import annotations
 import csv
 import hashlib
 import io
+import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -89,10 +90,10 @@ def _check_file(path: Path) -> None:
 
 def check_embeddings(matrix: NDArray[Any], *, source: str) -> NDArray[np.floating]:
     """A 2-D matrix of finite numbers (float32 kept, other numbers as float64); refuses anything else."""
-    if matrix.ndim != 2:
-        raise DataError(f"{source}: embeddings must be a 2-D array (rows × dimensions), got shape {matrix.shape}")
     if matrix.dtype.kind not in "fiu":
         raise DataError(f"{source}: embeddings must be numbers, got dtype {matrix.dtype}")
+    if matrix.ndim != 2:
+        raise DataError(f"{source}: embeddings must be a 2-D array (rows × dimensions), got shape {matrix.shape}")
     if matrix.shape[0] == 0 or matrix.shape[1] == 0:
         raise DataError(f"{source}: embeddings are empty (shape {matrix.shape})")
     out = matrix if matrix.dtype in (np.float32, np.float64) else matrix.astype(np.float64)
@@ -115,6 +116,8 @@ def _labels(values: NDArray[Any], *, key: str, rows: int, source: str) -> NDArra
 
 
 def _npz_arrays(path: Path, keys: list[str]) -> dict[str, NDArray[Any]]:
+    if not zipfile.is_zipfile(path):
+        raise DataError(f"{path} is not a readable .npz file (not a zip archive)")
     try:
         with np.load(path, allow_pickle=False) as stored:
             missing = [key for key in keys if key not in stored.files]
@@ -180,7 +183,18 @@ def _parquet_arrays(path: Path, embeddings_key: str, keys: list[str]) -> tuple[N
             column = table.column(key)
             if column.null_count:
                 raise DataError(f"{path}: column {key!r} has missing labels in rows {first_row}..")
-            labels[key].append(column.to_numpy())
+            if pa.types.is_dictionary(column.type):
+                column = column.cast(column.type.value_type)
+            if pa.types.is_string(column.type) or pa.types.is_large_string(column.type):
+                labels[key].append(column.to_numpy().astype(str))
+            elif (
+                pa.types.is_integer(column.type)
+                or pa.types.is_floating(column.type)
+                or pa.types.is_boolean(column.type)
+            ):
+                labels[key].append(column.to_numpy())
+            else:
+                raise DataError(f"{path}: column {key!r} holds {column.type}; labels must be numbers or strings")
         first_row += table.num_rows
         advance(f"reading {path.name} (row groups)", group + 1, parquet.num_row_groups)
     if not blocks:

@@ -44,7 +44,7 @@ def _svg(draw: Callable[[Figure], None], size: tuple[float, float]) -> str:
             draw(figure)
             figure.tight_layout()
             buffer = io.StringIO()
-            figure.savefig(buffer, format="svg")
+            figure.savefig(buffer, format="svg", metadata={"Date": None})
         finally:
             plt.close(figure)
     text = buffer.getvalue()

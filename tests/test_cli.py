@@ -1,0 +1,371 @@
+"""The ``veil`` command end to end on the committed real-embedding sample, in a temporary registry."""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import io
+import json
+import re
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+import veil
+from veil import LeaceEraser
+from veil.cli import main
+from veil.datasets import SAMPLE_FILE, load_harbourline_profiles
+from veil.registry import SEAL_FILE, Registry
+from veil.splitting import give_every_class_both_parts, holdout_mask
+
+SAMPLE = Path(veil.__file__).parent / "data" / SAMPLE_FILE
+NAME = "profiles-minilm"
+VERSION_ID = re.compile(r"^v\d{4}-[0-9a-f]{12}$")
+
+
+@dataclass(frozen=True)
+class Result:
+    code: int
+    out: str
+    err: str
+
+
+def run(*argv: str | Path) -> Result:
+    out, err = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        try:
+            code = main([str(a) for a in argv])
+        except SystemExit as exit_:  # argparse exits on bad usage
+            code = int(exit_.code or 0)
+    return Result(code, out.getvalue(), err.getvalue())
+
+
+def snapshot(root: Path) -> dict[str, str]:
+    """Every file under ``root`` with the sha256 of its contents."""
+    if not root.exists():
+        return {}
+    return {
+        str(p.relative_to(root)): hashlib.sha256(p.read_bytes()).hexdigest() for p in root.rglob("*") if p.is_file()
+    }
+
+
+@dataclass(frozen=True)
+class Fitted:
+    registry: Path
+    ids: dict[str, str]
+    outputs: dict[str, Result]
+
+
+@pytest.fixture(scope="module")
+def fitted(tmp_path_factory: pytest.TempPathFactory) -> Fitted:
+    registry = tmp_path_factory.mktemp("cli") / "registry"
+    commands = {
+        "leace": ["--task", "field", "--alias", "live", "--reason", "first fit"],
+        "meanproj": ["--probes", "linear"],
+        "inlp": [
+            "--option",
+            "classifier=moments",
+            "--option",
+            "max_iter=12",
+            "--probes",
+            "linear",
+            "--progress",
+            "always",
+        ],
+        "rlace": ["--option", "max_iter=40", "--probes", "linear", "--normalize"],
+    }
+    outputs, ids = {}, {}
+    for method, extra in commands.items():
+        result = run(
+            "fit",
+            "--data",
+            SAMPLE,
+            "--attribute",
+            "pronoun",
+            "--method",
+            method,
+            "--name",
+            NAME,
+            "--registry",
+            registry,
+            *extra,
+        )
+        assert result.code == 0, result.err
+        outputs[method] = result
+        ids[method] = result.out.strip().splitlines()[-1]
+    return Fitted(registry, ids, outputs)
+
+
+def test_fit_prints_the_audit_then_the_version_id_last(fitted: Fitted) -> None:
+    for method, result in fitted.outputs.items():
+        assert VERSION_ID.match(fitted.ids[method])
+        assert f"{method} eraser, rank" in result.out
+        assert "linear probe accuracy" in result.out
+    assert "nonlinear probe (MLP) accuracy" in fitted.outputs["leace"].out
+    assert "alias 'live' now points at" in fitted.outputs["leace"].out
+    # Progress bars for the INLP iterations, on stderr only.
+    assert "INLP classifiers" in fitted.outputs["inlp"].err
+    assert "INLP classifiers" not in fitted.outputs["inlp"].out
+
+
+def test_the_stored_leace_version_is_the_eraser_fitted_on_the_non_held_out_rows(fitted: Fitted) -> None:
+    sample = load_harbourline_profiles()
+    codes = np.unique(sample.pronoun, return_inverse=True)[1]
+    held = give_every_class_both_parts(holdout_mask(codes.size, fraction=0.2, seed=0), codes)
+    expected = LeaceEraser().fit(sample.embedding[~held], sample.pronoun[~held])
+    stored = Registry(fitted.registry).read_version(NAME, fitted.ids["leace"])
+    np.testing.assert_allclose(stored.artifact.apply(sample.embedding), expected.transform(sample.embedding), atol=1e-6)
+    card = stored.card
+    assert card["data"]["fit_rows"] == int(np.count_nonzero(~held))
+    assert card["audit"]["n_heldout"] == int(np.count_nonzero(held))
+    # Linear leakage falls from near-certain to near the majority baseline on held-out rows.
+    audit = card["audit"]["leakage"]
+    assert audit["linear_before"]["accuracy"] > 0.95
+    assert abs(audit["linear_after"]["accuracy"] - audit["linear_after"]["majority"]) < 0.1
+
+
+def test_the_card_holds_what_auditors_and_the_service_need(fitted: Fitted) -> None:
+    result = run("show", NAME, fitted.ids["rlace"], "--registry", fitted.registry, "--json")
+    assert result.code == 0
+    card = json.loads(result.out)
+    for key in ("method", "params", "dim", "rank", "dtype", "audit", "reference", "thresholds", "software"):
+        assert key in card
+    assert card["method"] == "rlace"
+    assert card["params"]["max_iter"] == 40
+    assert card["normalize"] is True
+    assert (card["dim"], card["dtype"]) == (384, "float32")
+    assert card["data"]["rows"] == 3000
+    assert card["data"]["fingerprint_sha256"]
+    assert card["data"]["files"][SAMPLE_FILE] == hashlib.sha256(SAMPLE.read_bytes()).hexdigest()
+    assert card["split"] == {"kind": "row-index hash", "seed": 0, "holdout": 0.2}
+    assert card["attribute"]["classes"] == ["he", "she"]
+    assert card["created_by"]
+    assert card["created_at"]
+    # Every file of the version has a sha256 in the seal, and nothing else is there.
+    version_dir = fitted.registry / NAME / "versions" / fitted.ids["rlace"]
+    seal = json.loads((version_dir / SEAL_FILE).read_text())
+    assert set(seal["files"]) == {p.name for p in version_dir.iterdir()} - {SEAL_FILE}
+    for name, record in seal["files"].items():
+        assert record["sha256"] == hashlib.sha256((version_dir / name).read_bytes()).hexdigest()
+    human = run("show", NAME, "live", "--registry", fitted.registry)
+    assert human.code == 0
+    assert fitted.ids["leace"] in human.out
+    assert "alert thresholds" in human.out
+
+
+def test_versions_compare_and_verify(fitted: Fitted) -> None:
+    listing = run("versions", NAME, "--registry", fitted.registry)
+    assert listing.code == 0
+    rows = listing.out.strip().splitlines()[1:]
+    assert [row.split()[0] for row in rows] == list(fitted.ids.values())
+    assert rows[0].split()[-1] == "live"
+    as_json = json.loads(run("versions", NAME, "--registry", fitted.registry, "--json").out)
+    assert [v["method"] for v in as_json] == ["leace", "meanproj", "inlp", "rlace"]
+    compared = run("compare", NAME, "1", "4", "--registry", fitted.registry)
+    assert compared.code == 0
+    assert fitted.ids["leace"] in compared.out
+    assert fitted.ids["rlace"] in compared.out
+    assert "linear probe after" in compared.out
+    verified = run("verify", "--registry", fitted.registry)
+    assert verified.code == 0
+    assert verified.out.count("ok ") == 4
+
+
+def test_promote_rollback_and_history(fitted: Fitted, tmp_path: Path) -> None:
+    registry = tmp_path / "registry"
+    shutil.copytree(fitted.registry, registry)
+    assert run("promote", NAME, "3", "--registry", registry, "--reason", "smaller leakage").code == 0
+    assert run("promote", NAME, "2", "--alias", "canary", "--registry", registry).code == 0
+    rolled = run("rollback", NAME, "--registry", registry)
+    assert rolled.code == 0
+    assert f"-> {fitted.ids['leace']}" in rolled.out
+    again = run("rollback", NAME, "--registry", registry)
+    assert again.code == 2
+    assert "no earlier version" in again.err
+    history = json.loads(run("history", NAME, "--registry", registry, "--json").out)
+    assert [(e["alias"], e["action"], e["to_version"]) for e in history] == [
+        ("live", "promote", fitted.ids["leace"]),
+        ("live", "promote", fitted.ids["inlp"]),
+        ("canary", "promote", fitted.ids["meanproj"]),
+        ("live", "rollback", fitted.ids["leace"]),
+    ]
+    assert history[1]["reason"] == "smaller leakage"
+    table = run("history", NAME, "--registry", registry)
+    assert table.out.splitlines()[0].split()[:3] == ["EVENT", "TIME", "USER"]
+
+
+def test_apply_cleans_npy_and_parquet_corpora_like_the_stored_version(fitted: Fitted, tmp_path: Path) -> None:
+    sample = load_harbourline_profiles()
+    corpus = sample.embedding[:500]
+    np.save(tmp_path / "corpus.npy", corpus)
+    result = run(
+        "apply",
+        NAME,
+        "--registry",
+        fitted.registry,
+        "--in",
+        tmp_path / "corpus.npy",
+        "--out",
+        tmp_path / "clean.npy",
+        "--chunk-rows",
+        "64",
+        "--progress",
+        "always",
+    )
+    assert result.code == 0, result.err
+    stored = Registry(fitted.registry).read_version(NAME, "live")
+    np.testing.assert_array_equal(np.load(tmp_path / "clean.npy"), stored.artifact.apply(corpus))
+    manifest = json.loads((tmp_path / "clean.npy.manifest.json").read_text())
+    assert manifest["version"] == stored.id
+    assert manifest["requested"] == "live"
+    assert "cleaning (rows)" in result.err
+
+    table = pa.table(
+        {
+            "doc": pa.array(np.arange(500)),
+            "embedding": pa.FixedSizeListArray.from_arrays(pa.array(corpus.reshape(-1)), 384),
+        }
+    )
+    pq.write_table(table, tmp_path / "corpus.parquet", row_group_size=128)
+    result = run(
+        "apply",
+        NAME,
+        "--version",
+        "4",
+        "--registry",
+        fitted.registry,
+        "--in",
+        tmp_path / "corpus.parquet",
+        "--out",
+        tmp_path / "clean.parquet",
+    )
+    assert result.code == 0, result.err
+    rlace = Registry(fitted.registry).read_version(NAME, "4")
+    cleaned = pq.read_table(tmp_path / "clean.parquet")
+    assert cleaned.column("doc").to_pylist() == list(range(500))
+    matrix = cleaned.column("embedding").combine_chunks().flatten().to_numpy().reshape(500, 384)
+    np.testing.assert_array_equal(matrix, rlace.artifact.apply(corpus))
+    # R-LACE was stored with re-normalisation on, so the cleaned corpus is unit length.
+    np.testing.assert_allclose(np.linalg.norm(matrix, axis=1), 1.0, rtol=1e-5)
+
+
+def test_report_writes_a_self_contained_page_with_its_plots(fitted: Fitted, tmp_path: Path) -> None:
+    # LEACE is closed-form: no iteration plot.
+    for method, plots in (("inlp", 5), ("leace", 4)):
+        out = tmp_path / f"{method}.html"
+        result = run("report", NAME, fitted.ids[method], "--registry", fitted.registry, "--out", out)
+        assert result.code == 0, result.err
+        page = out.read_text()
+        assert page.count('<figure class="plot"><svg') == plots
+        assert fitted.ids[method] in page
+        # Self-contained: nothing is fetched (XML namespace URIs are names, not requests).
+        assert not re.search(r"""(src|href)=["']?(https?:|//)""", page)
+        assert "<link" not in page
+        assert "<script" not in page
+        assert "no legal or compliance guarantee" in page
+    assert "closed form" in (tmp_path / "leace.html").read_text()
+    assert "INLP iteration" in (tmp_path / "inlp.html").read_text()
+
+
+def test_a_tampered_version_fails_verify_and_is_never_shown_or_promoted(fitted: Fitted, tmp_path: Path) -> None:
+    registry = tmp_path / "registry"
+    shutil.copytree(fitted.registry, registry)
+    arrays = registry / NAME / "versions" / fitted.ids["meanproj"] / "arrays.npz"
+    data = bytearray(arrays.read_bytes())
+    data[len(data) // 2] ^= 0x01
+    arrays.write_bytes(bytes(data))
+    verified = run("verify", NAME, "--registry", registry)
+    assert verified.code == 1
+    assert f"FAIL  {NAME} {fitted.ids['meanproj']}" in verified.out
+    assert "does not match its sha256" in verified.out
+    for argv in (
+        ("show", NAME, "2"),
+        ("promote", NAME, "2"),
+        ("apply", NAME, "--version", "2", "--in", "x.npy", "--out", "y.npy"),
+    ):
+        result = run(*argv, "--registry", registry)
+        assert result.code == 1
+        assert "does not match its sha256" in result.err
+        assert "Traceback" not in result.err
+    assert Registry(registry).resolve(NAME, "live") == fitted.ids["leace"]
+
+
+@pytest.fixture(scope="module")
+def bad_inputs(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    folder = tmp_path_factory.mktemp("bad")
+    x = load_harbourline_profiles().embedding[:200]
+    z = np.array(["he", "she"])[np.arange(200) % 2]
+    np.save(folder / "x.npy", x)
+    np.save(folder / "short.npy", z[:150])
+    np.savez(folder / "one-class.npz", embedding=x, pronoun=np.array(["he"] * 200))
+    np.savez(folder / "text.npz", embedding=np.array([["a"] * 4] * 200), pronoun=z)
+    ragged = pa.table(
+        {"embedding": pa.array([[1.0, 2.0]] * 5 + [[1.0, 2.0, 3.0]]), "pronoun": pa.array(["he", "she"] * 3)}
+    )
+    pq.write_table(ragged, folder / "ragged.parquet")
+    return folder
+
+
+BAD_FIT = [
+    (["--data", "{bad}/missing.npz"], "does not exist"),
+    (["--data", "{sample}", "--attribute", "gender"], "no array 'gender'"),
+    (["--data", "{bad}/x.npy", "--labels", "{bad}/short.npy"], "have 150 rows but the embeddings have 200"),
+    (["--data", "{bad}/one-class.npz"], "single class"),
+    (["--data", "{bad}/text.npz"], "must be numbers"),
+    (["--data", "{bad}/ragged.parquet"], "mixes dimensions"),
+    (["--data", "{sample}", "--option", "depth=3"], "leace has no option 'depth'"),
+    (["--data", "{sample}", "--method", "inlp", "--option", "max_iter=many"], "max_iter='many' is not a valid int"),
+    (["--data", "{sample}", "--option", "no-equals-sign"], "KEY=VALUE"),
+    (["--data", "{sample}", "--name", "../escape"], "invalid eraser name"),
+    (["--data", "{sample}", "--holdout", "1.5"], "between 0 and 1"),
+    (["--data", "{sample}", "--alias", "Live!"], "invalid alias"),
+    (["--data", "{sample}", "--method", "magic"], "invalid choice"),
+]
+
+
+@pytest.mark.parametrize(("argv", "message"), BAD_FIT)
+def test_bad_fit_input_exits_2_with_a_message_and_writes_nothing(
+    fitted: Fitted, bad_inputs: Path, argv: list[str], message: str
+) -> None:
+    before = snapshot(fitted.registry)
+    filled = [a.format(bad=bad_inputs, sample=SAMPLE) for a in argv]
+    defaults = {"--attribute": "pronoun", "--method": "leace", "--name": NAME}
+    for flag, value in defaults.items():
+        if flag not in filled:
+            filled += [flag, value]
+    result = run("fit", *filled, "--registry", fitted.registry, "--probes", "linear")
+    assert result.code == 2
+    assert message in result.err
+    assert "Traceback" not in result.err
+    assert result.out == ""
+    assert snapshot(fitted.registry) == before
+
+
+BAD_USE = [
+    (["show", "nope", "1"], "no eraser named 'nope'"),
+    (["show", NAME, "99"], "no version with sequence number 99"),
+    (["show", NAME, "v0001-000000000000"], "has no version v0001-000000000000"),
+    (["show", NAME, "../../etc"], "invalid version or alias"),
+    (["promote", NAME, "42"], "sequence number 42"),
+    (["rollback", NAME, "--alias", "canary"], "no alias 'canary'"),
+    (["history", "../x"], "invalid eraser name"),
+    (["report", NAME, "1", "--out", "/no/such/folder/r.html"], "does not exist"),
+    (["apply", NAME, "--in", "/no/such.npy", "--out", "/tmp/out.npy"], "does not exist"),
+    (["compare", NAME, "1"], "required"),
+    (["verify", "nope"], "no eraser named 'nope'"),
+]
+
+
+@pytest.mark.parametrize(("argv", "message"), BAD_USE)
+def test_bad_usage_exits_2_with_a_message_and_changes_nothing(fitted: Fitted, argv: list[str], message: str) -> None:
+    before = snapshot(fitted.registry)
+    result = run(*argv, "--registry", fitted.registry)
+    assert result.code == 2
+    assert message in result.err
+    assert "Traceback" not in result.err
+    assert snapshot(fitted.registry) == before
