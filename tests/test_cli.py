@@ -369,3 +369,33 @@ def test_bad_usage_exits_2_with_a_message_and_changes_nothing(fitted: Fitted, ar
     assert message in result.err
     assert "Traceback" not in result.err
     assert snapshot(fitted.registry) == before
+
+
+def test_the_cli_works_on_an_fsspec_url(tmp_path: Path) -> None:
+    # memory:// lives as long as this process, so the commands run in-process one after another.
+    url = f"memory://veil-cli/{tmp_path.name}"
+    x, z = load_harbourline_profiles().embedding[:600], np.array(["he", "she"] * 300)
+    np.savez(tmp_path / "s.npz", embedding=x, group=z)
+    fitted = run(
+        "fit",
+        "--data",
+        tmp_path / "s.npz",
+        "--attribute",
+        "group",
+        "--method",
+        "meanproj",
+        "--name",
+        NAME,
+        "--registry",
+        url,
+        "--probes",
+        "linear",
+        "--alias",
+        "live",
+    )
+    assert fitted.code == 0, fitted.err
+    version = fitted.out.strip().splitlines()[-1]
+    assert run("versions", NAME, "--registry", url).out.split()[7] == version
+    assert run("verify", "--registry", url).code == 0
+    assert run("show", NAME, "live", "--registry", url).code == 0
+    assert json.loads(run("history", NAME, "--registry", url, "--json").out)[0]["to_version"] == version
