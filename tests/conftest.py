@@ -13,6 +13,8 @@ from sklearn.preprocessing import StandardScaler
 
 from veil.datasets import load_harbourline_profiles
 
+from .service_fixtures import ServiceRegistry, build_registry
+
 
 @dataclass(frozen=True)
 class Split:
@@ -68,3 +70,14 @@ def wine() -> Split:
 def planted_split() -> Split:
     x, z = planted()
     return _tabular_split("planted", x, z)
+
+
+@pytest.fixture(scope="session")
+def service_registry(tmp_path_factory: pytest.TempPathFactory) -> ServiceRegistry:
+    """Real-sample LEACE (live) and mean-projection versions, and a planted-data LEACE, fitted once."""
+    return build_registry(tmp_path_factory.mktemp("service") / "registry")
+
+
+@pytest.fixture
+def anyio_backend() -> str:
+    return "asyncio"

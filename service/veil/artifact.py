@@ -61,6 +61,12 @@ class EraserArtifact:
     def covariance(self) -> Float64Array:
         return self.moments.covariance_xx
 
+    def counterfactual_shifts(self) -> Float64Array:
+        """``U Vᵀ (μ_c − μ)`` for every class ``c``, shape (n_classes, d): what a counterfactual adds after erasure."""
+        if self.class_means is None:
+            raise ValueError("counterfactuals by class need a categorical attribute")
+        return np.stack([self.map.shift_towards(mean) for mean in self.class_means])
+
     def apply(self, x: NDArray[np.floating]) -> NDArray[np.floating]:
         """Erase a batch exactly as it is served (re-normalised if the artifact says so)."""
         out = self.map.apply(x)

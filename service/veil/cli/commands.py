@@ -167,6 +167,16 @@ def apply(args: argparse.Namespace) -> int:
     return 0
 
 
+def serve(args: argparse.Namespace) -> int:
+    from veil.server.run import serve_forever  # the web stack is loaded only to serve
+
+    serve_forever(
+        registry=args.registry, names=args.names or [], alias=args.alias, host=args.host, port=args.port,
+        workers=args.workers,
+    )  # fmt: skip
+    return 0
+
+
 HANDLERS = {
     "fit": fit,
     "versions": versions,
@@ -178,4 +188,5 @@ HANDLERS = {
     "verify": verify,
     "report": report,
     "apply": apply,
+    "serve": serve,
 }

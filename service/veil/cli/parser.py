@@ -136,4 +136,14 @@ def build_parser() -> argparse.ArgumentParser:
     apply.add_argument("--embeddings", default=DEFAULT_EMBEDDINGS_KEY, help="the Parquet embedding column")
     apply.add_argument("--chunk-rows", type=int, default=DEFAULT_CHUNK_ROWS, help="rows cleaned at a time")
     apply.set_defaults(handler="apply")
+
+    serve = commands.add_parser(
+        "serve", parents=common, help="run the HTTP service (uvicorn); other settings come from VEIL_... variables"
+    )
+    serve.add_argument("--name", action="append", dest="names", metavar="NAME", help="serve this eraser (repeatable)")
+    serve.add_argument("--alias", default=DEFAULT_ALIAS, help=f"the alias served (default {DEFAULT_ALIAS})")
+    serve.add_argument("--host", default="127.0.0.1")
+    serve.add_argument("--port", type=int, default=8080)
+    serve.add_argument("--workers", type=int, default=1, help="uvicorn worker processes")
+    serve.set_defaults(handler="serve")
     return parser

@@ -65,7 +65,11 @@ def _leakage_plot(audit: AuditReport) -> Callable[[Figure], None]:
                 if not isinstance(score, ProbeScore):
                     continue
                 majority = score.majority
-                error = [[score.accuracy - score.interval_low], [score.interval_high - score.accuracy]]
+                # Clipped at 0: rounding can put an accuracy of 1.0 a hair above its interval's top.
+                error = [
+                    [max(score.accuracy - score.interval_low, 0.0)],
+                    [max(score.interval_high - score.accuracy, 0.0)],
+                ]
                 axes.bar(index + offset, score.accuracy, width=0.34, color=colour, label=when if index == 0 else None)
                 axes.errorbar(index + offset, score.accuracy, yerr=error, color="#1d2430", capsize=4)
         if majority is not None:

@@ -1,0 +1,180 @@
+"""Drift and leakage checks of a live traffic sample against a version's reference statistics.
+
+Every figure is computed on raw live vectors (what the callers send) and on
+their erased versions, in the fit's whitened units where a scale is needed,
+and each shift figure is reported *beyond* what sampling alone produces for
+a sample of that size, so a small quiet sample does not raise alarms:
+
+- ``mean_shift``: ``‖W (μ_live − μ_fit)‖`` minus its no-drift expectation
+  ``sqrt(r / n)`` and three standard deviations ``3 / sqrt(2n)``.
+- ``covariance_shift``: ``‖W Σ_live Wᵀ − I‖_F / sqrt(r)`` minus its no-drift
+  expectation ``sqrt((r + 1) / n)`` (Gaussian sampling).
+- ``erased_variance_ratio``: live share of variance in the erased directions
+  divided by the fitting data's share.
+- ``prior_shift``: total-variation distance between the live class shares
+  (labels, or the pre-erasure probe's pseudo-labels) and the fitted priors.
+- ``leakage_gap``: a probe trained by cross-validation on the erased live
+  sample to predict the labels (or pseudo-labels), at the edge of its 95%
+  interval nearest the majority baseline, as a distance from majority.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.artifact import EraserArtifact
+from veil.audit import probes
+from veil.audit.report import ProbeScore
+from veil.reference import ReferenceStatistics
+from veil.thresholds import AlertThresholds
+
+MIN_ROWS = 20
+PROBE_FOLDS = 5
+
+
+@dataclass(frozen=True)
+class DriftReport:
+    """The figures of one drift check, and the status the thresholds give them."""
+
+    rows: int
+    labels: str  # "labels", "pseudo-labels" or "none"
+    mean_shift: float
+    mean_shift_raw: float
+    covariance_shift: float
+    covariance_shift_raw: float
+    erased_variance_share: float
+    erased_variance_ratio: float
+    prior_shift: float | None
+    class_shares: dict[str, float] | None
+    leakage: dict[str, float] | None
+    leakage_gap: float | None
+    class_mean_gap: float | None
+    status: str
+    reasons: list[str] = field(default_factory=list)
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+def _level(value: float | None, warn: float, alert: float) -> str:
+    if value is None:
+        return "ok"
+    return "alert" if value >= alert else "warn" if value >= warn else "ok"
+
+
+def check_drift(
+    artifact: EraserArtifact,
+    reference: ReferenceStatistics,
+    whitening: NDArray[np.float64],
+    thresholds: AlertThresholds,
+    raw: NDArray[np.floating],
+    *,
+    classes: list[str],
+    labels: list[str] | None = None,
+    random_state: int = 0,
+) -> DriftReport:
+    """Drift and leakage figures of a sample of raw live vectors (shape (n, d)), optionally with attribute labels.
+
+    Raises
+    ------
+    ValueError
+        Fewer than 20 rows, labels of the wrong length, or labels outside the fitted classes.
+    """
+    x = np.asarray(raw, dtype=np.float64)
+    n = x.shape[0]
+    if n < MIN_ROWS:
+        raise ValueError(f"a drift check needs at least {MIN_ROWS} vectors, got {n}")
+    r = whitening.shape[1]
+    white = (x - reference.mean) @ whitening
+    live_mean = white.mean(axis=0)
+    mean_raw = float(np.linalg.norm(live_mean))
+    mean_noise = np.sqrt(r / n) + 3 / np.sqrt(2 * n)
+    centred = white - live_mean
+    covariance = centred.T @ centred / n
+    covariance_raw = float(np.linalg.norm(covariance - np.eye(r)) / np.sqrt(r))
+    covariance_noise = float(np.sqrt((r + 1) / n))
+
+    erased = artifact.apply(np.asarray(raw))
+    # The removed part itself, before any re-normalisation rescales what is left.
+    removed = artifact.map.component(x)
+    spread = float(np.sum((x - x.mean(axis=0)) ** 2))
+    removed_centred = removed - removed.mean(axis=0)
+    share = float(np.sum(removed_centred**2) / spread) if spread > 0 else 0.0
+    ratio = share / reference.erased_variance_share if reference.erased_variance_share > 0 else 0.0
+
+    if labels is not None:
+        if len(labels) != n:
+            raise ValueError(f"got {len(labels)} labels for {n} vectors")
+        unknown = sorted(set(labels) - set(classes))
+        if unknown:
+            raise ValueError(f"label {unknown[0]!r} is not a class of this eraser; classes: {classes}")
+        codes = np.array([classes.index(label) for label in labels], dtype=np.intp)
+        source = "labels"
+    else:
+        codes = reference.probe_codes(x)
+        source = "pseudo-labels"
+    counts = np.bincount(codes, minlength=len(classes))
+    shares = counts / n
+    prior_shift = float(0.5 * np.abs(shares - reference.class_priors).sum())
+
+    leakage: dict[str, float] | None = None
+    leakage_gap: float | None = None
+    class_mean_gap: float | None = None
+    present = counts[counts > 0]
+    if present.size >= 2 and present.min() >= 2:
+        folds = min(PROBE_FOLDS, int(present.min()))
+        _, compact = np.unique(codes, return_inverse=True)
+        score: ProbeScore = probes.classification_score(
+            probes.linear_probe(random_state), np.asarray(erased), compact, folds=folds, random_state=random_state
+        )
+        leakage = {
+            "accuracy": score.accuracy,
+            "majority": score.majority,
+            "interval_low": score.interval_low,
+            "interval_high": score.interval_high,
+            "n": float(score.n),
+        }
+        leakage_gap = max(0.0, score.interval_low - score.majority, score.majority - score.interval_high)
+        erased_white = (np.asarray(erased, dtype=np.float64) - reference.mean) @ whitening
+        overall = erased_white.mean(axis=0)
+        class_mean_gap = max(
+            float(np.linalg.norm(erased_white[compact == c].mean(axis=0) - overall)) for c in np.unique(compact)
+        )
+
+    figures = {
+        "mean_shift": max(0.0, mean_raw - mean_noise),
+        "covariance_shift": max(0.0, covariance_raw - covariance_noise),
+        "erased_variance_ratio": ratio,
+        "prior_shift": prior_shift,
+        "leakage_gap": leakage_gap,
+    }
+    reasons = []
+    worst = "ok"
+    for figure, value in figures.items():
+        band = getattr(thresholds, figure)
+        level = _level(value, band.warn, band.alert)
+        if level != "ok":
+            reasons.append(f"{figure} {value:.3f} reaches {level} ({band.warn if level == 'warn' else band.alert})")
+            if level == "alert" or worst == "ok":
+                worst = level
+    return DriftReport(
+        rows=n,
+        labels=source,
+        mean_shift=figures["mean_shift"] or 0.0,
+        mean_shift_raw=mean_raw,
+        covariance_shift=figures["covariance_shift"] or 0.0,
+        covariance_shift_raw=covariance_raw,
+        erased_variance_share=share,
+        erased_variance_ratio=ratio,
+        prior_shift=prior_shift,
+        class_shares={classes[i]: float(shares[i]) for i in range(len(classes))},
+        leakage=leakage,
+        leakage_gap=leakage_gap,
+        class_mean_gap=class_mean_gap,
+        status=worst,
+        reasons=reasons,
+    )

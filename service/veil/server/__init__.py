@@ -1,0 +1,1 @@
+"""The stateless HTTP service (FastAPI): apply, counterfactuals, versions, hot swap, drift and leakage checks."""

@@ -1,0 +1,233 @@
+"""The erasers a service process serves, and how a new version is swapped in without downtime.
+
+Each eraser is a :class:`ServedVersion`: immutable, loaded and verified in
+full, with everything a request needs computed once at load (the factored
+map, counterfactual shifts, whitening for drift checks).  The catalog holds
+one dict ``name -> ServedVersion`` and *replaces* it on reload, so a request
+that has picked its version keeps it until it finishes, and every request
+sees either the old or the new version, never a mix.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+from collections import OrderedDict
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.artifact import EraserArtifact
+from veil.postprocess import unit_normalize
+from veil.reference import REFERENCE_FILE, ReferenceStatistics
+from veil.registry import IntegrityError, NotFoundError, Registry, RegistryError, StoredVersion
+from veil.registry.errors import InvalidReferenceError
+from veil.server.errors import ServiceError
+from veil.server.metrics import ServiceMetrics
+from veil.thresholds import AlertThresholds
+
+logger = logging.getLogger("veil.server")
+
+
+@dataclass(frozen=True, eq=False)
+class ServedVersion:
+    """One loaded, verified version, ready for the hot path."""
+
+    name: str
+    version_id: str
+    artifact: EraserArtifact
+    card: dict[str, Any]
+    reference: ReferenceStatistics
+    thresholds: AlertThresholds
+    classes: list[str]
+    shifts: NDArray[np.float64]
+    whitening: NDArray[np.float64] = field(repr=False)
+
+    @property
+    def dim(self) -> int:
+        return self.artifact.map.dim
+
+    @classmethod
+    def from_stored(cls, stored: StoredVersion, *, threshold_overrides: dict[str, Any] | None) -> ServedVersion:
+        try:
+            reference = ReferenceStatistics.from_bytes(stored.files[REFERENCE_FILE])
+        except (KeyError, ValueError) as error:
+            raise IntegrityError(f"{stored.name} {stored.id}: reference statistics unreadable ({error})") from None
+        card = dict(stored.card)
+        thresholds = AlertThresholds.from_dict({**card.get("thresholds", {}), **(threshold_overrides or {})})
+        # Whitening in the leading eigen-directions the card keeps, dropping numerically null ones.
+        values = reference.eigenvalues[: reference.eigenvectors.shape[1]]
+        keep = values > values[0] * 1e-10 if values.size else values.astype(bool)
+        whitening = reference.eigenvectors[:, keep] / np.sqrt(values[keep])
+        return cls(
+            name=stored.name,
+            version_id=stored.id,
+            artifact=stored.artifact,
+            card=card,
+            reference=reference,
+            thresholds=thresholds,
+            classes=[str(c) for c in card.get("attribute", {}).get("classes", [])],
+            shifts=stored.artifact.counterfactual_shifts(),
+            whitening=whitening,
+        )
+
+    def apply(self, x: NDArray[np.floating]) -> NDArray[np.floating]:
+        self._check_dim(x)
+        return self.artifact.apply(x)
+
+    def counterfactual(self, x: NDArray[np.floating], target: str) -> NDArray[np.floating]:
+        self._check_dim(x)
+        if target not in self.classes:
+            raise ServiceError("unknown_class", f"{target!r} is not a class of {self.name}; classes: {self.classes}")
+        out = self.artifact.map.apply(x)
+        out += self.shifts[self.classes.index(target)].astype(out.dtype)
+        return unit_normalize(out) if self.artifact.normalize else out
+
+    def _check_dim(self, x: NDArray[np.floating]) -> None:
+        if x.shape[1] != self.dim:
+            raise ServiceError(
+                "wrong_dimension", f"{self.name} {self.version_id} expects {self.dim} dimensions, got {x.shape[1]}"
+            )
+
+
+@dataclass(frozen=True)
+class ReloadOutcome:
+    loaded: list[str]
+    failed: dict[str, str]
+
+
+class Catalog:
+    """Served erasers at the configured alias, plus a few pinned versions, kept fresh by :meth:`reload`."""
+
+    def __init__(
+        self,
+        registry: Registry,
+        *,
+        names: list[str],
+        alias: str,
+        metrics: ServiceMetrics,
+        max_pinned: int = 8,
+        threshold_overrides: dict[str, Any] | None = None,
+    ) -> None:
+        self.registry = registry
+        self.alias = alias
+        self.metrics = metrics
+        self._configured = list(names)
+        self._max_pinned = max_pinned
+        self._overrides = threshold_overrides
+        self._served: dict[str, ServedVersion] = {}
+        self._pinned: OrderedDict[tuple[str, str], ServedVersion] = OrderedDict()
+        self._pinned_lock = threading.Lock()
+        self._reload_lock = threading.Lock()
+        self.failures: dict[str, str] = {}
+
+    # ------------------------------------------------------------ hot path
+
+    @property
+    def served(self) -> dict[str, ServedVersion]:
+        return self._served
+
+    def wanted_names(self) -> list[str]:
+        if self._configured:
+            return list(self._configured)
+        try:
+            return self.registry.names()
+        except (RegistryError, OSError):
+            return sorted(self._served)
+
+    def ready(self) -> tuple[bool, list[str]]:
+        """True if every wanted eraser is loaded; otherwise the missing names."""
+        served = self._served
+        missing = [name for name in self.wanted_names() if name not in served]
+        return (not missing and bool(served)), missing
+
+    def current(self, name: str) -> ServedVersion:
+        served = self._served.get(name)
+        if served is None:
+            raise ServiceError("unknown_eraser", f"no eraser {name!r} is served here; served: {sorted(self._served)}")
+        return served
+
+    def resolve(self, name: str, *, version: str | None, alias: str | None) -> ServedVersion:
+        """The version a request asked for: the alias's by default, or a pinned version or alias.
+
+        A pinned version other than the current one is loaded and verified on
+        first use (call from a worker thread) and kept in a small LRU.
+        """
+        current = self.current(name)
+        if version is None and (alias is None or alias == self.alias):
+            return current
+        reference = version if version is not None else alias
+        assert reference is not None
+        try:
+            version_id = self.registry.resolve(name, reference)
+        except (NotFoundError, InvalidReferenceError) as error:
+            raise ServiceError("unknown_version", str(error)) from None
+        except (RegistryError, OSError) as error:
+            raise ServiceError("version_unavailable", f"{name}: the registry cannot be read ({error})") from None
+        if version_id == current.version_id:
+            return current
+        with self._pinned_lock:
+            cached = self._pinned.get((name, version_id))
+            if cached is not None:
+                self._pinned.move_to_end((name, version_id))
+                return cached
+        loaded = self._load(name, version_id)
+        if loaded.dim != current.dim:
+            raise ServiceError(
+                "version_unavailable",
+                f"{name} {version_id} has dimension {loaded.dim}; this eraser serves {current.dim}",
+            )
+        with self._pinned_lock:
+            self._pinned[(name, version_id)] = loaded
+            while len(self._pinned) > self._max_pinned:
+                self._pinned.popitem(last=False)
+        return loaded
+
+    def _load(self, name: str, version_id: str) -> ServedVersion:
+        try:
+            return ServedVersion.from_stored(
+                self.registry.read_version(name, version_id), threshold_overrides=self._overrides
+            )
+        except IntegrityError as error:
+            raise ServiceError("version_unavailable", str(error)) from None
+        except (RegistryError, OSError, ValueError) as error:
+            raise ServiceError("version_unavailable", f"{name} {version_id} cannot be loaded ({error})") from None
+
+    # ------------------------------------------------------------ reload (off the request path)
+
+    def reload(self) -> ReloadOutcome:
+        """Re-resolve every alias; load, verify and swap in what changed.  Never raises for a bad version."""
+        with self._reload_lock:
+            loaded: list[str] = []
+            failed: dict[str, str] = {}
+            updated = dict(self._served)
+            for name in self.wanted_names():
+                old = updated.get(name)
+                try:
+                    version_id = self.registry.resolve(name, self.alias)
+                    if old is not None and old.version_id == version_id:
+                        continue
+                    stored = self.registry.read_version(name, version_id)
+                    dim = stored.artifact.map.dim
+                    if old is not None and dim != old.dim:
+                        raise IntegrityError(
+                            f"{name} {version_id} has dimension {dim} but {old.version_id} serves {old.dim}; "
+                            "refused: callers and indexes expect the old dimension (restart the service to change it)"
+                        )
+                    candidate = ServedVersion.from_stored(stored, threshold_overrides=self._overrides)
+                except (RegistryError, OSError, ValueError, KeyError) as error:
+                    failed[name] = str(error)
+                    self.metrics.reload_failures.labels(name).inc()
+                    logger.warning("reload refused", extra={"fields": {"eraser": name, "problem": str(error)}})
+                    continue
+                updated[name] = candidate
+                loaded.append(f"{name} {candidate.version_id}")
+                self.metrics.reloads.labels(name).inc()
+                self.metrics.served(name, self.alias, None if old is None else old.version_id, candidate.version_id)
+                logger.info("version loaded", extra={"fields": {"eraser": name, "version": candidate.version_id}})
+            # One assignment: requests see the old dict or the new one.
+            self._served = updated
+            self.failures = failed
+            return ReloadOutcome(loaded=loaded, failed=failed)

@@ -1,0 +1,1 @@
+"""One router per area: erasers (apply, counterfactual, listing), drift, health, admin."""

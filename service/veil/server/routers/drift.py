@@ -1,0 +1,107 @@
+"""``/v1/erasers/{name}/drift``: drift and leakage checks on a posted sample or on recent traffic."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+import numpy as np
+from fastapi import APIRouter, Depends
+from fastapi.concurrency import run_in_threadpool
+from numpy.typing import NDArray
+
+from veil.drift import check_drift
+from veil.server.catalog import Catalog, ServedVersion
+from veil.server.codecs import JSON_MEDIA_TYPE
+from veil.server.dependencies import (
+    Pin,
+    get_catalog,
+    get_metrics,
+    get_reservoirs,
+    read_body,
+    request_format,
+    require_data_token,
+    version_pin,
+)
+from veil.server.errors import ServiceError
+from veil.server.metrics import DRIFT_LEVELS, ServiceMetrics
+from veil.server.reservoir import ReservoirBank
+from veil.server.routers.erasers import decode_batch, pick_version
+
+router = APIRouter(prefix="/v1/erasers", tags=["drift"], dependencies=[Depends(require_data_token)])
+
+_DRIFT_BODY = {
+    "content": {
+        "application/json": {
+            "schema": {
+                "type": "object",
+                "required": ["vectors"],
+                "properties": {
+                    "vectors": {"type": "array", "items": {"type": "array", "items": {"type": "number"}}},
+                    "labels": {"type": "array", "items": {"type": "string"}, "description": "attribute labels"},
+                },
+            }
+        },
+        "application/x-npy": {"schema": {"type": "string", "format": "binary"}},
+    },
+    "required": True,
+}
+
+
+async def _run(
+    served: ServedVersion, raw: NDArray[np.floating], labels: list[str] | None, metrics: ServiceMetrics
+) -> dict[str, Any]:
+    if raw.shape[1] != served.dim:
+        raise ServiceError("wrong_dimension", f"{served.name} expects {served.dim} dimensions, got {raw.shape[1]}")
+    try:
+        # Probes take a second or two: off the event loop.
+        report = await run_in_threadpool(
+            check_drift,
+            served.artifact,
+            served.reference,
+            served.whitening,
+            served.thresholds,
+            raw,
+            classes=served.classes,
+            labels=labels,
+        )
+    except ValueError as error:
+        raise ServiceError("invalid_request", str(error)) from None
+    metrics.drift_status.labels(served.name).set(DRIFT_LEVELS[report.status])
+    return {"eraser": served.name, "version": served.version_id, **report.to_dict()}
+
+
+@router.post(
+    "/{name}/drift",
+    summary="Drift and leakage of a posted sample of raw live embeddings (labels optional)",
+    openapi_extra={"requestBody": _DRIFT_BODY},
+)
+async def drift_of_sample(
+    name: str,
+    body: Annotated[bytes, Depends(read_body)],
+    media: Annotated[str, Depends(request_format)],
+    pin: Annotated[Pin, Depends(version_pin)],
+    catalog: Annotated[Catalog, Depends(get_catalog)],
+    metrics: Annotated[ServiceMetrics, Depends(get_metrics)],
+) -> dict[str, Any]:
+    served = await pick_version(catalog, name, pin)
+    vectors, fields = decode_batch(body, media)
+    labels = fields.get("labels") if media == JSON_MEDIA_TYPE else None
+    if labels is not None and not (isinstance(labels, list) and all(isinstance(v, str) for v in labels)):
+        raise ServiceError("invalid_request", '"labels" must be a list of class names (strings)')
+    return await _run(served, vectors, labels, metrics)
+
+
+@router.get("/{name}/drift", summary="Drift and leakage of the recent traffic this replica has seen (unlabelled)")
+async def drift_of_traffic(
+    name: str,
+    catalog: Annotated[Catalog, Depends(get_catalog)],
+    metrics: Annotated[ServiceMetrics, Depends(get_metrics)],
+    reservoirs: Annotated[ReservoirBank, Depends(get_reservoirs)],
+) -> dict[str, Any]:
+    served = catalog.current(name)
+    reservoir = reservoirs.get(name)
+    sample = reservoir.sample() if reservoir is not None else np.empty((0, served.dim), dtype=np.float32)
+    if sample.shape[0] == 0:
+        raise ServiceError("no_traffic", f"this replica has seen no traffic for {name} yet")
+    result = await _run(served, sample, None, metrics)
+    return {**result, "traffic_seen": reservoir.seen if reservoir is not None else 0}

@@ -1,0 +1,150 @@
+"""``/v1/erasers``: what is served, and cleaning batches of embeddings with it."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+import numpy as np
+from fastapi import APIRouter, Depends, Query
+from fastapi.concurrency import run_in_threadpool
+from numpy.typing import NDArray
+from starlette.responses import Response
+
+from veil.server.catalog import Catalog, ServedVersion
+from veil.server.codecs import JSON_MEDIA_TYPE, json_bytes, load_json, npy_bytes, parse_json_vectors, parse_npy
+from veil.server.dependencies import (
+    Pin,
+    get_catalog,
+    get_metrics,
+    get_reservoirs,
+    read_body,
+    request_format,
+    require_data_token,
+    response_format,
+    version_pin,
+)
+from veil.server.errors import ServiceError
+from veil.server.metrics import ServiceMetrics
+from veil.server.reservoir import ReservoirBank
+
+router = APIRouter(prefix="/v1/erasers", tags=["erasers"], dependencies=[Depends(require_data_token)])
+
+_BATCH_BODY = {
+    "content": {
+        "application/json": {
+            "schema": {
+                "type": "object",
+                "required": ["vectors"],
+                "properties": {
+                    "vectors": {"type": "array", "items": {"type": "array", "items": {"type": "number"}}},
+                    "target": {"type": "string", "description": "counterfactual only: the target class"},
+                },
+            }
+        },
+        "application/x-npy": {"schema": {"type": "string", "format": "binary"}},
+    },
+    "required": True,
+}
+_BATCH_RESPONSE: dict[int | str, dict[str, Any]] = {
+    200: {
+        "description": "the cleaned batch, in the format Accept names; X-Veil-Version names the version applied",
+        "content": {"application/x-npy": {"schema": {"type": "string", "format": "binary"}}},
+    }
+}
+
+
+def summary(served: ServedVersion, alias: str) -> dict[str, Any]:
+    return {
+        "name": served.name,
+        "alias": alias,
+        "version": served.version_id,
+        "method": served.artifact.method,
+        "dim": served.dim,
+        "rank": served.artifact.map.rank,
+        "normalize": served.artifact.normalize,
+        "classes": served.classes,
+    }
+
+
+@router.get("", summary="List the erasers served and their versions")
+def list_erasers(catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
+    return {"erasers": [summary(s, catalog.alias) for _, s in sorted(catalog.served.items())]}
+
+
+@router.get("/{name}", summary="One served eraser, with its version's card")
+def show_eraser(name: str, catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
+    served = catalog.current(name)
+    return {**summary(served, catalog.alias), "card": served.card}
+
+
+def decode_batch(body: bytes, media: str) -> tuple[NDArray[np.floating], dict[str, Any]]:
+    """The vectors of a request body, and the other JSON fields (empty for ``.npy``)."""
+    if media == JSON_MEDIA_TYPE:
+        content = load_json(body)
+        if not isinstance(content, dict) or "vectors" not in content:
+            raise ServiceError("invalid_request", 'the JSON body must be an object with a "vectors" field')
+        return parse_json_vectors(content["vectors"]), content
+    return parse_npy(body), {}
+
+
+def encode_batch(matrix: NDArray[np.floating], media: str, served: ServedVersion) -> Response:
+    headers = {"X-Veil-Eraser": served.name, "X-Veil-Version": served.version_id}
+    if media == JSON_MEDIA_TYPE:
+        return Response(
+            json_bytes({"version": served.version_id, "vectors": matrix}), media_type=media, headers=headers
+        )
+    return Response(npy_bytes(matrix), media_type=media, headers=headers)
+
+
+async def pick_version(catalog: Catalog, name: str, pin: Pin) -> ServedVersion:
+    if pin.version is None and pin.alias is None:
+        return catalog.current(name)
+    # A pinned version may need loading and verifying: off the event loop.
+    return await run_in_threadpool(catalog.resolve, name, version=pin.version, alias=pin.alias)
+
+
+@router.post(
+    "/{name}/apply",
+    summary="Erase the attribute from a batch of embeddings",
+    openapi_extra={"requestBody": _BATCH_BODY},
+    responses=_BATCH_RESPONSE,
+)
+async def apply(
+    name: str,
+    body: Annotated[bytes, Depends(read_body)],
+    media: Annotated[str, Depends(request_format)],
+    answer: Annotated[str, Depends(response_format)],
+    pin: Annotated[Pin, Depends(version_pin)],
+    catalog: Annotated[Catalog, Depends(get_catalog)],
+    metrics: Annotated[ServiceMetrics, Depends(get_metrics)],
+    reservoirs: Annotated[ReservoirBank, Depends(get_reservoirs)],
+) -> Response:
+    served = await pick_version(catalog, name, pin)
+    vectors, _ = decode_batch(body, media)
+    cleaned = served.apply(vectors)
+    reservoirs.add(name, vectors)
+    metrics.vectors.labels(name, served.version_id).inc(vectors.shape[0])
+    return encode_batch(cleaned, answer, served)
+
+
+@router.post(
+    "/{name}/counterfactual",
+    summary="Erase, then give every vector the attribute component of a target class",
+    openapi_extra={"requestBody": _BATCH_BODY},
+    responses=_BATCH_RESPONSE,
+)
+async def counterfactual(
+    name: str,
+    body: Annotated[bytes, Depends(read_body)],
+    media: Annotated[str, Depends(request_format)],
+    answer: Annotated[str, Depends(response_format)],
+    pin: Annotated[Pin, Depends(version_pin)],
+    catalog: Annotated[Catalog, Depends(get_catalog)],
+    target: Annotated[str | None, Query(description="the target class (or the JSON body's target)")] = None,
+) -> Response:
+    served = await pick_version(catalog, name, pin)
+    vectors, fields = decode_batch(body, media)
+    chosen = fields.get("target", target)
+    if not isinstance(chosen, str):
+        raise ServiceError("invalid_request", 'give the target class as ?target= or a JSON "target" string')
+    return encode_batch(served.counterfactual(vectors, chosen), answer, served)

@@ -1,0 +1,33 @@
+"""``veil serve``: settings from the command line on top of ``VEIL_...`` variables, then uvicorn."""
+
+from __future__ import annotations
+
+import json
+import os
+
+import uvicorn
+
+from veil.registry.naming import check_name
+from veil.server.settings import ServiceSettings
+
+
+def serve_forever(*, registry: str, names: list[str], alias: str, host: str, port: int, workers: int) -> None:
+    """Run the service until interrupted; with ``workers > 1``, each worker process builds its own app."""
+    for name in names:
+        check_name(name)
+    check_name(alias, what="alias")
+    # Through the environment, so every worker process the factory starts gets the same settings.
+    os.environ["VEIL_REGISTRY"] = registry
+    os.environ["VEIL_ALIAS"] = alias
+    if names:
+        os.environ["VEIL_NAMES"] = json.dumps(names)
+    settings = ServiceSettings()
+    uvicorn.run(
+        "veil.server.app:create_app",
+        factory=True,
+        host=host,
+        port=port,
+        workers=workers,
+        log_level=settings.log_level,
+        access_log=False,  # the service writes its own JSON line per request
+    )
