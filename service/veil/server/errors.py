@@ -34,6 +34,7 @@ ERROR_CODES: dict[str, tuple[int, str]] = {
     "wrong_dimension": (422, "the vectors' dimension differs from the eraser's"),
     "invalid_request": (422, "a parameter or field is missing or invalid"),
     "unknown_class": (422, "the target is not a class of the attribute"),
+    "internal_error": (500, "a fault inside the service (logged); not caused by the request"),
     "version_unavailable": (503, "the version could not be loaded or failed verification"),
     "not_ready": (503, "not every configured eraser is loaded"),
 }
@@ -78,4 +79,4 @@ def install_error_handlers(app: FastAPI) -> None:
     async def unexpected(request: Request, error: Exception) -> Response:
         # Logged with its type only: messages may quote request content.
         logger.error("unexpected failure", extra={"fields": {"error": type(error).__name__, "path": request.url.path}})
-        return error_response("version_unavailable", "the service could not complete the request", status=500)
+        return error_response("internal_error", "the service could not complete the request")
