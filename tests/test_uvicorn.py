@@ -41,8 +41,10 @@ def wait_until(predicate, timeout: float) -> bool:  # type: ignore[no-untyped-de
     return False
 
 
-@pytest.fixture
-def server(service_registry: ServiceRegistry, tmp_path: Path) -> Iterator[tuple[str, Path, Path]]:
+@pytest.fixture(params=[1, 2], ids=["one-worker", "two-workers"])
+def server(
+    request: pytest.FixtureRequest, service_registry: ServiceRegistry, tmp_path: Path
+) -> Iterator[tuple[str, Path, Path]]:
     registry = tmp_path / "registry"
     shutil.copytree(service_registry.path, registry)
     port = free_port()
@@ -99,7 +101,7 @@ def test_a_real_server_answers_like_the_in_process_eraser(
         as_json = client.post(f"/v1/erasers/{PROFILES}/apply", json={"vectors": batch.tolist()})
         np.testing.assert_allclose(np.array(as_json.json()["vectors"]), expected, atol=1e-6)
 
-        # A promote reaches the running server through alias polling, with no request failing meanwhile.
+        # A promote reaches the running server (every worker) through alias polling, no request failing meanwhile.
         Registry(registry).promote(PROFILES, service_registry.meanproj)
 
         def switched() -> bool:
@@ -108,6 +110,12 @@ def test_a_real_server_answers_like_the_in_process_eraser(
             return response.headers["x-veil-version"] == service_registry.meanproj
 
         assert wait_until(switched, 15.0)
+        # A new connection each time, so the kernel spreads them over the workers: all answer with the new version.
+        for _ in range(20):
+            fresh = httpx.post(
+                f"{base}/v1/erasers/{PROFILES}/apply", json={"vectors": batch[:2].tolist()}, timeout=30.0
+            )
+            assert fresh.headers["x-veil-version"] == service_registry.meanproj
         reload = client.post("/v1/admin/reload", headers={"Authorization": f"Bearer {ADMIN_TOKEN}"})
         assert reload.json()["serving"][PROFILES] == service_registry.meanproj
         assert "veil_reloads_total" in client.get("/metrics").text
