@@ -16,6 +16,7 @@ from veil.datasets import load_harbourline_profiles
 from veil.registry import Registry
 
 from .service_fixtures import ADMIN_TOKEN, PLANTED, PROFILES, ServiceRegistry, app_for, client_for
+from .test_cli import snapshot
 from .test_registry import version_files
 
 pytestmark = pytest.mark.anyio
@@ -125,6 +126,7 @@ async def test_counterfactual_adds_the_target_class_component(
 
 
 async def test_listing_health_readiness_and_metrics(service_registry: ServiceRegistry, batch: np.ndarray) -> None:
+    before = snapshot(service_registry.path)
     async with client_for(app_for(service_registry.path)) as client:
         listing = (await client.get("/v1/erasers")).json()
         assert {(e["name"], e["version"]) for e in listing["erasers"]} == {
@@ -146,6 +148,9 @@ async def test_listing_health_readiness_and_metrics(service_registry: ServiceReg
         assert "veil_request_seconds_bucket" in metrics
         schema = (await client.get("/openapi.json")).json()
         assert "/v1/erasers/{name}/apply" in schema["paths"]
+        await client.post("/v1/admin/reload", headers={"Authorization": f"Bearer {ADMIN_TOKEN}"})
+    # Stateless: serving, reloading and checking never write to the registry.
+    assert snapshot(service_registry.path) == before
 
 
 async def test_only_configured_names_are_served(service_registry: ServiceRegistry) -> None:
