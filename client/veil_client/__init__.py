@@ -1,8 +1,49 @@
-"""Client library for the veil service.
+"""Client library for the veil service: NumPy arrays in, cleaned arrays out.
 
-Not built yet: the client (``VeilClient`` and ``AsyncVeilClient`` on httpx)
-lands with the client issue.  The package exists so the distribution layout
-is fixed from the start.
+>>> from veil_client import VeilClient
+>>> with VeilClient("http://veil.internal:8080") as veil:          # doctest: +SKIP
+...     result = veil.apply("profiles-minilm", embeddings)
+...     result.vectors, result.version
+
+``VeilClient`` blocks; ``AsyncVeilClient`` is its asyncio twin.  Both send
+binary ``.npy`` by default (``encoding="json"`` for JSON), split large inputs
+into batches of ``batch_size`` rows and put the results back in order, pin
+every later batch to the version the first one got (so one result never mixes
+versions), retry connection errors and 503 with exponential backoff and
+jitter (never a 4xx), and use explicit default timeouts (5 s connect, 30 s
+otherwise).
+
+Exceptions (all subclasses of :class:`VeilError`)::
+
+    VeilError
+    ├── VeilValidationError     refused before any request: not 2-D, empty, NaN/Inf, not numbers
+    ├── VeilTransportError      not reachable / timed out, after every retry
+    └── VeilHTTPError           the service answered an error: .status, .code, .message
+        ├── VeilClientError     4xx (wrong_dimension, unknown_eraser, ...): never retried
+        └── VeilServerError     5xx (a 503 only after every retry)
 """
 
-__all__: list[str] = []
+from veil_client._base import DEFAULT_BATCH_SIZE, DEFAULT_TIMEOUT, CleanedBatch
+from veil_client.client import AsyncVeilClient, VeilClient
+from veil_client.errors import (
+    VeilClientError,
+    VeilError,
+    VeilHTTPError,
+    VeilServerError,
+    VeilTransportError,
+    VeilValidationError,
+)
+
+__all__ = [
+    "DEFAULT_BATCH_SIZE",
+    "DEFAULT_TIMEOUT",
+    "AsyncVeilClient",
+    "CleanedBatch",
+    "VeilClient",
+    "VeilClientError",
+    "VeilError",
+    "VeilHTTPError",
+    "VeilServerError",
+    "VeilTransportError",
+    "VeilValidationError",
+]

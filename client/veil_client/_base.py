@@ -1,0 +1,123 @@
+"""What the sync and async clients share: validation, encoding, decoding, batching and the retry policy."""
+
+from __future__ import annotations
+
+import io
+import json
+import random
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import Any
+
+import httpx
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from veil_client.errors import VeilClientError, VeilHTTPError, VeilServerError, VeilValidationError
+
+NPY = "application/x-npy"
+JSON = "application/json"
+#: connect, read, write and pool timeouts in seconds: fail fast on connect, allow large batches to stream.
+DEFAULT_TIMEOUT = httpx.Timeout(30.0, connect=5.0)
+DEFAULT_BATCH_SIZE = 1024
+RETRY_STATUSES = frozenset({503})
+
+
+@dataclass(frozen=True)
+class CleanedBatch:
+    """Cleaned vectors, in input order, and the eraser version that cleaned every one of them."""
+
+    vectors: NDArray[np.floating]
+    version: str
+    eraser: str
+
+
+def as_matrix(vectors: ArrayLike) -> NDArray[np.floating]:
+    """A 2-D float16/32/64 array of finite numbers, or :class:`VeilValidationError` before any request."""
+    try:
+        matrix = np.asarray(vectors)
+    except (ValueError, TypeError) as error:
+        raise VeilValidationError(f"vectors must be a 2-D array of numbers ({error})") from None
+    if matrix.dtype.kind in "iu":
+        matrix = matrix.astype(np.float32)
+    if matrix.dtype.kind != "f":
+        raise VeilValidationError(f"vectors must be numbers, got dtype {matrix.dtype}")
+    if matrix.ndim != 2:
+        raise VeilValidationError(f"vectors must be 2-D (rows × dimensions), got shape {matrix.shape}")
+    if matrix.shape[0] == 0 or matrix.shape[1] == 0:
+        raise VeilValidationError(f"vectors are empty (shape {matrix.shape})")
+    if not np.isfinite(matrix).all():
+        row = int(np.flatnonzero(~np.isfinite(matrix).all(axis=1))[0])
+        raise VeilValidationError(f"row {row} holds NaN or infinite values")
+    return matrix
+
+
+def batches(matrix: NDArray[np.floating], size: int) -> Iterator[NDArray[np.floating]]:
+    for start in range(0, matrix.shape[0], size):
+        yield matrix[start : start + size]
+
+
+def encode(matrix: NDArray[np.floating], wire: str, extra: dict[str, Any] | None = None) -> tuple[bytes, str]:
+    if wire == NPY:
+        buffer = io.BytesIO()
+        np.save(buffer, np.ascontiguousarray(matrix.astype(matrix.dtype.newbyteorder("<"), copy=False)))
+        return buffer.getvalue(), NPY
+    return json.dumps({"vectors": matrix.tolist(), **(extra or {})}).encode(), JSON
+
+
+def decode(response: httpx.Response) -> NDArray[np.floating]:
+    media = response.headers.get("content-type", "").split(";")[0].strip()
+    if media == NPY:
+        array: NDArray[np.floating] = np.load(io.BytesIO(response.content), allow_pickle=False)
+        return array
+    return np.asarray(response.json()["vectors"], dtype=np.float32)
+
+
+def raise_for_error(response: httpx.Response) -> None:
+    if response.status_code < 400:
+        return
+    code, message = "unknown", response.text[:500]
+    try:
+        error = response.json()["error"]
+        code, message = str(error["code"]), str(error["message"])
+    except (ValueError, KeyError, TypeError):
+        pass
+    kind: type[VeilHTTPError] = VeilClientError if response.status_code < 500 else VeilServerError
+    raise kind(response.status_code, code, message)
+
+
+@dataclass(frozen=True)
+class RetryPolicy:
+    """Exponential backoff with full jitter: wait ``uniform(0.5, 1) × min(cap, base × 2**attempt)``."""
+
+    retries: int = 3
+    base: float = 0.2
+    cap: float = 5.0
+
+    def delay(self, attempt: int, rng: random.Random) -> float:
+        return float(min(self.cap, self.base * 2**attempt) * rng.uniform(0.5, 1.0))
+
+
+def pin_headers(version: str | None, alias: str | None) -> dict[str, str]:
+    if version is not None and alias is not None:
+        raise VeilValidationError("pin a version or an alias, not both")
+    if version is not None:
+        return {"X-Veil-Version": version}
+    if alias is not None:
+        return {"X-Veil-Alias": alias}
+    return {}
+
+
+class ClientSettings:
+    """The configuration both clients carry."""
+
+    def __init__(self, *, token: str | None, batch_size: int, wire: str, retry: RetryPolicy, seed: int | None) -> None:
+        if batch_size < 1:
+            raise VeilValidationError(f"batch_size must be at least 1, got {batch_size}")
+        if wire not in ("npy", "json"):
+            raise VeilValidationError(f"format must be 'npy' or 'json', got {wire!r}")
+        self.headers = {} if token is None else {"Authorization": f"Bearer {token}"}
+        self.batch_size = batch_size
+        self.wire = NPY if wire == "npy" else JSON
+        self.retry = retry
+        self.rng = random.Random(seed)

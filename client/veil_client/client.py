@@ -1,0 +1,292 @@
+"""``VeilClient`` (sync) and ``AsyncVeilClient`` (async) on httpx; shared logic is in :mod:`veil_client._base`."""
+
+from __future__ import annotations
+
+import asyncio
+import time
+from types import TracebackType
+from typing import Any, Self
+
+import httpx
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from veil_client._base import (
+    DEFAULT_BATCH_SIZE,
+    DEFAULT_TIMEOUT,
+    JSON,
+    RETRY_STATUSES,
+    CleanedBatch,
+    ClientSettings,
+    RetryPolicy,
+    as_matrix,
+    batches,
+    decode,
+    encode,
+    pin_headers,
+    raise_for_error,
+)
+from veil_client.errors import VeilTransportError, VeilValidationError
+
+DEFAULT_URL = "http://127.0.0.1:8080"
+
+
+class _Requests:
+    """Request shapes both clients send; each client only adds how to send them."""
+
+    settings: ClientSettings
+
+    def _configure(
+        self, *, token: str | None, batch_size: int, encoding: str, retries: int, backoff: float, max_backoff: float,
+        seed: int | None,
+    ) -> None:  # fmt: skip
+        self.settings = ClientSettings(
+            token=token,
+            batch_size=batch_size,
+            wire=encoding,
+            retry=RetryPolicy(retries, backoff, max_backoff),
+            seed=seed,
+        )
+
+    def _batch_request(self, batch: NDArray[np.floating], pin: dict[str, str]) -> dict[str, Any]:
+        body, media = encode(batch, self.settings.wire)
+        return {"content": body, "headers": {**pin, "Content-Type": media, "Accept": media}}
+
+    def _drift_request(self, vectors: ArrayLike | None, labels: list[str] | None) -> dict[str, Any]:
+        if vectors is None:
+            if labels is not None:
+                raise VeilValidationError("labels go with the vectors they label")
+            return {"method": "GET"}
+        matrix = as_matrix(vectors)
+        if labels is not None:
+            labels = [str(label) for label in labels]
+            if len(labels) != matrix.shape[0]:
+                raise VeilValidationError(f"got {len(labels)} labels for {matrix.shape[0]} vectors")
+            body, media = encode(matrix, JSON, {"labels": labels})
+        else:
+            body, media = encode(matrix, self.settings.wire)
+        return {"method": "POST", "content": body, "headers": {"Content-Type": media}}
+
+
+def _combine(parts: list[NDArray[np.floating]], responses: list[httpx.Response]) -> CleanedBatch:
+    return CleanedBatch(
+        vectors=np.concatenate(parts),
+        version=responses[0].headers.get("x-veil-version", ""),
+        eraser=responses[0].headers.get("x-veil-eraser", ""),
+    )
+
+
+class VeilClient(_Requests):
+    """A blocking client of the veil service.
+
+    Parameters
+    ----------
+    base_url : str
+        The service, e.g. ``http://veil.internal:8080``.
+    token : str, optional
+        Bearer token (the data token, or the admin token for :meth:`reload`).
+    timeout : httpx.Timeout or float
+        Default: 5 s to connect, 30 s for everything else.
+    batch_size : int, default=1024
+        Rows per request; larger inputs are split and put back together in order.
+    encoding : {"npy", "json"}, default="npy"
+        Binary ``.npy`` transport (fast) or JSON.
+    retries, backoff, max_backoff : int, float, float
+        Retries on connection errors and 503 only, with exponential backoff and jitter.
+    transport, http_client
+        An httpx transport (``MockTransport`` in tests) or a ready ``httpx.Client``.
+    """
+
+    def __init__(
+        self,
+        base_url: str = DEFAULT_URL,
+        *,
+        token: str | None = None,
+        timeout: httpx.Timeout | float = DEFAULT_TIMEOUT,
+        batch_size: int = DEFAULT_BATCH_SIZE,
+        encoding: str = "npy",
+        retries: int = 3,
+        backoff: float = 0.2,
+        max_backoff: float = 5.0,
+        transport: httpx.BaseTransport | None = None,
+        http_client: httpx.Client | None = None,
+        seed: int | None = None,
+    ) -> None:
+        self._configure(
+            token=token, batch_size=batch_size, encoding=encoding, retries=retries, backoff=backoff,
+            max_backoff=max_backoff, seed=seed,
+        )  # fmt: skip
+        self._http = http_client or httpx.Client(base_url=base_url, timeout=timeout, transport=transport)
+
+    def _send(self, method: str, path: str, **request: Any) -> httpx.Response:
+        retry = self.settings.retry
+        headers = {**self.settings.headers, **request.pop("headers", {})}
+        for attempt in range(retry.retries + 1):
+            try:
+                response = self._http.request(method, path, headers=headers, **request)
+            except httpx.TransportError as error:
+                if attempt == retry.retries:
+                    raise VeilTransportError(f"{method} {path}: {type(error).__name__}: {error}") from error
+            else:
+                if response.status_code not in RETRY_STATUSES or attempt == retry.retries:
+                    raise_for_error(response)
+                    return response
+            time.sleep(retry.delay(attempt, self.settings.rng))
+        raise AssertionError("unreachable: the last attempt returns or raises")
+
+    def _clean(
+        self, path: str, vectors: ArrayLike, version: str | None, alias: str | None, params: dict[str, str]
+    ) -> CleanedBatch:
+        matrix, pin = as_matrix(vectors), pin_headers(version, alias)
+        parts, responses = [], []
+        for batch in batches(matrix, self.settings.batch_size):
+            response = self._send("POST", path, params=params, **self._batch_request(batch, pin))
+            # Every later batch is pinned to the version the first one got: one result, one version.
+            pin = {"X-Veil-Version": response.headers["x-veil-version"]}
+            parts.append(decode(response))
+            responses.append(response)
+        return _combine(parts, responses)
+
+    def apply(
+        self, name: str, vectors: ArrayLike, *, version: str | None = None, alias: str | None = None
+    ) -> CleanedBatch:
+        """Erase the attribute from ``vectors`` (shape (n, d)); the result keeps their order."""
+        return self._clean(f"/v1/erasers/{name}/apply", vectors, version, alias, {})
+
+    def counterfactual(
+        self, name: str, vectors: ArrayLike, target: str, *, version: str | None = None, alias: str | None = None
+    ) -> CleanedBatch:
+        """Erase, then give every vector the attribute component of class ``target``."""
+        return self._clean(f"/v1/erasers/{name}/counterfactual", vectors, version, alias, {"target": target})
+
+    def drift(self, name: str, vectors: ArrayLike | None = None, labels: list[str] | None = None) -> dict[str, Any]:
+        """Drift and leakage of a sample of raw live vectors (labels optional), or of recent traffic if none given."""
+        request = self._drift_request(vectors, labels)
+        result: dict[str, Any] = self._send(request.pop("method"), f"/v1/erasers/{name}/drift", **request).json()
+        return result
+
+    def erasers(self) -> list[dict[str, Any]]:
+        result: list[dict[str, Any]] = self._send("GET", "/v1/erasers").json()["erasers"]
+        return result
+
+    def eraser(self, name: str) -> dict[str, Any]:
+        result: dict[str, Any] = self._send("GET", f"/v1/erasers/{name}").json()
+        return result
+
+    def ready(self) -> dict[str, Any]:
+        result: dict[str, Any] = self._send("GET", "/readyz").json()
+        return result
+
+    def reload(self) -> dict[str, Any]:
+        """Ask the service to re-resolve its aliases now (needs the admin token)."""
+        result: dict[str, Any] = self._send("POST", "/v1/admin/reload").json()
+        return result
+
+    def close(self) -> None:
+        self._http.close()
+
+    def __enter__(self) -> Self:
+        return self
+
+    def __exit__(
+        self, kind: type[BaseException] | None, error: BaseException | None, trace: TracebackType | None
+    ) -> None:
+        self.close()
+
+
+class AsyncVeilClient(_Requests):
+    """The asyncio twin of :class:`VeilClient`: the same parameters, every method awaitable."""
+
+    def __init__(
+        self,
+        base_url: str = DEFAULT_URL,
+        *,
+        token: str | None = None,
+        timeout: httpx.Timeout | float = DEFAULT_TIMEOUT,
+        batch_size: int = DEFAULT_BATCH_SIZE,
+        encoding: str = "npy",
+        retries: int = 3,
+        backoff: float = 0.2,
+        max_backoff: float = 5.0,
+        transport: httpx.AsyncBaseTransport | None = None,
+        http_client: httpx.AsyncClient | None = None,
+        seed: int | None = None,
+    ) -> None:
+        self._configure(
+            token=token, batch_size=batch_size, encoding=encoding, retries=retries, backoff=backoff,
+            max_backoff=max_backoff, seed=seed,
+        )  # fmt: skip
+        self._http = http_client or httpx.AsyncClient(base_url=base_url, timeout=timeout, transport=transport)
+
+    async def _send(self, method: str, path: str, **request: Any) -> httpx.Response:
+        retry = self.settings.retry
+        headers = {**self.settings.headers, **request.pop("headers", {})}
+        for attempt in range(retry.retries + 1):
+            try:
+                response = await self._http.request(method, path, headers=headers, **request)
+            except httpx.TransportError as error:
+                if attempt == retry.retries:
+                    raise VeilTransportError(f"{method} {path}: {type(error).__name__}: {error}") from error
+            else:
+                if response.status_code not in RETRY_STATUSES or attempt == retry.retries:
+                    raise_for_error(response)
+                    return response
+            await asyncio.sleep(retry.delay(attempt, self.settings.rng))
+        raise AssertionError("unreachable: the last attempt returns or raises")
+
+    async def _clean(
+        self, path: str, vectors: ArrayLike, version: str | None, alias: str | None, params: dict[str, str]
+    ) -> CleanedBatch:
+        matrix, pin = as_matrix(vectors), pin_headers(version, alias)
+        parts, responses = [], []
+        for batch in batches(matrix, self.settings.batch_size):
+            response = await self._send("POST", path, params=params, **self._batch_request(batch, pin))
+            pin = {"X-Veil-Version": response.headers["x-veil-version"]}
+            parts.append(decode(response))
+            responses.append(response)
+        return _combine(parts, responses)
+
+    async def apply(
+        self, name: str, vectors: ArrayLike, *, version: str | None = None, alias: str | None = None
+    ) -> CleanedBatch:
+        return await self._clean(f"/v1/erasers/{name}/apply", vectors, version, alias, {})
+
+    async def counterfactual(
+        self, name: str, vectors: ArrayLike, target: str, *, version: str | None = None, alias: str | None = None
+    ) -> CleanedBatch:
+        return await self._clean(f"/v1/erasers/{name}/counterfactual", vectors, version, alias, {"target": target})
+
+    async def drift(
+        self, name: str, vectors: ArrayLike | None = None, labels: list[str] | None = None
+    ) -> dict[str, Any]:
+        request = self._drift_request(vectors, labels)
+        response = await self._send(request.pop("method"), f"/v1/erasers/{name}/drift", **request)
+        result: dict[str, Any] = response.json()
+        return result
+
+    async def erasers(self) -> list[dict[str, Any]]:
+        result: list[dict[str, Any]] = (await self._send("GET", "/v1/erasers")).json()["erasers"]
+        return result
+
+    async def eraser(self, name: str) -> dict[str, Any]:
+        result: dict[str, Any] = (await self._send("GET", f"/v1/erasers/{name}")).json()
+        return result
+
+    async def ready(self) -> dict[str, Any]:
+        result: dict[str, Any] = (await self._send("GET", "/readyz")).json()
+        return result
+
+    async def reload(self) -> dict[str, Any]:
+        result: dict[str, Any] = (await self._send("POST", "/v1/admin/reload")).json()
+        return result
+
+    async def aclose(self) -> None:
+        await self._http.aclose()
+
+    async def __aenter__(self) -> Self:
+        return self
+
+    async def __aexit__(
+        self, kind: type[BaseException] | None, error: BaseException | None, trace: TracebackType | None
+    ) -> None:
+        await self.aclose()
