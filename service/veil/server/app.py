@@ -24,11 +24,11 @@ from veil.server.middleware import RequestRecorder
 from veil.server.poller import poll_aliases
 from veil.server.reservoir import ReservoirBank
 from veil.server.routers import admin, drift, erasers, health
-from veil.server.settings import ServiceSettings
+from veil.server.settings import ServiceSettings, load_settings
 
 
 def create_app(settings: ServiceSettings | None = None) -> FastAPI:
-    settings = settings or ServiceSettings()
+    settings = settings or load_settings()
     configure_logging(settings.log_level)
     metrics = ServiceMetrics()
 

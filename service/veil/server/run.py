@@ -8,7 +8,7 @@ import os
 import uvicorn
 
 from veil.registry.naming import check_name
-from veil.server.settings import ServiceSettings
+from veil.server.settings import load_settings
 
 
 def serve_forever(*, registry: str, names: list[str], alias: str, host: str, port: int, workers: int) -> None:
@@ -21,7 +21,7 @@ def serve_forever(*, registry: str, names: list[str], alias: str, host: str, por
     os.environ["VEIL_ALIAS"] = alias
     if names:
         os.environ["VEIL_NAMES"] = json.dumps(names)
-    settings = ServiceSettings()
+    settings = load_settings()
     uvicorn.run(
         "veil.server.app:create_app",
         factory=True,

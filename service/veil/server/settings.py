@@ -15,11 +15,14 @@ variable                           default             meaning
 ``VEIL_THRESHOLDS``                unset               JSON overriding the cards' alert thresholds
 ``VEIL_CORS_ORIGINS``              ``[]``              JSON list of origins allowed by CORS (off if empty)
 ``VEIL_LOG_LEVEL``                 ``info``            log level of the JSON request log
+``VEIL_SECRETS_DIR``               unset               a folder of files named like the variables (Docker
+                                                       secrets: ``/run/secrets/veil_admin_token``)
 =================================  ==================  ======================================================
 """
 
 from __future__ import annotations
 
+import os
 from typing import Any
 
 from pydantic import Field, SecretStr, field_validator
@@ -27,6 +30,13 @@ from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from veil.registry.naming import check_name
 from veil.thresholds import AlertThresholds
+
+
+def load_settings() -> ServiceSettings:
+    """Settings from the environment, and from files in ``VEIL_SECRETS_DIR`` if that is set."""
+    secrets = os.environ.get("VEIL_SECRETS_DIR")
+    # _secrets_dir is pydantic-settings' per-instance override (mypy sees only the declared fields).
+    return ServiceSettings(_secrets_dir=secrets) if secrets else ServiceSettings()  # type: ignore[call-arg]
 
 
 class ServiceSettings(BaseSettings):
