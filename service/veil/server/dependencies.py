@@ -6,7 +6,7 @@ import hmac
 from dataclasses import dataclass
 from typing import Annotated
 
-from fastapi import Depends, Header, Query, Request
+from fastapi import Depends, Header, Path, Query, Request
 from pydantic import SecretStr
 
 from veil.server.catalog import Catalog
@@ -15,6 +15,10 @@ from veil.server.errors import ServiceError
 from veil.server.metrics import ServiceMetrics
 from veil.server.reservoir import ReservoirBank
 from veil.server.settings import ServiceSettings
+
+#: The ``{name}`` path parameter of every eraser route.
+EraserName = Annotated[str, Path(description="the eraser's name in the registry, e.g. profiles-minilm")]
+_TOKEN_HEADER = "`Bearer <token>`"
 
 
 def get_settings(request: Request) -> ServiceSettings:
@@ -48,7 +52,7 @@ def _check_bearer(authorization: str | None, expected: SecretStr) -> None:
 
 def require_admin(
     settings: Annotated[ServiceSettings, Depends(get_settings)],
-    authorization: Annotated[str | None, Header()] = None,
+    authorization: Annotated[str | None, Header(description=f"{_TOKEN_HEADER} with VEIL_ADMIN_TOKEN")] = None,
 ) -> None:
     if settings.admin_token is None:
         raise ServiceError("admin_disabled", "admin routes are off: no VEIL_ADMIN_TOKEN is configured")
@@ -57,7 +61,7 @@ def require_admin(
 
 def require_data_token(
     settings: Annotated[ServiceSettings, Depends(get_settings)],
-    authorization: Annotated[str | None, Header()] = None,
+    authorization: Annotated[str | None, Header(description=f"{_TOKEN_HEADER}, if VEIL_DATA_TOKEN is set")] = None,
 ) -> None:
     if settings.data_token is not None:
         _check_bearer(authorization, settings.data_token)
@@ -82,7 +86,9 @@ def _media(value: str | None) -> str:
     return (value or "").split(";", 1)[0].strip().lower()
 
 
-def request_format(content_type: Annotated[str | None, Header()] = None) -> str:
+def request_format(
+    content_type: Annotated[str | None, Header(description="application/json or application/x-npy")] = None,
+) -> str:
     media = _media(content_type)
     if media not in (JSON_MEDIA_TYPE, NPY_MEDIA_TYPE):
         raise ServiceError(
@@ -92,7 +98,8 @@ def request_format(content_type: Annotated[str | None, Header()] = None) -> str:
 
 
 def response_format(
-    request_media: Annotated[str, Depends(request_format)], accept: Annotated[str | None, Header()] = None
+    request_media: Annotated[str, Depends(request_format)],
+    accept: Annotated[str | None, Header(description="the response format; default: the request's")] = None,
 ) -> str:
     """The format named by ``Accept``; the request's own for ``*/*`` or no header."""
     if not accept:
@@ -115,8 +122,8 @@ class Pin:
 def version_pin(
     version: Annotated[str | None, Query(description="pin a version id or sequence number")] = None,
     alias: Annotated[str | None, Query(description="use another alias than the served one")] = None,
-    x_veil_version: Annotated[str | None, Header()] = None,
-    x_veil_alias: Annotated[str | None, Header()] = None,
+    x_veil_version: Annotated[str | None, Header(description="pin a version (as the query parameter)")] = None,
+    x_veil_alias: Annotated[str | None, Header(description="use another alias (as the query parameter)")] = None,
 ) -> Pin:
     pinned_version = version or x_veil_version
     pinned_alias = alias or x_veil_alias

@@ -13,6 +13,7 @@ from veil.drift import check_drift
 from veil.server.catalog import Catalog, ServedVersion
 from veil.server.codecs import JSON_MEDIA_TYPE
 from veil.server.dependencies import (
+    EraserName,
     Pin,
     get_catalog,
     get_metrics,
@@ -76,7 +77,7 @@ async def _run(
     openapi_extra={"requestBody": _DRIFT_BODY},
 )
 async def drift_of_sample(
-    name: str,
+    name: EraserName,
     body: Annotated[bytes, Depends(read_body)],
     media: Annotated[str, Depends(request_format)],
     pin: Annotated[Pin, Depends(version_pin)],
@@ -93,7 +94,7 @@ async def drift_of_sample(
 
 @router.get("/{name}/drift", summary="Drift and leakage of the recent traffic this replica has seen (unlabelled)")
 async def drift_of_traffic(
-    name: str,
+    name: EraserName,
     catalog: Annotated[Catalog, Depends(get_catalog)],
     metrics: Annotated[ServiceMetrics, Depends(get_metrics)],
     reservoirs: Annotated[ReservoirBank, Depends(get_reservoirs)],

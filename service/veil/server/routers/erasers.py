@@ -13,6 +13,7 @@ from starlette.responses import Response
 from veil.server.catalog import Catalog, ServedVersion
 from veil.server.codecs import JSON_MEDIA_TYPE, json_bytes, load_json, npy_bytes, parse_json_vectors, parse_npy
 from veil.server.dependencies import (
+    EraserName,
     Pin,
     get_catalog,
     get_metrics,
@@ -29,22 +30,23 @@ from veil.server.reservoir import ReservoirBank
 
 router = APIRouter(prefix="/v1/erasers", tags=["erasers"], dependencies=[Depends(require_data_token)])
 
-_BATCH_BODY = {
-    "content": {
-        "application/json": {
-            "schema": {
-                "type": "object",
-                "required": ["vectors"],
-                "properties": {
-                    "vectors": {"type": "array", "items": {"type": "array", "items": {"type": "number"}}},
-                    "target": {"type": "string", "description": "counterfactual only: the target class"},
-                },
-            }
+
+def _batch_body(*, with_target: bool) -> dict[str, Any]:
+    """The OpenAPI request body of a batch route (a JSON object with vectors, or a binary .npy)."""
+    properties: dict[str, Any] = {
+        "vectors": {"type": "array", "items": {"type": "array", "items": {"type": "number"}}},
+    }
+    if with_target:
+        properties["target"] = {"type": "string", "description": "the target class (or ?target=)"}
+    return {
+        "content": {
+            "application/json": {"schema": {"type": "object", "required": ["vectors"], "properties": properties}},
+            "application/x-npy": {"schema": {"type": "string", "format": "binary"}},
         },
-        "application/x-npy": {"schema": {"type": "string", "format": "binary"}},
-    },
-    "required": True,
-}
+        "required": True,
+    }
+
+
 _BATCH_RESPONSE: dict[int | str, dict[str, Any]] = {
     200: {
         "description": "the cleaned batch, in the format Accept names; X-Veil-Version names the version applied",
@@ -72,7 +74,7 @@ def list_erasers(catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str,
 
 
 @router.get("/{name}", summary="One served eraser, with its version's card")
-def show_eraser(name: str, catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
+def show_eraser(name: EraserName, catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
     served = catalog.current(name)
     return {**summary(served, catalog.alias), "card": served.card}
 
@@ -106,11 +108,11 @@ async def pick_version(catalog: Catalog, name: str, pin: Pin) -> ServedVersion:
 @router.post(
     "/{name}/apply",
     summary="Erase the attribute from a batch of embeddings",
-    openapi_extra={"requestBody": _BATCH_BODY},
+    openapi_extra={"requestBody": _batch_body(with_target=False)},
     responses=_BATCH_RESPONSE,
 )
 async def apply(
-    name: str,
+    name: EraserName,
     body: Annotated[bytes, Depends(read_body)],
     media: Annotated[str, Depends(request_format)],
     answer: Annotated[str, Depends(response_format)],
@@ -130,11 +132,11 @@ async def apply(
 @router.post(
     "/{name}/counterfactual",
     summary="Erase, then give every vector the attribute component of a target class",
-    openapi_extra={"requestBody": _BATCH_BODY},
+    openapi_extra={"requestBody": _batch_body(with_target=True)},
     responses=_BATCH_RESPONSE,
 )
 async def counterfactual(
-    name: str,
+    name: EraserName,
     body: Annotated[bytes, Depends(read_body)],
     media: Annotated[str, Depends(request_format)],
     answer: Annotated[str, Depends(response_format)],
