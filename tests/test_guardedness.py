@@ -29,6 +29,10 @@ ERASERS = {
     "inlp-logistic": lambda: INLPEraser(**INLP),
     "inlp-moments": lambda: INLPEraser(classifier="moments", **INLP),
 }
+PUBLISHED = {
+    "inlp-logistic-published": lambda: INLPEraser(close_with_mean_projection=False, **INLP),
+    "inlp-moments-published": lambda: INLPEraser(classifier="moments", close_with_mean_projection=False, **INLP),
+}
 DATASETS = ("breast_cancer", "wine", "planted_split", "profiles")
 
 
@@ -53,7 +57,7 @@ def _majority(z: np.ndarray) -> float:
 def _fit(name: str, split: Split) -> BaseEraser:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        return ERASERS[name]().fit(split.x_fit, split.z_fit)
+        return {**ERASERS, **PUBLISHED}[name]().fit(split.x_fit, split.z_fit)
 
 
 def _probe_gap(eraser_name: str, split: Split) -> float:
@@ -73,15 +77,11 @@ def _probe_gap(eraser_name: str, split: Split) -> float:
     return abs(accuracy - majority)
 
 
-# INLP misses the 0.03 target on two sets: the 384-d real sample (0.09 above
-# majority) and wine (0.034: one row of 89 over).  Those are pinned below.
-INLP_SHORT = {"profiles": 0.12, "wine": 0.06}
-CASES = [
-    (eraser, dataset)
-    for eraser in sorted(ERASERS)
-    for dataset in DATASETS
-    if not (eraser.startswith("inlp") and dataset in INLP_SHORT)
-]
+CASES = [(eraser, dataset) for eraser in sorted(ERASERS) for dataset in DATASETS]
+# The published INLP procedure (no closing mean-projection step) misses the
+# 0.03 target on two sets: the 384-d real sample (0.09 above majority) and
+# wine (0.034: one row of 89 over).  Its figures are pinned below.
+PUBLISHED_INLP_SHORT = {"profiles": 0.12, "wine": 0.06}
 
 
 @pytest.mark.parametrize(("eraser_name", "dataset"), CASES)
@@ -91,13 +91,14 @@ def test_probe_trained_on_erased_fit_split_is_at_majority_on_the_other_split(
     assert _probe_gap(eraser_name, request.getfixturevalue(dataset)) <= 0.03
 
 
-@pytest.mark.parametrize("dataset", sorted(INLP_SHORT))
-@pytest.mark.parametrize("eraser_name", ["inlp-logistic", "inlp-moments"])
-def test_inlp_where_it_misses_the_target_removes_most_linear_signal(
+@pytest.mark.parametrize("dataset", sorted(PUBLISHED_INLP_SHORT))
+@pytest.mark.parametrize("eraser_name", ["inlp-logistic-published", "inlp-moments-published"])
+def test_published_inlp_where_it_misses_the_target_removes_most_linear_signal(
     eraser_name: str, dataset: str, request: pytest.FixtureRequest
 ) -> None:
-    # Not yet at the 0.03 target: this pins today's figures so they can only improve.
-    assert _probe_gap(eraser_name, request.getfixturevalue(dataset)) <= INLP_SHORT[dataset]
+    # Why INLP closes with a mean-projection step by default: without it the
+    # stopping rule leaves this much behind.  Pinned so it can only improve.
+    assert _probe_gap(eraser_name, request.getfixturevalue(dataset)) <= PUBLISHED_INLP_SHORT[dataset]
 
 
 @pytest.mark.parametrize("eraser_name", sorted(ERASERS))

@@ -54,8 +54,16 @@ def test_inlp_is_an_orthogonal_projection_off_its_stacked_weights() -> None:
         warnings.simplefilter("ignore", ConvergenceWarning)
         eraser = INLPEraser(max_iter=6, tol=0.0, random_state=0).fit(x, z)
     _assert_orthogonal_projection(_dense(eraser), eraser.rank_)
-    assert eraser.rank_ == eraser.history_[-1]["rank"]
+    # The classifiers' directions, plus what the closing mean-projection step added.
+    assert eraser.rank_ == eraser.history_[-1]["rank"] + eraser.closing_rank_
     assert eraser.rank_ >= 1
+    assert eraser.closing_rank_ <= 1  # at most n_classes - 1
+    published = INLPEraser(max_iter=6, tol=0.0, random_state=0, close_with_mean_projection=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        published.fit(x, z)
+    assert published.rank_ == published.history_[-1]["rank"]
+    assert published.closing_rank_ == 0
 
 
 @pytest.mark.parametrize("rank", [1, 3])

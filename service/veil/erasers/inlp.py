@@ -48,6 +48,16 @@ class INLPEraser(BaseEraser):
     classifiers' row spaces (an orthonormal basis ``Q`` of the stacked weight
     vectors): ``U = V = Q``.
 
+    By default one closing step follows: the class-mean offsets that remain
+    after the classifiers' directions are removed (at most ``n_classes - 1``
+    directions) are added to ``Q``, so the fitting data ends linearly guarded
+    (its erased class means coincide, as after mean projection).  The
+    stopping rule alone, judged on a held-out part of a few hundred rows,
+    leaves signal behind on small samples: on the committed 384-dimensional
+    sample a probe trained on the erased fitting rows still finds 0.08 above
+    majority on other rows.  ``close_with_mean_projection=False`` gives the
+    published procedure.
+
     Parameters
     ----------
     classifier : {"logistic", "svm", "moments"}, default="logistic"
@@ -76,6 +86,8 @@ class INLPEraser(BaseEraser):
         Ridge of the moments classifier, relative to the mean within-class variance.
     random_state : int or None, default=None
         Seeds the held-out split and the classifiers.
+    close_with_mean_projection : bool, default=True
+        End with the closing step described above.
     normalize : bool, default=False
         Re-normalise erased rows to unit length.
 
@@ -92,6 +104,8 @@ class INLPEraser(BaseEraser):
         Number of classifiers trained.
     converged_ : bool
         Whether the stopping rule was met within ``max_iter``.
+    closing_rank_ : int
+        Directions the closing step added (0 without it).
     classes_ : ndarray of shape (n_classes,)
     n_features_in_ : int
     """
@@ -112,6 +126,7 @@ class INLPEraser(BaseEraser):
         C: float = 1.0,  # noqa: N803 - scikit-learn's name for this parameter
         regularization: float = 0.01,
         random_state: int | None = None,
+        close_with_mean_projection: bool = True,
         normalize: bool = False,
     ) -> None:
         self.classifier = classifier
@@ -122,6 +137,7 @@ class INLPEraser(BaseEraser):
         self.C = C
         self.regularization = regularization
         self.random_state = random_state
+        self.close_with_mean_projection = close_with_mean_projection
         self.normalize = normalize
 
     # -- parameters -----------------------------------------------------
@@ -299,7 +315,13 @@ class INLPEraser(BaseEraser):
         self.history_ = history
         self.n_iter_ = len(history)
         self.converged_ = converged
+        found = q.shape[1]
+        if self.close_with_mean_projection:
+            # Whatever class-mean offset survives the classifiers' directions: (I - Q Qᵀ) Σ_xz.
+            residual = moments.cross_covariance - q @ (q.T @ moments.cross_covariance)
+            q = orthonormal_basis(np.column_stack([q, residual]))
         q = restrict_to_support(q, moments.covariance_xx)
+        self.closing_rank_ = max(q.shape[1] - found, 0)
         self._set_fitted(AffineLowRankMap(mean=moments.mean_x, u=q, v=q), moments)
 
 
