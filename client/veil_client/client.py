@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import itertools
 import time
 from types import TracebackType
 from typing import Any, Self
@@ -47,6 +48,19 @@ class _Requests:
             retry=RetryPolicy(retries, backoff, max_backoff),
             seed=seed,
         )
+
+    def _retry_after_error(self, method: str, path: str, attempt: int, error: httpx.TransportError) -> float:
+        """The wait before the next attempt, or :class:`VeilTransportError` when retries are spent."""
+        if attempt >= self.settings.retry.retries:
+            raise VeilTransportError(f"{method} {path}: {type(error).__name__}: {error}") from error
+        return self.settings.retry.delay(attempt, self.settings.rng)
+
+    def _retry_after_response(self, response: httpx.Response, attempt: int) -> float | None:
+        """None if ``response`` is final (an error status raised), else the wait before the next attempt."""
+        if response.status_code not in RETRY_STATUSES or attempt >= self.settings.retry.retries:
+            raise_for_error(response)
+            return None
+        return self.settings.retry.delay(attempt, self.settings.rng)
 
     def _batch_request(self, batch: NDArray[np.floating], pin: dict[str, str]) -> dict[str, Any]:
         body, media = encode(batch, self.settings.wire)
@@ -119,20 +133,19 @@ class VeilClient(_Requests):
         self._http = http_client or httpx.Client(base_url=base_url, timeout=timeout, transport=transport)
 
     def _send(self, method: str, path: str, **request: Any) -> httpx.Response:
-        retry = self.settings.retry
         headers = {**self.settings.headers, **request.pop("headers", {})}
-        for attempt in range(retry.retries + 1):
+        for attempt in itertools.count():
             try:
                 response = self._http.request(method, path, headers=headers, **request)
             except httpx.TransportError as error:
-                if attempt == retry.retries:
-                    raise VeilTransportError(f"{method} {path}: {type(error).__name__}: {error}") from error
+                delay = self._retry_after_error(method, path, attempt, error)
             else:
-                if response.status_code not in RETRY_STATUSES or attempt == retry.retries:
-                    raise_for_error(response)
+                wait = self._retry_after_response(response, attempt)
+                if wait is None:
                     return response
-            time.sleep(retry.delay(attempt, self.settings.rng))
-        raise AssertionError("unreachable: the last attempt returns or raises")
+                delay = wait
+            time.sleep(delay)
+        raise AssertionError("unreachable: itertools.count() never ends")
 
     def _clean(
         self, path: str, vectors: ArrayLike, version: str | None, alias: str | None, params: dict[str, str]
@@ -219,20 +232,19 @@ class AsyncVeilClient(_Requests):
         self._http = http_client or httpx.AsyncClient(base_url=base_url, timeout=timeout, transport=transport)
 
     async def _send(self, method: str, path: str, **request: Any) -> httpx.Response:
-        retry = self.settings.retry
         headers = {**self.settings.headers, **request.pop("headers", {})}
-        for attempt in range(retry.retries + 1):
+        for attempt in itertools.count():
             try:
                 response = await self._http.request(method, path, headers=headers, **request)
             except httpx.TransportError as error:
-                if attempt == retry.retries:
-                    raise VeilTransportError(f"{method} {path}: {type(error).__name__}: {error}") from error
+                delay = self._retry_after_error(method, path, attempt, error)
             else:
-                if response.status_code not in RETRY_STATUSES or attempt == retry.retries:
-                    raise_for_error(response)
+                wait = self._retry_after_response(response, attempt)
+                if wait is None:
                     return response
-            await asyncio.sleep(retry.delay(attempt, self.settings.rng))
-        raise AssertionError("unreachable: the last attempt returns or raises")
+                delay = wait
+            await asyncio.sleep(delay)
+        raise AssertionError("unreachable: itertools.count() never ends")
 
     async def _clean(
         self, path: str, vectors: ArrayLike, version: str | None, alias: str | None, params: dict[str, str]
