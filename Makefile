@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed-dev
 
-.PHONY: demo test lint typecheck unit clean
+.PHONY: demo test lint typecheck unit bench clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -15,9 +15,13 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(BIN)/python -m veil.demo
 
+# Speed, as ratios against baselines in the same run (not part of `make test`: these machines are noisy).
+bench: $(STAMP)
+	$(BIN)/python benchmarks/run.py
+
 lint: $(STAMP)
-	$(BIN)/ruff check service client tests scripts
-	$(BIN)/ruff format --check service client tests scripts
+	$(BIN)/ruff check service client tests scripts benchmarks
+	$(BIN)/ruff format --check service client tests scripts benchmarks
 
 typecheck: $(STAMP)
 	$(BIN)/mypy

@@ -10,6 +10,7 @@ from numpy.typing import NDArray
 from sklearn.exceptions import ConvergenceWarning
 
 from veil import INLPEraser, LeaceEraser, MeanProjectionEraser, MomentState
+from veil import moments as moments_module
 from veil._validation import encode_attribute
 from veil.erasers import BaseEraser
 
@@ -103,3 +104,15 @@ def test_only_a_whole_fit_warns_that_inlp_did_not_converge() -> None:
     assert not streamed.converged_
     with pytest.warns(ConvergenceWarning, match="raise max_iter"):
         INLPEraser(classifier="moments", max_iter=1, tol=0.0, random_state=0).fit(x, z)
+
+
+def test_large_batches_are_taken_in_blocks_with_the_same_moments(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Reference: numpy's own mean and (1/n) covariance of the whole batch at once.
+    monkeypatch.setattr(moments_module, "BLOCK_ROWS", 64)
+    rng = np.random.default_rng(11)
+    x = rng.normal(size=(1000, 6)) + 50.0
+    z = rng.integers(0, 3, 1000)
+    state = moments_module.MomentState.from_batch(x, encode_attribute(z, 1000))
+    assert state.count == 1000
+    np.testing.assert_allclose(state.mean_x, x.mean(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(state.covariance_xx, np.cov(x.T, bias=True), rtol=1e-9)

@@ -13,6 +13,7 @@ from collections.abc import AsyncIterator
 from fastapi import FastAPI
 from fastapi.concurrency import run_in_threadpool
 from fastapi.middleware.cors import CORSMiddleware
+from threadpoolctl import threadpool_limits
 
 from veil import __version__
 from veil.registry import Registry
@@ -23,7 +24,7 @@ from veil.server.metrics import ServiceMetrics
 from veil.server.middleware import RequestRecorder
 from veil.server.poller import poll_aliases
 from veil.server.reservoir import ReservoirBank
-from veil.server.routers import admin, drift, erasers, health
+from veil.server.routers import admin, bench, drift, erasers, health
 from veil.server.settings import ServiceSettings, load_settings
 
 
@@ -43,11 +44,14 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
             threshold_overrides=settings.thresholds,
         )
         app.state.catalog = catalog
+        # Requests are small matrix products: BLAS threads spinning on a 2-core box cost more than they give.
+        blas = threadpool_limits(limits=settings.blas_threads, user_api="blas")
         await run_in_threadpool(catalog.reload)
         poller = asyncio.create_task(poll_aliases(catalog, settings.poll_seconds)) if settings.poll_seconds else None
         try:
             yield
         finally:
+            blas.restore_original_limits()
             if poller is not None:
                 poller.cancel()
                 with contextlib.suppress(asyncio.CancelledError):
@@ -65,6 +69,8 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
     install_error_handlers(app)
     for router in (erasers.router, drift.router, health.router, admin.router):
         app.include_router(router)
+    if settings.benchmark_echo:
+        app.include_router(bench.router)
     if settings.cors_origins:
         app.add_middleware(CORSMiddleware, allow_origins=settings.cors_origins, allow_methods=["GET", "POST"])
     app.add_middleware(RequestRecorder, metrics=metrics)

@@ -15,6 +15,8 @@ variable                           default             meaning
 ``VEIL_THRESHOLDS``                unset               JSON overriding the cards' alert thresholds
 ``VEIL_CORS_ORIGINS``              ``[]``              JSON list of origins allowed by CORS (off if empty)
 ``VEIL_LOG_LEVEL``                 ``info``            log level of the JSON request log
+``VEIL_BLAS_THREADS``              ``1``               BLAS threads per process (scale with workers instead)
+``VEIL_BENCHMARK_ECHO``            ``false``           adds ``POST /v1/bench/echo`` (benchmarks only)
 ``VEIL_SECRETS_DIR``               unset               a folder of files named like the variables (Docker
                                                        secrets: ``/run/secrets/veil_admin_token``)
 =================================  ==================  ======================================================
@@ -56,6 +58,8 @@ class ServiceSettings(BaseSettings):
     thresholds: dict[str, Any] | None = None
     cors_origins: list[str] = Field(default_factory=list)
     log_level: str = "info"
+    blas_threads: int = Field(default=1, ge=1)
+    benchmark_echo: bool = False
 
     @field_validator("names")
     @classmethod

@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Annotated, Any
 
 import numpy as np
-from fastapi import APIRouter, Depends
+from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from numpy.typing import NDArray
 
@@ -13,22 +13,20 @@ from veil.drift import check_drift
 from veil.server.catalog import Catalog, ServedVersion
 from veil.server.codecs import JSON_MEDIA_TYPE
 from veil.server.dependencies import (
+    BATCH_PARAMETERS,
     EraserName,
-    Pin,
+    batch_call,
     get_catalog,
     get_metrics,
     get_reservoirs,
-    read_body,
-    request_format,
     require_data_token,
-    version_pin,
 )
 from veil.server.errors import ServiceError
 from veil.server.metrics import DRIFT_LEVELS, ServiceMetrics
 from veil.server.reservoir import ReservoirBank
 from veil.server.routers.erasers import decode_batch, pick_version
 
-router = APIRouter(prefix="/v1/erasers", tags=["drift"], dependencies=[Depends(require_data_token)])
+router = APIRouter(prefix="/v1/erasers", tags=["drift"])
 
 _DRIFT_BODY = {
     "content": {
@@ -74,25 +72,23 @@ async def _run(
 @router.post(
     "/{name}/drift",
     summary="Drift and leakage of a posted sample of raw live embeddings (labels optional)",
-    openapi_extra={"requestBody": _DRIFT_BODY},
+    openapi_extra={"requestBody": _DRIFT_BODY, "parameters": BATCH_PARAMETERS},
 )
-async def drift_of_sample(
-    name: EraserName,
-    body: Annotated[bytes, Depends(read_body)],
-    media: Annotated[str, Depends(request_format)],
-    pin: Annotated[Pin, Depends(version_pin)],
-    catalog: Annotated[Catalog, Depends(get_catalog)],
-    metrics: Annotated[ServiceMetrics, Depends(get_metrics)],
-) -> dict[str, Any]:
-    served = await pick_version(catalog, name, pin)
-    vectors, fields = decode_batch(body, media)
-    labels = fields.get("labels") if media == JSON_MEDIA_TYPE else None
+async def drift_of_sample(name: EraserName, request: Request) -> dict[str, Any]:
+    call = await batch_call(request)
+    served = await pick_version(request.app.state.catalog, name, call.pin)
+    vectors, fields = decode_batch(call.body, call.media)
+    labels = fields.get("labels") if call.media == JSON_MEDIA_TYPE else None
     if labels is not None and not (isinstance(labels, list) and all(isinstance(v, str) for v in labels)):
         raise ServiceError("invalid_request", '"labels" must be a list of class names (strings)')
-    return await _run(served, vectors, labels, metrics)
+    return await _run(served, vectors, labels, request.app.state.metrics)
 
 
-@router.get("/{name}/drift", summary="Drift and leakage of the recent traffic this replica has seen (unlabelled)")
+@router.get(
+    "/{name}/drift",
+    summary="Drift and leakage of the recent traffic this replica has seen (unlabelled)",
+    dependencies=[Depends(require_data_token)],
+)
 async def drift_of_traffic(
     name: EraserName,
     catalog: Annotated[Catalog, Depends(get_catalog)],

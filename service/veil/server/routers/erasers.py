@@ -5,30 +5,17 @@ from __future__ import annotations
 from typing import Annotated, Any
 
 import numpy as np
-from fastapi import APIRouter, Depends, Query
+from fastapi import APIRouter, Depends, Query, Request
 from fastapi.concurrency import run_in_threadpool
 from numpy.typing import NDArray
 from starlette.responses import Response
 
 from veil.server.catalog import Catalog, ServedVersion
 from veil.server.codecs import JSON_MEDIA_TYPE, json_bytes, load_json, npy_bytes, parse_json_vectors, parse_npy
-from veil.server.dependencies import (
-    EraserName,
-    Pin,
-    get_catalog,
-    get_metrics,
-    get_reservoirs,
-    read_body,
-    request_format,
-    require_data_token,
-    response_format,
-    version_pin,
-)
+from veil.server.dependencies import BATCH_PARAMETERS, EraserName, Pin, batch_call, get_catalog, require_data_token
 from veil.server.errors import ServiceError
-from veil.server.metrics import ServiceMetrics
-from veil.server.reservoir import ReservoirBank
 
-router = APIRouter(prefix="/v1/erasers", tags=["erasers"], dependencies=[Depends(require_data_token)])
+router = APIRouter(prefix="/v1/erasers", tags=["erasers"])
 
 
 def _batch_body(*, with_target: bool) -> dict[str, Any]:
@@ -68,13 +55,13 @@ def summary(served: ServedVersion, alias: str) -> dict[str, Any]:
     }
 
 
-@router.get("", summary="List the erasers served and their versions")
-def list_erasers(catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
+@router.get("", summary="List the erasers served and their versions", dependencies=[Depends(require_data_token)])
+async def list_erasers(catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
     return {"erasers": [summary(s, catalog.alias) for _, s in sorted(catalog.served.items())]}
 
 
-@router.get("/{name}", summary="One served eraser, with its version's card")
-def show_eraser(name: EraserName, catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
+@router.get("/{name}", summary="One served eraser, with its version's card", dependencies=[Depends(require_data_token)])
+async def show_eraser(name: EraserName, catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
     served = catalog.current(name)
     return {**summary(served, catalog.alias), "card": served.card}
 
@@ -108,45 +95,35 @@ async def pick_version(catalog: Catalog, name: str, pin: Pin) -> ServedVersion:
 @router.post(
     "/{name}/apply",
     summary="Erase the attribute from a batch of embeddings",
-    openapi_extra={"requestBody": _batch_body(with_target=False)},
+    openapi_extra={"requestBody": _batch_body(with_target=False), "parameters": BATCH_PARAMETERS},
     responses=_BATCH_RESPONSE,
 )
-async def apply(
-    name: EraserName,
-    body: Annotated[bytes, Depends(read_body)],
-    media: Annotated[str, Depends(request_format)],
-    answer: Annotated[str, Depends(response_format)],
-    pin: Annotated[Pin, Depends(version_pin)],
-    catalog: Annotated[Catalog, Depends(get_catalog)],
-    metrics: Annotated[ServiceMetrics, Depends(get_metrics)],
-    reservoirs: Annotated[ReservoirBank, Depends(get_reservoirs)],
-) -> Response:
-    served = await pick_version(catalog, name, pin)
-    vectors, _ = decode_batch(body, media)
+async def apply(name: EraserName, request: Request) -> Response:
+    call = await batch_call(request)
+    state = request.app.state
+    served = await pick_version(state.catalog, name, call.pin)
+    vectors, _ = decode_batch(call.body, call.media)
     cleaned = served.apply(vectors)
-    reservoirs.add(name, vectors)
-    metrics.vectors.labels(name, served.version_id).inc(vectors.shape[0])
-    return encode_batch(cleaned, answer, served)
+    state.reservoirs.add(name, vectors)
+    state.metrics.vectors.labels(name, served.version_id).inc(vectors.shape[0])
+    return encode_batch(cleaned, call.answer, served)
 
 
 @router.post(
     "/{name}/counterfactual",
     summary="Erase, then give every vector the attribute component of a target class",
-    openapi_extra={"requestBody": _batch_body(with_target=True)},
+    openapi_extra={"requestBody": _batch_body(with_target=True), "parameters": BATCH_PARAMETERS},
     responses=_BATCH_RESPONSE,
 )
 async def counterfactual(
     name: EraserName,
-    body: Annotated[bytes, Depends(read_body)],
-    media: Annotated[str, Depends(request_format)],
-    answer: Annotated[str, Depends(response_format)],
-    pin: Annotated[Pin, Depends(version_pin)],
-    catalog: Annotated[Catalog, Depends(get_catalog)],
+    request: Request,
     target: Annotated[str | None, Query(description="the target class (or the JSON body's target)")] = None,
 ) -> Response:
-    served = await pick_version(catalog, name, pin)
-    vectors, fields = decode_batch(body, media)
+    call = await batch_call(request)
+    served = await pick_version(request.app.state.catalog, name, call.pin)
+    vectors, fields = decode_batch(call.body, call.media)
     chosen = fields.get("target", target)
     if not isinstance(chosen, str):
         raise ServiceError("invalid_request", 'give the target class as ?target= or a JSON "target" string')
-    return encode_batch(served.counterfactual(vectors, chosen), answer, served)
+    return encode_batch(served.counterfactual(vectors, chosen), call.answer, served)

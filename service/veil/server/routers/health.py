@@ -17,12 +17,12 @@ router = APIRouter(tags=["health"])
 
 
 @router.get("/healthz", summary="The process is alive")
-def healthz() -> dict[str, str]:
+async def healthz() -> dict[str, str]:
     return {"status": "alive"}
 
 
 @router.get("/readyz", summary="Every configured eraser is loaded and verified", response_model=None)
-def readyz(catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any] | Response:
+async def readyz(catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any] | Response:
     ready, missing = catalog.ready()
     if not ready:
         problems = "; ".join(f"{name}: {catalog.failures.get(name, 'not loaded')}" for name in missing)
@@ -32,5 +32,5 @@ def readyz(catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any] 
 
 
 @router.get("/metrics", summary="Prometheus metrics")
-def metrics(service_metrics: Annotated[ServiceMetrics, Depends(get_metrics)]) -> Response:
+async def metrics(service_metrics: Annotated[ServiceMetrics, Depends(get_metrics)]) -> Response:
     return Response(service_metrics.render(), media_type=CONTENT_TYPE_LATEST)

@@ -1,0 +1,415 @@
+"""``make bench``: veil's speed, as ratios against baselines measured in the same run.
+
+Every figure is a median over repeats; every row prints its measured ratio
+and its target.  A missed target is reported, not fatal: the script exits
+non-zero only when a benchmark cannot run.  The table is also written as JSON
+under ``benchmarks/results/``.
+
+B1  apply in process: factored vs dense d×d product vs a plain copy (d=768, k=8, batch 1024, float32)
+B2  the service through a real uvicorn on loopback: binary and JSON apply vs an echo route, batch 1 and 256
+B3  LEACE fit vs a bare NumPy Xᵀ X on the same data (n=200,000, d=768)
+B4  INLP: the moments classifier vs the logistic classifier (time, and final held-out leakage)
+B5  peak memory of a streaming fit against data size (needs out-of-core fitting, not built yet)
+"""
+
+from __future__ import annotations
+
+import asyncio
+import io
+import json
+import os
+import platform
+import shutil
+import signal
+import socket
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+import warnings
+from collections.abc import Callable
+from dataclasses import asdict, dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+
+import httpx
+import numpy as np
+from sklearn.exceptions import ConvergenceWarning
+from sklearn.feature_selection import VarianceThreshold
+from sklearn.linear_model import LogisticRegression
+from sklearn.model_selection import train_test_split
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import StandardScaler
+from threadpoolctl import threadpool_info
+
+from veil import INLPEraser, LeaceEraser
+from veil.datasets import load_harbourline_profiles
+from veil.datasource import LabelledSample
+from veil.fitting import fit_version
+from veil.lowrank import AffineLowRankMap
+from veil.registry import Registry
+
+RESULTS = Path(__file__).resolve().parent / "results"
+
+
+@dataclass
+class Row:
+    name: str
+    measured: str
+    ratio: float | None
+    target: str
+    met: bool | None
+    detail: str
+
+
+def median_seconds(run: Callable[[], object], *, repeat: int, number: int = 1) -> float:
+    run()  # warm caches and lazy initialisation
+    times = []
+    for _ in range(repeat):
+        started = time.perf_counter()
+        for _ in range(number):
+            run()
+        times.append((time.perf_counter() - started) / number)
+    return statistics.median(times)
+
+
+# ---------------------------------------------------------------- B1
+
+
+def bench_apply() -> list[Row]:
+    d, k, batch = 768, 8, 1024
+    rng = np.random.default_rng(0)
+    u, _ = np.linalg.qr(rng.normal(size=(d, k)))
+    v = u * rng.uniform(0.5, 2.0, size=k)
+    mapping = AffineLowRankMap(mean=rng.normal(size=d), u=u, v=v)
+    a, b = mapping.to_dense()
+    a32, b32 = a.astype(np.float32), b.astype(np.float32)
+    x = rng.normal(size=(batch, d)).astype(np.float32)
+    np.testing.assert_allclose(mapping.apply(x), x @ a32.T + b32, atol=1e-3)
+    factored = median_seconds(lambda: mapping.apply(x), repeat=15, number=20)
+    dense = median_seconds(lambda: x @ a32.T + b32, repeat=15, number=20)
+    copy = median_seconds(lambda: x.copy(), repeat=15, number=20)
+    # Rank 1 is what LEACE gives for a binary attribute: the commonest case.
+    single = AffineLowRankMap(mean=mapping.mean, u=u[:, :1], v=v[:, :1])
+    rank_one = median_seconds(lambda: single.apply(x), repeat=15, number=20)
+    return [
+        Row(
+            "B1 apply: dense / factored",
+            f"{dense * 1e3:.3f} ms / {factored * 1e3:.3f} ms",
+            dense / factored,
+            ">= 8",
+            dense / factored >= 8,
+            f"d={d}, k={k}, batch {batch}, float32",
+        ),
+        Row(
+            "B1 apply: factored / copy",
+            f"{factored * 1e3:.3f} ms / {copy * 1e3:.3f} ms",
+            factored / copy,
+            "<= 3",
+            factored / copy <= 3,
+            "copy = np.ndarray.copy of the batch (the floor)",
+        ),
+        Row(
+            "B1 apply, k=1: factored / copy",
+            f"{rank_one * 1e3:.3f} ms / {copy * 1e3:.3f} ms",
+            rank_one / copy,
+            "-",
+            None,
+            "no target; LEACE on a binary attribute",
+        ),
+    ]
+
+
+# ---------------------------------------------------------------- B2
+
+
+def _free_port() -> int:
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        return int(probe.getsockname()[1])
+
+
+def _registry_for_service(folder: Path) -> Path:
+    """A d=768 eraser of rank 8 (LEACE on a 9-class synthetic sample), stored as a real version."""
+    rng = np.random.default_rng(1)
+    n, d, classes = 12000, 768, 9
+    codes = rng.integers(0, classes, n)
+    x = (rng.normal(size=(n, d)) + 3 * np.eye(classes, d)[codes]).astype(np.float32)
+    labels = np.array([f"c{c}" for c in range(classes)])[codes]
+    sample = LabelledSample(embeddings=x, attribute=labels, attribute_key="group", task=None, task_key=None, files={})
+    registry = Registry(folder / "registry")
+    fit_version(sample, registry=registry, name="bench", method="leace", nonlinear=False, alias="live")
+    return folder / "registry"
+
+
+async def _load(base: str, path: str, body: bytes, media: str, *, requests: int, concurrency: int) -> list[float]:
+    latencies: list[float] = []
+    queue = iter(range(requests))
+    limits = httpx.Limits(max_connections=concurrency, max_keepalive_connections=concurrency)
+    async with httpx.AsyncClient(base_url=base, limits=limits, timeout=30.0) as client:
+
+        async def worker() -> None:
+            for _ in queue:
+                started = time.perf_counter()
+                response = await client.post(path, content=body, headers={"Content-Type": media})
+                latencies.append(time.perf_counter() - started)
+                if response.status_code != 200:
+                    raise RuntimeError(f"{path} answered {response.status_code}: {response.text[:200]}")
+
+        await asyncio.gather(*(worker() for _ in range(concurrency)))
+    return latencies
+
+
+def _scenario(base: str, path: str, body: bytes, media: str, rows: int, requests: int) -> dict[str, float]:
+    runs = []
+    for _ in range(3):
+        started = time.perf_counter()
+        latencies = asyncio.run(_load(base, path, body, media, requests=requests, concurrency=8))
+        wall = time.perf_counter() - started
+        runs.append((rows * requests / wall, float(np.percentile(latencies, 50)), float(np.percentile(latencies, 99))))
+    runs.sort()
+    throughput, p50, p99 = runs[1]  # the median run by throughput
+    return {"vectors_per_s": throughput, "p50_ms": p50 * 1e3, "p99_ms": p99 * 1e3}
+
+
+def bench_service() -> list[Row]:
+    folder = Path(tempfile.mkdtemp(prefix="veil-bench-"))
+    try:
+        registry = _registry_for_service(folder)
+        port = _free_port()
+        environment = {
+            **os.environ,
+            "VEIL_BENCHMARK_ECHO": "true",
+            "VEIL_POLL_SECONDS": "0",
+            "VEIL_LOG_LEVEL": "warning",
+        }
+        server = subprocess.Popen(
+            [sys.executable, "-m", "veil.cli", "serve", "--registry", str(registry), "--port", str(port)],
+            env=environment,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+        )
+        base = f"http://127.0.0.1:{port}"
+        try:
+            deadline = time.monotonic() + 60
+            while time.monotonic() < deadline:
+                try:
+                    if httpx.get(f"{base}/readyz", timeout=1).status_code == 200:
+                        break
+                except httpx.TransportError:
+                    time.sleep(0.2)
+            results: dict[str, dict[str, float]] = {}
+            rng = np.random.default_rng(2)
+            for rows, requests in ((1, 1500), (256, 200)):
+                x = rng.normal(size=(rows, 768)).astype(np.float32)
+                buffer = io.BytesIO()
+                np.save(buffer, x)
+                binary, as_json = buffer.getvalue(), json.dumps({"vectors": x.tolist()}).encode()
+                results[f"binary-{rows}"] = _scenario(
+                    base, "/v1/erasers/bench/apply", binary, "application/x-npy", rows, requests
+                )
+                results[f"json-{rows}"] = _scenario(
+                    base, "/v1/erasers/bench/apply", as_json, "application/json", rows, max(requests // 4, 50)
+                )
+                results[f"echo-{rows}"] = _scenario(base, "/v1/bench/echo", binary, "application/x-npy", rows, requests)
+        finally:
+            server.send_signal(signal.SIGTERM)
+            server.wait(timeout=30)
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+    def line(key: str) -> str:
+        r = results[key]
+        return f"{r['vectors_per_s']:,.0f} vec/s, p50 {r['p50_ms']:.2f} ms, p99 {r['p99_ms']:.2f} ms"
+
+    rows_out = []
+    for batch in (1, 256):
+        for kind in ("binary", "json", "echo"):
+            key = f"{kind}-{batch}"
+            rows_out.append(
+                Row(f"B2 service {kind}, batch {batch}", line(key), None, "-", None, "8 concurrent clients")
+            )
+    binary, json_, echo = results["binary-256"], results["json-256"], results["echo-256"]
+    rows_out.append(
+        Row(
+            "B2 binary / JSON throughput, batch 256",
+            "",
+            binary["vectors_per_s"] / json_["vectors_per_s"],
+            ">= 10",
+            binary["vectors_per_s"] >= 10 * json_["vectors_per_s"],
+            "",
+        )
+    )
+    rows_out.append(
+        Row(
+            "B2 binary / echo throughput, batch 256",
+            "",
+            binary["vectors_per_s"] / echo["vectors_per_s"],
+            ">= 0.7",
+            binary["vectors_per_s"] >= 0.7 * echo["vectors_per_s"],
+            "",
+        )
+    )
+    rows_out.append(
+        Row(
+            "B2 binary / echo throughput, batch 1",
+            "",
+            results["binary-1"]["vectors_per_s"] / results["echo-1"]["vectors_per_s"],
+            "-",
+            None,
+            "no target; shown for the per-request overhead",
+        )
+    )
+    return rows_out
+
+
+# ---------------------------------------------------------------- B3
+
+
+def bench_fit() -> list[Row]:
+    n, d = 200_000, 768
+    rng = np.random.default_rng(3)
+    x = rng.normal(size=(n, d)).astype(np.float32)
+    z = rng.integers(0, 2, n)
+    x[:, 0] += z
+    fit = median_seconds(lambda: LeaceEraser().fit(x, z), repeat=5)
+    gram32 = median_seconds(lambda: x.T @ x, repeat=5)
+
+    def gram64() -> np.ndarray:
+        wide = x.astype(np.float64)
+        return wide.T @ wide
+
+    gram64_seconds = median_seconds(gram64, repeat=5)
+    return [
+        Row(
+            "B3 LEACE fit / bare XᵀX (float64)",
+            f"{fit:.2f} s / {gram64_seconds:.2f} s",
+            fit / gram64_seconds,
+            "-",
+            None,
+            "like for like: the same statistics at the same precision",
+        ),
+        Row(
+            "B3 LEACE fit / bare XᵀX (float32)",
+            f"{fit:.2f} s / {gram32:.2f} s",
+            fit / gram32,
+            "<= 2",
+            fit / gram32 <= 2,
+            f"n={n:,}, d={d}; the fit accumulates float64 statistics",
+        ),
+    ]
+
+
+# ---------------------------------------------------------------- B4
+
+
+def bench_inlp() -> list[Row]:
+    sample = load_harbourline_profiles()
+    x_fit, x_held, z_fit, z_held = train_test_split(
+        sample.embedding, sample.pronoun, test_size=0.3, random_state=0, stratify=sample.pronoun
+    )
+    majority = max(np.mean(z_held == c) for c in np.unique(z_held))
+    rows = []
+    figures = {}
+    for classifier in ("moments", "logistic"):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            eraser = INLPEraser(classifier=classifier, max_iter=60, patience=3, validation_fraction=0.3, random_state=0)
+            seconds = median_seconds(lambda eraser=eraser: eraser.fit(x_fit, z_fit), repeat=3)
+        probe = make_pipeline(
+            VarianceThreshold(1e-12 * float(np.mean(np.var(x_fit, axis=0)))),
+            StandardScaler(),
+            LogisticRegression(max_iter=5000),
+        )
+        accuracy = probe.fit(eraser.transform(x_fit), z_fit).score(eraser.transform(x_held), z_held)
+        figures[classifier] = (seconds, accuracy, eraser.rank_)
+        gap = abs(accuracy - majority)
+        rows.append(
+            Row(
+                f"B4 INLP {classifier}: held-out leakage",
+                f"{accuracy:.3f} (majority {majority:.3f}), {seconds:.2f} s, rank {eraser.rank_}",
+                gap,
+                "<= 0.02 above majority",
+                gap <= 0.02,
+                "committed sample, 70/30 split",
+            )
+        )
+    rows.append(
+        Row(
+            "B4 INLP time: logistic / moments",
+            "",
+            figures["logistic"][0] / figures["moments"][0],
+            "-",
+            None,
+            "no target: how much the moments classifier saves",
+        )
+    )
+    return rows
+
+
+def bench_memory() -> list[Row]:
+    return [
+        Row(
+            "B5 streaming fit peak RSS",
+            "not measured",
+            None,
+            "-",
+            None,
+            "out-of-core fitting (the scale issue) is not built yet",
+        )
+    ]
+
+
+def machine() -> dict[str, object]:
+    cpu = next(
+        (
+            line.split(":", 1)[1].strip()
+            for line in Path("/proc/cpuinfo").read_text().splitlines()
+            if line.startswith("model name")
+        ),
+        platform.processor(),
+    )
+    blas = [{k: info.get(k) for k in ("internal_api", "num_threads", "version")} for info in threadpool_info()]
+    return {
+        "cpu": cpu,
+        "cores": os.cpu_count(),
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "blas": blas,
+    }
+
+
+BENCHMARKS = {"B1": bench_apply, "B2": bench_service, "B3": bench_fit, "B4": bench_inlp, "B5": bench_memory}
+
+
+def main() -> int:
+    """Run every benchmark, or those named on the command line (``B1 B3``)."""
+    chosen = sys.argv[1:] or list(BENCHMARKS)
+    unknown = sorted(set(chosen) - set(BENCHMARKS))
+    if unknown:
+        print(f"unknown benchmark {unknown[0]}; choose from {', '.join(BENCHMARKS)}", file=sys.stderr)
+        return 2
+    rows: list[Row] = []
+    for bench in (BENCHMARKS[name] for name in chosen):
+        print(f"running {bench.__name__} ...", file=sys.stderr, flush=True)
+        rows += bench()
+    width = max(len(r.name) for r in rows)
+    print(f"\n{'benchmark':{width}}  {'ratio':>8}  {'target':>22}  {'met':>4}  measured")
+    for r in rows:
+        ratio = "" if r.ratio is None else f"{r.ratio:.2f}"
+        met = "" if r.met is None else ("yes" if r.met else "NO")
+        print(f"{r.name:{width}}  {ratio:>8}  {r.target:>22}  {met:>4}  {r.measured}  {r.detail}".rstrip())
+    info = machine()
+    print(f"\nmachine: {info['cpu']}, {info['cores']} cores, Python {info['python']}, NumPy {info['numpy']}")
+    RESULTS.mkdir(exist_ok=True)
+    stamp = datetime.now(UTC).strftime("%Y%m%dT%H%M%SZ")
+    out = RESULTS / f"bench-{stamp}.json"
+    document = {"machine": info, "rows": [asdict(r) for r in rows]}
+    out.write_text(json.dumps(document, indent=2, default=lambda value: value.item()) + "\n")
+    print(f"written: {out}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
