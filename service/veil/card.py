@@ -12,15 +12,35 @@ import math
 import platform
 from datetime import UTC, datetime
 from importlib import metadata
-from typing import Any
+from typing import Any, Protocol
+
+import numpy as np
 
 from veil.artifact import EraserArtifact
 from veil.audit.report import AuditReport, ProbeScore, RegressionScore
-from veil.datasource import LabelledSample
 from veil.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
 from veil.thresholds import AlertThresholds
 
 CARD_FORMAT = 1
+
+
+class SampleDescription(Protocol):
+    """What a card records of the fitting data (an in-memory or a streamed sample)."""
+
+    @property
+    def rows(self) -> int: ...
+    @property
+    def dtype(self) -> np.dtype[Any]: ...
+    @property
+    def fingerprint(self) -> str: ...
+    @property
+    def attribute_key(self) -> str: ...
+    @property
+    def task_key(self) -> str | None: ...
+    @property
+    def files(self) -> dict[str, str]: ...
+
+
 _LIBRARIES = ("veil", "numpy", "scipy", "scikit-learn")
 
 
@@ -51,7 +71,7 @@ def build_card(
     *,
     name: str,
     artifact: EraserArtifact,
-    sample: LabelledSample,
+    sample: SampleDescription,
     fit_rows: int,
     split_seed: int,
     holdout: float,
@@ -71,7 +91,7 @@ def build_card(
         "normalize": artifact.normalize,
         "dim": artifact.map.dim,
         "rank": artifact.map.rank,
-        "dtype": str(sample.embeddings.dtype),
+        "dtype": str(sample.dtype),
         "attribute": {"key": sample.attribute_key, "classes": classes, "priors": reference.class_priors.tolist()},
         "task": None if sample.task_key is None else {"key": sample.task_key},
         "data": {

@@ -61,6 +61,10 @@ class LabelledSample:
         return int(self.embeddings.shape[0])
 
     @property
+    def dtype(self) -> np.dtype[Any]:
+        return self.embeddings.dtype
+
+    @property
     def fingerprint(self) -> str:
         """One sha256 over every file's sha256, in path order."""
         joined = "\n".join(f"{Path(path).name} {digest}" for path, digest in sorted(self.files.items()))
@@ -142,7 +146,7 @@ def _npy_array(path: Path) -> NDArray[Any]:
     return array
 
 
-def _csv_columns(path: Path, keys: list[str]) -> dict[str, NDArray[Any]]:
+def csv_columns(path: Path, keys: list[str]) -> dict[str, NDArray[Any]]:
     try:
         text = path.read_text(encoding="utf-8")
     except UnicodeDecodeError:
@@ -249,7 +253,7 @@ def load_labelled_sample(
         files[str(labels_path)] = file_sha256(labels_path)
         matrix = _npy_array(data_path)
         if labels_path.suffix.lower() == ".csv":
-            columns = _csv_columns(labels_path, keys)
+            columns = csv_columns(labels_path, keys)
         elif labels_path.suffix.lower() == ".npy":
             if task is not None:
                 raise DataError(f"{labels_path} holds one label array; put attribute and task in a .csv to use both")

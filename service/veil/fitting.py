@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import json
 import warnings
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -19,7 +19,7 @@ from veil._validation import encode_attribute
 from veil.audit import audit
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
-from veil.card import build_card
+from veil.card import SampleDescription, build_card
 from veil.datasource import LabelledSample
 from veil.erasers import BaseEraser, INLPEraser, LeaceEraser, MeanProjectionEraser, RLACEEraser
 from veil.errors import DataError
@@ -165,6 +165,36 @@ def fit_version(
     DataError
         The sample or the options cannot make a version; nothing is written.
     """
+    eraser = make_eraser(name, alias, method, params, seed=seed, normalize=normalize)
+    attribute = encode_attribute(sample.attribute, sample.rows, require_categorical=True)
+    labels, codes = attribute.labels, attribute.codes
+    if labels is None or labels.size < 2:
+        raise DataError(f"attribute {sample.attribute_key!r} has a single class; erasure needs at least two")
+    held = _split(sample, codes, labels, holdout, seed)
+    fit_rows = ~held
+    x = sample.embeddings
+    notes = fit_collecting_notes(eraser, method, lambda: eraser.fit(x[fit_rows], sample.attribute[fit_rows]))
+    return audit_and_store(
+        eraser,
+        sample,
+        registry=registry,
+        name=name,
+        fit_rows=int(np.count_nonzero(fit_rows)),
+        fit_sample=(x[fit_rows], codes[fit_rows]),
+        held_out=(x[held], sample.attribute[held], None if sample.task is None else sample.task[held]),
+        holdout=holdout,
+        seed=seed,
+        nonlinear=nonlinear,
+        alias=alias,
+        reason=reason or f"fitted by veil fit ({method})",
+        thresholds=thresholds,
+        notes=notes,
+    )
+
+
+def make_eraser(
+    name: str, alias: str | None, method: str, params: Mapping[str, Any] | None, *, seed: int, normalize: bool
+) -> BaseEraser:
     check_name(name)
     if alias is not None:
         check_name(alias, what="alias")
@@ -174,41 +204,50 @@ def fit_version(
         raise DataError(f"{method} has no option {unknown[0]!r}")
     if "random_state" in METHODS[method]().get_params():
         options["random_state"] = seed
-    eraser = METHODS[method](**options, normalize=normalize)
+    return METHODS[method](**options, normalize=normalize)
 
-    attribute = encode_attribute(sample.attribute, sample.rows, require_categorical=True)
-    labels, codes = attribute.labels, attribute.codes
-    if labels is None or labels.size < 2:
-        raise DataError(f"attribute {sample.attribute_key!r} has a single class; erasure needs at least two")
-    held = _split(sample, codes, labels, holdout, seed)
-    fit_rows = ~held
-    x = sample.embeddings
-    notes: list[str] = []
+
+def fit_collecting_notes(eraser: BaseEraser, method: str, fit: Callable[[], object]) -> list[str]:
+    """Run ``fit``; bad data becomes a :class:`DataError`, and warnings become notes for the card."""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            eraser.fit(x[fit_rows], sample.attribute[fit_rows])
+            fit()
         except ValueError as error:
             raise DataError(f"{method} cannot fit this sample: {error}") from None
-    notes += sorted({str(w.message) for w in caught if issubclass(w.category, UserWarning)})
-    folds = min(AUDIT_FOLDS, probe_folds(codes[held], AUDIT_FOLDS))
-    report = audit(
-        eraser,
-        x[held],
-        sample.attribute[held],
-        task=None if sample.task is None else sample.task[held],
-        folds=folds,
-        nonlinear=nonlinear,
-        random_state=seed,
-    )
+    return sorted({str(w.message) for w in caught if issubclass(w.category, UserWarning)})
+
+
+def audit_and_store(
+    eraser: BaseEraser,
+    sample: SampleDescription,
+    *,
+    registry: Registry,
+    name: str,
+    fit_rows: int,
+    fit_sample: tuple[NDArray[np.floating], NDArray[np.intp]],
+    held_out: tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None],
+    holdout: float,
+    seed: int,
+    nonlinear: bool,
+    alias: str | None,
+    reason: str,
+    thresholds: AlertThresholds | None,
+    notes: list[str],
+) -> FitOutcome:
+    """Audit a fitted eraser on held-out rows, build its card, reference and report, and store the version."""
+    x_held, z_held, task_held = held_out
+    codes_held = np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp)
+    folds = min(AUDIT_FOLDS, probe_folds(codes_held, AUDIT_FOLDS))
+    report = audit(eraser, x_held, z_held, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed)
     artifact = eraser.export()
-    reference = ReferenceStatistics.from_fit(artifact, x[fit_rows], codes[fit_rows], random_state=seed)
-    plots = PlotData.from_heldout(x[held], eraser.transform(x[held]), codes[held], seed=seed)
+    reference = ReferenceStatistics.from_fit(artifact, fit_sample[0], fit_sample[1], random_state=seed)
+    plots = PlotData.from_heldout(x_held, eraser.transform(x_held), codes_held, seed=seed)
     card = build_card(
         name=name,
         artifact=artifact,
         sample=sample,
-        fit_rows=int(np.count_nonzero(fit_rows)),
+        fit_rows=fit_rows,
         split_seed=seed,
         holdout=holdout,
         audit=report,
@@ -228,5 +267,5 @@ def fit_version(
     version_id = registry.add_version(name, files, derived=report_page)
     promotion = None
     if alias is not None:
-        promotion = registry.promote(name, version_id, alias=alias, reason=reason or f"fitted by veil fit ({method})")
+        promotion = registry.promote(name, version_id, alias=alias, reason=reason)
     return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion)

@@ -14,8 +14,10 @@ from veil.corpus import apply_to_file, manifest_path
 from veil.datasource import load_labelled_sample
 from veil.errors import DataError
 from veil.fitting import fit_version, parse_parameters
+from veil.outofcore import fit_version_streaming
 from veil.registry import DEFAULT_ALIAS, Registry
 from veil.reporting import PLOT_DATA_FILE, PlotData, render_report
+from veil.streaming import open_stream
 
 
 def _print_table(header: list[str], rows: list[list[str]]) -> None:
@@ -26,22 +28,29 @@ def _print_table(header: list[str], rows: list[list[str]]) -> None:
 
 def fit(args: argparse.Namespace) -> int:
     params = parse_parameters(args.method, args.option)
-    sample = load_labelled_sample(
-        args.data, attribute=args.attribute, task=args.task, embeddings_key=args.embeddings, labels=args.labels
-    )
-    outcome = fit_version(
-        sample,
-        registry=Registry(args.registry),
-        name=args.name,
-        method=args.method,
-        params=params,
-        holdout=args.holdout,
-        seed=args.seed,
-        normalize=args.normalize,
-        nonlinear=args.probes == "all",
-        alias=args.alias,
-        reason=args.reason,
-    )
+    common: dict[str, Any] = {
+        "registry": Registry(args.registry),
+        "name": args.name,
+        "method": args.method,
+        "params": params,
+        "holdout": args.holdout,
+        "seed": args.seed,
+        "normalize": args.normalize,
+        "nonlinear": args.probes == "all",
+        "alias": args.alias,
+        "reason": args.reason,
+    }
+    source = {"attribute": args.attribute, "task": args.task, "embeddings_key": args.embeddings, "labels": args.labels}
+    if args.stream or Path(args.data).is_dir():
+        outcome = fit_version_streaming(
+            open_stream(args.data, **source),
+            chunk_rows=args.chunk_rows,
+            audit_rows=args.audit_rows,
+            fit_sample_rows=args.fit_sample_rows,
+            **common,
+        )
+    else:
+        outcome = fit_version(load_labelled_sample(args.data, **source), **common)
     print(outcome.audit.format_table())
     for note in outcome.card["notes"]:
         if note not in outcome.audit.notes:

@@ -8,7 +8,9 @@ import os
 from veil.corpus import DEFAULT_CHUNK_ROWS
 from veil.datasource import DEFAULT_EMBEDDINGS_KEY
 from veil.fitting import METHODS, method_parameters
+from veil.outofcore import DEFAULT_AUDIT_ROWS, DEFAULT_FIT_SAMPLE_ROWS
 from veil.registry import DEFAULT_ALIAS
+from veil.streaming import DEFAULT_CHUNK_ROWS as DEFAULT_STREAM_CHUNK_ROWS
 
 DEFAULT_REGISTRY = "./veil-registry"
 
@@ -53,7 +55,11 @@ def build_parser() -> argparse.ArgumentParser:
         epilog=_method_options_help(),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    fit.add_argument("--data", required=True, help="labelled sample: .npz, .npy (with --labels) or .parquet")
+    fit.add_argument(
+        "--data",
+        required=True,
+        help="labelled sample: .npz, .npy (with --labels), .parquet, or a folder of .npy shards",
+    )
     fit.add_argument("--attribute", required=True, help="key or column of the protected attribute")
     fit.add_argument("--task", help="key or column of a task label, for utility figures")
     fit.add_argument("--labels", help="labels for .npy input: a .npy (the attribute) or a .csv with a header")
@@ -70,6 +76,24 @@ def build_parser() -> argparse.ArgumentParser:
     fit.add_argument("--normalize", action="store_true", help="re-normalise served vectors to unit length")
     fit.add_argument(
         "--probes", choices=("all", "linear"), default="all", help="audit with linear and MLP probes, or linear only"
+    )
+    fit.add_argument(
+        "--stream",
+        action="store_true",
+        help="read the sample in chunks with bounded memory (always on for a folder of .npy shards)",
+    )
+    fit.add_argument("--chunk-rows", type=int, default=DEFAULT_STREAM_CHUNK_ROWS, help="rows per chunk when streaming")
+    fit.add_argument(
+        "--audit-rows",
+        type=int,
+        default=DEFAULT_AUDIT_ROWS,
+        help="held-out rows audited when streaming (a hash sample)",
+    )
+    fit.add_argument(
+        "--fit-sample-rows",
+        type=int,
+        default=DEFAULT_FIT_SAMPLE_ROWS,
+        help="when streaming, INLP logistic/svm and R-LACE fit on a hash sample of this many rows",
     )
     fit.set_defaults(handler="fit")
 

@@ -1,0 +1,252 @@
+"""Labelled samples too large for memory, read in chunks: memory-mapped ``.npy``, a folder of ``.npy`` shards, Parquet.
+
+=======================  ======================================================================
+input                    embeddings, and where the labels come from
+=======================  ======================================================================
+``x.npy``                read by rows; ``--labels`` a ``.npy`` (memory-mapped) or ``.csv``
+a folder of ``*.npy``    the shards in name order, as one array; ``--labels`` covers every row
+Parquet                  row groups in order; label columns read with their rows
+=======================  ======================================================================
+
+Only one chunk of embeddings is in memory at a time.  Labels from a ``.csv``
+are read whole (a few bytes a row); ``.npy`` labels are memory-mapped.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.datasource import PARQUET_SUFFIXES, check_embeddings, csv_columns, file_sha256
+from veil.errors import DataError
+from veil.progress import advance
+from veil.tables import embedding_matrix
+
+DEFAULT_CHUNK_ROWS = 65536
+
+
+@dataclass(frozen=True, eq=False)
+class Chunk:
+    """Rows ``start .. start + len(embeddings) - 1`` of the stream."""
+
+    start: int
+    embeddings: NDArray[np.floating]
+    attribute: NDArray[Any]
+    task: NDArray[Any] | None
+
+
+@dataclass(frozen=True, eq=False)
+class StreamedSample:
+    """A labelled sample read chunk by chunk; the counterpart of :class:`veil.datasource.LabelledSample`."""
+
+    rows: int
+    dim: int
+    dtype: np.dtype[Any]
+    attribute_key: str
+    task_key: str | None
+    files: dict[str, str]
+    _chunks: Any = field(repr=False)
+
+    def chunks(self, chunk_rows: int = DEFAULT_CHUNK_ROWS) -> Iterator[Chunk]:
+        """Every row once, in order, ``chunk_rows`` at a time (checked for finite numbers on the way)."""
+        iterator: Iterator[Chunk] = self._chunks(chunk_rows)
+        return iterator
+
+    @property
+    def fingerprint(self) -> str:
+        import hashlib
+
+        joined = "\n".join(f"{Path(path).name} {digest}" for path, digest in sorted(self.files.items()))
+        return hashlib.sha256(joined.encode()).hexdigest()
+
+
+@dataclass(frozen=True)
+class _NpyFile:
+    """A 2-D ``.npy`` read by explicit reads, chunk by chunk.
+
+    Not memory-mapped: pages of a mapped file that a pass has touched stay in
+    the process's resident set for as long as the kernel caches them, so a
+    6 GB pass would show 6 GB resident.  Reads into a fresh chunk keep it to
+    one chunk.
+    """
+
+    path: Path
+    dtype: np.dtype[Any]
+    shape: tuple[int, int]
+    offset: int
+
+    @classmethod
+    def open(cls, path: Path) -> _NpyFile:
+        try:
+            with path.open("rb") as handle:
+                version = np.lib.format.read_magic(handle)
+                read_header = (
+                    np.lib.format.read_array_header_1_0 if version == (1, 0) else np.lib.format.read_array_header_2_0
+                )
+                shape, fortran, dtype = read_header(handle)
+                offset = handle.tell()
+        except (ValueError, OSError, EOFError) as error:
+            raise DataError(f"{path} is not a readable .npy array ({error})") from None
+        if dtype.hasobject:
+            raise DataError(f"{path} holds Python objects; it would need pickle, which veil never uses")
+        if dtype.kind not in "fiu":
+            raise DataError(f"{path}: embeddings must be numbers, got dtype {dtype}")
+        if fortran:
+            raise DataError(f"{path} is stored in Fortran order; save it in C order to stream it by rows")
+        if len(shape) != 2 or 0 in shape:
+            raise DataError(f"{path}: embeddings must be a non-empty 2-D array, got shape {shape}")
+        expected = offset + shape[0] * shape[1] * dtype.itemsize
+        if path.stat().st_size < expected:
+            raise DataError(f"{path} is truncated: {path.stat().st_size} bytes, the header promises {expected}")
+        return cls(path=path, dtype=dtype, shape=(int(shape[0]), int(shape[1])), offset=offset)
+
+    def read(self, start: int, rows: int) -> NDArray[Any]:
+        count = min(rows, self.shape[0] - start)
+        with self.path.open("rb") as handle:
+            handle.seek(self.offset + start * self.shape[1] * self.dtype.itemsize)
+            block: NDArray[Any] = np.fromfile(handle, dtype=self.dtype, count=count * self.shape[1])
+        return block.reshape(count, self.shape[1])
+
+
+def _memmap_labels(path: Path) -> NDArray[Any]:
+    try:
+        values: NDArray[Any] = np.load(path, mmap_mode="r", allow_pickle=False)
+    except (ValueError, OSError, EOFError) as error:
+        raise DataError(f"{path} is not a readable .npy array without pickle ({error})") from None
+    return values
+
+
+def _label_columns(labels: Path, keys: list[str], rows: int) -> dict[str, NDArray[Any]]:
+    if not labels.is_file():
+        raise DataError(f"{labels} does not exist")
+    if labels.suffix.lower() == ".csv":
+        columns = csv_columns(labels, keys)
+    elif labels.suffix.lower() == ".npy":
+        if len(keys) > 1:
+            raise DataError(f"{labels} holds one label array; put attribute and task in a .csv to use both")
+        columns = {keys[0]: _memmap_labels(labels)}
+    else:
+        raise DataError(f"labels must be a .npy or .csv file, not {labels.name}")
+    for key, values in columns.items():
+        if values.ndim != 1 or values.shape[0] != rows:
+            raise DataError(f"{labels}: labels {key!r} have shape {values.shape} but the embeddings have {rows} rows")
+    return columns
+
+
+def _array_chunks(parts: list[_NpyFile], columns: dict[str, NDArray[Any]], attribute: str, task: str | None) -> Any:
+    total = sum(part.shape[0] for part in parts)
+
+    def chunks(chunk_rows: int) -> Iterator[Chunk]:
+        start = 0
+        for part in parts:
+            for offset in range(0, part.shape[0], chunk_rows):
+                block = check_embeddings(part.read(offset, chunk_rows), source=f"{part.path} rows {offset}..")
+                stop = start + block.shape[0]
+                yield Chunk(
+                    start=start,
+                    embeddings=block,
+                    attribute=np.asarray(columns[attribute][start:stop]),
+                    task=None if task is None else np.asarray(columns[task][start:stop]),
+                )
+                start = stop
+                advance("reading (rows)", start, total)
+
+    return chunks
+
+
+def _parquet_chunks(path: Path, embeddings_key: str, attribute: str, task: str | None) -> tuple[Any, int, int, Any]:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    try:
+        parquet = pq.ParquetFile(path)
+    except (pa.ArrowInvalid, OSError) as error:
+        raise DataError(f"{path} is not a readable Parquet file ({error})") from None
+    keys = [embeddings_key, attribute] + ([] if task is None else [task])
+    for key in keys:
+        if key not in parquet.schema_arrow.names:
+            raise DataError(f"{path} has no column {key!r}; its columns are {', '.join(parquet.schema_arrow.names)}")
+    rows = parquet.metadata.num_rows
+    if rows == 0:
+        raise DataError(f"{path} has no rows")
+    first = embedding_matrix(parquet.read_row_group(0, columns=[embeddings_key]).column(0), name=embeddings_key)
+
+    def labels_of(table: Any, key: str) -> NDArray[Any]:
+        column = table.column(key)
+        if column.null_count:
+            raise DataError(f"{path}: column {key!r} has missing labels")
+        values: NDArray[Any] = column.to_numpy()
+        return values.astype(str) if values.dtype == object else values
+
+    def chunks(chunk_rows: int) -> Iterator[Chunk]:
+        start = 0
+        for batch in parquet.iter_batches(batch_size=chunk_rows, columns=keys):
+            matrix = embedding_matrix(batch.column(0), name=embeddings_key, first_row=start)
+            if matrix.shape[1] != first.shape[1]:
+                raise DataError(f"{path}: column {embeddings_key!r} mixes dimensions from row {start}")
+            table = pa.Table.from_batches([batch])
+            yield Chunk(
+                start=start,
+                embeddings=check_embeddings(matrix, source=f"{path} rows {start}.."),
+                attribute=labels_of(table, attribute),
+                task=None if task is None else labels_of(table, task),
+            )
+            start += batch.num_rows
+            advance("reading (rows)", start, rows)
+
+    return chunks, rows, first.shape[1], first.dtype
+
+
+def open_stream(
+    path: str | Path,
+    *,
+    attribute: str,
+    task: str | None = None,
+    embeddings_key: str = "embedding",
+    labels: str | Path | None = None,
+) -> StreamedSample:
+    """Describe a large labelled sample without reading it (every file is hashed, in one streaming pass each).
+
+    Raises
+    ------
+    DataError
+        A missing or unreadable file, shards of different dimensions, labels of the wrong length.
+    """
+    source = Path(path)
+    if not source.exists():
+        raise DataError(f"{source} does not exist")
+    keys = [attribute] if task is None else [attribute, task]
+    if source.is_dir() or source.suffix.lower() == ".npy":
+        shards = sorted(source.glob("*.npy")) if source.is_dir() else [source]
+        if not shards:
+            raise DataError(f"{source} holds no .npy shards")
+        if labels is None:
+            raise DataError(f"{source} holds embeddings only; give the labels file (.npy or .csv) too")
+        parts = [_NpyFile.open(shard) for shard in shards]
+        dims = {part.shape[1] for part in parts}
+        if len(dims) > 1:
+            raise DataError(f"{source}: the shards have different dimensions ({sorted(dims)})")
+        rows = sum(part.shape[0] for part in parts)
+        columns = _label_columns(Path(labels), keys, rows)
+        files = {str(shard): file_sha256(shard) for shard in shards}
+        files[str(labels)] = file_sha256(Path(labels))
+        dtypes = {part.dtype for part in parts}
+        dtype = np.dtype(np.float32) if dtypes == {np.dtype(np.float32)} else np.dtype(np.float64)
+        return StreamedSample(
+            rows=rows, dim=dims.pop(), dtype=dtype, attribute_key=attribute, task_key=task, files=files,
+            _chunks=_array_chunks(parts, columns, attribute, task),
+        )  # fmt: skip
+    if source.suffix.lower() in PARQUET_SUFFIXES:
+        if labels is not None:
+            raise DataError("Parquet input carries its labels in columns; --labels goes with .npy input")
+        chunks, rows, dim, dtype = _parquet_chunks(source, embeddings_key, attribute, task)
+        return StreamedSample(
+            rows=rows, dim=dim, dtype=np.dtype(dtype), attribute_key=attribute, task_key=task,
+            files={str(source): file_sha256(source)}, _chunks=chunks,
+        )  # fmt: skip
+    raise DataError(f"{source}: streaming reads a .npy file, a folder of .npy shards or Parquet, not {source.suffix}")

@@ -1,0 +1,168 @@
+"""Streaming fits: the same eraser as in memory, from shards, memory-mapped files and Parquet, in bounded memory."""
+
+from __future__ import annotations
+
+import json
+import tracemalloc
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from veil import INLPEraser, LeaceEraser, MeanProjectionEraser
+from veil.errors import DataError
+from veil.outofcore import fit_version_streaming
+from veil.registry import Registry
+from veil.splitting import holdout_mask
+from veil.streaming import open_stream
+
+from .test_cli import run
+
+N, D = 6000, 12
+
+
+@pytest.fixture(scope="module")
+def data() -> tuple[np.ndarray, np.ndarray]:
+    rng = np.random.default_rng(21)
+    z = np.array(["north", "south", "west"])[rng.integers(0, 3, N)]
+    x = rng.normal(size=(N, D)) @ rng.normal(size=(D, D)) / np.sqrt(D)
+    x += np.where(z == "south", 1.0, 0.0)[:, None] * rng.normal(size=D) + np.where(z == "west", 1.0, 0.0)[:, None]
+    return x.astype(np.float32), z
+
+
+def write_shards(folder: Path, x: np.ndarray, z: np.ndarray, pieces: int = 3) -> Path:
+    folder.mkdir()
+    for index, part in enumerate(np.array_split(x, pieces)):
+        np.save(folder / f"part-{index:03d}.npy", part)
+    (folder.parent / "labels.csv").write_text("region\n" + "\n".join(z) + "\n")
+    return folder.parent / "labels.csv"
+
+
+def fit_rows(holdout: float = 0.2, seed: int = 0) -> np.ndarray:
+    return ~holdout_mask(N, fraction=holdout, seed=seed)
+
+
+@pytest.mark.parametrize(("method", "reference"), [("leace", LeaceEraser), ("meanproj", MeanProjectionEraser)])
+def test_streamed_moment_fits_equal_the_in_memory_fit_of_the_same_rows(
+    tmp_path: Path, data: tuple[np.ndarray, np.ndarray], method: str, reference: type
+) -> None:
+    x, z = data
+    labels = write_shards(tmp_path / "shards", x, z)
+    sample = open_stream(tmp_path / "shards", attribute="region", labels=labels)
+    assert (sample.rows, sample.dim) == (N, D)
+    outcome = fit_version_streaming(
+        sample, registry=Registry(tmp_path / "r"), name="stream", method=method, nonlinear=False, chunk_rows=777
+    )
+    stored = Registry(tmp_path / "r").read_version("stream", outcome.version_id).artifact
+    keep = fit_rows()
+    expected = reference().fit(x[keep], z[keep])
+    np.testing.assert_allclose(stored.apply(x), expected.transform(x), rtol=1e-9, atol=1e-6)
+    assert outcome.card["data"]["fit_rows"] == int(keep.sum())
+    assert outcome.card["data"]["rows"] == N
+
+
+def test_streamed_inlp_with_the_moments_classifier_equals_its_in_memory_fit(
+    tmp_path: Path, data: tuple[np.ndarray, np.ndarray]
+) -> None:
+    x, z = data
+    np.save(tmp_path / "x.npy", x)
+    np.save(tmp_path / "z.npy", z)
+    sample = open_stream(tmp_path / "x.npy", attribute="region", labels=tmp_path / "z.npy")
+    params = {"classifier": "moments", "max_iter": 8}
+    outcome = fit_version_streaming(
+        sample, registry=Registry(tmp_path / "r"), name="stream", method="inlp", params=params, nonlinear=False,
+        chunk_rows=1000,
+    )  # fmt: skip
+    stored = Registry(tmp_path / "r").read_version("stream", outcome.version_id).artifact
+    keep = fit_rows()
+    expected = INLPEraser(classifier="moments", max_iter=8, random_state=0).fit(x[keep], z[keep])
+    np.testing.assert_allclose(stored.apply(x), expected.transform(x), atol=1e-5)
+
+
+def test_row_methods_fit_on_a_hash_sample_and_the_audit_on_a_bounded_sample(
+    tmp_path: Path, data: tuple[np.ndarray, np.ndarray]
+) -> None:
+    x, z = data
+    table = pa.table(
+        {"embedding": pa.FixedSizeListArray.from_arrays(pa.array(x.reshape(-1)), D), "region": pa.array(z)}
+    )
+    pq.write_table(table, tmp_path / "s.parquet", row_group_size=1000)
+    sample = open_stream(tmp_path / "s.parquet", attribute="region")
+    outcome = fit_version_streaming(
+        sample, registry=Registry(tmp_path / "r"), name="stream", method="rlace", params={"max_iter": 30},
+        nonlinear=False, chunk_rows=500, audit_rows=400, fit_sample_rows=1500,
+    )  # fmt: skip
+    notes = " ".join(outcome.card["notes"])
+    assert "rlace was fitted on a hash-drawn sample of" in notes
+    drawn = int(notes.split("hash-drawn sample of ")[1].split()[0])
+    assert 1200 < drawn < 1800  # about 1,500 of the ~4,800 fitting rows
+    assert 300 < outcome.audit.n_heldout < 500  # about 400 of the ~1,200 held-out rows
+
+
+def _streamed_peak(folder: Path, rows: int, dim: int = 64) -> int:
+    rng = np.random.default_rng(22)
+    z = rng.integers(0, 2, rows)
+    np.save(folder / "x.npy", (rng.normal(size=(rows, dim)) + np.outer(z, np.eye(dim)[0])).astype(np.float32))
+    np.save(folder / "z.npy", np.array(["a", "b"])[z])
+    sample = open_stream(folder / "x.npy", attribute="g", labels=folder / "z.npy")
+    tracemalloc.start()
+    try:
+        fit_version_streaming(
+            sample, registry=Registry(folder / "r"), name="stream", method="leace", nonlinear=False, chunk_rows=2000,
+            audit_rows=500,
+        )  # fmt: skip
+        return tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+
+
+def test_a_streamed_fit_holds_chunks_not_the_data(tmp_path: Path) -> None:
+    (tmp_path / "small").mkdir()
+    (tmp_path / "large").mkdir()
+    small = _streamed_peak(tmp_path / "small", 20_000)
+    large = _streamed_peak(tmp_path / "large", 80_000)
+    # Four times the rows, about the same peak (tracemalloc sees every NumPy allocation); and at 80,000
+    # rows the peak is well under the data's own 20 MB (40 MB as float64).
+    assert large < 1.5 * small, f"{small / 1e6:.1f} MB at 20k rows, {large / 1e6:.1f} MB at 80k rows"
+    assert large < 80_000 * 64 * 4 / 2
+
+
+def test_the_cli_streams_a_folder_of_shards(tmp_path: Path, data: tuple[np.ndarray, np.ndarray]) -> None:
+    x, z = data
+    labels = write_shards(tmp_path / "shards", x, z)
+    result = run(
+        "fit", "--data", tmp_path / "shards", "--labels", labels, "--attribute", "region", "--method", "leace",
+        "--name", "stream", "--registry", tmp_path / "r", "--chunk-rows", "500", "--probes", "linear",
+    )  # fmt: skip
+    assert result.code == 0, result.err
+    version = result.out.strip().splitlines()[-1]
+    card = json.loads(run("show", "stream", version, "--registry", tmp_path / "r", "--json").out)
+    assert card["data"]["rows"] == N
+    assert any("audited on a hash-drawn sample" in note for note in card["notes"])
+
+
+def test_bad_streamed_input_is_refused(tmp_path: Path, data: tuple[np.ndarray, np.ndarray]) -> None:
+    x, z = data
+    (tmp_path / "mixed").mkdir()
+    np.save(tmp_path / "mixed" / "a.npy", x[:10])
+    np.save(tmp_path / "mixed" / "b.npy", np.ones((10, D + 1), dtype=np.float32))
+    np.save(tmp_path / "short.npy", z[:5])
+    np.save(tmp_path / "x.npy", x)
+    np.save(tmp_path / "one.npy", np.array(["north"] * N))
+    (tmp_path / "empty").mkdir()
+    cases = [
+        (lambda: open_stream(tmp_path / "mixed", attribute="g", labels=tmp_path / "short.npy"), "different dimensions"),
+        (lambda: open_stream(tmp_path / "x.npy", attribute="g", labels=tmp_path / "short.npy"), "have shape"),
+        (lambda: open_stream(tmp_path / "x.npy", attribute="g"), "give the labels file"),
+        (lambda: open_stream(tmp_path / "empty", attribute="g", labels=tmp_path / "short.npy"), "no .npy shards"),
+        (lambda: open_stream(tmp_path / "nothing", attribute="g"), "does not exist"),
+    ]
+    for attempt, message in cases:
+        with pytest.raises(DataError, match=message):
+            attempt()
+    one_class = open_stream(tmp_path / "x.npy", attribute="g", labels=tmp_path / "one.npy")
+    with pytest.raises(DataError, match="single class"):
+        fit_version_streaming(one_class, registry=Registry(tmp_path / "r"), name="stream", method="leace")
+    assert not (tmp_path / "r").exists()
