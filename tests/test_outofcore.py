@@ -166,3 +166,43 @@ def test_bad_streamed_input_is_refused(tmp_path: Path, data: tuple[np.ndarray, n
     with pytest.raises(DataError, match="single class"):
         fit_version_streaming(one_class, registry=Registry(tmp_path / "r"), name="stream", method="leace")
     assert not (tmp_path / "r").exists()
+
+
+@pytest.mark.parametrize("method", ["leace", "meanproj"])
+def test_the_dask_engine_equals_the_single_process_fit(
+    tmp_path: Path, data: tuple[np.ndarray, np.ndarray], method: str
+) -> None:
+    # A LocalCluster with two worker processes, on shards written to a temporary folder.
+    x, z = data
+    labels = write_shards(tmp_path / "shards", x, z, pieces=4)
+    sample = open_stream(tmp_path / "shards", attribute="region", labels=labels)
+    local = fit_version_streaming(
+        sample, registry=Registry(tmp_path / "r"), name="local", method=method, nonlinear=False, chunk_rows=400
+    )
+    distributed = fit_version_streaming(
+        sample, registry=Registry(tmp_path / "r"), name="dask", method=method, nonlinear=False, chunk_rows=400,
+        engine="dask", workers=2,
+    )  # fmt: skip
+    registry = Registry(tmp_path / "r")
+    one = registry.read_version("local", local.version_id).artifact
+    many = registry.read_version("dask", distributed.version_id).artifact
+    np.testing.assert_allclose(many.moments.comoment_xx, one.moments.comoment_xx, rtol=1e-9)
+    np.testing.assert_allclose(many.apply(x.astype(np.float64)), one.apply(x.astype(np.float64)), rtol=1e-9, atol=1e-9)
+    assert distributed.card["data"]["fit_rows"] == local.card["data"]["fit_rows"]
+    assert distributed.audit.n_heldout == local.audit.n_heldout
+
+
+def test_the_cli_fits_on_dask_and_refuses_what_needs_one_process(
+    tmp_path: Path, data: tuple[np.ndarray, np.ndarray]
+) -> None:
+    x, z = data
+    labels = write_shards(tmp_path / "shards", x, z)
+    common = [
+        *("--data", tmp_path / "shards", "--labels", labels, "--attribute", "region", "--name", "stream"),
+        *("--registry", tmp_path / "r", "--probes", "linear", "--engine", "dask", "--chunk-rows", "1000"),
+    ]
+    fitted = run("fit", *common, "--method", "leace")
+    assert fitted.code == 0, fitted.err
+    refused = run("fit", *common, "--method", "inlp", "--option", "classifier=moments")
+    assert refused.code == 2
+    assert "fits sequentially" in refused.err

@@ -116,6 +116,21 @@ def test_a_real_server_answers_like_the_in_process_eraser(
                 f"{base}/v1/erasers/{PROFILES}/apply", json={"vectors": batch[:2].tolist()}, timeout=30.0
             )
             assert fresh.headers["x-veil-version"] == service_registry.meanproj
+        # And a rollback, the same way, within the polling interval on every worker.
+        Registry(registry).rollback(PROFILES)
+
+        def rolled_back() -> bool:
+            answers = {
+                httpx.post(
+                    f"{base}/v1/erasers/{PROFILES}/apply", json={"vectors": batch[:2].tolist()}, timeout=30.0
+                ).headers["x-veil-version"]
+                for _ in range(10)
+            }
+            return answers == {service_registry.leace}
+
+        assert wait_until(rolled_back, 15.0)
+        Registry(registry).promote(PROFILES, service_registry.meanproj)
+        assert wait_until(switched, 15.0)
         reload = client.post("/v1/admin/reload", headers={"Authorization": f"Bearer {ADMIN_TOKEN}"})
         assert reload.json()["serving"][PROFILES] == service_registry.meanproj
         assert "veil_reloads_total" in client.get("/metrics").text

@@ -16,6 +16,7 @@ fitting rows; the card says how many of how many.
 from __future__ import annotations
 
 from collections.abc import Mapping
+from dataclasses import dataclass, replace
 from functools import partial
 from typing import Any
 
@@ -28,40 +29,96 @@ from veil.fitting import FitOutcome, audit_and_store, fit_collecting_notes, make
 from veil.moments import MomentState
 from veil.registry import Registry
 from veil.splitting import holdout_mask
-from veil.streaming import DEFAULT_CHUNK_ROWS, StreamedSample
+from veil.streaming import DEFAULT_CHUNK_ROWS, Chunk, Partition, StreamedSample
 from veil.thresholds import AlertThresholds
 
+ENGINES = ("local", "dask")
 DEFAULT_AUDIT_ROWS = 20_000
 DEFAULT_FIT_SAMPLE_ROWS = 50_000
 # Independent hash streams for the held-out split and the two samples drawn from its sides.
 _HELD_SAMPLE_SALT, _FIT_SAMPLE_SALT = 0x5EED1, 0x5EED2
 
 
-class _Sampler:
-    """Keeps a hash-drawn share of the rows offered to it, up to about ``limit`` rows in all."""
+Rows = tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None]
 
-    def __init__(self, limit: int, expected: int, seed: int) -> None:
-        self.fraction = min(1.0, limit / max(expected, 1))
-        self.seed = seed
-        self.parts: list[tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None]] = []
 
-    def offer(self, start: int, x: NDArray[np.floating], z: NDArray[Any], task: NDArray[Any] | None) -> None:
-        if self.fraction >= 1.0:
-            keep = np.ones(x.shape[0], dtype=bool)
+@dataclass(frozen=True, eq=False)
+class PartResult:
+    """What one partition (or a merge of consecutive ones) contributes: fitting moments, counts and samples."""
+
+    moments: MomentState | None
+    fit_rows: int
+    held_sample: list[Rows]
+    fit_sample: list[Rows]
+    fit_chunks: list[Rows]
+
+    def merge(self, later: PartResult) -> PartResult:
+        if self.moments is None or later.moments is None:
+            moments = self.moments if later.moments is None else later.moments
         else:
-            keep = holdout_mask(x.shape[0], fraction=self.fraction, seed=self.seed, start=start)
-        if keep.any():
-            self.parts.append((x[keep].copy(), np.asarray(z)[keep], None if task is None else np.asarray(task)[keep]))
-
-    def rows(self) -> tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None]:
-        if not self.parts:
-            raise DataError("no rows were drawn for the audit; the sample is too small to stream")
-        tasks = [t for _, _, t in self.parts]
-        return (
-            np.concatenate([x for x, _, _ in self.parts]),
-            np.concatenate([z for _, z, _ in self.parts]),
-            None if tasks[0] is None else np.concatenate([t for t in tasks if t is not None]),
+            moments = self.moments.merge(later.moments)
+        return PartResult(
+            moments=moments,
+            fit_rows=self.fit_rows + later.fit_rows,
+            held_sample=self.held_sample + later.held_sample,
+            fit_sample=self.fit_sample + later.fit_sample,
+            fit_chunks=self.fit_chunks + later.fit_chunks,
         )
+
+
+@dataclass(frozen=True)
+class PassPlan:
+    """How a partition is split and sampled; the same on every worker."""
+
+    holdout: float
+    seed: int
+    held_fraction: float
+    fit_fraction: float
+    exact_moments: bool
+    keep_fit_rows: bool  # INLP-moments streams its own fit rows through partial_fit on the driver
+
+    def process(self, chunk: Chunk) -> PartResult:
+        held = holdout_mask(chunk.embeddings.shape[0], fraction=self.holdout, seed=self.seed, start=chunk.start)
+        fit = ~held
+        held_rows = _select(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
+        fit_rows = _select(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT)
+        moments = None
+        if self.exact_moments and fit.any():
+            x_fit, z_fit = chunk.embeddings[fit], chunk.attribute[fit]
+            moments = MomentState.from_batch(x_fit, encode_attribute(z_fit, x_fit.shape[0], require_categorical=True))
+        chunks: list[Rows] = []
+        if self.keep_fit_rows and fit.any():
+            chunks.append((chunk.embeddings[fit], chunk.attribute[fit], None))
+        return PartResult(
+            moments=moments,
+            fit_rows=int(np.count_nonzero(fit)),
+            held_sample=[held_rows] if held_rows[0].shape[0] else [],
+            fit_sample=[fit_rows] if fit_rows[0].shape[0] else [],
+            fit_chunks=chunks,
+        )
+
+    def process_partition(self, partition: Partition) -> PartResult:
+        return self.process(partition.load())
+
+
+def _select(chunk: Chunk, side: NDArray[np.bool_], fraction: float, seed: int) -> Rows:
+    """The rows of one side of the split that a hash draws with probability ``fraction``."""
+    keep = side.copy()
+    if fraction < 1.0:
+        keep &= holdout_mask(side.size, fraction=fraction, seed=seed, start=chunk.start)
+    task = None if chunk.task is None else np.asarray(chunk.task)[keep]
+    return chunk.embeddings[keep].copy(), np.asarray(chunk.attribute)[keep], task
+
+
+def _rows(parts: list[Rows], what: str) -> Rows:
+    if not parts:
+        raise DataError(f"no rows were drawn for the {what}; the sample is too small to stream")
+    tasks = [t for _, _, t in parts]
+    return (
+        np.concatenate([x for x, _, _ in parts]),
+        np.concatenate([z for _, z, _ in parts]),
+        None if tasks[0] is None else np.concatenate([t for t in tasks if t is not None]),
+    )
 
 
 def fit_version_streaming(
@@ -81,11 +138,20 @@ def fit_version_streaming(
     chunk_rows: int = DEFAULT_CHUNK_ROWS,
     audit_rows: int = DEFAULT_AUDIT_ROWS,
     fit_sample_rows: int = DEFAULT_FIT_SAMPLE_ROWS,
+    engine: str = "local",
+    scheduler: str | None = None,
+    workers: int = 2,
 ) -> FitOutcome:
     """Like :func:`veil.fitting.fit_version`, reading ``sample`` once, ``chunk_rows`` rows at a time.
 
     Memory is O(d² + chunk_rows · d + audit_rows · d) whatever the number of
     rows (plus ``fit_sample_rows · d`` for the methods that need rows).
+
+    ``engine="dask"`` runs the pass on dask.distributed workers instead: each
+    partition's moments and samples are computed where it is read, and merged
+    by a tree reduction (see :mod:`veil.distributed`); ``scheduler`` is the
+    address of a running cluster, or None to start a local one with
+    ``workers`` processes.
     """
     if not 0.0 < holdout < 1.0:
         raise DataError(f"the held-out share must be between 0 and 1, got {holdout}")
@@ -94,41 +160,45 @@ def fit_version_streaming(
     eraser = make_eraser(name, alias, method, params, seed=seed, normalize=normalize)
     exact_moments = method in ("leace", "meanproj")
     streams_inlp = method == "inlp" and eraser.get_params()["classifier"] == "moments"
+    if engine not in ENGINES:
+        raise DataError(f"unknown engine {engine!r}; choose one of {', '.join(ENGINES)}")
+    if engine == "dask" and streams_inlp:
+        raise DataError("INLP with the moments classifier fits sequentially; use the local engine (--stream)")
     expected_held = int(sample.rows * holdout)
-    held_sample = _Sampler(audit_rows, expected_held, seed ^ _HELD_SAMPLE_SALT)
     fit_limit = fit_sample_rows if not (exact_moments or streams_inlp) else audit_rows
-    fit_sample = _Sampler(fit_limit, sample.rows - expected_held, seed ^ _FIT_SAMPLE_SALT)
-    moments: MomentState | None = None
-    fit_rows = 0
+    plan = PassPlan(
+        holdout=holdout,
+        seed=seed,
+        held_fraction=min(1.0, audit_rows / max(expected_held, 1)),
+        fit_fraction=min(1.0, fit_limit / max(sample.rows - expected_held, 1)),
+        exact_moments=exact_moments,
+        keep_fit_rows=streams_inlp,
+    )
     notes: list[str] = []
-    for chunk in sample.chunks(chunk_rows):
-        held = holdout_mask(chunk.embeddings.shape[0], fraction=holdout, seed=seed, start=chunk.start)
-        fit = ~held
-        held_sample.offer(chunk.start, chunk.embeddings[held], chunk.attribute[held], _rows(chunk.task, held))
-        fit_sample.offer(chunk.start, chunk.embeddings[fit], chunk.attribute[fit], _rows(chunk.task, fit))
-        if not fit.any():
-            continue
-        fit_rows += int(np.count_nonzero(fit))
-        x_fit, z_fit = chunk.embeddings[fit], chunk.attribute[fit]
-        if exact_moments:
-            attribute = encode_attribute(z_fit, x_fit.shape[0], require_categorical=True)
-            state = MomentState.from_batch(x_fit, attribute)
-            moments = state if moments is None else moments.merge(state)
-        elif streams_inlp:
-            notes += fit_collecting_notes(eraser, method, partial(eraser.partial_fit, x_fit, z_fit))
+    if engine == "dask":
+        from veil.distributed import run_pass
+
+        total = run_pass(plan, sample.partitions(chunk_rows), scheduler=scheduler, workers=workers)
+    else:
+        total = PartResult(moments=None, fit_rows=0, held_sample=[], fit_sample=[], fit_chunks=[])
+        for chunk in sample.chunks(chunk_rows):
+            part = plan.process(chunk)
+            for x_fit, z_fit, _ in part.fit_chunks:
+                notes += fit_collecting_notes(eraser, method, partial(eraser.partial_fit, x_fit, z_fit))
+            # The fitting rows themselves are dropped here: only moments and samples are kept.
+            total = total.merge(replace(part, fit_chunks=[]))
+    fit_rows = total.fit_rows
     if exact_moments:
+        moments = total.moments
         if moments is None or moments.labels is None or moments.labels.size < 2:
             raise DataError(f"attribute {sample.attribute_key!r} has a single class; erasure needs at least two")
-        merged = moments
-        notes += fit_collecting_notes(eraser, method, lambda: eraser.fit_moments(merged))
+        notes += fit_collecting_notes(eraser, method, lambda: eraser.fit_moments(moments))
     elif not streams_inlp:
-        x_sample, z_sample, _ = fit_sample.rows()
+        x_sample, z_sample, _ = _rows(total.fit_sample, "fit")
         notes += fit_collecting_notes(eraser, method, lambda: eraser.fit(x_sample, z_sample))
-        notes.append(
-            f"{method} was fitted on a hash-drawn sample of {x_sample.shape[0]} of the {fit_rows} fitting rows"
-        )
-    x_fit_sample, z_fit_sample, _ = fit_sample.rows()
-    x_held, z_held, task_held = held_sample.rows()
+        notes.append(f"{method} was fitted on a hash-drawn sample of {x_sample.shape[0]} of {fit_rows} fitting rows")
+    x_fit_sample, z_fit_sample, _ = _rows(total.fit_sample, "reference probe")
+    x_held, z_held, task_held = _rows(total.held_sample, "audit")
     classes = np.asarray(eraser.classes_)
     unseen = sorted(set(np.unique(z_held).tolist()) - set(classes.tolist()))
     if unseen:
@@ -156,7 +226,3 @@ def fit_version_streaming(
         thresholds=thresholds,
         notes=notes,
     )
-
-
-def _rows(values: NDArray[Any] | None, mask: NDArray[np.bool_]) -> NDArray[Any] | None:
-    return None if values is None else np.asarray(values)[mask]

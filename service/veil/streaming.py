@@ -5,7 +5,7 @@ input                    embeddings, and where the labels come from
 =======================  ======================================================================
 ``x.npy``                read by rows; ``--labels`` a ``.npy`` (memory-mapped) or ``.csv``
 a folder of ``*.npy``    the shards in name order, as one array; ``--labels`` covers every row
-Parquet                  row groups in order; label columns read with their rows
+Parquet                  row group by row group; label columns read with their rows
 =======================  ======================================================================
 
 Only one chunk of embeddings is in memory at a time.  Labels from a ``.csv``
@@ -50,12 +50,20 @@ class StreamedSample:
     attribute_key: str
     task_key: str | None
     files: dict[str, str]
-    _chunks: Any = field(repr=False)
+    _partitions: Any = field(repr=False)
+
+    def partitions(self, chunk_rows: int = DEFAULT_CHUNK_ROWS) -> list[Partition]:
+        """The sample cut into self-contained pieces a worker process can load on its own, in row order."""
+        parts: list[Partition] = self._partitions(chunk_rows)
+        return parts
 
     def chunks(self, chunk_rows: int = DEFAULT_CHUNK_ROWS) -> Iterator[Chunk]:
-        """Every row once, in order, ``chunk_rows`` at a time (checked for finite numbers on the way)."""
-        iterator: Iterator[Chunk] = self._chunks(chunk_rows)
-        return iterator
+        """Every row once, in order, a partition at a time (checked for finite numbers on the way)."""
+        partitions = self.partitions(chunk_rows)
+        for partition in partitions:
+            chunk = partition.load()
+            advance("reading (rows)", chunk.start + chunk.embeddings.shape[0], self.rows)
+            yield chunk
 
     @property
     def fingerprint(self) -> str:
@@ -138,28 +146,86 @@ def _label_columns(labels: Path, keys: list[str], rows: int) -> dict[str, NDArra
     return columns
 
 
-def _array_chunks(parts: list[_NpyFile], columns: dict[str, NDArray[Any]], attribute: str, task: str | None) -> Any:
-    total = sum(part.shape[0] for part in parts)
+@dataclass(frozen=True, eq=False)
+class NpyPartition:
+    """Rows ``offset .. offset + rows - 1`` of one ``.npy`` file, global rows from ``start``, with their labels."""
 
-    def chunks(chunk_rows: int) -> Iterator[Chunk]:
-        start = 0
+    file: _NpyFile
+    offset: int
+    rows: int
+    start: int
+    attribute: NDArray[Any]
+    task: NDArray[Any] | None
+
+    def load(self) -> Chunk:
+        block = check_embeddings(
+            self.file.read(self.offset, self.rows), source=f"{self.file.path} rows {self.offset}.."
+        )
+        return Chunk(start=self.start, embeddings=block, attribute=self.attribute, task=self.task)
+
+
+def _array_partitions(parts: list[_NpyFile], columns: dict[str, NDArray[Any]], attribute: str, task: str | None) -> Any:
+    def partitions(chunk_rows: int) -> list[NpyPartition]:
+        found, start = [], 0
         for part in parts:
             for offset in range(0, part.shape[0], chunk_rows):
-                block = check_embeddings(part.read(offset, chunk_rows), source=f"{part.path} rows {offset}..")
-                stop = start + block.shape[0]
-                yield Chunk(
-                    start=start,
-                    embeddings=block,
-                    attribute=np.asarray(columns[attribute][start:stop]),
-                    task=None if task is None else np.asarray(columns[task][start:stop]),
+                rows = min(chunk_rows, part.shape[0] - offset)
+                found.append(
+                    NpyPartition(
+                        file=part,
+                        offset=offset,
+                        rows=rows,
+                        start=start,
+                        attribute=np.array(columns[attribute][start : start + rows]),
+                        task=None if task is None else np.array(columns[task][start : start + rows]),
+                    )
                 )
-                start = stop
-                advance("reading (rows)", start, total)
+                start += rows
+        return found
 
-    return chunks
+    return partitions
 
 
-def _parquet_chunks(path: Path, embeddings_key: str, attribute: str, task: str | None) -> tuple[Any, int, int, Any]:
+@dataclass(frozen=True)
+class ParquetPartition:
+    """One row group of a Parquet file, global rows from ``start``."""
+
+    path: Path
+    group: int
+    start: int
+    embeddings_key: str
+    attribute_key: str
+    task_key: str | None
+    dim: int
+
+    def load(self) -> Chunk:
+        import pyarrow.parquet as pq
+
+        keys = [self.embeddings_key, self.attribute_key] + ([] if self.task_key is None else [self.task_key])
+        table = pq.ParquetFile(self.path).read_row_group(self.group, columns=keys)
+        matrix = embedding_matrix(table.column(self.embeddings_key), name=self.embeddings_key, first_row=self.start)
+        if matrix.shape[1] != self.dim:
+            raise DataError(f"{self.path}: column {self.embeddings_key!r} mixes dimensions from row {self.start}")
+        return Chunk(
+            start=self.start,
+            embeddings=check_embeddings(matrix, source=f"{self.path} rows {self.start}.."),
+            attribute=_parquet_labels(self.path, table, self.attribute_key),
+            task=None if self.task_key is None else _parquet_labels(self.path, table, self.task_key),
+        )
+
+
+def _parquet_labels(path: Path, table: Any, key: str) -> NDArray[Any]:
+    column = table.column(key)
+    if column.null_count:
+        raise DataError(f"{path}: column {key!r} has missing labels")
+    values: NDArray[Any] = column.to_numpy()
+    return values.astype(str) if values.dtype == object else values
+
+
+Partition = NpyPartition | ParquetPartition
+
+
+def _parquet_partitions(path: Path, embeddings_key: str, attribute: str, task: str | None) -> tuple[Any, int, int, Any]:
     import pyarrow as pa
     import pyarrow.parquet as pq
 
@@ -175,31 +241,18 @@ def _parquet_chunks(path: Path, embeddings_key: str, attribute: str, task: str |
     if rows == 0:
         raise DataError(f"{path} has no rows")
     first = embedding_matrix(parquet.read_row_group(0, columns=[embeddings_key]).column(0), name=embeddings_key)
+    starts = np.concatenate(
+        [[0], np.cumsum([parquet.metadata.row_group(g).num_rows for g in range(parquet.num_row_groups)])]
+    )
 
-    def labels_of(table: Any, key: str) -> NDArray[Any]:
-        column = table.column(key)
-        if column.null_count:
-            raise DataError(f"{path}: column {key!r} has missing labels")
-        values: NDArray[Any] = column.to_numpy()
-        return values.astype(str) if values.dtype == object else values
+    def partitions(chunk_rows: int) -> list[ParquetPartition]:
+        # A row group is the unit Parquet reads; write files with row groups of a chunk's size or less.
+        return [
+            ParquetPartition(path, group, int(starts[group]), embeddings_key, attribute, task, first.shape[1])
+            for group in range(parquet.num_row_groups)
+        ]
 
-    def chunks(chunk_rows: int) -> Iterator[Chunk]:
-        start = 0
-        for batch in parquet.iter_batches(batch_size=chunk_rows, columns=keys):
-            matrix = embedding_matrix(batch.column(0), name=embeddings_key, first_row=start)
-            if matrix.shape[1] != first.shape[1]:
-                raise DataError(f"{path}: column {embeddings_key!r} mixes dimensions from row {start}")
-            table = pa.Table.from_batches([batch])
-            yield Chunk(
-                start=start,
-                embeddings=check_embeddings(matrix, source=f"{path} rows {start}.."),
-                attribute=labels_of(table, attribute),
-                task=None if task is None else labels_of(table, task),
-            )
-            start += batch.num_rows
-            advance("reading (rows)", start, rows)
-
-    return chunks, rows, first.shape[1], first.dtype
+    return partitions, rows, first.shape[1], first.dtype
 
 
 def open_stream(
@@ -239,14 +292,14 @@ def open_stream(
         dtype = np.dtype(np.float32) if dtypes == {np.dtype(np.float32)} else np.dtype(np.float64)
         return StreamedSample(
             rows=rows, dim=dims.pop(), dtype=dtype, attribute_key=attribute, task_key=task, files=files,
-            _chunks=_array_chunks(parts, columns, attribute, task),
+            _partitions=_array_partitions(parts, columns, attribute, task),
         )  # fmt: skip
     if source.suffix.lower() in PARQUET_SUFFIXES:
         if labels is not None:
             raise DataError("Parquet input carries its labels in columns; --labels goes with .npy input")
-        chunks, rows, dim, dtype = _parquet_chunks(source, embeddings_key, attribute, task)
+        partitions, rows, dim, dtype = _parquet_partitions(source, embeddings_key, attribute, task)
         return StreamedSample(
             rows=rows, dim=dim, dtype=np.dtype(dtype), attribute_key=attribute, task_key=task,
-            files={str(source): file_sha256(source)}, _chunks=chunks,
+            files={str(source): file_sha256(source)}, _partitions=partitions,
         )  # fmt: skip
     raise DataError(f"{source}: streaming reads a .npy file, a folder of .npy shards or Parquet, not {source.suffix}")

@@ -41,12 +41,15 @@ def fit(args: argparse.Namespace) -> int:
         "reason": args.reason,
     }
     source = {"attribute": args.attribute, "task": args.task, "embeddings_key": args.embeddings, "labels": args.labels}
-    if args.stream or Path(args.data).is_dir():
+    if args.stream or args.engine == "dask" or Path(args.data).is_dir():
         outcome = fit_version_streaming(
             open_stream(args.data, **source),
             chunk_rows=args.chunk_rows,
             audit_rows=args.audit_rows,
             fit_sample_rows=args.fit_sample_rows,
+            engine=args.engine,
+            scheduler=args.scheduler,
+            workers=args.dask_workers,
             **common,
         )
     else:

@@ -8,7 +8,7 @@ import os
 from veil.corpus import DEFAULT_CHUNK_ROWS
 from veil.datasource import DEFAULT_EMBEDDINGS_KEY
 from veil.fitting import METHODS, method_parameters
-from veil.outofcore import DEFAULT_AUDIT_ROWS, DEFAULT_FIT_SAMPLE_ROWS
+from veil.outofcore import DEFAULT_AUDIT_ROWS, DEFAULT_FIT_SAMPLE_ROWS, ENGINES
 from veil.registry import DEFAULT_ALIAS
 from veil.streaming import DEFAULT_CHUNK_ROWS as DEFAULT_STREAM_CHUNK_ROWS
 
@@ -95,6 +95,14 @@ def build_parser() -> argparse.ArgumentParser:
         default=DEFAULT_FIT_SAMPLE_ROWS,
         help="when streaming, INLP logistic/svm and R-LACE fit on a hash sample of this many rows",
     )
+    fit.add_argument(
+        "--engine",
+        choices=ENGINES,
+        default="local",
+        help="where the streaming pass runs: this process, or dask.distributed workers (implies --stream)",
+    )
+    fit.add_argument("--scheduler", help="address of a running Dask scheduler (default: start a local cluster)")
+    fit.add_argument("--dask-workers", type=int, default=2, help="worker processes of the local Dask cluster")
     fit.set_defaults(handler="fit")
 
     versions = commands.add_parser(
