@@ -66,9 +66,13 @@ class LabelledSample:
 
     @property
     def fingerprint(self) -> str:
-        """One sha256 over every file's sha256, in path order."""
-        joined = "\n".join(f"{Path(path).name} {digest}" for path, digest in sorted(self.files.items()))
-        return hashlib.sha256(joined.encode()).hexdigest()
+        return fingerprint_of(self.files)
+
+
+def fingerprint_of(files: dict[str, str]) -> str:
+    """One sha256 over every file's name and sha256, in path order: the card's fingerprint of the fitting data."""
+    joined = "\n".join(f"{Path(path).name} {digest}" for path, digest in sorted(files.items()))
+    return hashlib.sha256(joined.encode()).hexdigest()
 
 
 def file_sha256(path: Path) -> str:

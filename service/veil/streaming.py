@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.datasource import PARQUET_SUFFIXES, check_embeddings, csv_columns, file_sha256
+from veil.datasource import PARQUET_SUFFIXES, check_embeddings, csv_columns, file_sha256, fingerprint_of
 from veil.errors import DataError
 from veil.progress import advance
 from veil.tables import embedding_matrix
@@ -67,10 +67,7 @@ class StreamedSample:
 
     @property
     def fingerprint(self) -> str:
-        import hashlib
-
-        joined = "\n".join(f"{Path(path).name} {digest}" for path, digest in sorted(self.files.items()))
-        return hashlib.sha256(joined.encode()).hexdigest()
+        return fingerprint_of(self.files)
 
 
 @dataclass(frozen=True)

@@ -42,15 +42,20 @@ class RequestRecorder:
             route = getattr(scope.get("route"), "path", "(unmatched)")
             self.metrics.requests.labels(route, scope["method"], str(status)).inc()
             self.metrics.latency.labels(route).observe(elapsed)
-            fields: dict[str, Any] = {
-                "method": scope["method"],
-                "route": route,
-                "status": status,
-                "ms": round(elapsed * 1000, 3),
-            }
-            name = scope.get("path_params", {}).get("name")
-            if name:
-                fields["eraser"] = name
-            if version:
-                fields["version"] = version
-            logger.info("request", extra={"fields": fields})
+            if logger.isEnabledFor(logging.INFO):
+                self._log(scope, route, status, elapsed, version)
+
+    @staticmethod
+    def _log(scope: Scope, route: str, status: int, elapsed: float, version: str) -> None:
+        fields: dict[str, Any] = {
+            "method": scope["method"],
+            "route": route,
+            "status": status,
+            "ms": round(elapsed * 1000, 3),
+        }
+        name = scope.get("path_params", {}).get("name")
+        if name:
+            fields["eraser"] = name
+        if version:
+            fields["version"] = version
+        logger.info("request", extra={"fields": fields})
