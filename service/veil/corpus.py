@@ -24,6 +24,7 @@ from veil.datasource import DEFAULT_EMBEDDINGS_KEY, PARQUET_SUFFIXES, file_sha25
 from veil.errors import DataError
 from veil.progress import advance
 from veil.registry import StoredVersion, current_user
+from veil.streaming import NpyFile
 from veil.tables import embedding_column, embedding_matrix
 
 DEFAULT_CHUNK_ROWS = 8192
@@ -57,22 +58,19 @@ def _temporary_beside(target: Path) -> Path:
 
 
 def _apply_npy(version: StoredVersion, source: Path, temporary: Path, chunk_rows: int) -> tuple[int, str]:
-    try:
-        data = np.load(source, mmap_mode="r", allow_pickle=False)
-    except (ValueError, OSError, EOFError) as error:
-        raise DataError(f"{source} is not a readable .npy array ({error})") from None
-    if data.ndim != 2:
-        raise DataError(f"{source}: embeddings must be a 2-D array, got shape {data.shape}")
-    _check_dim(version, data.shape[1], source)
+    # Explicit reads and writes, not memory maps: a mapped file's touched pages count as resident while cached.
+    data = NpyFile.open(source)
+    rows, dim = data.shape
+    _check_dim(version, dim, source)
     out_dtype = data.dtype if data.dtype in (np.float32, np.float64) else np.dtype(np.float32)
-    out = np.lib.format.open_memmap(temporary, mode="w+", dtype=out_dtype, shape=data.shape)
-    for start in range(0, data.shape[0], chunk_rows):
-        stop = min(start + chunk_rows, data.shape[0])
-        out[start:stop] = _clean_chunk(version, np.asarray(data[start:stop]), first_row=start, source=source)
-        advance("cleaning (rows)", stop, data.shape[0])
-    out.flush()
-    del out
-    return int(data.shape[0]), str(out_dtype)
+    with temporary.open("wb") as handle:
+        header = {"descr": np.lib.format.dtype_to_descr(out_dtype), "fortran_order": False, "shape": (rows, dim)}
+        np.lib.format.write_array_header_1_0(handle, header)
+        for start in range(0, rows, chunk_rows):
+            cleaned = _clean_chunk(version, data.read(start, chunk_rows), first_row=start, source=source)
+            np.ascontiguousarray(cleaned, dtype=out_dtype).tofile(handle)
+            advance("cleaning (rows)", min(start + chunk_rows, rows), rows)
+    return rows, str(out_dtype)
 
 
 def _apply_parquet(

@@ -71,7 +71,7 @@ class StreamedSample:
 
 
 @dataclass(frozen=True)
-class _NpyFile:
+class NpyFile:
     """A 2-D ``.npy`` read by explicit reads, chunk by chunk.
 
     Not memory-mapped: pages of a mapped file that a pass has touched stay in
@@ -86,7 +86,7 @@ class _NpyFile:
     offset: int
 
     @classmethod
-    def open(cls, path: Path) -> _NpyFile:
+    def open(cls, path: Path) -> NpyFile:
         try:
             with path.open("rb") as handle:
                 version = np.lib.format.read_magic(handle)
@@ -147,7 +147,7 @@ def _label_columns(labels: Path, keys: list[str], rows: int) -> dict[str, NDArra
 class NpyPartition:
     """Rows ``offset .. offset + rows - 1`` of one ``.npy`` file, global rows from ``start``, with their labels."""
 
-    file: _NpyFile
+    file: NpyFile
     offset: int
     rows: int
     start: int
@@ -161,7 +161,7 @@ class NpyPartition:
         return Chunk(start=self.start, embeddings=block, attribute=self.attribute, task=self.task)
 
 
-def _array_partitions(parts: list[_NpyFile], columns: dict[str, NDArray[Any]], attribute: str, task: str | None) -> Any:
+def _array_partitions(parts: list[NpyFile], columns: dict[str, NDArray[Any]], attribute: str, task: str | None) -> Any:
     def partitions(chunk_rows: int) -> list[NpyPartition]:
         found, start = [], 0
         for part in parts:
@@ -277,7 +277,7 @@ def open_stream(
             raise DataError(f"{source} holds no .npy shards")
         if labels is None:
             raise DataError(f"{source} holds embeddings only; give the labels file (.npy or .csv) too")
-        parts = [_NpyFile.open(shard) for shard in shards]
+        parts = [NpyFile.open(shard) for shard in shards]
         dims = {part.shape[1] for part in parts}
         if len(dims) > 1:
             raise DataError(f"{source}: the shards have different dimensions ({sorted(dims)})")
