@@ -24,6 +24,7 @@ from veil.postprocess import unit_normalize
 from veil.reference import REFERENCE_FILE, ReferenceStatistics
 from veil.registry import IntegrityError, NotFoundError, Registry, RegistryError, StoredVersion
 from veil.registry.errors import InvalidReferenceError
+from veil.registry.naming import parse_version_id
 from veil.server.errors import ServiceError
 from veil.server.metrics import ServiceMetrics
 from veil.thresholds import AlertThresholds
@@ -74,18 +75,18 @@ class ServedVersion:
         )
 
     def apply(self, x: NDArray[np.floating]) -> NDArray[np.floating]:
-        self._check_dim(x)
+        self.check_dim(x)
         return self.artifact.apply(x)
 
     def counterfactual(self, x: NDArray[np.floating], target: str) -> NDArray[np.floating]:
-        self._check_dim(x)
+        self.check_dim(x)
         if target not in self.classes:
             raise ServiceError("unknown_class", f"{target!r} is not a class of {self.name}; classes: {self.classes}")
         out = self.artifact.map.apply(x)
         out += self.shifts[self.classes.index(target)].astype(out.dtype)
         return unit_normalize(out) if self.artifact.normalize else out
 
-    def _check_dim(self, x: NDArray[np.floating]) -> None:
+    def check_dim(self, x: NDArray[np.floating]) -> None:
         if x.shape[1] != self.dim:
             raise ServiceError(
                 "wrong_dimension", f"{self.name} {self.version_id} expects {self.dim} dimensions, got {x.shape[1]}"
@@ -160,6 +161,13 @@ class Catalog:
             return current
         reference = version if version is not None else alias
         assert reference is not None
+        if version is not None and parse_version_id(version) is not None:
+            # A full id names immutable content: once loaded, it needs no registry read again.
+            with self._pinned_lock:
+                known = self._pinned.get((name, version))
+                if known is not None:
+                    self._pinned.move_to_end((name, version))
+                    return known
         try:
             version_id = self.registry.resolve(name, reference)
         except (NotFoundError, InvalidReferenceError) as error:

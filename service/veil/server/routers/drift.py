@@ -49,8 +49,7 @@ _DRIFT_BODY = {
 async def _run(
     served: ServedVersion, raw: NDArray[np.floating], labels: list[str] | None, metrics: ServiceMetrics
 ) -> dict[str, Any]:
-    if raw.shape[1] != served.dim:
-        raise ServiceError("wrong_dimension", f"{served.name} expects {served.dim} dimensions, got {raw.shape[1]}")
+    served.check_dim(raw)
     try:
         # Probes take a second or two: off the event loop.
         report = await run_in_threadpool(
