@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed-dev
 
-.PHONY: demo test lint typecheck unit bench clean
+.PHONY: demo test lint typecheck unit bench reliability clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -19,9 +19,14 @@ demo: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python benchmarks/run.py
 
+# Load, rollback under load, faults, kill -9 loops, bad input, fuzzing, security, at full size (a fast subset is in
+# `make test`). Loopback only; prints one table and writes the figures to reliability/results/latest.json.
+reliability: $(STAMP)
+	$(BIN)/python -m reliability.run --json reliability/results/latest.json
+
 lint: $(STAMP)
-	$(BIN)/ruff check service client tests scripts benchmarks
-	$(BIN)/ruff format --check service client tests scripts benchmarks
+	$(BIN)/ruff check service client tests scripts benchmarks reliability
+	$(BIN)/ruff format --check service client tests scripts benchmarks reliability
 
 typecheck: $(STAMP)
 	$(BIN)/mypy

@@ -2,14 +2,11 @@
 
 from __future__ import annotations
 
+import asyncio
 import io
 import json
-import os
 import shutil
-import signal
 import socket
-import subprocess
-import sys
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -17,28 +14,16 @@ from pathlib import Path
 import httpx
 import numpy as np
 import pytest
+import uvicorn
+from uvicorn.protocols.http.h11_impl import H11Protocol
+from uvicorn.server import ServerState
 
+from reliability.server import live_server, wait_until
 from veil.datasets import load_harbourline_profiles
 from veil.registry import Registry
+from veil.server.protocol import NoDelayH11Protocol
 
 from .service_fixtures import ADMIN_TOKEN, PROFILES, ServiceRegistry
-
-STARTUP_SECONDS = 60.0
-
-
-def free_port() -> int:
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return int(probe.getsockname()[1])
-
-
-def wait_until(predicate, timeout: float) -> bool:  # type: ignore[no-untyped-def]
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if predicate():
-            return True
-        time.sleep(0.1)
-    return False
 
 
 @pytest.fixture(params=[1, 2], ids=["one-worker", "two-workers"])
@@ -47,41 +32,10 @@ def server(
 ) -> Iterator[tuple[str, Path, Path]]:
     registry = tmp_path / "registry"
     shutil.copytree(service_registry.path, registry)
-    port = free_port()
     log = tmp_path / "server.log"
-    environment = {**os.environ, "VEIL_POLL_SECONDS": "0.5", "VEIL_ADMIN_TOKEN": ADMIN_TOKEN}
-    command = [
-        sys.executable,
-        "-m",
-        "veil.cli",
-        "serve",
-        "--registry",
-        str(registry),
-        "--port",
-        str(port),
-        "--name",
-        PROFILES,
-    ]
-    with log.open("wb") as sink:
-        process = subprocess.Popen(command, stdout=sink, stderr=subprocess.STDOUT, env=environment)
-    base = f"http://127.0.0.1:{port}"
-
-    def ready() -> bool:
-        try:
-            return httpx.get(f"{base}/readyz", timeout=1.0).status_code == 200
-        except httpx.TransportError:
-            return False
-
-    try:
-        assert wait_until(ready, STARTUP_SECONDS), log.read_text()
-        yield base, registry, log
-    finally:
-        process.send_signal(signal.SIGTERM)
-        try:
-            process.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
+    environment = {"VEIL_POLL_SECONDS": "0.5", "VEIL_ADMIN_TOKEN": ADMIN_TOKEN}
+    with live_server(registry, names=[PROFILES], log=log, workers=request.param, environment=environment) as live:
+        yield live.base_url, registry, log
 
 
 def test_a_real_server_answers_like_the_in_process_eraser(
@@ -143,3 +97,40 @@ def test_a_real_server_answers_like_the_in_process_eraser(
     text = log.read_text()
     assert ADMIN_TOKEN not in text
     assert f"{batch[0, 0]:.6f}"[:8] not in text
+
+
+async def no_app(scope: object, receive: object, send: object) -> None:
+    """The connections are checked before any request reaches an app."""
+
+
+@pytest.mark.parametrize(("protocol", "nodelay"), [(H11Protocol, False), (NoDelayH11Protocol, True)])
+def test_connections_on_the_multi_worker_socket_get_tcp_nodelay(protocol: type[H11Protocol], nodelay: bool) -> None:
+    # The socket uvicorn binds for --workers > 1 is made with a family only (protocol 0), and asyncio then leaves
+    # Nagle's algorithm on: plain h11 shows it (the control), our protocol turns it off.
+    async def accept_one() -> bool:
+        listener = socket.socket(family=socket.AF_INET)
+        listener.bind(("127.0.0.1", 0))
+        config = uvicorn.Config(app=no_app)
+        config.load()
+        seen: list[bool] = []
+
+        class Recording(protocol):  # type: ignore[misc, valid-type]
+            def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
+                super().connection_made(transport)
+                option = transport.get_extra_info("socket").getsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY)
+                seen.append(bool(option))
+
+        loop = asyncio.get_running_loop()
+        server = await loop.create_server(
+            lambda: Recording(config=config, server_state=ServerState(), app_state={}), sock=listener
+        )
+        _, writer = await asyncio.open_connection(*listener.getsockname())
+        for _ in range(100):
+            if seen:
+                break
+            await asyncio.sleep(0.01)
+        writer.close()
+        server.close()
+        return seen[0]
+
+    assert asyncio.run(accept_one()) is nodelay

@@ -106,8 +106,11 @@ class LocalStorage:
         return self._path(path).exists()
 
     def list(self, path: str) -> list[str]:
-        directory = self._path(path)
-        return sorted(entry.name for entry in directory.iterdir()) if directory.is_dir() else []
+        # Only a missing path lists as empty: a file in the way or a refused read is an error to report.
+        try:
+            return sorted(entry.name for entry in self._path(path).iterdir())
+        except FileNotFoundError:
+            return []
 
     def _temporary_beside(self, target: Path, data: bytes) -> Path:
         target.parent.mkdir(parents=True, exist_ok=True)

@@ -32,6 +32,16 @@ def _body(operation: dict[str, Any]) -> list[str]:
     return lines
 
 
+def _answers(operation: dict[str, Any]) -> str:
+    """The documented statuses, each error status with its codes."""
+    parts = []
+    for status, response in sorted(operation.get("responses", {}).items()):
+        schema = response.get("content", {}).get("application/json", {}).get("schema", {})
+        codes = schema.get("properties", {}).get("error", {}).get("properties", {}).get("code", {}).get("enum", [])
+        parts.append(f"{status}" + (f" ({', '.join(f'`{code}`' for code in codes)})" if codes else ""))
+    return "Answers: " + "; ".join(parts) + "."
+
+
 def render_api_reference() -> str:
     """Markdown for every route of the app, in path order: summary, parameters, request bodies, errors."""
     schema = create_app(ServiceSettings(registry="/not-read-when-rendering")).openapi()
@@ -60,6 +70,7 @@ def render_api_reference() -> str:
             body = _body(operation)
             if body:
                 lines += ["Request body:", "", *body, ""]
+            lines += [_answers(operation), ""]
     lines += ["## Error codes", "", "| status | code | meaning |", "| --- | --- | --- |"]
     lines += [
         f"| {status} | `{code}` | {meaning} |"

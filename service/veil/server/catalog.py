@@ -216,6 +216,7 @@ class Catalog:
                 try:
                     version_id = self.registry.resolve(name, self.alias)
                     if old is not None and old.version_id == version_id:
+                        self.metrics.reload_failing.labels(name).set(0)
                         continue
                     stored = self.registry.read_version(name, version_id)
                     dim = stored.artifact.map.dim
@@ -228,9 +229,11 @@ class Catalog:
                 except (RegistryError, OSError, ValueError, KeyError) as error:
                     failed[name] = str(error)
                     self.metrics.reload_failures.labels(name).inc()
+                    self.metrics.reload_failing.labels(name).set(1)
                     logger.warning("reload refused", extra={"fields": {"eraser": name, "problem": str(error)}})
                     continue
                 updated[name] = candidate
+                self.metrics.reload_failing.labels(name).set(0)
                 loaded.append(f"{name} {candidate.version_id}")
                 self.metrics.reloads.labels(name).inc()
                 self.metrics.served(name, self.alias, None if old is None else old.version_id, candidate.version_id)

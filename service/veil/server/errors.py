@@ -7,6 +7,7 @@ none reaches the client as a 500 with a traceback.
 from __future__ import annotations
 
 import logging
+from typing import Any
 
 import orjson
 from fastapi import FastAPI, Request
@@ -38,6 +39,33 @@ ERROR_CODES: dict[str, tuple[int, str]] = {
     "version_unavailable": (503, "the version could not be loaded or failed verification"),
     "not_ready": (503, "not every configured eraser is loaded"),
 }
+
+
+def error_responses(*codes: str) -> dict[int | str, dict[str, Any]]:
+    """The OpenAPI ``responses`` entries of these error codes (and ``internal_error``), grouped by status.
+
+    Each status documents exactly the codes a route can answer with it, so a
+    schema-driven fuzzer can tell a documented refusal from a surprise.
+    """
+    by_status: dict[int, list[str]] = {}
+    for code in (*codes, "internal_error"):
+        by_status.setdefault(ERROR_CODES[code][0], []).append(code)
+    responses: dict[int | str, dict[str, Any]] = {}
+    for status, group in sorted(by_status.items()):
+        error = {
+            "type": "object",
+            "required": ["code", "message"],
+            "properties": {"code": {"type": "string", "enum": group}, "message": {"type": "string"}},
+        }
+        responses[status] = {
+            "description": "; ".join(f"`{code}`: {ERROR_CODES[code][1]}" for code in group),
+            "content": {
+                "application/json": {
+                    "schema": {"type": "object", "required": ["error"], "properties": {"error": error}}
+                }
+            },
+        }
+    return responses
 
 
 class ServiceError(Exception):

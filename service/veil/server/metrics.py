@@ -32,6 +32,10 @@ class ServiceMetrics:
             "veil_reload_failures", "versions refused on reload (verification, dimension, I/O)", ["name"],
             registry=self.registry,
         )  # fmt: skip
+        self.reload_failing = Gauge(
+            "veil_reload_failing", "1 while the alias names a version this process refused (it serves the last good)",
+            ["name"], registry=self.registry,
+        )  # fmt: skip
         self.drift_status = Gauge(
             "veil_drift_status", "last drift check status: 0 ok, 1 warn, 2 alert", ["name"], registry=self.registry
         )

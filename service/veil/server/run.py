@@ -28,6 +28,7 @@ def serve_forever(*, registry: str, names: list[str], alias: str, host: str, por
         host=host,
         port=port,
         workers=workers,
+        http="veil.server.protocol:NoDelayH11Protocol",
         log_level=settings.log_level,
         access_log=False,  # the service writes its own JSON line per request
     )

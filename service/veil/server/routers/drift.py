@@ -21,10 +21,10 @@ from veil.server.dependencies import (
     get_reservoirs,
     require_data_token,
 )
-from veil.server.errors import ServiceError
+from veil.server.errors import ServiceError, error_responses
 from veil.server.metrics import DRIFT_LEVELS, ServiceMetrics
 from veil.server.reservoir import ReservoirBank
-from veil.server.routers.erasers import decode_batch, pick_version
+from veil.server.routers.erasers import BATCH_ERRORS, DATA_TOKEN_ERRORS, decode_batch, pick_version
 
 router = APIRouter(prefix="/v1/erasers", tags=["drift"])
 
@@ -72,6 +72,7 @@ async def _run(
     "/{name}/drift",
     summary="Drift and leakage of a posted sample of raw live embeddings (labels optional)",
     openapi_extra={"requestBody": _DRIFT_BODY, "parameters": BATCH_PARAMETERS},
+    responses=error_responses(*BATCH_ERRORS),
 )
 async def drift_of_sample(name: EraserName, request: Request) -> dict[str, Any]:
     call = await batch_call(request)
@@ -87,6 +88,7 @@ async def drift_of_sample(name: EraserName, request: Request) -> dict[str, Any]:
     "/{name}/drift",
     summary="Drift and leakage of the recent traffic this replica has seen (unlabelled)",
     dependencies=[Depends(require_data_token)],
+    responses=error_responses(*DATA_TOKEN_ERRORS, "unknown_eraser", "no_traffic", "invalid_request"),
 )
 async def drift_of_traffic(
     name: EraserName,

@@ -13,7 +13,7 @@ from starlette.responses import Response
 from veil.server.catalog import Catalog, ServedVersion
 from veil.server.codecs import JSON_MEDIA_TYPE, json_bytes, load_json, npy_bytes, parse_json_vectors, parse_npy
 from veil.server.dependencies import BATCH_PARAMETERS, EraserName, Pin, batch_call, get_catalog, require_data_token
-from veil.server.errors import ServiceError
+from veil.server.errors import ServiceError, error_responses
 
 router = APIRouter(prefix="/v1/erasers", tags=["erasers"])
 
@@ -34,12 +34,37 @@ def _batch_body(*, with_target: bool) -> dict[str, Any]:
     }
 
 
-_BATCH_RESPONSE: dict[int | str, dict[str, Any]] = {
-    200: {
-        "description": "the cleaned batch, in the format Accept names; X-Veil-Version names the version applied",
-        "content": {"application/x-npy": {"schema": {"type": "string", "format": "binary"}}},
-    }
+#: What a data route refuses when VEIL_DATA_TOKEN is set and the bearer token is missing or wrong.
+DATA_TOKEN_ERRORS = ("unauthorized", "forbidden")
+#: Every refusal of a route that reads a batch (:func:`batch_call`, :func:`decode_batch`, :func:`pick_version`).
+BATCH_ERRORS = (
+    "malformed_body", *DATA_TOKEN_ERRORS, "unknown_eraser", "unknown_version", "not_acceptable", "body_too_large",
+    "unsupported_media_type", "invalid_request", "invalid_vectors", "wrong_dimension", "version_unavailable",
+)  # fmt: skip
+VERSION_HEADERS = {
+    "X-Veil-Eraser": {"required": True, "schema": {"type": "string"}, "description": "the eraser applied"},
+    "X-Veil-Version": {"required": True, "schema": {"type": "string"}, "description": "the version applied"},
 }
+
+
+def batch_responses(*extra_errors: str) -> dict[int | str, dict[str, Any]]:
+    """The documented answers of a batch route: the cleaned batch in either format, or one of its errors."""
+    vectors = {"type": "array", "items": {"type": "array", "items": {"type": "number"}}}
+    cleaned = {
+        "description": "the cleaned batch, in the format Accept names; X-Veil-Version names the version applied",
+        "headers": VERSION_HEADERS,
+        "content": {
+            "application/json": {
+                "schema": {
+                    "type": "object",
+                    "required": ["version", "vectors"],
+                    "properties": {"version": {"type": "string"}, "vectors": vectors},
+                }
+            },
+            "application/x-npy": {"schema": {"type": "string", "format": "binary"}},
+        },
+    }
+    return {200: cleaned, **error_responses(*BATCH_ERRORS, *extra_errors)}
 
 
 def summary(served: ServedVersion, alias: str) -> dict[str, Any]:
@@ -55,12 +80,22 @@ def summary(served: ServedVersion, alias: str) -> dict[str, Any]:
     }
 
 
-@router.get("", summary="List the erasers served and their versions", dependencies=[Depends(require_data_token)])
+@router.get(
+    "",
+    summary="List the erasers served and their versions",
+    dependencies=[Depends(require_data_token)],
+    responses=error_responses(*DATA_TOKEN_ERRORS, "invalid_request"),
+)
 async def list_erasers(catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
     return {"erasers": [summary(s, catalog.alias) for _, s in sorted(catalog.served.items())]}
 
 
-@router.get("/{name}", summary="One served eraser, with its version's card", dependencies=[Depends(require_data_token)])
+@router.get(
+    "/{name}",
+    summary="One served eraser, with its version's card",
+    dependencies=[Depends(require_data_token)],
+    responses=error_responses(*DATA_TOKEN_ERRORS, "unknown_eraser", "invalid_request"),
+)
 async def show_eraser(name: EraserName, catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
     served = catalog.current(name)
     return {**summary(served, catalog.alias), "card": served.card}
@@ -96,7 +131,7 @@ async def pick_version(catalog: Catalog, name: str, pin: Pin) -> ServedVersion:
     "/{name}/apply",
     summary="Erase the attribute from a batch of embeddings",
     openapi_extra={"requestBody": _batch_body(with_target=False), "parameters": BATCH_PARAMETERS},
-    responses=_BATCH_RESPONSE,
+    responses=batch_responses(),
 )
 async def apply(name: EraserName, request: Request) -> Response:
     call = await batch_call(request)
@@ -113,7 +148,7 @@ async def apply(name: EraserName, request: Request) -> Response:
     "/{name}/counterfactual",
     summary="Erase, then give every vector the attribute component of a target class",
     openapi_extra={"requestBody": _batch_body(with_target=True), "parameters": BATCH_PARAMETERS},
-    responses=_BATCH_RESPONSE,
+    responses=batch_responses("unknown_class"),
 )
 async def counterfactual(
     name: EraserName,
