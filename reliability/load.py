@@ -58,13 +58,20 @@ def measure_load(base_url: str, registry: ServiceRegistry, cells: Sequence[LoadC
 
 
 def rollback_under_load(
-    base_url: str, registry: ServiceRegistry, *, cycles: int, clients: int, batch: int = 8, switch_timeout: float = 15.0
+    base_url: str,
+    registry: ServiceRegistry,
+    *,
+    cycles: int,
+    clients: int,
+    batch: int = 8,
+    dwell_s: float = 0.2,
+    switch_timeout: float = 15.0,
 ) -> Outcome:
     """Promote another version and roll back ``cycles`` times while ``clients`` post batches without pause.
 
-    Each move waits until an answer from the new version has been seen, so
-    every cycle is really served; every answer must match the version its
-    header names.
+    Each move waits until an answer from the new version has been seen, then
+    ``dwell_s`` more, so every cycle is really served; every answer must
+    match the version its header names.
     """
     store = Registry(registry.path)
     batches = sample_batches(batch)
@@ -100,6 +107,7 @@ def rollback_under_load(
                     moves += 1
                     if not await served_after(target, moment):
                         problems.append(f"cycle {cycle}: {target} was not served within {switch_timeout:.0f} s")
+                    await asyncio.sleep(dwell_s)
         finally:
             done = True
         return moves
