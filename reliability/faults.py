@@ -32,13 +32,12 @@ from veil.registry import Registry
 
 @dataclass(frozen=True)
 class Fault:
-    """A way to break the registry under a running service, and its repair."""
+    """A way to break the registry under a running service; injecting it returns its repair."""
 
     description: str
     #: The version the alias is moved to before the fault (None: the alias stays where it is).
     target: str | None
-    inject: Callable[[], None]
-    repair: Callable[[], None]
+    inject: Callable[[], Callable[[], None]]
     #: Whether the repaired alias names the target (else the repair moves the alias back).
     serves_target_after_repair: bool
 
@@ -101,37 +100,23 @@ def prepare_versions(registry: ServiceRegistry) -> tuple[str, str]:
 
 
 def faults_for(registry: ServiceRegistry, following: str, narrow: str) -> list[Fault]:
-    repairs: list[Callable[[], None]] = []
     folder = _version_dir(registry, following)
-
-    def deferred(inject: Callable[[], Callable[[], None]]) -> tuple[Callable[[], None], Callable[[], None]]:
-        def do() -> None:
-            repairs.append(inject())
-
-        def undo() -> None:
-            repairs.pop()()
-
-        return do, undo
-
-    def no_change() -> None:
-        return None
-
-    flip, unflip = deferred(lambda: flip_byte(folder / "arrays.npz"))
-    remove, put_back = deferred(lambda: delete_file(folder / "reference.npz"))
-    cut, uncut = deferred(lambda: truncate_file(folder / "card.json"))
-    lose, find = deferred(lambda: make_unreadable(registry.path))
     store = Registry(registry.path)
 
     def move_back() -> None:
         store.rollback(PROFILES, reason="the other dimension was refused", allow_dimension_change=True)
 
+    def refused_dimension() -> Callable[[], None]:
+        return move_back  # the fault is the alias move itself; the repair moves it back
+
     return [
-        Fault("flipped byte in the next version's arrays", following, flip, unflip, True),
-        Fault("file deleted from the next version", following, remove, put_back, True),
-        Fault("truncated card of the next version", following, cut, uncut, True),
-        Fault("alias moved to a version of another dimension", narrow, no_change, move_back, False),
-        Fault("registry unreadable (a file where its directory was)", None, lose, find, False),
-    ]
+        Fault("flipped byte in the next version's arrays", following, lambda: flip_byte(folder / "arrays.npz"), True),
+        Fault("file deleted from the next version", following, lambda: delete_file(folder / "reference.npz"), True),
+        Fault("truncated card of the next version", following, lambda: truncate_file(folder / "card.json"), True),
+        Fault("alias moved to a version of another dimension", narrow, refused_dimension, False),
+        Fault("registry unreadable (a file where its directory was)", None, lambda: make_unreadable(registry.path),
+              False),
+    ]  # fmt: skip
 
 
 def reload_failing_gauge(metrics_text: str, name: str) -> float | None:
@@ -161,7 +146,7 @@ def check_fault(client: httpx.Client, fault: Fault, registry: ServiceRegistry, *
     steps = _Steps()
     if fault.target is not None:
         store.promote(PROFILES, fault.target, reason=fault.description, allow_dimension_change=True)
-    fault.inject()
+    repair = fault.inject()
     try:
         reload = client.post("/v1/admin/reload")
         steps.expect(reload.status_code == 200, f"reload answered {reload.status_code}")
@@ -174,19 +159,20 @@ def check_fault(client: httpx.Client, fault: Fault, registry: ServiceRegistry, *
         steps.expect(PROFILES in ready.json().get("stale", []), "/readyz does not name the eraser as stale")
         gauge = reload_failing_gauge(client.get("/metrics").text, PROFILES)
         steps.expect(gauge == 1.0, f"veil_reload_failing is {gauge}, not 1")
-        applied = client.post(APPLY, json={"vectors": sample_batches(2, 1)[0].tolist()})
+        payload = {"vectors": sample_batches(2, 1)[0].tolist()}
+        applied = client.post(APPLY, json=payload)
         steps.expect(
             applied.status_code == 200 and applied.headers.get("x-veil-version") == good,
             f"apply answered {applied.status_code} {applied.headers.get('x-veil-version')}",
         )
         if fault.target is not None:
-            pinned = client.post(APPLY, params={"version": fault.target}, json={"vectors": [[0.0] * 384]})
+            pinned = client.post(APPLY, params={"version": fault.target}, json=payload)
             code = pinned.json().get("error", {}).get("code")
             steps.expect(code == "version_unavailable", f"a request pinned to it answered {pinned.status_code} {code}")
             steps.seen.append(f"pinned {pinned.status_code} {code}")
         steps.seen.insert(0, f"refused ({str(problem)[:60]}…)")
     finally:
-        fault.repair()
+        repair()
     repaired = client.post("/v1/admin/reload").json()
     expected_now = fault.target if fault.serves_target_after_repair else good
     steps.expect(not repaired.get("failed"), f"the reload after repair failed: {repaired.get('failed')}")

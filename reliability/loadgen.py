@@ -54,7 +54,6 @@ class LoadResult:
     latencies: list[float] = field(default_factory=list)
     errors: int = 0
     problems: list[str] = field(default_factory=list)
-    versions: Counter[str] = field(default_factory=Counter)
     #: The version header of each answer, in the order they arrived.
     sequence: list[str] = field(default_factory=list)
 
@@ -72,6 +71,10 @@ class LoadResult:
 
     def percentile_ms(self, q: float) -> float:
         return float(np.percentile(self.latencies, q) * 1000) if self.latencies else float("nan")
+
+    @property
+    def versions(self) -> Counter[str]:
+        return Counter(self.sequence)
 
     @property
     def switches(self) -> int:
@@ -156,7 +159,6 @@ async def run_load(
                 result.note(problem)
                 continue
             result.latencies.append(elapsed)
-            result.versions[version] += 1
             result.sequence.append(version)
 
     connections = [Connection(host, port) for _ in range(plan.clients)]

@@ -211,12 +211,12 @@ class Catalog:
             loaded: list[str] = []
             failed: dict[str, str] = {}
             updated = dict(self._served)
-            for name in self.wanted_names():
+            wanted = self.wanted_names()
+            for name in wanted:
                 old = updated.get(name)
                 try:
                     version_id = self.registry.resolve(name, self.alias)
                     if old is not None and old.version_id == version_id:
-                        self.metrics.reload_failing.labels(name).set(0)
                         continue
                     stored = self.registry.read_version(name, version_id)
                     dim = stored.artifact.map.dim
@@ -229,11 +229,9 @@ class Catalog:
                 except (RegistryError, OSError, ValueError, KeyError) as error:
                     failed[name] = str(error)
                     self.metrics.reload_failures.labels(name).inc()
-                    self.metrics.reload_failing.labels(name).set(1)
                     logger.warning("reload refused", extra={"fields": {"eraser": name, "problem": str(error)}})
                     continue
                 updated[name] = candidate
-                self.metrics.reload_failing.labels(name).set(0)
                 loaded.append(f"{name} {candidate.version_id}")
                 self.metrics.reloads.labels(name).inc()
                 self.metrics.served(name, self.alias, None if old is None else old.version_id, candidate.version_id)
@@ -241,4 +239,6 @@ class Catalog:
             # One assignment: requests see the old dict or the new one.
             self._served = updated
             self.failures = failed
+            for name in wanted:
+                self.metrics.reload_failing.labels(name).set(1 if name in failed else 0)
             return ReloadOutcome(loaded=loaded, failed=failed)
