@@ -1,9 +1,14 @@
-"""``kill -9`` of ``veil fit``, ``veil promote`` and ``veil rollback`` at random moments, in a loop.
+"""``kill -9`` of ``veil fit``, ``veil promote`` and ``veil rollback`` in a loop, in two ways.
 
-After every kill the registry must be consistent: every visible version
-verifies, every alias names a visible version, the history parses and names
-visible versions only.  The kill moments are drawn around each command's
-measured duration, so most kills land while it runs (the count is reported).
+Half the kills come at a random moment around the command's measured
+duration; most of those land while it starts or computes, since its writes
+take a few milliseconds at its end.  The other half wait until the command
+has begun writing (a fit's staging folder appears; a move's history event
+appears) and kill it within a few milliseconds.  After every kill the
+registry must be consistent: every visible version verifies, every alias
+names a visible version, the history names visible versions only.  What the
+killed writers left behind (staging folders, recorded but unfinished alias
+moves) is counted: none of it may be visible to readers.
 """
 
 from __future__ import annotations
@@ -14,13 +19,15 @@ import signal
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 
 from reliability.outcome import Outcome
 from reliability.workbench import planted_population
-from veil.registry import Registry, RegistryError
+from veil.registry import SEAL_FILE, Registry, RegistryError
+from veil.registry.storage import STAGING_DIR
 
 NAME = "crash-test"
 
@@ -45,6 +52,17 @@ def consistency_problems(registry: Registry, name: str = NAME) -> tuple[int, lis
     return len(visible), problems
 
 
+def traces_of_interrupted_writes(registry: Registry, name: str = NAME) -> set[str]:
+    """What writers killed mid-write left, invisible to readers: staged or unsealed versions, unfinished moves."""
+    partial = {f"partial {entry}" for entry in registry.storage.list(f"{name}/{STAGING_DIR}")}
+    partial |= {
+        f"partial {entry}"
+        for entry in registry.storage.list(f"{name}/versions")
+        if not registry.storage.exists(f"{name}/versions/{entry}/{SEAL_FILE}")
+    }
+    return partial | {f"unfinished move {e.event}" for e in registry.history(name) if not e.applied}
+
+
 def veil_command(*argv: str | Path) -> list[str]:
     return [sys.executable, "-m", "veil.cli", *(str(a) for a in argv)]
 
@@ -58,6 +76,31 @@ def kill_at(command: list[str], delay: float) -> bool:
         os.kill(process.pid, signal.SIGKILL)
     process.wait()
     return running
+
+
+def kill_when(command: list[str], writing: Callable[[], bool], delay: float, timeout: float = 60.0) -> bool:
+    """Start ``command``; once ``writing()`` is true, SIGKILL it ``delay`` seconds later.
+
+    True if it was killed while running; False if it ended first.
+    """
+    process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + timeout
+    while process.poll() is None and time.monotonic() < deadline:
+        if writing():
+            time.sleep(delay)
+            break
+        time.sleep(0.0002)
+    running = process.poll() is None
+    if running:
+        os.kill(process.pid, signal.SIGKILL)
+    process.wait()
+    return running
+
+
+def new_entry_in(folder: Path) -> Callable[[], bool]:
+    """True once ``folder`` holds an entry it did not hold when this was called."""
+    before = set(folder.iterdir()) if folder.is_dir() else set()
+    return lambda: folder.is_dir() and bool(set(folder.iterdir()) - before)
 
 
 def timed(command: list[str]) -> float:
@@ -81,7 +124,10 @@ def crash_loop(workdir: Path, *, trials: int, seed: int = 20261202) -> Outcome:
     rng = random.Random(seed)
     promote_seconds = timed(veil_command("promote", NAME, "1", "--registry", registry_path))
     killed = {"fit": 0, "promote": 0, "rollback": 0}
+    inside_writes = 0
     problems: list[str] = []
+    traces: set[str] = set()
+    staging, history = registry_path / NAME / STAGING_DIR, registry_path / NAME / "history"
     for trial in range(trials):
         if trial % 2 == 0:
             # Most of a short fit is start-up; the moments lean towards its end, where it writes.
@@ -92,7 +138,19 @@ def crash_loop(workdir: Path, *, trials: int, seed: int = 20261202) -> Outcome:
             argv = ("rollback", NAME) if kind == "rollback" else ("promote", NAME, rng.choice(versions))
             command = veil_command(*argv, "--registry", registry_path, "--reason", f"trial {trial}")
             delay = rng.uniform(0.5, 1.05) * promote_seconds
-        killed[kind] += kill_at(command, delay)
+        if (trial // 2) % 2 == 1:
+            # A fit's writes start with its staging folder; a move's with its history event, which the alias
+            # follows within a millisecond, so half the moves are killed the moment the event appears.
+            if kind == "fit":
+                writing, delay = new_entry_in(staging), rng.uniform(0.0, 0.004)
+            else:
+                writing, delay = new_entry_in(history), rng.choice([0.0, rng.uniform(0.0, 0.002)])
+            hit = kill_when(command, writing, delay)
+            inside_writes += hit
+        else:
+            hit = kill_at(command, delay)
+        killed[kind] += hit
+        traces |= traces_of_interrupted_writes(registry)
         _, found = consistency_problems(registry)
         problems += [f"after trial {trial} ({kind}): {p}" for p in found]
     # The registry still takes writes: an interrupted move is finished, a new promote works.
@@ -107,7 +165,10 @@ def crash_loop(workdir: Path, *, trials: int, seed: int = 20261202) -> Outcome:
         problems.append(f"only {hits} of {trials} kills hit a running process")
     figures = (
         f"{trials} kill -9 trials, {hits} hit a running process "
-        f"(fit {killed['fit']}, promote {killed['promote']}, rollback {killed['rollback']}); "
-        f"{count} versions, all verified, every alias on a verified version"
+        f"(fit {killed['fit']}, promote {killed['promote']}, rollback {killed['rollback']}; "
+        f"{inside_writes} once it had begun writing); {len(traces)} left traces of an interrupted write "
+        f"({sum(t.startswith('partial') for t in traces)} unsealed versions, "
+        f"{sum(t.startswith('unfinished') for t in traces)} unfinished moves, none visible to readers); "
+        f"{count} versions at the end, all verified, every alias on a verified version"
     )
     return Outcome("crash safety: kill -9 loop", not problems, figures, problems)
