@@ -21,7 +21,9 @@ from reliability.fuzz import fuzz_against
 from reliability.loadgen import LoadPlan, loopback_address, run_load
 from reliability.outcome import Outcome, format_table
 from reliability.run import GROUPS, QUICK, main
+from reliability.security import leaks_in_logs, logs_outcome
 from reliability.server import free_port, wait_until
+from reliability.workbench import ADMIN_TOKEN
 
 
 def assert_passed(outcomes: list[Outcome]) -> None:
@@ -31,7 +33,9 @@ def assert_passed(outcomes: list[Outcome]) -> None:
 
 @pytest.mark.parametrize("group", sorted(GROUPS))
 def test_each_check_passes_at_the_quick_size(group: str, tmp_path: Path) -> None:
-    assert_passed(GROUPS[group](tmp_path, QUICK))
+    outcomes = GROUPS[group](tmp_path, QUICK)
+    logs = sorted(tmp_path.glob("*.log"))
+    assert_passed([*outcomes, logs_outcome(logs, [ADMIN_TOKEN])] if logs else outcomes)
 
 
 def test_the_runner_prints_the_table_and_writes_the_figures(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -42,6 +46,12 @@ def test_the_runner_prints_the_table_and_writes_the_figures(tmp_path: Path, caps
     assert '"passed": true' in (tmp_path / "out.json").read_text()
     with pytest.raises(SystemExit):
         main(["--only", "nothing"])
+
+
+def test_the_log_check_finds_a_token_and_a_traceback(tmp_path: Path) -> None:
+    log = tmp_path / "server.log"
+    log.write_text(f'{{"event": "request"}}\nTraceback (most recent call last):\n  Bearer {ADMIN_TOKEN}\n')
+    assert leaks_in_logs([log], [ADMIN_TOKEN]) == ["server.log contains a secret", "server.log contains a traceback"]
 
 
 def test_the_load_generator_only_targets_loopback() -> None:
