@@ -69,13 +69,7 @@ def veil_command(*argv: str | Path) -> list[str]:
 
 def kill_at(command: list[str], delay: float) -> bool:
     """Start ``command``, SIGKILL it after ``delay`` seconds; True if it was still running when killed."""
-    process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    time.sleep(delay)
-    running = process.poll() is None
-    if running:
-        os.kill(process.pid, signal.SIGKILL)
-    process.wait()
-    return running
+    return kill_when(command, lambda: True, delay)
 
 
 def kill_when(command: list[str], writing: Callable[[], bool], delay: float, timeout: float = 60.0) -> bool:

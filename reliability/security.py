@@ -29,15 +29,20 @@ def unpickling_lines(packages: Iterable[Path] = PACKAGES) -> list[str]:
     return offenders
 
 
+def _leaks(name: str, text: str, secrets: Sequence[str]) -> list[str]:
+    found = [f"{name} contains a secret" for secret in secrets if secret in text]
+    if "Traceback (most recent call last)" in text:
+        found.append(f"{name} contains a traceback")
+    return found
+
+
+def _read(log: Path) -> str:
+    return log.read_text(encoding="utf-8", errors="replace")
+
+
 def leaks_in_logs(logs: Sequence[Path], secrets: Sequence[str]) -> list[str]:
     """Secrets or tracebacks found in server logs."""
-    found = []
-    for log in logs:
-        text = log.read_text(encoding="utf-8", errors="replace")
-        found += [f"{log.name} contains a secret" for secret in secrets if secret in text]
-        if "Traceback (most recent call last)" in text:
-            found.append(f"{log.name} contains a traceback")
-    return found
+    return [leak for log in logs for leak in _leaks(log.name, _read(log), secrets)]
 
 
 def cors_refused(base_url: str) -> list[str]:
@@ -58,7 +63,8 @@ def code_and_cors_outcome(base_url: str) -> Outcome:
 
 
 def logs_outcome(logs: Sequence[Path], secrets: Sequence[str]) -> Outcome:
-    problems = leaks_in_logs(logs, secrets)
-    lines = sum(len(log.read_text(encoding="utf-8", errors="replace").splitlines()) for log in logs)
+    texts = {log.name: _read(log) for log in logs}
+    problems = [leak for name, text in texts.items() for leak in _leaks(name, text, secrets)]
+    lines = sum(len(text.splitlines()) for text in texts.values())
     figures = f"{len(logs)} server logs, {lines:,} lines, searched for the admin token and for tracebacks"
     return Outcome("security: server logs", not problems, figures, problems)
