@@ -1,0 +1,43 @@
+"""Versions written by an older release stay readable: cards record method keys, never class names."""
+
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from veil.registry import Registry
+
+from .test_cli import run
+
+FIXTURE = Path(__file__).parent / "fixtures" / "registry_0_1"
+VERSIONS = {"v0001": "leace", "v0002": "inlp"}
+
+
+@pytest.fixture
+def registry_path(tmp_path: Path) -> Path:
+    # A copy: a registry takes a lock file on writes, and the committed files must never change.
+    return Path(shutil.copytree(FIXTURE / "registry", tmp_path / "registry"))
+
+
+def test_versions_of_the_older_release_verify_and_apply_as_they_did(registry_path: Path) -> None:
+    registry = Registry(registry_path)
+    assert all(result.ok for result in registry.verify("legacy"))
+    x = np.load(FIXTURE / "sample.npz")["embedding"]
+    with np.load(FIXTURE / "expected.npz") as expected:
+        for number, method in VERSIONS.items():
+            stored = registry.read_version("legacy", number)
+            assert stored.card["method"] == method
+            assert stored.artifact.method == method
+            np.testing.assert_allclose(stored.artifact.apply(x), expected[number], rtol=1e-6, atol=1e-6)
+
+
+def test_aliases_and_history_of_the_older_release_read_back(registry_path: Path) -> None:
+    registry = Registry(registry_path)
+    assert registry.resolve("legacy", "live").startswith("v0001-")
+    assert [event.action for event in registry.history("legacy")] == ["promote", "promote", "rollback"]
+    shown = run("show", "legacy", "live", "--registry", str(registry_path))
+    assert shown.code == 0
+    assert "leace" in shown.out
