@@ -43,7 +43,7 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from threadpoolctl import threadpool_info
 
-from veil import INLPEraser, LeaceEraser
+from veil import INLP, LEACE
 from veil.datasets import load_harbourline_profiles
 from veil.datasource import LabelledSample
 from veil.fitting import fit_version
@@ -273,7 +273,7 @@ def bench_fit() -> list[Row]:
     x = rng.normal(size=(n, d)).astype(np.float32)
     z = rng.integers(0, 2, n)
     x[:, 0] += z
-    fit = median_seconds(lambda: LeaceEraser().fit(x, z), repeat=5)
+    fit = median_seconds(lambda: LEACE().fit(x, z), repeat=5)
     gram32 = median_seconds(lambda: x.T @ x, repeat=5)
 
     def gram64() -> np.ndarray:
@@ -315,7 +315,7 @@ def bench_inlp() -> list[Row]:
     for classifier in ("moments", "logistic"):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ConvergenceWarning)
-            eraser = INLPEraser(classifier=classifier, max_iter=60, patience=3, validation_fraction=0.3, random_state=0)
+            eraser = INLP(classifier=classifier, max_iter=60, patience=3, validation_fraction=0.3, random_state=0)
             seconds = median_seconds(lambda eraser=eraser: eraser.fit(x_fit, z_fit), repeat=3)
         probe = make_pipeline(
             VarianceThreshold(1e-12 * float(np.mean(np.var(x_fit, axis=0)))),

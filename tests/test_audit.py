@@ -11,7 +11,7 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import StratifiedKFold, cross_val_predict
 from sklearn.neighbors import NearestNeighbors
 
-from veil import LeaceEraser
+from veil import LEACE
 from veil.audit import AuditReport, ProbeScore, RegressionScore, audit, fit_and_audit, geometry
 from veil.audit.stats import wilson_interval
 
@@ -58,7 +58,7 @@ def test_relative_distortion_and_cosine_of_a_known_move() -> None:
 def test_audit_probe_matches_a_plain_scikit_learn_cross_validation() -> None:
     x, z = planted(n=1500, d=10, seed=3)
     x = x + np.random.default_rng(3).normal(scale=2.0, size=x.shape)  # weaken the signal: accuracy below 1
-    eraser = LeaceEraser().fit(x[:750], z[:750])
+    eraser = LEACE().fit(x[:750], z[:750])
     report = audit(eraser, x[750:], z[750:], nonlinear=False, random_state=0)
     before = report.leakage.linear_before
     assert isinstance(before, ProbeScore)
@@ -75,7 +75,7 @@ def test_audit_probe_matches_a_plain_scikit_learn_cross_validation() -> None:
 def test_audit_of_planted_data_shows_leakage_removed_and_utility_kept() -> None:
     x, z = planted(n=8000, d=12, seed=4)
     task = (x[:, 0] + x[:, 1] > 0).astype(int)
-    _, report = fit_and_audit(LeaceEraser(), x, z, task=task, holdout=0.5, random_state=0)
+    _, report = fit_and_audit(LEACE(), x, z, task=task, holdout=0.5, random_state=0)
     before, after = report.leakage.linear_before, report.leakage.linear_after
     assert isinstance(before, ProbeScore)
     assert isinstance(after, ProbeScore)
@@ -95,7 +95,7 @@ def test_a_continuous_attribute_is_probed_with_ridge_r2() -> None:
     rng = np.random.default_rng(5)
     age = rng.uniform(20, 70, size=4000)
     x = rng.normal(size=(4000, 8)) + np.outer(age - 45, rng.normal(size=8)) * 0.05
-    _, report = fit_and_audit(LeaceEraser(), x, age[:, None], holdout=0.5, nonlinear=False)
+    _, report = fit_and_audit(LEACE(), x, age[:, None], holdout=0.5, nonlinear=False)
     assert isinstance(report.leakage.linear_before, RegressionScore)
     assert isinstance(report.leakage.linear_after, RegressionScore)
     assert report.leakage.linear_before.r2 > 0.5
@@ -104,7 +104,7 @@ def test_a_continuous_attribute_is_probed_with_ridge_r2() -> None:
 
 def test_report_round_trips_through_json() -> None:
     x, z = planted(n=1200, d=6, seed=6)
-    _, report = fit_and_audit(LeaceEraser(), x, z, task=(x[:, 0] > 0).astype(int), nonlinear=True)
+    _, report = fit_and_audit(LEACE(), x, z, task=(x[:, 0] > 0).astype(int), nonlinear=True)
     text = report.to_json()
     assert AuditReport.from_json(text) == report
     assert json.loads(text)["leakage"]["linear_after"]["n"] == report.n_heldout
@@ -112,7 +112,7 @@ def test_report_round_trips_through_json() -> None:
 
 
 def test_audit_notes_dead_coordinates_of_real_embeddings(profiles) -> None:  # type: ignore[no-untyped-def]
-    eraser = LeaceEraser().fit(profiles.x_fit, profiles.z_fit)
+    eraser = LEACE().fit(profiles.x_fit, profiles.z_fit)
     report = audit(eraser, profiles.x_held, profiles.z_held, nonlinear=False)
     assert any("almost no spread" in note for note in report.notes)
     after = report.leakage.linear_after

@@ -6,12 +6,12 @@ import numpy as np
 import pytest
 from sklearn.exceptions import NotFittedError
 
-from veil import INLPEraser, LeaceEraser, MeanProjectionEraser, RLACEEraser
-from veil.erasers import BaseEraser
+from veil import INLP, LEACE, RLACE, MeanProjection
+from veil.erasers import LinearErasure
 
 from .conftest import planted
 
-ALL = [LeaceEraser, MeanProjectionEraser, INLPEraser, RLACEEraser]
+ALL = [LEACE, MeanProjection, INLP, RLACE]
 
 
 def _good() -> tuple[np.ndarray, np.ndarray]:
@@ -32,7 +32,7 @@ def _good() -> tuple[np.ndarray, np.ndarray]:
         (lambda x, z: (x, np.where(np.arange(200) == 0, np.nan, z.astype(float))), "labels contain NaN"),
     ],
 )
-def test_bad_fitting_input_is_refused_clearly(factory: type[BaseEraser], mutate, message: str) -> None:  # type: ignore[no-untyped-def]
+def test_bad_fitting_input_is_refused_clearly(factory: type[LinearErasure], mutate, message: str) -> None:  # type: ignore[no-untyped-def]
     x, z = _good()
     bad_x, bad_z = mutate(x, z)
     with pytest.raises(ValueError, match=message):
@@ -40,15 +40,15 @@ def test_bad_fitting_input_is_refused_clearly(factory: type[BaseEraser], mutate,
 
 
 @pytest.mark.parametrize("factory", ALL)
-def test_wrong_feature_count_at_transform_is_refused(factory: type[BaseEraser]) -> None:
+def test_wrong_feature_count_at_transform_is_refused(factory: type[LinearErasure]) -> None:
     x, z = _good()
-    eraser = factory().fit(x, z) if factory is not RLACEEraser else RLACEEraser(max_iter=5).fit(x, z)
+    eraser = factory().fit(x, z) if factory is not RLACE else RLACE(max_iter=5).fit(x, z)
     with pytest.raises(ValueError, match=r"X has 4 features, but .* is expecting 5 features"):
         eraser.transform(x[:, :4])
 
 
 @pytest.mark.parametrize("factory", ALL)
-def test_transform_before_fit_is_refused(factory: type[BaseEraser]) -> None:
+def test_transform_before_fit_is_refused(factory: type[LinearErasure]) -> None:
     with pytest.raises(NotFittedError):
         factory().transform(np.zeros((2, 3)))
 
@@ -56,33 +56,33 @@ def test_transform_before_fit_is_refused(factory: type[BaseEraser]) -> None:
 def test_rank_larger_than_possible_is_refused() -> None:
     x, z = _good()
     with pytest.raises(ValueError, match="rank 5 is too large: it must be below the dimension 5"):
-        RLACEEraser(rank=5).fit(x, z)
+        RLACE(rank=5).fit(x, z)
     with pytest.raises(ValueError, match="rank must be a positive integer"):
-        RLACEEraser(rank=0).fit(x, z)
+        RLACE(rank=0).fit(x, z)
 
 
 def test_classifier_erasers_refuse_a_numeric_attribute_matrix() -> None:
     x, z = _good()
     with pytest.raises(ValueError, match="needs 1-D class labels"):
-        INLPEraser().fit(x, np.column_stack([z, 1 - z]).astype(float))
+        INLP().fit(x, np.column_stack([z, 1 - z]).astype(float))
 
 
 def test_mixed_label_types_are_refused() -> None:
     x, _ = _good()
     labels = np.array(["a", 1] * 100, dtype=object)
     with pytest.raises(ValueError, match="all strings or all integers"):
-        LeaceEraser().fit(x, labels)
+        LEACE().fit(x, labels)
 
 
 def test_unknown_inlp_classifier_is_refused() -> None:
     x, z = _good()
     with pytest.raises(ValueError, match="classifier must be one of"):
-        INLPEraser(classifier="forest").fit(x, z)
+        INLP(classifier="forest").fit(x, z)
 
 
 def test_partial_fit_does_not_serve_until_two_classes_are_seen() -> None:
     x, z = _good()
-    eraser = LeaceEraser().partial_fit(x[z == 0], z[z == 0])
+    eraser = LEACE().partial_fit(x[z == 0], z[z == 0])
     with pytest.raises(NotFittedError):
         eraser.transform(x)
     eraser.partial_fit(x[z == 1], z[z == 1])

@@ -9,17 +9,17 @@ import pytest
 from numpy.typing import NDArray
 from sklearn.exceptions import ConvergenceWarning
 
-from veil import INLPEraser, LeaceEraser, MeanProjectionEraser, MomentState
+from veil import INLP, LEACE, MeanProjection, MomentState
 from veil import moments as moments_module
 from veil._validation import encode_attribute
-from veil.erasers import BaseEraser
+from veil.erasers import LinearErasure
 
 from .conftest import planted
 
 RTOL = 1e-9
 
 
-def _assert_same_map(a: BaseEraser, b: BaseEraser, x: NDArray[np.float64]) -> None:
+def _assert_same_map(a: LinearErasure, b: LinearErasure, x: NDArray[np.float64]) -> None:
     # U and V are defined up to a rotation of the basis; the map itself is unique.
     assert a.rank_ == b.rank_
     ua, ub = a.map_.u @ a.map_.v.T, b.map_.u @ b.map_.v.T
@@ -29,9 +29,9 @@ def _assert_same_map(a: BaseEraser, b: BaseEraser, x: NDArray[np.float64]) -> No
     assert np.linalg.norm(ta - tb) <= RTOL * np.linalg.norm(ta)
 
 
-@pytest.mark.parametrize("factory", [LeaceEraser, MeanProjectionEraser])
+@pytest.mark.parametrize("factory", [LEACE, MeanProjection])
 @pytest.mark.parametrize("chunk", [1, 7, 250, 1000])
-def test_partial_fit_over_chunks_equals_fit(factory: type[BaseEraser], chunk: int) -> None:
+def test_partial_fit_over_chunks_equals_fit(factory: type[LinearErasure], chunk: int) -> None:
     x, z = planted(n=1200, d=9, seed=2)
     x = x + 1e3  # an offset far from zero: the pairwise update must not lose digits
     whole = factory().fit(x, z)
@@ -45,8 +45,8 @@ def test_classes_may_first_appear_in_later_chunks() -> None:
     x, z = planted(n=900, d=6, seed=3)
     labels = np.array(["a", "b", "c"])[np.where(z == 1, 2, np.arange(900) % 2)]
     order = np.argsort(labels, kind="stable")  # all "a" rows, then "b", then "c"
-    whole = LeaceEraser().fit(x, labels)
-    streamed = LeaceEraser()
+    whole = LEACE().fit(x, labels)
+    streamed = LEACE()
     for rows in np.array_split(order, 9):
         streamed.partial_fit(x[rows], labels[rows])
     _assert_same_map(whole, streamed, x)
@@ -57,8 +57,8 @@ def test_merging_two_partial_states_equals_one_fit() -> None:
     x, z = planted(n=1000, d=8, seed=4)
     left = MomentState.from_batch(x[:370], encode_attribute(z[:370], 370))
     right = MomentState.from_batch(x[370:], encode_attribute(z[370:], 630))
-    merged = LeaceEraser().fit_moments(left.merge(right))
-    _assert_same_map(LeaceEraser().fit(x, z), merged, x)
+    merged = LEACE().fit_moments(left.merge(right))
+    _assert_same_map(LEACE().fit(x, z), merged, x)
 
 
 def test_merged_moments_match_numpy_statistics() -> None:
@@ -74,8 +74,8 @@ def test_merged_moments_match_numpy_statistics() -> None:
 
 def test_inlp_moments_partial_fit_equals_fit() -> None:
     x, z = planted(n=4000, d=10, seed=6)
-    whole = INLPEraser(classifier="moments", max_iter=8, tol=0.0, random_state=3).fit(x, z)
-    streamed = INLPEraser(classifier="moments", max_iter=8, tol=0.0, random_state=3)
+    whole = INLP(classifier="moments", max_iter=8, tol=0.0, random_state=3).fit(x, z)
+    streamed = INLP(classifier="moments", max_iter=8, tol=0.0, random_state=3)
     for rows in np.array_split(np.arange(4000), 13):
         streamed.partial_fit(x[rows], z[rows])
     _assert_same_map(whole, streamed, x)
@@ -83,27 +83,27 @@ def test_inlp_moments_partial_fit_equals_fit() -> None:
 
 
 def test_partial_fit_is_only_offered_by_the_moments_classifier() -> None:
-    assert hasattr(INLPEraser(classifier="moments"), "partial_fit")
-    assert not hasattr(INLPEraser(classifier="logistic"), "partial_fit")
+    assert hasattr(INLP(classifier="moments"), "partial_fit")
+    assert not hasattr(INLP(classifier="logistic"), "partial_fit")
 
 
 def test_the_same_attribute_of_another_type_cannot_be_merged() -> None:
     x, _ = planted(n=40, d=3)
-    eraser = LeaceEraser().partial_fit(x[:20], np.arange(20) % 2)
+    eraser = LEACE().partial_fit(x[:20], np.arange(20) % 2)
     with pytest.raises(ValueError, match="changed type"):
         eraser.partial_fit(x[20:], np.array(["a", "b"] * 10))
 
 
 def test_only_a_whole_fit_warns_that_inlp_did_not_converge() -> None:
     x, z = planted(n=2000, d=10, seed=7)
-    streamed = INLPEraser(classifier="moments", max_iter=1, tol=0.0, random_state=0)
+    streamed = INLP(classifier="moments", max_iter=1, tol=0.0, random_state=0)
     with warnings.catch_warnings():
         warnings.simplefilter("error", ConvergenceWarning)
         for rows in np.array_split(np.arange(2000), 4):
             streamed.partial_fit(x[rows], z[rows])
     assert not streamed.converged_
     with pytest.warns(ConvergenceWarning, match="raise max_iter"):
-        INLPEraser(classifier="moments", max_iter=1, tol=0.0, random_state=0).fit(x, z)
+        INLP(classifier="moments", max_iter=1, tol=0.0, random_state=0).fit(x, z)
 
 
 def test_large_batches_are_taken_in_blocks_with_the_same_moments(monkeypatch: pytest.MonkeyPatch) -> None:

@@ -17,7 +17,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import veil
-from veil import LeaceEraser
+from veil import LEACE
 from veil.cli import main
 from veil.datasets import SAMPLE_FILE, load_harbourline_profiles
 from veil.registry import SEAL_FILE, Registry
@@ -117,7 +117,7 @@ def test_the_stored_leace_version_is_the_eraser_fitted_on_the_non_held_out_rows(
     sample = load_harbourline_profiles()
     codes = np.unique(sample.pronoun, return_inverse=True)[1]
     held = give_every_class_both_parts(holdout_mask(codes.size, fraction=0.2, seed=0), codes)
-    expected = LeaceEraser().fit(sample.embedding[~held], sample.pronoun[~held])
+    expected = LEACE().fit(sample.embedding[~held], sample.pronoun[~held])
     stored = Registry(fitted.registry).read_version(NAME, fitted.ids["leace"])
     np.testing.assert_allclose(stored.artifact.apply(sample.embedding), expected.transform(sample.embedding), atol=1e-6)
     card = stored.card

@@ -8,7 +8,7 @@ from typing import Any
 import pytest
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
-from veil import INLPEraser, LeaceEraser, MeanProjectionEraser, RLACEEraser
+from veil import INLP, LEACE, RLACE, MeanProjection
 
 # Checks that do not apply to an eraser supervised by an attribute, each with why.
 NOT_APPLICABLE = {
@@ -25,18 +25,18 @@ def _skip_reason(estimator: Any, check: Callable[..., Any]) -> str | None:
     name = getattr(check, "func", check).__name__
     if name == "check_fit_score_takes_y":
         return NOT_APPLICABLE[name]
-    if name == "check_fit2d_1feature" and isinstance(estimator, RLACEEraser):
+    if name == "check_fit2d_1feature" and isinstance(estimator, RLACE):
         return NOT_APPLICABLE[name]
     return None
 
 
 @parametrize_with_checks(
     [
-        LeaceEraser(),
-        MeanProjectionEraser(),
-        INLPEraser(max_iter=3, random_state=0),
-        INLPEraser(classifier="moments", max_iter=3, random_state=0),
-        RLACEEraser(rank=1, max_iter=5, random_state=0),
+        LEACE(),
+        MeanProjection(),
+        INLP(max_iter=3, random_state=0),
+        INLP(classifier="moments", max_iter=3, random_state=0),
+        RLACE(rank=1, max_iter=5, random_state=0),
     ]
 )
 def test_scikit_learn_estimator_checks(estimator: Any, check: Callable[..., Any]) -> None:

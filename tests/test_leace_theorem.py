@@ -14,8 +14,8 @@ from hypothesis import strategies as st
 from numpy.typing import NDArray
 from scipy import linalg
 
-from veil import INLPEraser, LeaceEraser, MeanProjectionEraser
-from veil.erasers import BaseEraser
+from veil import INLP, LEACE, MeanProjection
+from veil.erasers import LinearErasure
 
 
 def _data(seed: int, n: int, d: int, classes: int) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
@@ -32,11 +32,11 @@ def _cross_covariance(x: NDArray[np.floating], z: NDArray[np.int64]) -> NDArray[
     return (x - x.mean(0)).T @ (onehot - onehot.mean(0)) / x.shape[0]
 
 
-def _distortion(eraser: BaseEraser, x: NDArray[np.float64]) -> float:
+def _distortion(eraser: LinearErasure, x: NDArray[np.float64]) -> float:
     return float(np.mean(np.sum((eraser.transform(x) - x) ** 2, axis=1)))
 
 
-def _is_guarded(eraser: BaseEraser, x: NDArray[np.float64], z: NDArray[np.int64]) -> bool:
+def _is_guarded(eraser: LinearErasure, x: NDArray[np.float64], z: NDArray[np.int64]) -> bool:
     before = np.linalg.norm(_cross_covariance(x, z))
     return bool(np.linalg.norm(_cross_covariance(eraser.transform(x), z)) <= 1e-8 * before)
 
@@ -49,7 +49,7 @@ cases = st.tuples(st.integers(0, 2**31 - 1), st.integers(60, 400), st.integers(2
 def test_erased_class_means_coincide_and_cross_covariance_vanishes(case: tuple[int, int, int, int]) -> None:
     seed, n, d, classes = case
     x, z = _data(seed, n, d, classes)
-    erased = LeaceEraser().fit(x, z).transform(x)
+    erased = LEACE().fit(x, z).transform(x)
     scale = np.linalg.norm(_cross_covariance(x, z))
     assert np.linalg.norm(_cross_covariance(erased, z)) <= 1e-8 * scale
     means = np.stack([erased[z == c].mean(0) for c in range(classes)])
@@ -62,11 +62,11 @@ def test_erased_class_means_coincide_and_cross_covariance_vanishes(case: tuple[i
 def test_no_guarded_eraser_here_moves_the_data_less(case: tuple[int, int, int, int], extra: int) -> None:
     seed, n, d, classes = case
     x, z = _data(seed, n, d, classes)
-    leace = LeaceEraser().fit(x, z)
+    leace = LEACE().fit(x, z)
     assert _is_guarded(leace, x, z)
-    rivals: list[BaseEraser] = [
-        MeanProjectionEraser().fit(x, z),
-        INLPEraser(classifier="moments", max_iter=d, tol=0.0, random_state=seed).fit(x, z),
+    rivals: list[LinearErasure] = [
+        MeanProjection().fit(x, z),
+        INLP(classifier="moments", max_iter=d, tol=0.0, random_state=seed).fit(x, z),
     ]
     for rival in rivals:
         if _is_guarded(rival, x, z):
@@ -89,7 +89,7 @@ def test_rank_deficient_covariance_is_handled() -> None:
     z = np.arange(30) % 2
     base = rng.normal(size=(30, 40)) + 2.0 * z[:, None]
     x = np.column_stack([base, base[:, :5]])
-    eraser = LeaceEraser().fit(x, z)
+    eraser = LEACE().fit(x, z)
     erased = eraser.transform(x)
     assert np.all(np.isfinite(erased))
     assert np.linalg.norm(_cross_covariance(erased, z)) <= 1e-8 * np.linalg.norm(_cross_covariance(x, z))

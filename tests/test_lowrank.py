@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from veil import AffineLowRankMap, LeaceEraser, MeanProjectionEraser
+from veil import LEACE, AffineLowRankMap, MeanProjection
 
 from .conftest import planted
 
@@ -24,7 +24,7 @@ def test_factored_apply_equals_the_dense_affine_map() -> None:
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
 def test_transform_keeps_the_input_float_dtype(dtype: type[np.floating]) -> None:
     x, z = planted(n=400, d=8)
-    eraser = LeaceEraser().fit(x, z)
+    eraser = LEACE().fit(x, z)
     out = eraser.transform(x.astype(dtype))
     assert out.dtype == dtype
     np.testing.assert_allclose(out, eraser.transform(x), rtol=1e-4 if dtype == np.float32 else 1e-12, atol=1e-4)
@@ -32,7 +32,7 @@ def test_transform_keeps_the_input_float_dtype(dtype: type[np.floating]) -> None
 
 def test_integer_input_is_erased_in_float64() -> None:
     x, z = planted(n=400, d=8)
-    eraser = LeaceEraser().fit(np.round(x * 10).astype(np.int64), z)
+    eraser = LEACE().fit(np.round(x * 10).astype(np.int64), z)
     assert eraser.transform(np.round(x * 10).astype(np.int64)).dtype == np.float64
 
 
@@ -48,7 +48,7 @@ def test_map_refuses_inconsistent_shapes_and_non_finite_values() -> None:
 
 def test_counterfactual_moves_every_row_to_the_target_class_mean() -> None:
     x, z = planted(n=3000, d=6, seed=1)
-    eraser = LeaceEraser().fit(x, z)
+    eraser = LEACE().fit(x, z)
     for target in (0, 1):
         moved = eraser.counterfactual(x, target)
         # Every row now carries the target class's attribute component, so the
@@ -62,7 +62,7 @@ def test_counterfactual_of_a_numeric_attribute_follows_its_regression() -> None:
     rng = np.random.default_rng(2)
     age = rng.uniform(20, 70, size=2000)
     x = rng.normal(size=(2000, 5)) + np.outer(age, [0.05, 0.0, -0.02, 0.0, 0.0])
-    eraser = MeanProjectionEraser().fit(x, age[:, None])
+    eraser = MeanProjection().fit(x, age[:, None])
     moved = eraser.counterfactual(x, [40.0])
     slope = np.linalg.lstsq(np.column_stack([np.ones(2000), age]), x, rcond=None)[0]
     np.testing.assert_allclose(moved.mean(0), slope[0] + 40.0 * slope[1], atol=1e-9)
@@ -70,7 +70,7 @@ def test_counterfactual_of_a_numeric_attribute_follows_its_regression() -> None:
 
 def test_normalize_returns_unit_rows_and_is_what_the_artifact_serves() -> None:
     x, z = planted(n=500, d=8)
-    eraser = LeaceEraser(normalize=True).fit(x, z)
+    eraser = LEACE(normalize=True).fit(x, z)
     out = eraser.transform(x)
     np.testing.assert_allclose(np.linalg.norm(out, axis=1), 1.0, rtol=1e-12)
     np.testing.assert_allclose(eraser.export().apply(x), out, rtol=1e-12)

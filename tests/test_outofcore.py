@@ -11,7 +11,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from veil import INLPEraser, LeaceEraser, MeanProjectionEraser
+from veil import INLP, LEACE, MeanProjection
 from veil.errors import DataError
 from veil.outofcore import fit_version_streaming
 from veil.registry import Registry
@@ -44,7 +44,7 @@ def fit_rows(holdout: float = 0.2, seed: int = 0) -> np.ndarray:
     return ~holdout_mask(N, fraction=holdout, seed=seed)
 
 
-@pytest.mark.parametrize(("method", "reference"), [("leace", LeaceEraser), ("meanproj", MeanProjectionEraser)])
+@pytest.mark.parametrize(("method", "reference"), [("leace", LEACE), ("meanproj", MeanProjection)])
 def test_streamed_moment_fits_equal_the_in_memory_fit_of_the_same_rows(
     tmp_path: Path, data: tuple[np.ndarray, np.ndarray], method: str, reference: type
 ) -> None:
@@ -77,7 +77,7 @@ def test_streamed_inlp_with_the_moments_classifier_equals_its_in_memory_fit(
     )  # fmt: skip
     stored = Registry(tmp_path / "r").read_version("stream", outcome.version_id).artifact
     keep = fit_rows()
-    expected = INLPEraser(classifier="moments", max_iter=8, random_state=0).fit(x[keep], z[keep])
+    expected = INLP(classifier="moments", max_iter=8, random_state=0).fit(x[keep], z[keep])
     np.testing.assert_allclose(stored.apply(x), expected.transform(x), atol=1e-5)
 
 

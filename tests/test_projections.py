@@ -13,13 +13,13 @@ import pytest
 from scipy import linalg
 from sklearn.exceptions import ConvergenceWarning
 
-from veil import INLPEraser, MeanProjectionEraser, RLACEEraser
-from veil.erasers import BaseEraser
+from veil import INLP, RLACE, MeanProjection
+from veil.erasers import LinearErasure
 
 from .conftest import planted
 
 
-def _dense(eraser: BaseEraser) -> np.ndarray:
+def _dense(eraser: LinearErasure) -> np.ndarray:
     a, _ = eraser.map_.to_dense()
     return a
 
@@ -40,7 +40,7 @@ def test_mean_projection_removes_exactly_the_class_mean_offsets() -> None:
     rng = np.random.default_rng(0)
     z = np.arange(900) % 3
     x = rng.normal(size=(900, 10)) + rng.normal(size=(3, 10))[z] * 2
-    eraser = MeanProjectionEraser().fit(x, z)
+    eraser = MeanProjection().fit(x, z)
     a = _dense(eraser)
     _assert_orthogonal_projection(a, 2)
     offsets = np.stack([x[z == c].mean(0) - x.mean(0) for c in range(3)]).T
@@ -52,13 +52,13 @@ def test_inlp_is_an_orthogonal_projection_off_its_stacked_weights() -> None:
     x, z = planted(n=3000, d=12, seed=4)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        eraser = INLPEraser(max_iter=6, tol=0.0, random_state=0).fit(x, z)
+        eraser = INLP(max_iter=6, tol=0.0, random_state=0).fit(x, z)
     _assert_orthogonal_projection(_dense(eraser), eraser.rank_)
     # The classifiers' directions, plus what the closing mean-projection step added.
     assert eraser.rank_ == eraser.history_[-1]["rank"] + eraser.closing_rank_
     assert eraser.rank_ >= 1
     assert eraser.closing_rank_ <= 1  # at most n_classes - 1
-    published = INLPEraser(max_iter=6, tol=0.0, random_state=0, close_with_mean_projection=False)
+    published = INLP(max_iter=6, tol=0.0, random_state=0, close_with_mean_projection=False)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         published.fit(x, z)
@@ -69,7 +69,7 @@ def test_inlp_is_an_orthogonal_projection_off_its_stacked_weights() -> None:
 @pytest.mark.parametrize("rank", [1, 3])
 def test_rlace_is_an_orthogonal_projection_of_the_requested_rank(rank: int) -> None:
     x, z = planted(n=1500, d=10, seed=5)
-    eraser = RLACEEraser(rank=rank, max_iter=60, random_state=0).fit(x, z)
+    eraser = RLACE(rank=rank, max_iter=60, random_state=0).fit(x, z)
     assert eraser.rank_ == rank
     _assert_orthogonal_projection(_dense(eraser), rank)
     relaxed = eraser.relaxed_projection_
@@ -86,6 +86,6 @@ def test_rlace_finds_a_planted_direction() -> None:
     direction = np.zeros(8)
     direction[2] = 1.0
     x = rng.normal(size=(3000, 8)) + 2.5 * np.outer(z, direction)
-    eraser = RLACEEraser(rank=1, max_iter=200, batch_size=4096, random_state=0).fit(x, z)
+    eraser = RLACE(rank=1, max_iter=200, batch_size=4096, random_state=0).fit(x, z)
     removed = eraser.map_.u[:, 0]
     assert abs(removed @ direction) > 0.95

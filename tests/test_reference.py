@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from sklearn.decomposition import PCA
 
-from veil import LeaceEraser
+from veil import LEACE
 from veil.audit.probes import linear_probe
 from veil.reference import ReferenceStatistics
 from veil.reporting import PlotData
@@ -21,7 +21,7 @@ def test_the_folded_probe_predicts_as_the_scikit_learn_pipeline(classes: int) ->
     x, _ = planted(n=900, d=8, seed=3)
     codes = rng.integers(0, classes, 900)
     x = x + np.eye(8)[codes % 8] * 2.0
-    artifact = LeaceEraser().fit(x, codes).export()
+    artifact = LEACE().fit(x, codes).export()
     reference = ReferenceStatistics.from_fit(artifact, x, codes, random_state=0)
     # Reference: the same scikit-learn pipeline, unfolded.
     pipeline = linear_probe(0).fit(x, codes)
@@ -33,7 +33,7 @@ def test_the_folded_probe_predicts_as_the_scikit_learn_pipeline(classes: int) ->
 
 def test_erased_variance_share_matches_the_empirical_share() -> None:
     x, z = planted(n=4000, d=10, seed=5)
-    artifact = LeaceEraser().fit(x, z).export()
+    artifact = LEACE().fit(x, z).export()
     reference = ReferenceStatistics.from_fit(artifact, x, z, random_state=0)
     removed = x - artifact.map.apply(x)
     centred = x - x.mean(axis=0)
@@ -46,7 +46,7 @@ def test_erased_variance_share_matches_the_empirical_share() -> None:
 
 def test_plot_data_planes_match_scikit_learn_pca_up_to_sign() -> None:
     x, z = planted(n=500, d=7, seed=6)
-    erased = LeaceEraser().fit(x, z).transform(x)
+    erased = LEACE().fit(x, z).transform(x)
     plots = PlotData.from_heldout(x, erased, z, seed=0)
     reference = PCA(n_components=2).fit_transform(x)
     for axis in range(2):

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from veil import LeaceEraser
+from veil import LEACE
 from veil.registry import (
     CARD_FILE,
     SEAL_FILE,
@@ -34,7 +34,7 @@ NAME = "profiles-test"
 def version_files(seed: int, d: int = 6) -> dict[str, bytes]:
     """A small real eraser's files and a minimal card."""
     x, z = planted(n=300, d=d, seed=seed)
-    files = encode_artifact(LeaceEraser().fit(x, z).export())
+    files = encode_artifact(LEACE().fit(x, z).export())
     files[CARD_FILE] = json.dumps(
         {"dim": d, "rank": 1, "method": "leace", "created_at": "t", "created_by": "u"}
     ).encode()

@@ -9,7 +9,7 @@ import json
 import numpy as np
 import pytest
 
-from veil import INLPEraser, LeaceEraser, MeanProjectionEraser
+from veil import INLP, LEACE, MeanProjection
 from veil.serialization import (
     ARRAYS_FILE,
     DESCRIPTION_FILE,
@@ -24,7 +24,7 @@ from .conftest import planted
 
 @pytest.mark.parametrize(
     "eraser",
-    [LeaceEraser(normalize=True), MeanProjectionEraser(), INLPEraser(classifier="moments", max_iter=4, random_state=0)],
+    [LEACE(normalize=True), MeanProjection(), INLP(classifier="moments", max_iter=4, random_state=0)],
 )
 def test_round_trip_serves_identical_vectors(eraser) -> None:  # type: ignore[no-untyped-def]
     x, z = planted(n=600, d=7, seed=1)
@@ -40,9 +40,9 @@ def test_round_trip_serves_identical_vectors(eraser) -> None:  # type: ignore[no
 
 def test_the_same_eraser_encodes_to_the_same_bytes() -> None:
     x, z = planted(n=300, d=5, seed=2)
-    artifact = LeaceEraser().fit(x, z).export()
+    artifact = LEACE().fit(x, z).export()
     assert encode_artifact(artifact) == encode_artifact(artifact)
-    other = LeaceEraser().fit(x[:200], z[:200]).export()
+    other = LEACE().fit(x[:200], z[:200]).export()
     assert content_digest(other) != content_digest(artifact)
 
 
@@ -50,7 +50,7 @@ def test_the_same_eraser_encodes_to_the_same_bytes() -> None:
 def encoded() -> dict[str, bytes]:
     """A LEACE artifact's files."""
     x, z = planted(n=300, d=5, seed=3)
-    return encode_artifact(LeaceEraser().fit(x, z).export())
+    return encode_artifact(LEACE().fit(x, z).export())
 
 
 def test_a_flipped_byte_in_the_arrays_is_refused(encoded: dict[str, bytes]) -> None:

@@ -64,25 +64,22 @@ def test_a_real_server_answers_like_the_in_process_eraser(
             return response.headers["x-veil-version"] == service_registry.meanproj
 
         assert wait_until(switched, 15.0)
-        # A new connection each time, so the kernel spreads them over the workers: all answer with the new version.
-        for _ in range(20):
-            fresh = httpx.post(
-                f"{base}/v1/erasers/{PROFILES}/apply", json={"vectors": batch[:2].tolist()}, timeout=30.0
-            )
-            assert fresh.headers["x-veil-version"] == service_registry.meanproj
-        # And a rollback, the same way, within the polling interval on every worker.
-        Registry(registry).rollback(PROFILES)
 
-        def rolled_back() -> bool:
+        def every_worker_serves(version: str) -> bool:
+            # A new connection each time, so the kernel spreads them over the workers; the first worker to poll
+            # may answer before the others have, so the check waits for all of them rather than the first.
             answers = {
                 httpx.post(
                     f"{base}/v1/erasers/{PROFILES}/apply", json={"vectors": batch[:2].tolist()}, timeout=30.0
                 ).headers["x-veil-version"]
-                for _ in range(10)
+                for _ in range(20)
             }
-            return answers == {service_registry.leace}
+            return answers == {version}
 
-        assert wait_until(rolled_back, 15.0)
+        assert wait_until(lambda: every_worker_serves(service_registry.meanproj), 15.0)
+        # And a rollback, the same way, within the polling interval on every worker.
+        Registry(registry).rollback(PROFILES)
+        assert wait_until(lambda: every_worker_serves(service_registry.leace), 15.0)
         Registry(registry).promote(PROFILES, service_registry.meanproj)
         assert wait_until(switched, 15.0)
         reload = client.post("/v1/admin/reload", headers={"Authorization": f"Bearer {ADMIN_TOKEN}"})

@@ -1,19 +1,19 @@
 """veil: keep a protected attribute out of embeddings, and show that it stays out."""
 
-from veil.artifact import EraserArtifact
-from veil.erasers import INLPEraser, LeaceEraser, MeanProjectionEraser, RLACEEraser
+from veil.artifact import MapArtifact
+from veil.erasers import INLP, LEACE, RLACE, MeanProjection
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
 
 __version__ = "0.1.0"
 
 __all__ = [
+    "INLP",
+    "LEACE",
+    "RLACE",
     "AffineLowRankMap",
-    "EraserArtifact",
-    "INLPEraser",
-    "LeaceEraser",
-    "MeanProjectionEraser",
+    "MapArtifact",
+    "MeanProjection",
     "MomentState",
-    "RLACEEraser",
     "__version__",
 ]

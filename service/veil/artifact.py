@@ -17,7 +17,7 @@ Float64Array = NDArray[np.float64]
 
 
 @dataclass(frozen=True, eq=False)
-class EraserArtifact:
+class MapArtifact:
     """A fitted eraser, independent of the estimator class that produced it.
 
     Attributes

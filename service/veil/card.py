@@ -16,7 +16,7 @@ from typing import Any, Protocol
 
 import numpy as np
 
-from veil.artifact import EraserArtifact
+from veil.artifact import MapArtifact
 from veil.audit.report import AuditReport, ProbeScore, RegressionScore
 from veil.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
 from veil.thresholds import AlertThresholds
@@ -70,7 +70,7 @@ def software_versions() -> dict[str, str]:
 def build_card(
     *,
     name: str,
-    artifact: EraserArtifact,
+    artifact: MapArtifact,
     sample: SampleDescription,
     fit_rows: int,
     split_seed: int,

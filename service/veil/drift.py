@@ -26,7 +26,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.artifact import EraserArtifact
+from veil.artifact import MapArtifact
 from veil.audit import probes
 from veil.audit.report import ProbeScore
 from veil.reference import ReferenceStatistics
@@ -67,7 +67,7 @@ def _level(value: float | None, warn: float, alert: float) -> str:
 
 
 def check_drift(
-    artifact: EraserArtifact,
+    artifact: MapArtifact,
     reference: ReferenceStatistics,
     whitening: NDArray[np.float64],
     thresholds: AlertThresholds,

@@ -21,7 +21,7 @@ from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
 from veil.card import SampleDescription, build_card
 from veil.datasource import LabelledSample
-from veil.erasers import BaseEraser, INLPEraser, LeaceEraser, MeanProjectionEraser, RLACEEraser
+from veil.erasers import INLP, LEACE, RLACE, LinearErasure, MeanProjection
 from veil.errors import DataError
 from veil.reference import REFERENCE_FILE, ReferenceStatistics
 from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
@@ -31,11 +31,11 @@ from veil.serialization import encode_artifact
 from veil.splitting import give_every_class_both_parts, holdout_mask
 from veil.thresholds import AlertThresholds
 
-METHODS: dict[str, type[BaseEraser]] = {
-    "leace": LeaceEraser,
-    "meanproj": MeanProjectionEraser,
-    "inlp": INLPEraser,
-    "rlace": RLACEEraser,
+METHODS: dict[str, type[LinearErasure]] = {
+    "leace": LEACE,
+    "meanproj": MeanProjection,
+    "inlp": INLP,
+    "rlace": RLACE,
 }
 # The probes score by cross-validation inside the held-out rows.
 AUDIT_FOLDS = 5
@@ -194,7 +194,7 @@ def fit_version(
 
 def make_eraser(
     name: str, alias: str | None, method: str, params: Mapping[str, Any] | None, *, seed: int, normalize: bool
-) -> BaseEraser:
+) -> LinearErasure:
     check_name(name)
     if alias is not None:
         check_name(alias, what="alias")
@@ -207,7 +207,7 @@ def make_eraser(
     return METHODS[method](**options, normalize=normalize)
 
 
-def fit_collecting_notes(eraser: BaseEraser, method: str, fit: Callable[[], object]) -> list[str]:
+def fit_collecting_notes(eraser: LinearErasure, method: str, fit: Callable[[], object]) -> list[str]:
     """Run ``fit``; bad data becomes a :class:`DataError`, and warnings become notes for the card."""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -219,7 +219,7 @@ def fit_collecting_notes(eraser: BaseEraser, method: str, fit: Callable[[], obje
 
 
 def audit_and_store(
-    eraser: BaseEraser,
+    eraser: LinearErasure,
     sample: SampleDescription,
     *,
     registry: Registry,

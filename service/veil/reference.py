@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.artifact import EraserArtifact
+from veil.artifact import MapArtifact
 from veil.audit.probes import linear_probe
 
 REFERENCE_FILE = "reference.npz"
@@ -26,7 +26,7 @@ LEADING_COMPONENTS = 128
 Float64Array = NDArray[np.float64]
 
 
-def erased_variance_share(artifact: EraserArtifact, covariance: Float64Array) -> float:
+def erased_variance_share(artifact: MapArtifact, covariance: Float64Array) -> float:
     """E‖U Vᵀ (x − μ)‖² / E‖x − μ‖² = tr(Uᵀ U Vᵀ Σ V) / tr Σ, from the covariance alone."""
     u, v = artifact.map.u.astype(np.float64), artifact.map.v.astype(np.float64)
     total = float(np.trace(covariance))
@@ -66,7 +66,7 @@ class ReferenceStatistics:
 
     @classmethod
     def from_fit(
-        cls, artifact: EraserArtifact, X: NDArray[np.floating], codes: NDArray[np.intp], *, random_state: int
+        cls, artifact: MapArtifact, X: NDArray[np.floating], codes: NDArray[np.intp], *, random_state: int
     ) -> ReferenceStatistics:
         """Statistics of the rows the eraser was fitted on (``codes`` index ``artifact.classes``)."""
         covariance = artifact.covariance

@@ -1,4 +1,4 @@
-"""Write and read an :class:`EraserArtifact` as plain files: NumPy arrays and a JSON description.
+"""Write and read an :class:`MapArtifact` as plain files: NumPy arrays and a JSON description.
 
 An artifact is two files: ``arrays.npz`` (read with ``allow_pickle=False``,
 so loading never runs code) and ``artifact.json`` (method, parameters,
@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.artifact import EraserArtifact
+from veil.artifact import MapArtifact
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
 
@@ -44,7 +44,7 @@ def _json_safe(value: Any) -> Any:
     return value
 
 
-def artifact_arrays(artifact: EraserArtifact) -> dict[str, NDArray[Any]]:
+def artifact_arrays(artifact: MapArtifact) -> dict[str, NDArray[Any]]:
     """The artifact's arrays by name (the map, the moments, the class labels)."""
     moments = artifact.moments
     arrays: dict[str, NDArray[Any]] = {
@@ -59,7 +59,7 @@ def artifact_arrays(artifact: EraserArtifact) -> dict[str, NDArray[Any]]:
     return arrays
 
 
-def artifact_description(artifact: EraserArtifact) -> dict[str, Any]:
+def artifact_description(artifact: MapArtifact) -> dict[str, Any]:
     """The artifact's JSON-safe description (everything but the arrays)."""
     return {
         "format_version": FORMAT_VERSION,
@@ -73,7 +73,7 @@ def artifact_description(artifact: EraserArtifact) -> dict[str, Any]:
     }
 
 
-def content_digest(artifact: EraserArtifact) -> str:
+def content_digest(artifact: MapArtifact) -> str:
     """sha256 over the description and every array's name, dtype, shape and bytes, in name order."""
     digest = hashlib.sha256(json.dumps(artifact_description(artifact), sort_keys=True).encode())
     for name, array in sorted(artifact_arrays(artifact).items()):
@@ -83,7 +83,7 @@ def content_digest(artifact: EraserArtifact) -> str:
     return digest.hexdigest()
 
 
-def encode_artifact(artifact: EraserArtifact) -> dict[str, bytes]:
+def encode_artifact(artifact: MapArtifact) -> dict[str, bytes]:
     """The artifact as file contents by file name: ``arrays.npz`` and ``artifact.json``.
 
     Storage is the caller's business (a registry writes these files and makes
@@ -102,7 +102,7 @@ def encode_artifact(artifact: EraserArtifact) -> dict[str, bytes]:
     }
 
 
-def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> EraserArtifact:
+def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> MapArtifact:
     """Read and verify an artifact from the file contents :func:`encode_artifact` made.
 
     Parameters
@@ -135,7 +135,7 @@ def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> 
     try:
         with np.load(io.BytesIO(arrays_bytes), allow_pickle=False) as stored:
             arrays = {name: stored[name] for name in stored.files}
-        artifact = EraserArtifact(
+        artifact = MapArtifact(
             method=str(description["method"]),
             params=dict(description["params"]),
             map=AffineLowRankMap(mean=arrays["mean"], u=arrays["u"], v=arrays["v"]),

@@ -12,10 +12,10 @@ from sklearn.utils.validation import check_array, check_is_fitted
 from veil._validation import encode_attribute
 from veil.audit import geometry, probes
 from veil.audit.report import AuditReport, Leakage, ProbeScore, RegressionScore, Retrieval, Utility
-from veil.erasers._base import BaseEraser
+from veil.erasers._base import LinearErasure
 from veil.linalg import whiten, whitening_factors
 
-E = TypeVar("E", bound=BaseEraser)
+E = TypeVar("E", bound=LinearErasure)
 NEIGHBOURS = 10
 
 
@@ -36,7 +36,7 @@ def _class_mean_noise_floor(codes: NDArray[np.intp], rank: int) -> float:
 
 
 def audit(
-    eraser: BaseEraser,
+    eraser: LinearErasure,
     X: ArrayLike,
     z: object,
     *,
@@ -53,7 +53,7 @@ def audit(
 
     Parameters
     ----------
-    eraser : BaseEraser
+    eraser : LinearErasure
         A fitted eraser.  What is audited is ``eraser.transform``: exactly
         what would be served, re-normalisation included.
     X : array-like of shape (n_heldout, d)

@@ -1,9 +1,9 @@
 """Linear concept erasers: each fits an affine low-rank map ``x' = x - U Vᵀ (x - μ)``."""
 
-from veil.erasers._base import BaseEraser, MomentEraser
-from veil.erasers.inlp import INLPEraser
-from veil.erasers.leace import LeaceEraser
-from veil.erasers.mean_projection import MeanProjectionEraser
-from veil.erasers.rlace import RLACEEraser
+from veil.erasers._base import LinearErasure, MomentErasure
+from veil.erasers.inlp import INLP
+from veil.erasers.leace import LEACE
+from veil.erasers.mean_projection import MeanProjection
+from veil.erasers.rlace import RLACE
 
-__all__ = ["BaseEraser", "INLPEraser", "LeaceEraser", "MeanProjectionEraser", "MomentEraser", "RLACEEraser"]
+__all__ = ["INLP", "LEACE", "RLACE", "LinearErasure", "MeanProjection", "MomentErasure"]

@@ -11,7 +11,7 @@ from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import check_is_fitted, validate_data
 
 from veil._validation import EncodedAttribute, check_enough_rows, encode_attribute
-from veil.artifact import EraserArtifact
+from veil.artifact import MapArtifact
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
 from veil.postprocess import unit_normalize
@@ -19,7 +19,7 @@ from veil.postprocess import unit_normalize
 FLOAT_DTYPES = (np.float64, np.float32)
 
 
-class BaseEraser(TransformerMixin, BaseEstimator):  # type: ignore[misc]
+class LinearErasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
     """Base class of the erasers: a fitted eraser is an :class:`AffineLowRankMap`.
 
     Subclasses set, in ``fit``, ``map_`` (the map), ``moments_`` (raw-space
@@ -120,10 +120,10 @@ class BaseEraser(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         out += self.map_.shift_towards(self._target_mean(target)).astype(out.dtype)
         return unit_normalize(out) if self.normalize else out
 
-    def export(self) -> EraserArtifact:
-        """The fitted eraser as an :class:`EraserArtifact` (for the registry and the service)."""
+    def export(self) -> MapArtifact:
+        """The fitted eraser as an :class:`MapArtifact` (for the registry and the service)."""
         check_is_fitted(self, "map_")
-        return EraserArtifact(
+        return MapArtifact(
             method=self.method,
             params=self.get_params(deep=False),
             map=self.map_,
@@ -133,13 +133,13 @@ class BaseEraser(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         )
 
 
-class MomentEraser(BaseEraser):
+class MomentErasure(LinearErasure):
     """An eraser that is a function of :class:`MomentState` alone: chunked, merged or whole, the same."""
 
     @abstractmethod
     def _map_from_moments(self, moments: MomentState) -> AffineLowRankMap: ...
 
-    def fit(self, X: ArrayLike, z: object) -> MomentEraser:
+    def fit(self, X: ArrayLike, z: object) -> MomentErasure:
         """Fit the eraser.
 
         Parameters
@@ -156,7 +156,7 @@ class MomentEraser(BaseEraser):
         array, attribute = self._validate_fit_input(X, z, reset=True)
         return self._fit_state(MomentState.from_batch(array, attribute))
 
-    def partial_fit(self, X: ArrayLike, z: object) -> MomentEraser:
+    def partial_fit(self, X: ArrayLike, z: object) -> MomentErasure:
         """Add a chunk of rows; after each call the eraser is that of all rows so far.
 
         Classes may appear in any chunk.  Until two classes (and more rows than
@@ -181,7 +181,7 @@ class MomentEraser(BaseEraser):
         self._set_fitted(self._map_from_moments(merged), merged)
         return self
 
-    def fit_moments(self, moments: MomentState) -> MomentEraser:
+    def fit_moments(self, moments: MomentState) -> MomentErasure:
         """Fit from precomputed (for example merged) moments.
 
         Parameters
@@ -196,7 +196,7 @@ class MomentEraser(BaseEraser):
         self.n_features_in_ = moments.n_features
         return self._fit_state(moments)
 
-    def _fit_state(self, moments: MomentState) -> MomentEraser:
+    def _fit_state(self, moments: MomentState) -> MomentErasure:
         check_enough_rows(moments.count, moments.labels)
         self._set_fitted(self._map_from_moments(moments), moments)
         return self

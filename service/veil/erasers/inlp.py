@@ -16,7 +16,7 @@ from sklearn.utils import check_random_state
 from sklearn.utils.metaestimators import available_if
 
 from veil._validation import EncodedAttribute, check_enough_rows, check_positive_int
-from veil.erasers._base import BaseEraser
+from veil.erasers._base import LinearErasure
 from veil.erasers._discriminant import expected_accuracy, fit_discriminant
 from veil.linalg import orthonormal_basis, restrict_to_support
 from veil.lowrank import AffineLowRankMap
@@ -33,11 +33,11 @@ Step = Callable[[Float64Array], tuple[Float64Array, float, float]]
 CLASSIFIERS = ("logistic", "svm", "moments")
 
 
-def _uses_moments(eraser: INLPEraser) -> bool:
+def _uses_moments(eraser: INLP) -> bool:
     return eraser.classifier == "moments"
 
 
-class INLPEraser(BaseEraser):
+class INLP(LinearErasure):
     """Iterative nullspace projection (INLP).
 
     Repeatedly trains a linear classifier of the attribute on the embeddings
@@ -155,7 +155,7 @@ class INLPEraser(BaseEraser):
         return int(check_random_state(self.random_state).randint(0, 2**31 - 1))
 
     # -- fitting --------------------------------------------------------
-    def fit(self, X: ArrayLike, z: object) -> INLPEraser:
+    def fit(self, X: ArrayLike, z: object) -> INLP:
         """Fit the eraser.
 
         Parameters
@@ -188,7 +188,7 @@ class INLPEraser(BaseEraser):
         return self
 
     @available_if(_uses_moments)  # type: ignore[untyped-decorator]
-    def partial_fit(self, X: ArrayLike, z: object) -> INLPEraser:
+    def partial_fit(self, X: ArrayLike, z: object) -> INLP:
         """Add a chunk of rows (``classifier="moments"`` only).
 
         Rows are assigned to the held-out part by their global index, so the
@@ -205,7 +205,7 @@ class INLPEraser(BaseEraser):
             self.n_rows_seen_ = 0
         return self._accumulate(X, z, first=first, repair=False)
 
-    def _accumulate(self, X: ArrayLike, z: object, *, first: bool, repair: bool) -> INLPEraser:
+    def _accumulate(self, X: ArrayLike, z: object, *, first: bool, repair: bool) -> INLP:
         array, attribute = self._validate_fit_input(X, z, reset=first)
         held_out = holdout_mask(
             array.shape[0], fraction=self.validation_fraction, seed=self.split_seed_, start=self.n_rows_seen_

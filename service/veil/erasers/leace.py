@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-from veil.erasers._base import MomentEraser
+from veil.erasers._base import MomentErasure
 from veil.linalg import orthonormal_basis, whitening_factors
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
 
 
-class LeaceEraser(MomentEraser):
+class LEACE(MomentErasure):
     """Closed-form least-squares linear concept erasure (LEACE).
 
     ``r(x) = x - W⁺ P W (x - μ)``, where ``W`` is the (pseudo-)inverse square
@@ -43,11 +43,11 @@ class LeaceEraser(MomentEraser):
     Examples
     --------
     >>> import numpy as np
-    >>> from veil import LeaceEraser
+    >>> from veil import LEACE
     >>> rng = np.random.default_rng(0)
     >>> z = rng.integers(0, 2, 500)
     >>> X = rng.normal(size=(500, 8)) + 2.0 * z[:, None]
-    >>> eraser = LeaceEraser().fit(X, z)
+    >>> eraser = LEACE().fit(X, z)
     >>> X_erased = eraser.transform(X)
     >>> bool(np.allclose(X_erased[z == 0].mean(0), X_erased[z == 1].mean(0)))
     True

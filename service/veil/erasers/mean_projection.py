@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-from veil.erasers._base import MomentEraser
+from veil.erasers._base import MomentErasure
 from veil.linalg import orthonormal_basis, restrict_to_support
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
 
 
-class MeanProjectionEraser(MomentEraser):
+class MeanProjection(MomentErasure):
     """Orthogonal projection that removes the span of the class-mean differences.
 
     For a categorical attribute, column ``c`` of ``Cov(x, z)`` is

@@ -7,7 +7,7 @@ from numpy.typing import ArrayLike, NDArray
 from sklearn.utils import check_random_state
 
 from veil._validation import check_enough_rows, check_positive_int
-from veil.erasers._base import BaseEraser
+from veil.erasers._base import LinearErasure
 from veil.linalg import restrict_to_support
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
@@ -61,7 +61,7 @@ class _Adam:
         return np.asarray(self.learning_rate * corrected / spread)
 
 
-class RLACEEraser(BaseEraser):
+class RLACE(LinearErasure):
     """Relaxed linear adversarial concept erasure (R-LACE) of rank ``k``.
 
     Solves the minimax game ``max_P min_θ  L(θ; (I - P) x)`` between a
@@ -143,7 +143,7 @@ class RLACEEraser(BaseEraser):
         for name in ("max_iter", "classifier_steps", "batch_size"):
             check_positive_int(name, getattr(self, name))
 
-    def fit(self, X: ArrayLike, z: object) -> RLACEEraser:
+    def fit(self, X: ArrayLike, z: object) -> RLACE:
         """Fit the eraser.
 
         Parameters

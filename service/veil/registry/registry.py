@@ -26,7 +26,7 @@ from dataclasses import asdict, dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from veil.artifact import EraserArtifact
+from veil.artifact import MapArtifact
 from veil.registry.errors import IntegrityError, InvalidReferenceError, NotFoundError, PromotionError
 from veil.registry.naming import check_name, format_version_id, parse_sequence, parse_version_id
 from veil.registry.storage import Storage, open_storage
@@ -79,7 +79,7 @@ class StoredVersion:
     id: str
     files: Mapping[str, bytes]
     card: Mapping[str, Any]
-    artifact: EraserArtifact
+    artifact: MapArtifact
 
 
 @dataclass(frozen=True)

@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.artifact import EraserArtifact
+from veil.artifact import MapArtifact
 from veil.postprocess import unit_normalize
 from veil.reference import REFERENCE_FILE, ReferenceStatistics
 from veil.registry import IntegrityError, NotFoundError, Registry, RegistryError, StoredVersion
@@ -38,7 +38,7 @@ class ServedVersion:
 
     name: str
     version_id: str
-    artifact: EraserArtifact
+    artifact: MapArtifact
     card: dict[str, Any]
     reference: ReferenceStatistics
     thresholds: AlertThresholds
