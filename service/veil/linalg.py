@@ -1,4 +1,16 @@
-"""Small, well-conditioned linear-algebra helpers shared by the erasers and the audit."""
+"""Small, well-conditioned linear-algebra helpers shared by the erasers and the audit.
+
+Every rank these helpers decide is decided on *estimated* statistics: float64
+moments of float32 or float64 rows.  Such statistics carry rounding noise of
+order ``eps · ‖Σ‖`` (about ``1e-16`` to ``1e-13`` of the largest value, with
+the BLAS kernels and the summation order of the machine), while any spread
+the data really have sits far above it: a float32 embedding's own
+quantisation is about ``1e-14`` of its top eigenvalue, and the smallest live
+eigenvalue of the committed MiniLM sample is ``6e-5`` of the top one.  The
+cuts below sit between the two, several orders of magnitude from each, so
+that no rank depends on round-off; where the structure of the problem bounds
+a rank (``C - 1`` for ``C`` classes), callers pass that bound instead.
+"""
 
 from __future__ import annotations
 
@@ -7,30 +19,36 @@ from numpy.typing import NDArray
 
 Float64Array = NDArray[np.float64]
 
-
-def default_rtol(*shape: int) -> float:
-    """Relative cut-off below which a singular value or eigenvalue counts as zero.
-
-    The same rule NumPy's ``matrix_rank`` uses: ``max(shape) * eps``.
-    """
-    return max(max(shape, default=1), 1) * float(np.finfo(np.float64).eps)
+# Eigenvalues of an estimated covariance at or below this share of the largest count as zero (a spread below
+# 1e-5 of the largest standard deviation: dead coordinates, d > n, duplicated features).
+COVARIANCE_RTOL = 1e-10
+# Singular values of an estimated cross-statistic at or below this share of the reference count as zero.
+BASIS_RTOL = 1e-9
 
 
-def orthonormal_basis(a: Float64Array, *, rtol: float | None = None) -> Float64Array:
+def orthonormal_basis(
+    a: Float64Array, *, rtol: float = BASIS_RTOL, reference: float | None = None, max_rank: int | None = None
+) -> Float64Array:
     """Orthonormal basis of the column space of ``a``.
 
     Parameters
     ----------
     a : ndarray of shape (d, m)
         Columns spanning the subspace.
-    rtol : float, optional
-        Singular values at or below ``rtol * s_max`` are treated as zero.
-        Defaults to :func:`default_rtol`.
+    rtol : float, default=BASIS_RTOL
+        Singular values at or below ``rtol * reference`` are treated as zero.
+    reference : float, optional
+        The scale the cut is relative to; defaults to the largest singular
+        value of ``a``.  Pass 1 when the singular values are bounded by 1
+        (correlations, projections of orthonormal columns).
+    max_rank : int, optional
+        A bound the structure of the problem puts on the rank (``C - 1`` for
+        ``C`` classes): directions beyond it are round-off and never kept.
 
     Returns
     -------
     q : ndarray of shape (d, k)
-        ``k`` is the numerical rank of ``a`` (possibly 0).
+        ``k`` is the rank of ``a`` under the cut and the bound (possibly 0).
     """
     a = np.asarray(a, dtype=np.float64)
     if a.ndim != 2:
@@ -38,24 +56,62 @@ def orthonormal_basis(a: Float64Array, *, rtol: float | None = None) -> Float64A
     if a.size == 0:
         return np.zeros((a.shape[0], 0))
     u, s, _ = np.linalg.svd(a, full_matrices=False)
-    cut = (default_rtol(*a.shape) if rtol is None else rtol) * (s[0] if s.size else 0.0)
-    rank = int(np.count_nonzero(s > cut))
+    scale = float(s[0]) if reference is None else reference
+    rank = int(np.count_nonzero(s > rtol * scale))
+    if max_rank is not None:
+        rank = min(rank, max_rank)
     return np.ascontiguousarray(u[:, :rank])
 
 
-def whitening_factors(covariance: Float64Array, *, rtol: float | None = None) -> tuple[Float64Array, Float64Array]:
+def extend_basis(q: Float64Array, new: Float64Array, *, max_rank: int | None = None) -> Float64Array:
+    """Orthonormal basis of the span of ``q`` and ``new``, with ``q`` kept as its first columns.
+
+    The part of ``new`` outside ``span(q)`` is kept where it is more than
+    :data:`BASIS_RTOL` of ``new``'s own largest singular value: a direction
+    ``new`` only repeats up to rounding is not added.
+
+    Parameters
+    ----------
+    q : ndarray of shape (d, k)
+        Orthonormal columns.
+    new : ndarray of shape (d, m)
+        Columns to add.
+    max_rank : int, optional
+        Bound on the number of directions ``new`` can add (see :func:`orthonormal_basis`).
+
+    Returns
+    -------
+    ndarray of shape (d, k + k')
+    """
+    new = np.asarray(new, dtype=np.float64)
+    if new.size == 0:
+        return q
+    largest = float(np.linalg.norm(new, ord=2))
+    residual = new - q @ (q.T @ new)
+    added = orthonormal_basis(residual, reference=largest, max_rank=max_rank)
+    return np.ascontiguousarray(np.column_stack([q, added]))
+
+
+def whitening_factors(
+    covariance: Float64Array, *, rtol: float | None = None, rank: int | None = None
+) -> tuple[Float64Array, Float64Array]:
     """Eigen-factors of the (pseudo-)inverse square root of a covariance matrix.
 
     ``W = E diag(scale) Eᵀ`` whitens, and ``W⁺ = E diag(1 / scale) Eᵀ``
     un-whitens; eigenvalues at or below ``rtol * λ_max`` are dropped, which is
-    what makes rank-deficient covariances (``d > n``, duplicated features) safe.
+    what makes rank-deficient covariances (``d > n``, dead or duplicated
+    features) safe.
 
     Parameters
     ----------
     covariance : ndarray of shape (d, d)
         Symmetric positive semi-definite.
     rtol : float, optional
-        Relative eigenvalue cut-off; defaults to :func:`default_rtol`.
+        Relative eigenvalue cut-off; defaults to :data:`COVARIANCE_RTOL`.
+    rank : int, optional
+        Keep exactly the ``rank`` largest eigenvalues instead of cutting: for
+        a covariance whose rank the structure of the problem fixes (the
+        indicators of ``C`` classes span ``C - 1`` dimensions).
 
     Returns
     -------
@@ -65,9 +121,13 @@ def whitening_factors(covariance: Float64Array, *, rtol: float | None = None) ->
         ``1 / sqrt(λ)`` for each retained eigenvalue ``λ``.
     """
     eigenvalues, eigenvectors = np.linalg.eigh(np.asarray(covariance, dtype=np.float64))
-    top = float(eigenvalues[-1]) if eigenvalues.size else 0.0
-    cut = (default_rtol(*covariance.shape) if rtol is None else rtol) * max(top, 0.0)
-    keep = eigenvalues > cut
+    if rank is not None:
+        keep = np.zeros(eigenvalues.size, dtype=bool)
+        keep[max(eigenvalues.size - rank, 0) :] = True
+        keep &= eigenvalues > 0
+    else:
+        top = float(eigenvalues[-1]) if eigenvalues.size else 0.0
+        keep = eigenvalues > (COVARIANCE_RTOL if rtol is None else rtol) * max(top, 0.0)
     return np.ascontiguousarray(eigenvectors[:, keep]), 1.0 / np.sqrt(eigenvalues[keep])
 
 
@@ -76,7 +136,7 @@ def whiten(x: NDArray[np.floating], eigenvectors: Float64Array, scale: Float64Ar
     return (np.asarray(x, dtype=np.float64) @ eigenvectors) * scale
 
 
-def restrict_to_support(q: Float64Array, covariance: Float64Array, *, rtol: float | None = None) -> Float64Array:
+def restrict_to_support(q: Float64Array, covariance: Float64Array) -> Float64Array:
     """Orthonormal basis of the columns of ``q`` projected onto the support of ``covariance``.
 
     Along a direction where the fitting data has no spread (a dead
@@ -89,16 +149,17 @@ def restrict_to_support(q: Float64Array, covariance: Float64Array, *, rtol: floa
     Parameters
     ----------
     q : ndarray of shape (d, k)
+        Orthonormal columns.
     covariance : ndarray of shape (d, d)
-    rtol : float, optional
-        Eigenvalue cut-off of the support, as in :func:`whitening_factors`.
 
     Returns
     -------
     ndarray of shape (d, k')
-        ``k' <= k``.
+        ``k' <= k``; a column that lies (up to :data:`BASIS_RTOL`) outside the
+        support is dropped.
     """
     if q.shape[1] == 0:
         return q
-    support, _ = whitening_factors(covariance, rtol=rtol)
-    return orthonormal_basis(support @ (support.T @ q))
+    support, _ = whitening_factors(covariance)
+    # Projections of orthonormal columns have singular values at most 1: the cut is relative to 1.
+    return orthonormal_basis(support @ (support.T @ q), reference=1.0)

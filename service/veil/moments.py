@@ -15,6 +15,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil._validation import EncodedAttribute
+from veil.linalg import whitening_factors
 
 # Rows converted to float64 at a time by MomentState.from_batch (64k × 768 × 8 bytes ≈ 400 MB at most).
 BLOCK_ROWS = 65536
@@ -182,6 +183,38 @@ class MomentState:
         """Population covariance of ``z``, shape (m, m)."""
         self._require_rows()
         return self.comoment_zz / self.count
+
+    @property
+    def attribute_rank(self) -> int | None:
+        """The rank the structure of the attribute fixes: ``C - 1`` for ``C`` classes with rows; None if numeric.
+
+        The indicators of ``C`` classes sum to 1 on every row, so their
+        centred covariance has rank ``C - 1`` exactly; its remaining
+        eigenvalue, and any direction built on it, is rounding noise.
+        """
+        if self.labels is None:
+            return None
+        return max(int(np.count_nonzero(self.mean_z > 0)) - 1, 0)
+
+    def attribute_whitening(self) -> tuple[Float64Array, Float64Array]:
+        """Eigen-factors of ``Cov(z)^(-1/2)`` on its support: eigenvectors (m, r) and scales (r,).
+
+        ``r`` is :attr:`attribute_rank` for a categorical attribute; for a
+        numeric one it is the rank of ``Cov(z)`` under the covariance cut of
+        :func:`veil.linalg.whitening_factors` (at most the number of columns).
+        """
+        return whitening_factors(self.covariance_zz, rank=self.attribute_rank)
+
+    def standardized_cross_covariance(self) -> Float64Array:
+        """``Cov(x, z̃)`` for the whitened attribute ``z̃ = Cov(z)^(-1/2) (z - z̄)``, shape (d, r).
+
+        It spans the same directions as ``Cov(x, z)`` (whose rows lie in the
+        support of ``Cov(z)``), but has exactly as many columns as the
+        attribute has independent directions, and units that do not depend
+        on how the attribute is scaled.
+        """
+        eigenvectors, scale = self.attribute_whitening()
+        return np.asarray(self.cross_covariance @ (eigenvectors * scale))
 
     @property
     def class_priors(self) -> Float64Array:

@@ -93,8 +93,10 @@ class LinearErasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         if value.shape != moments.mean_z.shape or not np.all(np.isfinite(value)):
             raise ValueError(f"the target must be a finite attribute vector of length {moments.mean_z.size}")
         # E[x | z] under the linear model of x on z fitted by the same moments.
-        slope = moments.cross_covariance @ np.linalg.pinv(moments.covariance_zz, hermitian=True)
-        return moments.mean_x + slope @ (value - moments.mean_z)
+        # The slope Σ_xz Σ_zz⁺ through the attribute's whitening factors, so the same cut decides its rank.
+        eigenvectors, scale = moments.attribute_whitening()
+        whitened_offset = ((value - moments.mean_z) @ eigenvectors) * scale
+        return np.asarray(moments.mean_x + moments.standardized_cross_covariance() @ whitened_offset)
 
     def counterfactual(self, X: ArrayLike, target: object) -> NDArray[np.floating]:
         """Erase, then give every row the attribute component of ``target``.

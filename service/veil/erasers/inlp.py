@@ -18,7 +18,7 @@ from sklearn.utils.metaestimators import available_if
 from veil._validation import EncodedAttribute, check_enough_rows, check_positive_int
 from veil.erasers._base import LinearErasure
 from veil.erasers._discriminant import expected_accuracy, fit_discriminant
-from veil.linalg import orthonormal_basis, restrict_to_support
+from veil.linalg import extend_basis, restrict_to_support
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
 from veil.progress import advance
@@ -265,7 +265,10 @@ class INLP(LinearErasure):
                 warnings.simplefilter("ignore", ConvergenceWarning)
                 model.fit((train_x - (train_x @ q) @ q.T) / scale, train_y)
             accuracy = float(model.score((valid_x - (valid_x @ q) @ q.T) / scale, valid_y))
-            return (np.atleast_2d(model.coef_) / scale).T, accuracy, majority
+            weights = (np.atleast_2d(model.coef_) / scale).T
+            if self.classifier == "logistic":
+                weights = _decision_directions(weights)
+            return weights, accuracy, majority
 
         return step
 
@@ -280,7 +283,7 @@ class INLP(LinearErasure):
 
         def step(q: Float64Array) -> tuple[Float64Array, float, float]:
             discriminant = fit_discriminant(train, q, regularization=self.regularization)
-            return discriminant.weights, expected_accuracy(discriminant, valid), majority
+            return _decision_directions(discriminant.weights), expected_accuracy(discriminant, valid), majority
 
         return step
 
@@ -298,7 +301,7 @@ class INLP(LinearErasure):
                 history.append({"iteration": iteration, "accuracy": accuracy, "majority": majority, "rank": q.shape[1]})
                 converged = True
                 break
-            grown = orthonormal_basis(np.column_stack([q, weights]))
+            grown = extend_basis(q, weights)
             history.append({"iteration": iteration, "accuracy": accuracy, "majority": majority, "rank": grown.shape[1]})
             if grown.shape[1] == q.shape[1] or grown.shape[1] >= d:
                 q = grown
@@ -317,12 +320,28 @@ class INLP(LinearErasure):
         self.converged_ = converged
         found = q.shape[1]
         if self.close_with_mean_projection:
-            # Whatever class-mean offset survives the classifiers' directions: (I - Q Qᵀ) Σ_xz.
-            residual = moments.cross_covariance - q @ (q.T @ moments.cross_covariance)
-            q = orthonormal_basis(np.column_stack([q, residual]))
+            # Whatever class-mean offset survives the classifiers' directions: (I - Q Qᵀ) Σ_xz, at most C - 1 of
+            # them (Cov(x, z̃) has exactly that many columns), and none that only repeats Q up to rounding.
+            q = extend_basis(q, moments.standardized_cross_covariance())
         q = restrict_to_support(q, moments.covariance_xx)
         self.closing_rank_ = max(q.shape[1] - found, 0)
         self._set_fitted(AffineLowRankMap(mean=moments.mean_x, u=q, v=q), moments)
+
+
+def _decision_directions(weights: Float64Array) -> Float64Array:
+    """The directions a classifier's argmax depends on, shape (d, C - 1) for ``C`` weight vectors.
+
+    A softmax (or an argmax of scores) does not change when the same vector
+    is added to every class's weights, so only differences between them
+    matter, and for ``C`` classes those span ``C - 1`` directions.  The common
+    part is fixed only by the penalty or by the priors (a moments
+    discriminant's offsets sum to zero when weighted by the priors, not
+    unweighted); kept, it would add a direction of rounding or solver noise.
+    A binary scikit-learn model has one weight vector, already a difference.
+    """
+    if weights.shape[1] < 2:
+        return weights
+    return np.asarray(weights[:, 1:] - weights[:, :1])
 
 
 def _rows(attribute: EncodedAttribute, mask: NDArray[np.bool_]) -> EncodedAttribute:

@@ -13,7 +13,10 @@ class LEACE(MomentErasure):
 
     ``r(x) = x - W⁺ P W (x - μ)``, where ``W`` is the (pseudo-)inverse square
     root of ``Cov(x)`` and ``P`` the orthogonal projection onto the column
-    space of ``W Cov(x, z)``.  After erasure no linear classifier predicts
+    space of ``W Cov(x, z)``.  That space has at most ``C - 1`` dimensions
+    for ``C`` classes (as many as the attribute has independent columns if
+    numeric); directions whose canonical correlation with ``z`` is below
+    :data:`veil.linalg.BASIS_RTOL` count as absent.  After erasure no linear classifier predicts
     ``z`` better than a constant on the fitting distribution (the erased class
     means coincide, ``Cov(r(x), z) = 0``), and among all affine erasers with
     that property ``r`` moves the data least in mean squared distance.
@@ -25,8 +28,9 @@ class LEACE(MomentErasure):
     ----------
     eigenvalue_rtol : float, optional
         Eigenvalues of ``Cov(x)`` at or below ``eigenvalue_rtol * λ_max`` are
-        treated as zero (rank-deficient covariance: ``d > n``, duplicated
-        features).  Default: ``d * eps``.
+        treated as zero (rank-deficient covariance: ``d > n``, dead or
+        duplicated features).  Default: :data:`veil.linalg.COVARIANCE_RTOL`
+        (``1e-10``), far above rounding noise and far below any live spread.
     normalize : bool, default=False
         Re-normalise erased rows to unit length.
 
@@ -61,10 +65,11 @@ class LEACE(MomentErasure):
 
     def _map_from_moments(self, moments: MomentState) -> AffineLowRankMap:
         eigenvectors, scale = whitening_factors(moments.covariance_xx, rtol=self.eigenvalue_rtol)
-        # W Σ_xz, computed in the eigenbasis without forming W.
-        whitened_cross = eigenvectors @ (scale[:, None] * (eigenvectors.T @ moments.cross_covariance))
-        q = orthonormal_basis(whitened_cross)
-        in_basis = eigenvectors.T @ q
+        # W Cov(x, z̃) in the eigenbasis of Cov(x), with z̃ the whitened attribute: its singular values are the
+        # canonical correlations of x and z, at most 1, and it has exactly as many columns as the attribute has
+        # independent directions (C - 1 for C classes), so no direction of rounding noise can enter the basis.
+        correlations = scale[:, None] * (eigenvectors.T @ moments.standardized_cross_covariance())
+        in_basis = orthonormal_basis(correlations, reference=1.0)
         u = eigenvectors @ (in_basis / scale[:, None])  # W⁺ Q
         v = eigenvectors @ (in_basis * scale[:, None])  # W Q
         return AffineLowRankMap(mean=moments.mean_x, u=u, v=v)

@@ -36,5 +36,6 @@ class MeanProjection(MomentErasure):
         self.normalize = normalize
 
     def _map_from_moments(self, moments: MomentState) -> AffineLowRankMap:
-        q = restrict_to_support(orthonormal_basis(moments.cross_covariance), moments.covariance_xx)
+        # Cov(x, z̃) spans the same offsets with exactly C - 1 columns for C classes (see MomentState).
+        q = restrict_to_support(orthonormal_basis(moments.standardized_cross_covariance()), moments.covariance_xx)
         return AffineLowRankMap(mean=moments.mean_x, u=q, v=q)
