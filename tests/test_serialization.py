@@ -91,3 +91,29 @@ def test_missing_and_garbled_files_are_refused(encoded: dict[str, bytes]) -> Non
         decode_artifact({**encoded, DESCRIPTION_FILE: b"{\xff"})
     with pytest.raises(ArtifactFormatError, match="not a veil artifact"):
         decode_artifact({**encoded, DESCRIPTION_FILE: b"[]"})
+
+
+def test_the_artifact_names_the_kind_of_map_it_holds(encoded: dict[str, bytes]) -> None:
+    description = json.loads(encoded[DESCRIPTION_FILE])
+    assert description["map_kind"] == "affine-lowrank"
+    assert description["format_version"] == 2
+    assert decode_artifact(encoded).kind == "affine-lowrank"
+
+
+def test_a_map_kind_this_release_does_not_know_is_refused_by_name(encoded: dict[str, bytes]) -> None:
+    # As a newer release would write it, checksums and digest included: only the kind is unknown here.
+    description = json.loads(encoded[DESCRIPTION_FILE])
+    description["map_kind"] = "class-transport"
+    with np.load(io.BytesIO(encoded[ARRAYS_FILE])) as stored:
+        arrays = {name: stored[name] for name in stored.files}
+    digest = hashlib.sha256(
+        json.dumps({k: v for k, v in description.items() if k not in ("arrays_sha256", "content_digest")},
+                   sort_keys=True).encode()
+    )  # fmt: skip
+    for name, array in sorted(arrays.items()):
+        digest.update(f"{name}|{array.dtype.str}|{array.shape}".encode())
+        digest.update(np.ascontiguousarray(array).tobytes())
+    description["content_digest"] = digest.hexdigest()
+    encoded[DESCRIPTION_FILE] = json.dumps(description).encode()
+    with pytest.raises(ArtifactFormatError, match="unknown map kind 'class-transport'"):
+        decode_artifact(encoded)

@@ -1,4 +1,4 @@
-"""What a fitted eraser exports: its affine low-rank map plus the statistics later stages need."""
+"""What a fitted eraser exports: its map (of a kind the artifact names) plus the statistics later stages need."""
 
 from __future__ import annotations
 
@@ -10,6 +10,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.lowrank import AffineLowRankMap
+from veil.mapkinds import EmbeddingMap
 from veil.moments import MomentState
 from veil.postprocess import unit_normalize
 
@@ -26,8 +27,9 @@ class MapArtifact:
         ``"leace"``, ``"meanproj"``, ``"inlp"`` or ``"rlace"``.
     params : mapping
         The estimator's constructor parameters.
-    map : AffineLowRankMap
-        ``x' = x - U Vᵀ (x - μ)``.
+    map : EmbeddingMap
+        The fitted map; today always an :class:`AffineLowRankMap`,
+        ``x' = x - U Vᵀ (x - μ)`` (see :mod:`veil.mapkinds`).
     normalize : bool
         Whether served vectors are re-normalised to unit length after erasure.
     moments : MomentState
@@ -40,10 +42,15 @@ class MapArtifact:
 
     method: str
     params: Mapping[str, Any]
-    map: AffineLowRankMap
+    map: EmbeddingMap
     normalize: bool
     moments: MomentState
     history: list[dict[str, float]] = field(default_factory=list)
+
+    @property
+    def kind(self) -> str:
+        """The kind of map held, e.g. ``"affine-lowrank"``."""
+        return self.map.kind
 
     @property
     def classes(self) -> NDArray[np.generic] | None:
@@ -65,6 +72,8 @@ class MapArtifact:
         """``U Vᵀ (μ_c − μ)`` for every class ``c``, shape (n_classes, d): what a counterfactual adds after erasure."""
         if self.class_means is None:
             raise ValueError("counterfactuals by class need a categorical attribute")
+        if not isinstance(self.map, AffineLowRankMap):
+            raise ValueError(f"counterfactuals by class are defined for affine maps, not {self.kind!r}")
         return np.stack([self.map.shift_towards(mean) for mean in self.class_means])
 
     def apply(self, x: NDArray[np.floating]) -> NDArray[np.floating]:

@@ -8,7 +8,9 @@ copy of ``X``, and never touches a d×d matrix.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
+from typing import Any, ClassVar
 
 import numpy as np
 from numpy.typing import NDArray
@@ -37,6 +39,8 @@ class AffineLowRankMap:
         ``V``: the read-out of the component to remove.  ``V = U`` for an
         orthogonal projection (INLP, R-LACE, mean projection).
     """
+
+    kind: ClassVar[str] = "affine-lowrank"
 
     mean: Float64Array
     u: Float64Array
@@ -96,6 +100,25 @@ class AffineLowRankMap:
     def shift_towards(self, target_mean: Float64Array) -> Float64Array:
         """``U Vᵀ (m - μ)``: the component a row at mean ``m`` carries, shape (d,)."""
         return np.asarray(((np.asarray(target_mean, dtype=np.float64) - self.mean) @ self.v) @ self.u.T)
+
+    def removed_variance_share(self, covariance: Float64Array) -> float:
+        """``E‖U Vᵀ (x − μ)‖² / E‖x − μ‖² = tr(Uᵀ U Vᵀ Σ V) / tr Σ`` for data of covariance ``Σ`` (d, d)."""
+        total = float(np.trace(covariance))
+        removed = float(np.trace((self.u.T @ self.u) @ (self.v.T @ covariance @ self.v)))
+        return removed / total if total > 0 else 0.0
+
+    def arrays(self) -> dict[str, Float64Array]:
+        """The map's arrays by name, as an artifact file stores them."""
+        return {"mean": self.mean, "u": self.u, "v": self.v}
+
+    @classmethod
+    def from_arrays(cls, arrays: Mapping[str, NDArray[Any]]) -> AffineLowRankMap:
+        """The map :meth:`arrays` describes (raises ``KeyError`` or ``ValueError`` on missing or bad arrays)."""
+        return cls(mean=arrays["mean"], u=arrays["u"], v=arrays["v"])
+
+    def describe(self) -> dict[str, int]:
+        """Its shape for people and cards: dimension and rank."""
+        return {"dim": self.dim, "rank": self.rank}
 
     def to_dense(self) -> tuple[Float64Array, Float64Array]:
         """The same map as ``x' = A x + b`` with a dense ``A`` (d, d).

@@ -26,14 +26,6 @@ LEADING_COMPONENTS = 128
 Float64Array = NDArray[np.float64]
 
 
-def erased_variance_share(artifact: MapArtifact, covariance: Float64Array) -> float:
-    """E‖U Vᵀ (x − μ)‖² / E‖x − μ‖² = tr(Uᵀ U Vᵀ Σ V) / tr Σ, from the covariance alone."""
-    u, v = artifact.map.u.astype(np.float64), artifact.map.v.astype(np.float64)
-    total = float(np.trace(covariance))
-    erased = float(np.trace((u.T @ u) @ (v.T @ covariance @ v)))
-    return erased / total if total > 0 else 0.0
-
-
 @dataclass(frozen=True, eq=False)
 class ReferenceStatistics:
     """What live traffic is compared against.
@@ -84,7 +76,7 @@ class ReferenceStatistics:
             mean=artifact.moments.mean_x.astype(np.float64),
             eigenvalues=np.maximum(eigenvalues[order], 0.0),
             eigenvectors=eigenvectors[:, keep],
-            erased_variance_share=erased_variance_share(artifact, covariance),
+            erased_variance_share=artifact.map.removed_variance_share(covariance),
             class_priors=artifact.class_priors,
             class_means=artifact.class_means,
             probe_weights=np.asarray(weights, dtype=np.float64),

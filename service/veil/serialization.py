@@ -1,8 +1,12 @@
 """Write and read an :class:`MapArtifact` as plain files: NumPy arrays and a JSON description.
 
 An artifact is two files: ``arrays.npz`` (read with ``allow_pickle=False``,
-so loading never runs code) and ``artifact.json`` (method, parameters,
-shapes, history and the sha256 of the arrays file).
+so loading never runs code) and ``artifact.json`` (method, the kind of map,
+parameters, shapes, history and the sha256 of the arrays file).
+
+Format 2 names the map's kind (``map_kind``) and stores the map's own arrays
+under a ``map.`` prefix; format 1, written before map kinds existed, holds
+an affine low-rank map as ``mean``, ``u`` and ``v`` and is still read.
 :func:`content_digest` hashes the arrays and description themselves, not
 the zip container, so the same eraser always has the same digest.
 """
@@ -21,11 +25,14 @@ from numpy.typing import NDArray
 
 from veil.artifact import MapArtifact
 from veil.lowrank import AffineLowRankMap
+from veil.mapkinds import EmbeddingMap, map_from_arrays
 from veil.moments import MomentState
 
 ARRAYS_FILE = "arrays.npz"
 DESCRIPTION_FILE = "artifact.json"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+READABLE_FORMATS = (1, 2)
+_MAP_PREFIX = "map."
 
 _MOMENT_ARRAYS = ("mean_x", "mean_z", "comoment_xx", "comoment_xz", "comoment_zz")
 
@@ -47,12 +54,8 @@ def _json_safe(value: Any) -> Any:
 def artifact_arrays(artifact: MapArtifact) -> dict[str, NDArray[Any]]:
     """The artifact's arrays by name (the map, the moments, the class labels)."""
     moments = artifact.moments
-    arrays: dict[str, NDArray[Any]] = {
-        "mean": artifact.map.mean,
-        "u": artifact.map.u,
-        "v": artifact.map.v,
-        "count": np.array(moments.count, dtype=np.int64),
-    }
+    arrays: dict[str, NDArray[Any]] = {_MAP_PREFIX + name: array for name, array in artifact.map.arrays().items()}
+    arrays["count"] = np.array(moments.count, dtype=np.int64)
     arrays.update({name: getattr(moments, name) for name in _MOMENT_ARRAYS})
     if moments.labels is not None:
         arrays["labels"] = moments.labels
@@ -64,10 +67,10 @@ def artifact_description(artifact: MapArtifact) -> dict[str, Any]:
     return {
         "format_version": FORMAT_VERSION,
         "method": artifact.method,
+        "map_kind": artifact.kind,
         "params": _json_safe(dict(artifact.params)),
         "normalize": artifact.normalize,
-        "dim": artifact.map.dim,
-        "rank": artifact.map.rank,
+        **artifact.map.describe(),
         "categorical": artifact.moments.labels is not None,
         "history": _json_safe(artifact.history),
     }
@@ -75,8 +78,12 @@ def artifact_description(artifact: MapArtifact) -> dict[str, Any]:
 
 def content_digest(artifact: MapArtifact) -> str:
     """sha256 over the description and every array's name, dtype, shape and bytes, in name order."""
-    digest = hashlib.sha256(json.dumps(artifact_description(artifact), sort_keys=True).encode())
-    for name, array in sorted(artifact_arrays(artifact).items()):
+    return _digest(artifact_description(artifact), artifact_arrays(artifact))
+
+
+def _digest(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> str:
+    digest = hashlib.sha256(json.dumps(description, sort_keys=True).encode())
+    for name, array in sorted(arrays.items()):
         contiguous = np.ascontiguousarray(array)
         digest.update(f"{name}|{contiguous.dtype.str}|{contiguous.shape}".encode())
         digest.update(contiguous.tobytes())
@@ -125,8 +132,9 @@ def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> 
         description = json.loads(files[DESCRIPTION_FILE].decode("utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError) as error:
         raise ArtifactFormatError(f"{source}: {DESCRIPTION_FILE} is not valid JSON: {error}") from None
-    if not isinstance(description, dict) or description.get("format_version") != FORMAT_VERSION:
-        raise ArtifactFormatError(f"{source}: {DESCRIPTION_FILE} is not a veil artifact of format {FORMAT_VERSION}")
+    if not isinstance(description, dict) or description.get("format_version") not in READABLE_FORMATS:
+        readable = " or ".join(map(str, READABLE_FORMATS))
+        raise ArtifactFormatError(f"{source}: {DESCRIPTION_FILE} is not a veil artifact of format {readable}")
     arrays_bytes = files[ARRAYS_FILE]
     if hashlib.sha256(arrays_bytes).hexdigest() != description.get("arrays_sha256"):
         raise ArtifactFormatError(
@@ -138,7 +146,7 @@ def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> 
         artifact = MapArtifact(
             method=str(description["method"]),
             params=dict(description["params"]),
-            map=AffineLowRankMap(mean=arrays["mean"], u=arrays["u"], v=arrays["v"]),
+            map=_stored_map(description, arrays),
             normalize=bool(description["normalize"]),
             moments=MomentState(
                 count=int(arrays["count"]),
@@ -149,6 +157,19 @@ def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> 
         )
     except (KeyError, ValueError, TypeError, OSError, zipfile.BadZipFile) as error:
         raise ArtifactFormatError(f"{source} holds an unreadable artifact: {error}") from None
-    if content_digest(artifact) != description.get("content_digest"):
+    # The digest is checked against what was written, in the format it was written in.
+    if _digest(_stored_description(description), arrays) != description.get("content_digest"):
         raise ArtifactFormatError(f"{source}: the content digest does not match the stored one")
     return artifact
+
+
+def _stored_map(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> EmbeddingMap:
+    if description["format_version"] == 1:
+        return AffineLowRankMap.from_arrays(arrays)
+    own = {name.removeprefix(_MAP_PREFIX): array for name, array in arrays.items() if name.startswith(_MAP_PREFIX)}
+    return map_from_arrays(str(description["map_kind"]), own)
+
+
+def _stored_description(description: Mapping[str, Any]) -> dict[str, Any]:
+    """The description as :func:`artifact_description` made it: without the checksums added after hashing."""
+    return {key: value for key, value in description.items() if key not in ("arrays_sha256", "content_digest")}

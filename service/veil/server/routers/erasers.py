@@ -73,8 +73,7 @@ def summary(served: ServedVersion, alias: str) -> dict[str, Any]:
         "alias": alias,
         "version": served.version_id,
         "method": served.artifact.method,
-        "dim": served.dim,
-        "rank": served.artifact.map.rank,
+        **served.artifact.map.describe(),
         "normalize": served.artifact.normalize,
         "classes": served.classes,
     }
