@@ -79,6 +79,38 @@ async def test_apply_in_both_formats_equals_the_in_process_transform(
         assert half.status_code == 200
 
 
+async def test_fortran_order_and_big_endian_bodies_are_answered_like_c_order_float32(
+    service_registry: ServiceRegistry, batch: np.ndarray
+) -> None:
+    x = np.asarray(batch, dtype=np.float32)
+    expected = Registry(service_registry.path).read_version(PROFILES, "live").artifact.apply(x)
+    url = f"/v1/erasers/{PROFILES}/apply"
+    async with client_for(app_for(service_registry.path)) as client:
+
+        async def answer(matrix: np.ndarray) -> np.ndarray:
+            response = await client.post(url, content=npy(matrix), headers={"Content-Type": NPY})
+            assert response.status_code == 200, response.text
+            return from_npy(response.content)
+
+        plain = await answer(x)
+        # numpy's own writer marks these in the header: fortran_order True, and descr '>f4' / '>f8'.
+        for variant in (np.asfortranarray(x), x.astype(">f4"), np.asfortranarray(x.astype(">f4"))):
+            got = await answer(variant)
+            assert got.dtype == np.dtype("<f4")
+            np.testing.assert_array_equal(got, plain)
+        np.testing.assert_allclose(plain, expected, atol=1e-6)
+        wide = x.astype(np.float64)
+        np.testing.assert_array_equal(await answer(wide.astype(">f8")), await answer(wide))
+        np.testing.assert_array_equal(await answer(np.asfortranarray(wide)), await answer(wide))
+        # The drift route reads bodies the same way.
+        drift = f"/v1/erasers/{PROFILES}/drift"
+        reports = [
+            (await client.post(drift, content=npy(m), headers={"Content-Type": NPY})).json()
+            for m in (x, np.asfortranarray(x.astype(">f4")))
+        ]
+        assert reports[0] == reports[1]
+
+
 async def test_callers_can_pin_a_version_or_another_alias(
     service_registry: ServiceRegistry, copied: Path, batch: np.ndarray
 ) -> None:
