@@ -186,3 +186,29 @@ def test_a_hash_match_alone_never_drops_a_distinct_vector() -> None:
     reservoir.add(other)
     reservoir.add(first)
     np.testing.assert_array_equal(reservoir.sample(), np.concatenate([first, other]))
+
+
+async def test_a_pinned_version_is_checked_on_the_same_traffic_without_touching_the_served_gauge(
+    service_registry: ServiceRegistry,
+) -> None:
+    queries = load_harbourline_profiles().embedding[:400]
+    async with client_for(app_for(service_registry.path)) as client:
+        response = await client.post(
+            f"/v1/erasers/{PROFILES}/apply", content=npy(queries), headers={"Content-Type": "application/x-npy"}
+        )
+        assert response.headers["x-veil-version"] == service_registry.leace
+        drift = f"/v1/erasers/{PROFILES}/drift"
+        for request in ({"params": {"version": "2"}}, {"headers": {"X-Veil-Version": service_registry.meanproj}}):
+            pinned = await client.get(drift, **request)  # type: ignore[arg-type]
+            assert pinned.status_code == 200, pinned.text
+            assert pinned.json()["version"] == service_registry.meanproj
+            assert pinned.json()["rows"] == 400
+        gauge = f'veil_drift_status{{name="{PROFILES}"}}'
+        assert gauge not in (await client.get("/metrics")).text
+        served = (await client.get(drift)).json()
+        assert served["version"] == service_registry.leace
+        assert gauge in (await client.get("/metrics")).text
+        both = await client.get(drift, params={"version": "2", "alias": "live"})
+        assert (both.status_code, both.json()["error"]["code"]) == (422, "invalid_request")
+        unknown = await client.get(drift, params={"alias": "nightly"})
+        assert (unknown.status_code, unknown.json()["error"]["code"]) == (404, "unknown_version")
