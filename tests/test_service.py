@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import io
+import logging
 import shutil
 import threading
 from pathlib import Path
@@ -191,6 +192,36 @@ async def test_only_configured_names_are_served(service_registry: ServiceRegistr
         response = await client.get(f"/v1/erasers/{PROFILES}")
         assert response.status_code == 404
         assert response.json()["error"]["code"] == "unknown_eraser"
+
+
+async def test_readiness_names_the_registry_problem_until_the_registry_is_there(
+    service_registry: ServiceRegistry, tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    registry = tmp_path / "registry"
+    auth = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
+    server_log = logging.getLogger("veil.server")
+    server_log.addHandler(caplog.handler)  # the service's logger does not propagate to the root's
+    try:
+        async with client_for(app_for(registry)) as client:
+            missing = await client.get("/readyz")
+            assert missing.status_code == 503
+            assert missing.json()["error"]["message"] == f"the registry {registry} does not exist"
+            await client.post("/v1/admin/reload", headers=auth)  # unchanged: not logged again
+            registry.mkdir()
+            await client.post("/v1/admin/reload", headers=auth)
+            empty = await client.get("/readyz")
+            assert empty.json()["error"]["message"] == f"the registry {registry} holds no eraser"
+            shutil.copytree(service_registry.path, registry, dirs_exist_ok=True)
+            await client.post("/v1/admin/reload", headers=auth)
+            assert (await client.get("/readyz")).status_code == 200
+    finally:
+        server_log.removeHandler(caplog.handler)
+    events = [(r.getMessage(), getattr(r, "fields", {}).get("problem")) for r in caplog.records]
+    assert [event for event in events if event[0].startswith("registry")] == [
+        ("registry unusable", f"the registry {registry} does not exist"),
+        ("registry unusable", f"the registry {registry} holds no eraser"),
+        ("registry readable", None),
+    ]
 
 
 async def test_admin_routes_need_the_right_token(service_registry: ServiceRegistry) -> None:
