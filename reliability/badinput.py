@@ -45,6 +45,8 @@ GOOD = np.ones((2, D), dtype=np.float32)
 HEADER = "{'descr': '<f4', 'fortran_order': False, 'shape': (2, 16), }"
 FORGED_SHAPE = npy_with_header(HEADER.replace("(2, 16)", "(9, 16)"), GOOD.tobytes())
 CODE_IN_HEADER = npy_with_header("__import__('os').system('true')", GOOD.tobytes())
+# numpy itself writes only True or False; a 1 here is a forgery, and truthiness must not let it through.
+FORTRAN_AS_NUMBER = npy_with_header(HEADER.replace("False", "1"), GOOD.tobytes())
 EXTRA_KEY = npy_with_header(HEADER.replace(" }", " 'x': 1}"), GOOD.tobytes())
 HUGE_HEADER_LENGTH = npy_with_header(HEADER, version=2)[:8] + struct.pack("<I", 1 << 30)
 BEYOND_FLOAT32 = b'{"vectors": [[' + b",".join([b"1e300"] * D) + b"]]}"
@@ -95,11 +97,20 @@ _POSTS: list[tuple[str, str, dict[str, str], bytes, int, str]] = [
     ("pickled object array", APPLY, NPY, npy(np.array([[object()]], dtype=object)), 422, "invalid_vectors"),
     ("raw pickle", APPLY, NPY, pickle.dumps({"vectors": [[1.0]]}), 400, "malformed_body"),
     ("integer npy", APPLY, NPY, npy(np.ones((2, D), dtype=np.int64)), 422, "invalid_vectors"),
-    ("big-endian npy", APPLY, NPY, npy(np.ones((2, D), dtype=">f4")), 422, "invalid_vectors"),
+    ("big-endian integer npy", APPLY, NPY, npy(np.ones((2, D), dtype=">i4")), 422, "invalid_vectors"),
+    ("big-endian complex npy", APPLY, NPY, npy(np.ones((2, D), dtype=">c8")), 422, "invalid_vectors"),
+    ("big-endian npy truncated data", APPLY, NPY, npy(np.ones((2, D), dtype=">f4"))[:-4], 400, "malformed_body"),
+    ("big-endian NaN in npy", APPLY, NPY, npy(np.full((2, D), np.nan, dtype=">f8")), 422, "invalid_vectors"),
     ("complex npy", APPLY, NPY, npy(np.ones((2, D), dtype=np.complex64)), 422, "invalid_vectors"),
     ("3-D npy", APPLY, NPY, npy(np.ones((2, 2, D), dtype=np.float32)), 422, "invalid_vectors"),
     ("1-D npy", APPLY, NPY, npy(np.ones(D, dtype=np.float32)), 422, "invalid_vectors"),
-    ("Fortran-order npy", APPLY, NPY, npy(np.asfortranarray(np.ones((3, D), dtype=np.float32))), 400, "malformed_body"),
+    ("Fortran-order npy, wrong dimension", APPLY, NPY, npy(np.asfortranarray(np.ones((3, 5), dtype=np.float32))), 422,
+     "wrong_dimension"),
+    ("Fortran-order 3-D npy", APPLY, NPY, npy(np.asfortranarray(np.ones((2, 3, D), dtype=np.float32))), 422,
+     "invalid_vectors"),
+    ("Fortran-order object npy", APPLY, NPY, npy(np.asfortranarray(np.full((2, D), None, dtype=object))), 422,
+     "invalid_vectors"),
+    ("npy fortran_order not a boolean", APPLY, NPY, FORTRAN_AS_NUMBER, 400, "malformed_body"),
     ("unsupported media type", APPLY, {"Content-Type": "text/plain"}, b"1,2,3", 415, "unsupported_media_type"),
     ("no content type", APPLY, {}, npy(GOOD), 415, "unsupported_media_type"),
     ("unacceptable Accept", APPLY, {**NPY, "Accept": "text/html"}, npy(GOOD), 406, "not_acceptable"),

@@ -8,7 +8,7 @@ import socket
 import subprocess
 import sys
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
@@ -59,11 +59,15 @@ def live_server(
     workers: int = 1,
     environment: dict[str, str] | None = None,
     expect_ready: bool = True,
+    launcher: Sequence[str] = (),
 ) -> Iterator[LiveServer]:
-    """Start ``veil serve`` on loopback, wait until ``/readyz`` (or ``/healthz``) answers 200, stop it after."""
+    """Start ``veil serve`` on loopback, wait until ``/readyz`` (or ``/healthz``) answers 200, stop it after.
+
+    ``launcher`` goes before the command, e.g. to run the server with fewer privileges than the caller.
+    """
     port = free_port()
     command = [
-        sys.executable, "-m", "veil.cli", "serve", "--registry", str(registry), "--host", "127.0.0.1",
+        *launcher, sys.executable, "-m", "veil.cli", "serve", "--registry", str(registry), "--host", "127.0.0.1",
         "--port", str(port), "--workers", str(workers),
     ]  # fmt: skip
     for name in names:

@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 from fastapi.testclient import TestClient
 
+from veil.datasets import load_harbourline_profiles
 from veil.registry import Registry
 from veil_client import (
     AsyncVeilClient,
@@ -165,6 +166,24 @@ def test_bad_options_and_drift_arguments_are_refused_before_any_request() -> Non
     assert script.requests == []
 
 
+def test_drift_sends_the_pinned_version_or_alias_on_both_routes() -> None:
+    script = Script(*(httpx.Response(200, json={"status": "ok"}) for _ in range(4)))
+    veil = client(script)
+    veil.drift("e", X, version="3")
+    veil.drift("e", X, labels=["a"] * 30, alias="canary")
+    veil.drift("e", version="v0003-0123456789ab")
+    veil.drift("e", alias="canary")
+    assert [(r.method, r.headers.get("x-veil-version"), r.headers.get("x-veil-alias")) for r in script.requests] == [
+        ("POST", "3", None),
+        ("POST", None, "canary"),
+        ("GET", "v0003-0123456789ab", None),
+        ("GET", None, "canary"),
+    ]
+    with pytest.raises(VeilValidationError, match="not both"):
+        veil.drift("e", version="3", alias="canary")
+    assert len(script.requests) == 4
+
+
 def test_backoff_grows_exponentially_with_jitter_up_to_the_cap() -> None:
     policy = RetryPolicy(retries=8, base=0.1, cap=1.0)
     rng = random.Random(0)
@@ -206,6 +225,11 @@ async def test_the_async_client_on_the_real_app_equals_the_in_process_transform(
             np.testing.assert_allclose(result.vectors, expected, atol=1e-6)
         report = await veil.drift(PLANTED, x[:1000], labels=list(z[:1000]))
         assert report["status"] == "ok"
+        # Pinned to the version the live alias names, on the posted sample and on the traffic just cleaned.
+        pinned = await veil.drift(PLANTED, x[:1000], alias="live", version=None)
+        assert pinned["version"] == service_registry.planted
+        traffic = await veil.drift(PLANTED, version=service_registry.planted)
+        assert (traffic["version"], traffic["traffic_seen"]) == (service_registry.planted, 6000)
         assert (await veil.reload())["serving"][PLANTED] == service_registry.planted
         with pytest.raises(VeilClientError) as raised:
             await veil.apply(PLANTED, np.ones((2, 5)))
@@ -225,6 +249,13 @@ def test_the_sync_client_on_the_real_app(service_registry: ServiceRegistry) -> N
         pinned = veil.apply(PROFILES, batch, version="2")
         assert pinned.version == service_registry.meanproj
         np.testing.assert_allclose(pinned.vectors, expected, atol=1e-6)
+        # Drift checks pin the same way: the live version by default, the pinned one when asked.
+        sample = load_harbourline_profiles().embedding[:200]
+        assert veil.drift(PROFILES, sample)["version"] == service_registry.leace
+        assert veil.drift(PROFILES, sample, version="2")["version"] == service_registry.meanproj
+        veil.apply(PROFILES, sample)
+        traffic = veil.drift(PROFILES, version="2")
+        assert (traffic["version"], traffic["rows"]) == (service_registry.meanproj, 201)
         with pytest.raises(VeilClientError) as raised:
             veil.apply("nobody", batch)
         assert raised.value.code == "unknown_eraser"

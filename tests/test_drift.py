@@ -9,10 +9,11 @@ import orjson
 import pytest
 from scipy import stats
 
+from veil.datasets import load_harbourline_profiles
 from veil.registry import Registry
 from veil.server.reservoir import Reservoir
 
-from .service_fixtures import PLANTED, ServiceRegistry, app_for, client_for, planted_population
+from .service_fixtures import PLANTED, PROFILES, ServiceRegistry, app_for, client_for, planted_population
 
 pytestmark = pytest.mark.anyio
 DRIFT = f"/v1/erasers/{PLANTED}/drift"
@@ -133,3 +134,81 @@ def test_the_reservoir_is_a_uniform_sample_of_the_stream() -> None:
         assert np.unique(kept).size == capacity
         counts += np.histogram(kept, bins=bins, range=(0, total))[0]
     assert stats.chisquare(counts).pvalue > 0.001
+
+
+async def test_repeated_queries_are_checked_once_each(service_registry: ServiceRegistry) -> None:
+    # Search traffic repeats itself: the same 300 queries, sent six times over, are the same 300 vectors.
+    queries = load_harbourline_profiles().embedding[:300]
+    apply, drift = f"/v1/erasers/{PROFILES}/apply", f"/v1/erasers/{PROFILES}/drift"
+    reports = []
+    for rounds in (1, 6):
+        async with client_for(app_for(service_registry.path)) as client:
+            for _ in range(rounds):
+                for start in range(0, 300, 50):
+                    response = await client.post(
+                        apply, content=npy(queries[start : start + 50]), headers={"Content-Type": "application/x-npy"}
+                    )
+                    assert response.status_code == 200
+            reports.append((await client.get(drift)).json())
+    once, six_times = reports
+    assert once["status"] == "ok", once["reasons"]
+    assert (once["traffic_seen"], six_times["traffic_seen"]) == (300, 1800)
+    assert six_times["rows"] == 300
+    # The same distinct vectors in the same order: the very same report.
+    assert {**six_times, "traffic_seen": 300} == once
+
+
+def test_the_reservoir_holds_each_vector_once_and_repeats_crowd_nothing_out() -> None:
+    capacity = 100
+    reservoir = Reservoir(capacity, 2, seed=0)
+    rng = np.random.default_rng(0)
+    popular = np.column_stack([np.arange(30), np.zeros(30)]).astype(np.float32)
+    rare = np.column_stack([np.arange(1000, 3000), np.ones(2000)]).astype(np.float32)
+    # The popular vectors come back in every batch, in float32 and float64 alike, among a stream of new ones.
+    for start in range(0, 2000, 50):
+        batch = np.concatenate([popular, rare[start : start + 50], popular.astype(np.float64)])
+        reservoir.add(batch[rng.permutation(batch.shape[0])])
+        held = reservoir.sample()
+        assert np.unique(held, axis=0).shape[0] == held.shape[0]
+    assert held.shape[0] == capacity
+    assert reservoir.seen == 40 * 110
+    # Held once, a popular vector takes one slot however often it comes: most slots hold the 2000 rare ones.
+    assert (held[:, 1] == 1).sum() >= capacity - 30
+
+
+def test_a_hash_match_alone_never_drops_a_distinct_vector() -> None:
+    reservoir = Reservoir(10, 3, seed=0)
+    first = np.array([[1.0, 2.0, 3.0]], dtype=np.float32)
+    other = np.array([[4.0, 5.0, 6.0]], dtype=np.float32)
+    reservoir.add(first)
+    # Pretend the other vector's bytes hash like the first's (a 64-bit collision): it must still be kept.
+    reservoir._slots[hash(other.tobytes())] = 0
+    reservoir.add(other)
+    reservoir.add(first)
+    np.testing.assert_array_equal(reservoir.sample(), np.concatenate([first, other]))
+
+
+async def test_a_pinned_version_is_checked_on_the_same_traffic_without_touching_the_served_gauge(
+    service_registry: ServiceRegistry,
+) -> None:
+    queries = load_harbourline_profiles().embedding[:400]
+    async with client_for(app_for(service_registry.path)) as client:
+        response = await client.post(
+            f"/v1/erasers/{PROFILES}/apply", content=npy(queries), headers={"Content-Type": "application/x-npy"}
+        )
+        assert response.headers["x-veil-version"] == service_registry.leace
+        drift = f"/v1/erasers/{PROFILES}/drift"
+        for request in ({"params": {"version": "2"}}, {"headers": {"X-Veil-Version": service_registry.meanproj}}):
+            pinned = await client.get(drift, **request)  # type: ignore[arg-type]
+            assert pinned.status_code == 200, pinned.text
+            assert pinned.json()["version"] == service_registry.meanproj
+            assert pinned.json()["rows"] == 400
+        gauge = f'veil_drift_status{{name="{PROFILES}"}}'
+        assert gauge not in (await client.get("/metrics")).text
+        served = (await client.get(drift)).json()
+        assert served["version"] == service_registry.leace
+        assert gauge in (await client.get("/metrics")).text
+        both = await client.get(drift, params={"version": "2", "alias": "live"})
+        assert (both.status_code, both.json()["error"]["code"]) == (422, "invalid_request")
+        unknown = await client.get(drift, params={"alias": "nightly"})
+        assert (unknown.status_code, unknown.json()["error"]["code"]) == (404, "unknown_version")

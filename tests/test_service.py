@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import io
+import logging
 import shutil
 import threading
 from pathlib import Path
@@ -77,6 +78,38 @@ async def test_apply_in_both_formats_equals_the_in_process_transform(
             f"/v1/erasers/{PROFILES}/apply", content=npy(batch.astype(np.float16)), headers={"Content-Type": NPY}
         )
         assert half.status_code == 200
+
+
+async def test_fortran_order_and_big_endian_bodies_are_answered_like_c_order_float32(
+    service_registry: ServiceRegistry, batch: np.ndarray
+) -> None:
+    x = np.asarray(batch, dtype=np.float32)
+    expected = Registry(service_registry.path).read_version(PROFILES, "live").artifact.apply(x)
+    url = f"/v1/erasers/{PROFILES}/apply"
+    async with client_for(app_for(service_registry.path)) as client:
+
+        async def answer(matrix: np.ndarray) -> np.ndarray:
+            response = await client.post(url, content=npy(matrix), headers={"Content-Type": NPY})
+            assert response.status_code == 200, response.text
+            return from_npy(response.content)
+
+        plain = await answer(x)
+        # numpy's own writer marks these in the header: fortran_order True, and descr '>f4' / '>f8'.
+        for variant in (np.asfortranarray(x), x.astype(">f4"), np.asfortranarray(x.astype(">f4"))):
+            got = await answer(variant)
+            assert got.dtype == np.dtype("<f4")
+            np.testing.assert_array_equal(got, plain)
+        np.testing.assert_allclose(plain, expected, atol=1e-6)
+        wide = x.astype(np.float64)
+        np.testing.assert_array_equal(await answer(wide.astype(">f8")), await answer(wide))
+        np.testing.assert_array_equal(await answer(np.asfortranarray(wide)), await answer(wide))
+        # The drift route reads bodies the same way.
+        drift = f"/v1/erasers/{PROFILES}/drift"
+        reports = [
+            (await client.post(drift, content=npy(m), headers={"Content-Type": NPY})).json()
+            for m in (x, np.asfortranarray(x.astype(">f4")))
+        ]
+        assert reports[0] == reports[1]
 
 
 async def test_callers_can_pin_a_version_or_another_alias(
@@ -159,6 +192,36 @@ async def test_only_configured_names_are_served(service_registry: ServiceRegistr
         response = await client.get(f"/v1/erasers/{PROFILES}")
         assert response.status_code == 404
         assert response.json()["error"]["code"] == "unknown_eraser"
+
+
+async def test_readiness_names_the_registry_problem_until_the_registry_is_there(
+    service_registry: ServiceRegistry, tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    registry = tmp_path / "registry"
+    auth = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
+    server_log = logging.getLogger("veil.server")
+    server_log.addHandler(caplog.handler)  # the service's logger does not propagate to the root's
+    try:
+        async with client_for(app_for(registry)) as client:
+            missing = await client.get("/readyz")
+            assert missing.status_code == 503
+            assert missing.json()["error"]["message"] == f"the registry {registry} does not exist"
+            await client.post("/v1/admin/reload", headers=auth)  # unchanged: not logged again
+            registry.mkdir()
+            await client.post("/v1/admin/reload", headers=auth)
+            empty = await client.get("/readyz")
+            assert empty.json()["error"]["message"] == f"the registry {registry} holds no eraser"
+            shutil.copytree(service_registry.path, registry, dirs_exist_ok=True)
+            await client.post("/v1/admin/reload", headers=auth)
+            assert (await client.get("/readyz")).status_code == 200
+    finally:
+        server_log.removeHandler(caplog.handler)
+    events = [(r.getMessage(), getattr(r, "fields", {}).get("problem")) for r in caplog.records]
+    assert [event for event in events if event[0].startswith("registry")] == [
+        ("registry unusable", f"the registry {registry} does not exist"),
+        ("registry unusable", f"the registry {registry} holds no eraser"),
+        ("registry readable", None),
+    ]
 
 
 async def test_admin_routes_need_the_right_token(service_registry: ServiceRegistry) -> None:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import asyncio
 import io
 import json
+import os
 import shutil
 import socket
 import time
@@ -131,3 +132,41 @@ def test_connections_on_the_multi_worker_socket_get_tcp_nodelay(protocol: type[H
         return seen[0]
 
     assert asyncio.run(accept_one()) is nodelay
+
+
+@pytest.mark.parametrize("kind", ["missing", "a file", "unreadable"])
+def test_serve_names_an_unusable_registry_once_in_the_log_and_in_readyz(kind: str, tmp_path: Path) -> None:
+    registry = tmp_path / "registry"
+    launcher: list[str] = []
+    if kind == "a file":
+        registry.write_text("not a registry")
+    elif kind == "unreadable":
+        registry.mkdir()
+        registry.chmod(0)
+        if os.geteuid() == 0:
+            # Root reads anything: without these two capabilities the mode bits hold for it too.
+            setpriv = shutil.which("setpriv")
+            if setpriv is None:
+                pytest.skip("reading as root without permission override needs setpriv (util-linux)")
+            launcher = [setpriv, "--bounding-set=-dac_override,-dac_read_search"]
+    log = tmp_path / "server.log"
+    try:
+        with live_server(
+            registry, names=[], log=log, expect_ready=False, launcher=launcher,
+            environment={"VEIL_POLL_SECONDS": "0.2"},
+        ) as live:  # fmt: skip
+            # A few polls go by: the problem is logged when found, not again on each poll.
+            time.sleep(1.0)
+            ready = httpx.get(f"{live.base_url}/readyz", timeout=10.0)
+    finally:
+        if kind == "unreadable":
+            registry.chmod(0o700)  # so that pytest can remove it
+    lines = [json.loads(line) for line in log.read_text().splitlines() if line.startswith("{")]
+    problems = [line for line in lines if line["event"] == "registry unusable"]
+    assert len(problems) == 1, problems
+    reason = {"missing": "does not exist", "a file": "is not a directory", "unreadable": "Permission denied"}[kind]
+    assert problems[0]["registry"] == str(registry)
+    assert problems[0]["problem"].startswith(f"the registry {registry} ")
+    assert reason in problems[0]["problem"]
+    assert ready.status_code == 503
+    assert ready.json()["error"] == {"code": "not_ready", "message": problems[0]["problem"]}

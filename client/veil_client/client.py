@@ -66,11 +66,14 @@ class _Requests:
         body, media = encode(batch, self.settings.wire)
         return {"content": body, "headers": {**pin, "Content-Type": media, "Accept": media}}
 
-    def _drift_request(self, vectors: ArrayLike | None, labels: list[str] | None) -> dict[str, Any]:
+    def _drift_request(
+        self, vectors: ArrayLike | None, labels: list[str] | None, version: str | None, alias: str | None
+    ) -> dict[str, Any]:
+        pin = pin_headers(version, alias)
         if vectors is None:
             if labels is not None:
                 raise VeilValidationError("labels go with the vectors they label")
-            return {"method": "GET"}
+            return {"method": "GET", "headers": pin}
         matrix = as_matrix(vectors)
         if labels is not None:
             labels = [str(label) for label in labels]
@@ -79,7 +82,7 @@ class _Requests:
             body, media = encode(matrix, JSON, {"labels": labels})
         else:
             body, media = encode(matrix, self.settings.wire)
-        return {"method": "POST", "content": body, "headers": {"Content-Type": media}}
+        return {"method": "POST", "content": body, "headers": {**pin, "Content-Type": media}}
 
 
 def _combine(parts: list[NDArray[np.floating]], responses: list[httpx.Response]) -> CleanedBatch:
@@ -172,9 +175,37 @@ class VeilClient(_Requests):
         """Erase, then give every vector the attribute component of class ``target``."""
         return self._clean(f"/v1/erasers/{name}/counterfactual", vectors, version, alias, {"target": target})
 
-    def drift(self, name: str, vectors: ArrayLike | None = None, labels: list[str] | None = None) -> dict[str, Any]:
-        """Drift and leakage of a sample of raw live vectors (labels optional), or of recent traffic if none given."""
-        request = self._drift_request(vectors, labels)
+    def drift(
+        self,
+        name: str,
+        vectors: ArrayLike | None = None,
+        labels: list[str] | None = None,
+        *,
+        version: str | None = None,
+        alias: str | None = None,
+    ) -> dict[str, Any]:
+        """Drift and leakage of a sample of raw live vectors, or of the replica's recent traffic if none is given.
+
+        Parameters
+        ----------
+        name : str
+            The eraser.
+        vectors : array-like of shape (n_vectors, dim), optional
+            Raw live embeddings (what callers send to :meth:`apply`), at least 20 rows; without them the
+            service checks the distinct vectors it has recently cleaned for ``name``.
+        labels : list of str of length n_vectors, optional
+            The attribute's class of each vector; without them the probe predicts pseudo-labels.
+        version, alias : str, optional
+            Check against this version (id or sequence number) or the version this alias names, instead of
+            the one served; at most one of the two.
+
+        Returns
+        -------
+        dict
+            The report: ``status``, ``reasons``, the figures, ``rows`` (vectors checked), and the ``version``
+            checked; on recent traffic also ``traffic_seen`` (every vector cleaned, repeats included).
+        """
+        request = self._drift_request(vectors, labels, version, alias)
         result: dict[str, Any] = self._send(request.pop("method"), f"/v1/erasers/{name}/drift", **request).json()
         return result
 
@@ -269,9 +300,16 @@ class AsyncVeilClient(_Requests):
         return await self._clean(f"/v1/erasers/{name}/counterfactual", vectors, version, alias, {"target": target})
 
     async def drift(
-        self, name: str, vectors: ArrayLike | None = None, labels: list[str] | None = None
+        self,
+        name: str,
+        vectors: ArrayLike | None = None,
+        labels: list[str] | None = None,
+        *,
+        version: str | None = None,
+        alias: str | None = None,
     ) -> dict[str, Any]:
-        request = self._drift_request(vectors, labels)
+        """As :meth:`VeilClient.drift`: a posted sample, or recent traffic; ``version`` or ``alias`` pins one."""
+        request = self._drift_request(vectors, labels, version, alias)
         response = await self._send(request.pop("method"), f"/v1/erasers/{name}/drift", **request)
         result: dict[str, Any] = response.json()
         return result

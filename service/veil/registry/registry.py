@@ -136,6 +136,22 @@ class Registry:
 
     # ----------------------------------------------------------------- reading
 
+    def problem(self) -> str | None:
+        """Why nothing at all can be read here (missing, not a directory, refused), naming the registry; else None.
+
+        Writers create a missing registry on first write, so readers that list
+        it see it as empty; a service needs to tell that apart from one that is empty.
+        """
+        try:
+            if not self.storage.exists(""):
+                return f"the registry {self.url} does not exist"
+            self.storage.list("")
+        except NotADirectoryError:
+            return f"the registry {self.url} is not a directory"
+        except OSError as error:
+            return f"the registry {self.url} cannot be read ({error.strerror or error})"
+        return None
+
     def names(self) -> list[str]:
         """Every eraser name with at least one visible version."""
         return [name for name in self.storage.list("") if self._is_name(name) and self._version_ids(name)]

@@ -123,6 +123,8 @@ class Catalog:
         self._pinned_lock = threading.Lock()
         self._reload_lock = threading.Lock()
         self.failures: dict[str, str] = {}
+        #: Why the registry gives this process nothing to serve (missing, unreadable, empty), from the last reload.
+        self.registry_problem: str | None = None
 
     # ------------------------------------------------------------ hot path
 
@@ -212,6 +214,7 @@ class Catalog:
             failed: dict[str, str] = {}
             updated = dict(self._served)
             wanted = self.wanted_names()
+            self._note_registry_problem(wanted)
             for name in wanted:
                 old = updated.get(name)
                 try:
@@ -242,3 +245,17 @@ class Catalog:
             for name in wanted:
                 self.metrics.reload_failing.labels(name).set(1 if name in failed else 0)
             return ReloadOutcome(loaded=loaded, failed=failed)
+
+    def _note_registry_problem(self, wanted: list[str]) -> None:
+        """Keep the registry's problem for ``/readyz``; log it once when it appears or changes, not every poll."""
+        problem = self.registry.problem()
+        if problem is None and not wanted:
+            problem = f"the registry {self.registry.url} holds no eraser"
+        if problem == self.registry_problem:
+            return
+        fields = {"registry": self.registry.url, "problem": problem}
+        if problem is not None:
+            logger.error("registry unusable", extra={"fields": fields})
+        else:
+            logger.info("registry readable", extra={"fields": {"registry": self.registry.url}})
+        self.registry_problem = problem

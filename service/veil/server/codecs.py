@@ -1,9 +1,13 @@
 """Request and response bodies: JSON (orjson) and binary NumPy ``.npy``.
 
 The ``.npy`` path never goes through Python lists: the header is parsed and
-checked strictly (version, 2-D, C order, a float16/32/64 little-endian or
-native dtype, a data length that matches the shape exactly) and the data is
-viewed in place with ``np.frombuffer``.  Nothing is ever unpickled.
+checked strictly (version, exactly the three keys, 2-D, ``fortran_order`` a
+boolean, a float16/32/64 dtype of either byte order, a data length that
+matches the shape exactly) and the data is viewed in place with
+``np.frombuffer``.  A C-order float32 or float64 batch in the machine's byte
+order (little-endian, what clients send) is used as that view, with no copy;
+Fortran order, the other byte order and float16 cost one copy into a C-order
+native array.  Nothing is ever unpickled.
 """
 
 from __future__ import annotations
@@ -21,7 +25,12 @@ from veil.server.errors import ServiceError
 NPY_MEDIA_TYPE = "application/x-npy"
 JSON_MEDIA_TYPE = "application/json"
 _MAGIC = b"\x93NUMPY"
-_ALLOWED_DTYPES = {"<f2": np.float16, "<f4": np.float32, "<f8": np.float64}
+#: The float widths accepted, and the native dtype each is served as (float16 is widened: the maps are float32).
+_SERVED_AS: dict[str, np.dtype[Any]] = {
+    "f2": np.dtype(np.float32),
+    "f4": np.dtype(np.float32),
+    "f8": np.dtype(np.float64),
+}
 _MAX_HEADER = 4096
 
 
@@ -34,6 +43,14 @@ def _checked(matrix: NDArray[Any]) -> NDArray[np.floating]:
         row = int(np.flatnonzero(~np.isfinite(matrix).all(axis=1))[0])
         raise ServiceError("invalid_vectors", f"row {row} holds NaN or infinite values")
     return matrix
+
+
+def _float_dtype(descr: object) -> tuple[np.dtype[Any], np.dtype[Any]]:
+    """The dtype of the data as sent, and the native dtype it is served as; refuses every non-float descr."""
+    if isinstance(descr, str) and len(descr) == 3 and descr[0] in "<>=|" and descr[1:] in _SERVED_AS:
+        # "|" (no byte order) is not what numpy writes for floats, but it has always been read as native here.
+        return np.dtype(descr.replace("|", "=")), _SERVED_AS[descr[1:]]
+    raise ServiceError("invalid_vectors", f"the .npy dtype must be float16, float32 or float64, got {descr!r}")
 
 
 def parse_npy(body: bytes) -> NDArray[np.floating]:
@@ -58,24 +75,23 @@ def parse_npy(body: bytes) -> NDArray[np.floating]:
     if not isinstance(header, dict) or set(header) != {"descr", "fortran_order", "shape"}:
         raise ServiceError("malformed_body", "the .npy header must hold exactly descr, fortran_order and shape")
     descr, fortran, shape = header["descr"], header["fortran_order"], header["shape"]
-    dtype = _ALLOWED_DTYPES.get(descr.replace("=", "<").replace("|", "<") if isinstance(descr, str) else "")
-    if dtype is None:
-        raise ServiceError(
-            "invalid_vectors", f"the .npy dtype must be little-endian float16, float32 or float64, got {descr!r}"
-        )
-    if fortran is not False:
-        raise ServiceError("malformed_body", "the .npy array must be in C order")
+    wire, served = _float_dtype(descr)
+    if not isinstance(fortran, bool):
+        raise ServiceError("malformed_body", f"the .npy fortran_order must be True or False, got {fortran!r}")
     if not (isinstance(shape, tuple) and len(shape) == 2 and all(isinstance(s, int) and s >= 0 for s in shape)):
         raise ServiceError("invalid_vectors", f"the .npy array must be 2-D, got shape {shape!r}")
     data_start = start + header_length
-    expected = shape[0] * shape[1] * np.dtype(dtype).itemsize
+    expected = shape[0] * shape[1] * wire.itemsize
     if len(body) - data_start != expected:
         raise ServiceError(
             "malformed_body", f"the .npy data holds {len(body) - data_start} bytes but shape {shape} needs {expected}"
         )
-    matrix = np.frombuffer(body, dtype=dtype, offset=data_start).reshape(shape)
-    if dtype is np.float16:
-        matrix = matrix.astype(np.float32)
+    flat = np.frombuffer(body, dtype=wire, offset=data_start)
+    # Fortran order stores the transpose's rows: viewed as such, then transposed (still a view).
+    matrix = flat.reshape(shape[::-1]).T if fortran else flat.reshape(shape)
+    if matrix.dtype != served or fortran:
+        # One copy that fixes order, byte order and width together; the common case above skips it.
+        matrix = np.array(matrix, dtype=served, order="C")
     return _checked(matrix)
 
 

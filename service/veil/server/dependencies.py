@@ -136,29 +136,40 @@ async def batch_call(request: Request) -> BatchCall:
     parameters in the OpenAPI schema all the same.
     """
     settings: ServiceSettings = request.app.state.settings
-    headers, query = request.headers, request.query_params
+    headers = request.headers
     if settings.data_token is not None:
         _check_bearer(headers.get("authorization"), settings.data_token)
     media = request_media(headers.get("content-type"))
     answer = response_media(media, headers.get("accept"))
+    pin = pin_of(request)
+    body = await read_body(request, settings.max_body_bytes)
+    return BatchCall(body=body, media=media, answer=answer, pin=pin)
+
+
+def pin_of(request: Request) -> Pin:
+    """The version or alias a request pins (``?version=`` / ``?alias=`` or their headers), if any."""
+    headers, query = request.headers, request.query_params
     version = query.get("version") or headers.get("x-veil-version") or None
     alias = query.get("alias") or headers.get("x-veil-alias") or None
     if version and alias:
         raise ServiceError("invalid_request", "pin a version or an alias, not both")
-    body = await read_body(request, settings.max_body_bytes)
-    return BatchCall(body=body, media=media, answer=answer, pin=Pin(version=version, alias=alias))
+    return Pin(version=version, alias=alias)
 
 
 def _parameter(name: str, where: str, description: str) -> dict[str, Any]:
     return {"name": name, "in": where, "required": False, "schema": {"type": "string"}, "description": description}
 
 
-#: The OpenAPI description of what :func:`batch_call` reads.
-BATCH_PARAMETERS = [
+#: The OpenAPI description of what :func:`pin_of` reads.
+PIN_PARAMETERS = [
     _parameter("version", "query", "pin a version id or sequence number"),
     _parameter("alias", "query", "use another alias than the served one"),
     _parameter("X-Veil-Version", "header", "pin a version (as the query parameter)"),
     _parameter("X-Veil-Alias", "header", "use another alias (as the query parameter)"),
+]
+#: The OpenAPI description of what :func:`batch_call` reads.
+BATCH_PARAMETERS = [
+    *PIN_PARAMETERS,
     _parameter("Content-Type", "header", "application/json or application/x-npy"),
     _parameter("Accept", "header", "the response format; default: the request's"),
     _parameter("Authorization", "header", f"{_TOKEN_HEADER}, if VEIL_DATA_TOKEN is set"),

@@ -9,7 +9,7 @@ variable                           default             meaning
 ``VEIL_POLL_SECONDS``              ``10``              how often aliases are re-resolved (0: only on reload)
 ``VEIL_MAX_BODY_BYTES``            ``67108864``        larger request bodies get 413
 ``VEIL_MAX_PINNED_VERSIONS``       ``8``               versions other than the alias's kept loaded for pinning
-``VEIL_RESERVOIR_SIZE``            ``2048``            raw vectors per eraser kept for ``GET .../drift``
+``VEIL_RESERVOIR_SIZE``            ``2048``            distinct raw vectors per eraser kept for ``GET .../drift``
 ``VEIL_ADMIN_TOKEN``               unset               bearer token of admin routes; unset disables them
 ``VEIL_DATA_TOKEN``                unset               if set, data routes need this bearer token too
 ``VEIL_THRESHOLDS``                unset               JSON overriding the cards' alert thresholds

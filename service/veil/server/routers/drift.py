@@ -14,11 +14,13 @@ from veil.server.catalog import Catalog, ServedVersion
 from veil.server.codecs import JSON_MEDIA_TYPE
 from veil.server.dependencies import (
     BATCH_PARAMETERS,
+    PIN_PARAMETERS,
     EraserName,
     batch_call,
     get_catalog,
     get_metrics,
     get_reservoirs,
+    pin_of,
     require_data_token,
 )
 from veil.server.errors import ServiceError, error_responses
@@ -47,7 +49,11 @@ _DRIFT_BODY = {
 
 
 async def _run(
-    served: ServedVersion, raw: NDArray[np.floating], labels: list[str] | None, metrics: ServiceMetrics
+    served: ServedVersion,
+    raw: NDArray[np.floating],
+    labels: list[str] | None,
+    catalog: Catalog,
+    metrics: ServiceMetrics,
 ) -> dict[str, Any]:
     served.check_dim(raw)
     try:
@@ -64,7 +70,9 @@ async def _run(
         )
     except ValueError as error:
         raise ServiceError("invalid_request", str(error)) from None
-    metrics.drift_status.labels(served.name).set(DRIFT_LEVELS[report.status])
+    if catalog.served.get(served.name) is served:
+        # The gauge speaks for the version served; a check of a pinned candidate must not page anyone.
+        metrics.drift_status.labels(served.name).set(DRIFT_LEVELS[report.status])
     return {"eraser": served.name, "version": served.version_id, **report.to_dict()}
 
 
@@ -76,30 +84,36 @@ async def _run(
 )
 async def drift_of_sample(name: EraserName, request: Request) -> dict[str, Any]:
     call = await batch_call(request)
-    served = await pick_version(request.app.state.catalog, name, call.pin)
+    catalog: Catalog = request.app.state.catalog
+    served = await pick_version(catalog, name, call.pin)
     vectors, fields = decode_batch(call.body, call.media)
     labels = fields.get("labels") if call.media == JSON_MEDIA_TYPE else None
     if labels is not None and not (isinstance(labels, list) and all(isinstance(v, str) for v in labels)):
         raise ServiceError("invalid_request", '"labels" must be a list of class names (strings)')
-    return await _run(served, vectors, labels, request.app.state.metrics)
+    return await _run(served, vectors, labels, catalog, request.app.state.metrics)
 
 
 @router.get(
     "/{name}/drift",
-    summary="Drift and leakage of the recent traffic this replica has seen (unlabelled)",
+    summary="Drift and leakage of the distinct vectors this replica has recently seen (unlabelled)",
     dependencies=[Depends(require_data_token)],
-    responses=error_responses(*DATA_TOKEN_ERRORS, "unknown_eraser", "no_traffic", "invalid_request"),
+    openapi_extra={"parameters": PIN_PARAMETERS},
+    responses=error_responses(
+        *DATA_TOKEN_ERRORS, "unknown_eraser", "unknown_version", "version_unavailable", "no_traffic", "invalid_request"
+    ),
 )
 async def drift_of_traffic(
     name: EraserName,
+    request: Request,
     catalog: Annotated[Catalog, Depends(get_catalog)],
     metrics: Annotated[ServiceMetrics, Depends(get_metrics)],
     reservoirs: Annotated[ReservoirBank, Depends(get_reservoirs)],
 ) -> dict[str, Any]:
-    served = catalog.current(name)
+    # The reservoir holds raw vectors, so a pinned version (a candidate, say) is checked on the same traffic.
+    served = await pick_version(catalog, name, pin_of(request))
     reservoir = reservoirs.get(name)
     sample = reservoir.sample() if reservoir is not None else np.empty((0, served.dim), dtype=np.float32)
     if sample.shape[0] == 0:
         raise ServiceError("no_traffic", f"this replica has seen no traffic for {name} yet")
-    result = await _run(served, sample, None, metrics)
+    result = await _run(served, sample, None, catalog, metrics)
     return {**result, "traffic_seen": reservoir.seen if reservoir is not None else 0}

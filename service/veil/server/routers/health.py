@@ -30,8 +30,10 @@ async def healthz() -> dict[str, str]:
 async def readyz(catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any] | Response:
     ready, missing = catalog.ready()
     if not ready:
-        problems = "; ".join(f"{name}: {catalog.failures.get(name, 'not loaded')}" for name in missing)
-        return error_response("not_ready", problems or "no eraser is loaded")
+        problems = [f"{name}: {catalog.failures.get(name, 'not loaded')}" for name in missing]
+        if catalog.registry_problem is not None:
+            problems.insert(0, catalog.registry_problem)
+        return error_response("not_ready", "; ".join(problems) or "no eraser is loaded")
     served = {name: s.version_id for name, s in sorted(catalog.served.items())}
     # Still ready: a refused next version must not take every replica out of rotation.  ``stale`` says so.
     return {
