@@ -61,6 +61,13 @@ def test_rank_larger_than_possible_is_refused() -> None:
         RLACE(rank=0).fit(x, z)
 
 
+@pytest.mark.parametrize(("name", "value"), [("alpha", 0.0), ("alpha", -1.0), ("projection_learning_rate", np.nan)])
+def test_rlace_refuses_a_step_or_penalty_that_is_not_positive(name: str, value: float) -> None:
+    x, z = _good()
+    with pytest.raises(ValueError, match=f"{name} must be a positive number"):
+        RLACE(**{name: value}).fit(x, z)
+
+
 def test_classifier_erasers_refuse_a_numeric_attribute_matrix() -> None:
     x, z = _good()
     with pytest.raises(ValueError, match="needs 1-D class labels"):

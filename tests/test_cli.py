@@ -270,6 +270,10 @@ def test_report_writes_a_self_contained_page_with_its_plots(fitted: Fitted, tmp_
         assert "no legal or compliance guarantee" in page
     assert "closed form" in (tmp_path / "leace.html").read_text()
     assert "INLP iteration" in (tmp_path / "inlp.html").read_text()
+    # R-LACE's adversary loss is drawn against the loss of predicting the class priors, which the game aims for.
+    out = tmp_path / "rlace.html"
+    assert run("report", NAME, fitted.ids["rlace"], "--registry", fitted.registry, "--out", out).code == 0
+    assert "prior entropy (nothing learned)" in out.read_text()
 
 
 def test_a_tampered_version_fails_verify_and_is_never_shown_or_promoted(fitted: Fitted, tmp_path: Path) -> None:

@@ -89,3 +89,29 @@ def test_rlace_finds_a_planted_direction() -> None:
     eraser = RLACE(rank=1, max_iter=200, batch_size=4096, random_state=0).fit(x, z)
     removed = eraser.map_.u[:, 0]
     assert abs(removed @ direction) > 0.95
+
+
+def test_rlace_of_rank_one_on_a_binary_attribute_removes_the_class_mean_difference() -> None:
+    # Linear guardedness <=> equal class-conditional means (the theorem of the
+    # LEACE paper): at rank 1 on a binary attribute the game's optimum removes
+    # the class-mean difference, measured here with numpy.  The planted noise
+    # is correlated, so the discriminant direction Σ⁻¹Δ is far from it (cosine
+    # 0.43 on this seed) and a game that stalled near a classifier's direction
+    # would fail.  Measured: cosine 0.99996 (0.9982 before the fix).
+    x, z = planted(n=6000, d=16, seed=2)
+    difference = x[z == 1].mean(axis=0) - x[z == 0].mean(axis=0)
+    removed = RLACE(rank=1, random_state=0).fit(x, z).map_.u[:, 0]
+    assert abs(removed @ difference) / np.linalg.norm(difference) >= 0.9995
+
+
+def test_rlace_of_rank_two_on_three_classes_removes_the_span_of_the_class_mean_offsets() -> None:
+    # The same theorem with three classes: two directions can make the class
+    # means coincide only by removing the span of their offsets (scipy.linalg.orth);
+    # scipy.linalg.subspace_angles measures the gap.  Measured: 0.31 degrees (1.4 before the fix).
+    rng = np.random.default_rng(0)
+    z = rng.integers(0, 3, 6000)
+    mixing = rng.normal(size=(12, 12)) / np.sqrt(12)
+    x = rng.normal(size=(6000, 12)) @ mixing + rng.normal(size=(3, 12))[z]
+    offsets = np.stack([x[z == c].mean(axis=0) - x.mean(axis=0) for c in range(3)]).T
+    removed = RLACE(rank=2, random_state=0).fit(x, z).map_.u
+    assert np.degrees(linalg.subspace_angles(removed, linalg.orth(offsets)).max()) <= 1.0

@@ -5,9 +5,11 @@ from __future__ import annotations
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from sklearn.utils import check_random_state
+from threadpoolctl import threadpool_limits
 
 from veil._validation import check_enough_rows, check_positive_int
 from veil.erasers._base import LinearErasure
+from veil.erasers._fantope import FantopePoint, ascend
 from veil.linalg import restrict_to_support
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
@@ -15,63 +17,43 @@ from veil.progress import advance
 
 Float64Array = NDArray[np.float64]
 
-_BISECTION_STEPS = 60
+# The projection's step length shrinks as 1 / sqrt(1 + t / _STEP_DECAY_ITERATIONS).
+_STEP_DECAY_ITERATIONS = 10.0
 
 
-def fantope_projection(matrix: Float64Array, rank: int) -> Float64Array:
-    """Euclidean projection of a symmetric matrix onto ``{0 ⪯ P ⪯ I, tr P = rank}``.
-
-    With ``M = E diag(λ) Eᵀ`` the projection is ``E diag(clip(λ - γ, 0, 1)) Eᵀ``
-    for the shift ``γ`` that makes the trace equal ``rank``; the trace is
-    monotone in ``γ``, so ``γ`` is found by bisection.
-    """
-    eigenvalues, eigenvectors = np.linalg.eigh((matrix + matrix.T) / 2)
-    low, high = float(eigenvalues.min()) - 1.0, float(eigenvalues.max())
-    for _ in range(_BISECTION_STEPS):
-        shift = (low + high) / 2
-        if np.clip(eigenvalues - shift, 0.0, 1.0).sum() > rank:
-            low = shift
-        else:
-            high = shift
-    clipped = np.clip(eigenvalues - (low + high) / 2, 0.0, 1.0)
-    return np.asarray((eigenvectors * clipped) @ eigenvectors.T)
-
-
-def _softmax(logits: Float64Array) -> Float64Array:
+def _probabilities(rows: Float64Array, point: FantopePoint, weights: Float64Array, bias: Float64Array) -> Float64Array:
+    """Class probabilities of the classifier on ``(I - P) x``, shape (n, c); the last class has logit 0."""
+    logits = rows @ point.kept(weights) + bias
+    logits = np.hstack([logits, np.zeros((logits.shape[0], 1))])
     shifted = np.exp(logits - logits.max(axis=1, keepdims=True))
     return np.asarray(shifted / shifted.sum(axis=1, keepdims=True))
 
 
-class _Adam:
-    """Adam steps for one parameter array (descent; pass a negated gradient to ascend)."""
-
-    def __init__(self, shape: tuple[int, ...], learning_rate: float) -> None:
-        self.learning_rate = learning_rate
-        self.first = np.zeros(shape)
-        self.second = np.zeros(shape)
-        self.steps = 0
-
-    def step(self, gradient: Float64Array) -> Float64Array:
-        beta1, beta2 = 0.9, 0.999
-        self.steps += 1
-        self.first = beta1 * self.first + (1 - beta1) * gradient
-        self.second = beta2 * self.second + (1 - beta2) * gradient**2
-        corrected = self.first / (1 - beta1**self.steps)
-        spread = np.sqrt(self.second / (1 - beta2**self.steps)) + 1e-8
-        return np.asarray(self.learning_rate * corrected / spread)
+def _free_residual(probabilities: Float64Array, targets: Float64Array) -> Float64Array:
+    """``∂L/∂logits`` of the mean cross-entropy for the free classes, shape (n, c - 1)."""
+    return np.asarray((probabilities - targets)[:, :-1] / probabilities.shape[0])
 
 
 class RLACE(LinearErasure):
     """Relaxed linear adversarial concept erasure (R-LACE) of rank ``k``.
 
-    Solves the minimax game ``max_P min_θ  L(θ; (I - P) x)`` between a
-    multinomial logistic classifier ``θ`` of the attribute and a projection
-    ``P`` of rank ``k``, relaxed to the Fantope ``{0 ⪯ P ⪯ I, tr P = k}``:
-    each iteration takes classifier descent steps on a mini-batch, then one
-    projected ascent step on ``P``.  The game oscillates, so the iterate kept
-    is the one against which the classifier's loss came closest to the
-    entropy of the class priors (a classifier that learned nothing).  The result is rounded to the orthogonal
-    projection onto the top-``k`` eigenvectors ``Q`` of ``P``: ``U = V = Q``.
+    Solves the minimax game ``max_P min_θ  L(θ; (I - P) x) + ½α‖W‖²`` between
+    a multinomial logistic classifier ``θ = (W, b)`` of the attribute and a
+    projection ``P`` of rank ``k``, relaxed to the Fantope
+    ``{0 ⪯ P ⪯ I, tr P = k}``.  The game starts from a random rank-``k``
+    projection; each iteration takes classifier gradient steps, then one
+    projected ascent step on ``P`` whose length shrinks as
+    ``1 / sqrt(1 + t / 10)``, so the iterates settle instead of circling the
+    optimum.  The last iterate is rounded to the orthogonal projection onto
+    its top-``k`` eigenvectors ``Q``: ``U = V = Q``.
+
+    Rows are centred and scaled by one global factor (unit mean squared
+    coordinate) first; ``alpha`` is relative to that scale.  From rank
+    ``classes - 1`` on, a projection can make the class means coincide,
+    which is exactly when no linear classifier beats the priors; the game's
+    optimum then removes the span of the class-mean offsets (at rank
+    ``classes - 1``, that span and nothing else) whatever ``alpha`` is, and
+    ``alpha`` only sets how fast the game gets there.
 
     Parameters
     ----------
@@ -79,18 +61,28 @@ class RLACE(LinearErasure):
         Number of directions removed.
     max_iter : int, default=300
         Game iterations (one projection step each).
-    classifier_steps : int, default=5
-        Classifier descent steps per iteration.
-    learning_rate : float, default=0.05
-        Adam step of the classifier.
-    projection_learning_rate : float, default=0.02
-        Length (Frobenius norm) of each normalised ascent step of the projection.
-    alpha : float, default=1e-2
-        L2 penalty of the classifier.
-    batch_size : int, default=512
-        Rows per iteration (all rows when fewer).
+    classifier_steps : int, default=3
+        Classifier gradient steps per iteration.  Each step has length
+        ``1 / L``, with ``L`` a bound on the curvature of the classifier's
+        loss (Böhning's bound on the multinomial logistic Hessian, times the
+        largest variance of the scaled rows, plus ``alpha``), so on a full
+        batch the classifier's penalised loss never rises during its steps.
+    projection_learning_rate : float, default=0.05
+        Frobenius length of the first ascent step of the projection; step
+        ``t`` is ``1 / sqrt(1 + t / 10)`` times as long.  Steps are
+        normalised, so the classifier's confidence does not set them.
+    alpha : float, default=1.0
+        L2 penalty of the classifier's weights.  A weaker penalty lets the
+        adversary lean on directions of little variance, which makes the
+        game slow to settle: at 0.01, a probe trained on held-out rows of
+        the committed sample still reads 0.65 on the pronoun after 300
+        iterations, against 0.61 at the default and after mean projection.
+    batch_size : int, default=4096
+        Rows per iteration (all rows when fewer).  Smaller batches make an
+        iteration cheaper but leave their sampling noise in the projection
+        found.
     random_state : int or None, default=None
-        Seeds the mini-batches.
+        Seeds the starting projection and the mini-batches.
     normalize : bool, default=False
         Re-normalise erased rows to unit length.
 
@@ -99,9 +91,10 @@ class RLACE(LinearErasure):
     map_ : AffineLowRankMap
     moments_ : MomentState
     history_ : list of dict
-        Per iteration: ``iteration`` and ``loss``, the classifier's
-        cross-entropy after its steps (the game's objective, which the
-        projection pushes up towards the entropy of the class priors).
+        Per iteration: ``iteration``, ``loss`` (the classifier's
+        cross-entropy after its steps, which the projection pushes up) and
+        ``prior_entropy`` (the loss of predicting the class priors, which a
+        classifier that learned nothing has: the game's target).
     n_iter_ : int
         Game iterations run.
     relaxed_projection_ : ndarray of shape (d, d)
@@ -118,18 +111,16 @@ class RLACE(LinearErasure):
         *,
         rank: int = 1,
         max_iter: int = 300,
-        classifier_steps: int = 5,
-        learning_rate: float = 0.05,
-        projection_learning_rate: float = 0.02,
-        alpha: float = 1e-2,
-        batch_size: int = 512,
+        classifier_steps: int = 3,
+        projection_learning_rate: float = 0.05,
+        alpha: float = 1.0,
+        batch_size: int = 4096,
         random_state: int | None = None,
         normalize: bool = False,
     ) -> None:
         self.rank = rank
         self.max_iter = max_iter
         self.classifier_steps = classifier_steps
-        self.learning_rate = learning_rate
         self.projection_learning_rate = projection_learning_rate
         self.alpha = alpha
         self.batch_size = batch_size
@@ -142,6 +133,10 @@ class RLACE(LinearErasure):
             raise ValueError(f"rank {self.rank} is too large: it must be below the dimension {d}")
         for name in ("max_iter", "classifier_steps", "batch_size"):
             check_positive_int(name, getattr(self, name))
+        for name in ("projection_learning_rate", "alpha"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not np.isfinite(value) or value <= 0:
+                raise ValueError(f"{name} must be a positive number, got {value!r}")
 
     def fit(self, X: ArrayLike, z: object) -> RLACE:
         """Fit the eraser.
@@ -167,53 +162,69 @@ class RLACE(LinearErasure):
         # One global scale keeps step sizes meaningful without changing which
         # projection is optimal (a per-feature scale would).
         spread = float(np.sqrt(np.mean(centred**2)))
-        centred /= spread if spread > 0 else 1.0
-        targets = attribute.matrix
-        n, classes = targets.shape
+        scale = spread if spread > 0 else 1.0
+        centred /= scale
+        largest_variance = float(np.linalg.eigvalsh(moments.covariance_xx)[-1]) / scale**2
+        # Every product in the game is thin (d × (classes - 1)): BLAS threads
+        # waiting on each other cost more than they give, many times over on a busy machine.
+        with threadpool_limits(limits=1, user_api="blas"):
+            point, history = self._play(centred, attribute.matrix, moments.class_priors, largest_variance, rng)
 
-        projection = np.eye(d) * (self.rank / d)
-        weights = np.zeros((d, classes))
-        bias = np.log(np.maximum(moments.class_priors, 1e-12))
-        weight_opt = _Adam(weights.shape, self.learning_rate)
-        bias_opt = _Adam(bias.shape, self.learning_rate)
-        history: list[dict[str, float]] = []
-        # A classifier that learned nothing has the loss of predicting the priors.
-        priors = moments.class_priors[moments.class_priors > 0]
-        prior_entropy = float(-np.sum(priors * np.log(priors)))
-        best_distance, best_projection = np.inf, projection
-
-        for iteration in range(self.max_iter):
-            rows = rng.choice(n, size=min(self.batch_size, n), replace=False)
-            batch, batch_targets = centred[rows], targets[rows]
-            kept = batch - batch @ projection
-            for _ in range(self.classifier_steps):
-                residual = (_softmax(kept @ weights + bias) - batch_targets) / rows.size
-                weights -= weight_opt.step(kept.T @ residual + self.alpha * weights)
-                bias -= bias_opt.step(residual.sum(axis=0))
-            probabilities = _softmax(kept @ weights + bias)
-            loss = float(-np.mean(np.log(np.maximum((probabilities * batch_targets).sum(axis=1), 1e-300))))
-            residual = (probabilities - batch_targets) / rows.size
-            # ∂L/∂P for logits = x (I - P) θ + b is -xᵀ G θᵀ; symmetrised, and
-            # ascended (the projection maximises the classifier's loss).
-            gradient = -(batch.T @ residual) @ weights.T
-            gradient = (gradient + gradient.T) / 2
-            # A normalised step keeps the gradient's low-rank structure (an
-            # element-wise adaptive step such as Adam's would scramble it)
-            # while staying useful when a confident classifier makes it tiny.
-            step = self.projection_learning_rate * gradient / max(float(np.linalg.norm(gradient)), 1e-300)
-            if abs(loss - prior_entropy) < best_distance:
-                best_distance, best_projection = abs(loss - prior_entropy), projection
-            projection = fantope_projection(projection + step, self.rank)
-            history.append({"iteration": iteration, "loss": loss})
-            advance("R-LACE iterations", iteration + 1, self.max_iter)
-
-        # The game oscillates; keep the projection against which the
-        # classifier's loss came closest to that of knowing nothing.
-        projection = best_projection
-        _, eigenvectors = np.linalg.eigh(projection)
-        q = restrict_to_support(eigenvectors[:, ::-1][:, : self.rank], moments.covariance_xx)
+        q = restrict_to_support(point.top(self.rank), moments.covariance_xx)
         self.history_ = history
         self.n_iter_ = self.max_iter
-        self.relaxed_projection_ = projection
+        self.relaxed_projection_ = point.dense()
         self._set_fitted(AffineLowRankMap(mean=moments.mean_x, u=q, v=q), moments)
         return self
+
+    def _play(
+        self,
+        rows: Float64Array,
+        targets: Float64Array,
+        priors: Float64Array,
+        largest_variance: float,
+        rng: np.random.RandomState,
+    ) -> tuple[FantopePoint, list[dict[str, float]]]:
+        """Play the game on centred, scaled ``rows`` (n, d) with one-hot ``targets`` (n, c).
+
+        Returns the last point of the relaxed projection and the per-iteration history.
+        """
+        n, d = rows.shape
+        classes = targets.shape[1]
+        # The last class is the reference (logit 0): weights for the others
+        # only, so no direction of W is fixed by round-off alone.
+        weights = np.zeros((d, classes - 1))
+        bias = np.log(priors[:-1] / priors[-1])
+        # Böhning's bound: the Hessian of the multinomial cross-entropy in the
+        # free logits is at most ½(I - 11ᵀ/c), whose largest eigenvalue is ¼
+        # for two classes and ½ beyond.  Times the largest variance of the
+        # kept rows (at most that of the rows, as ‖I - P‖ ≤ 1) plus the
+        # penalty, it bounds the curvature in W.  Mini-batches take the same
+        # steps: they are stochastic steps on the loss of all the rows.
+        curvature = 0.25 if classes == 2 else 0.5
+        weight_step = 1.0 / (curvature * largest_variance + self.alpha)
+        bias_step = 1.0 / curvature
+        prior_entropy = float(-np.sum(priors * np.log(priors)))
+
+        point = FantopePoint.vertex(np.linalg.qr(rng.standard_normal((d, self.rank)))[0])
+        history: list[dict[str, float]] = []
+        for iteration in range(self.max_iter):
+            if self.batch_size < n:
+                chosen = rng.choice(n, size=self.batch_size, replace=False)
+                batch, batch_targets = rows[chosen], targets[chosen]
+            else:
+                batch, batch_targets = rows, targets
+            for _ in range(self.classifier_steps):
+                residual = _free_residual(_probabilities(batch, point, weights, bias), batch_targets)
+                weights -= weight_step * (point.kept(batch.T @ residual) + self.alpha * weights)
+                bias -= bias_step * residual.sum(axis=0)
+            probabilities = _probabilities(batch, point, weights, bias)
+            loss = float(-np.mean(np.log(np.maximum((probabilities * batch_targets).sum(axis=1), 1e-300))))
+            residual = _free_residual(probabilities, batch_targets)
+            # Logits are x (I - P) W + b, so ∂L/∂P = -(xᵀ G) Wᵀ; the
+            # projection ascends its symmetric part.
+            length = self.projection_learning_rate / np.sqrt(1.0 + iteration / _STEP_DECAY_ITERATIONS)
+            point = ascend(point, -(batch.T @ residual), weights, length, self.rank)
+            history.append({"iteration": iteration, "loss": loss, "prior_entropy": prior_entropy})
+            advance("R-LACE iterations", iteration + 1, self.max_iter)
+        return point, history

@@ -96,6 +96,10 @@ def _history_plot(method: str, history: Sequence[dict[str, float]]) -> Callable[
             axes.set_ylabel("validation accuracy")
         else:
             axes.plot(steps, [h["loss"] for h in history], color=_AFTER, linewidth=1, label="classifier loss")
+            # Versions stored before the histories carried it have no target line.
+            if "prior_entropy" in history[0]:
+                target = [h["prior_entropy"] for h in history]
+                axes.plot(steps, target, linestyle="--", color="#c53030", label="prior entropy (nothing learned)")
             axes.set_xlabel("R-LACE iteration")
             axes.set_ylabel("adversary cross-entropy (higher = less leakage)")
         axes.legend(loc="best")
