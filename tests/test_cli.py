@@ -8,6 +8,8 @@ import io
 import json
 import re
 import shutil
+import subprocess
+import sys
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -20,6 +22,8 @@ import veil
 from veil import LEACE
 from veil.cli import main
 from veil.datasets import SAMPLE_FILE, load_harbourline_profiles
+from veil.defaults import METHOD_NAMES
+from veil.fitting import METHODS
 from veil.registry import SEAL_FILE, Registry
 from veil.splitting import give_every_class_both_parts, holdout_mask
 
@@ -325,6 +329,11 @@ BAD_FIT = [
     (["--data", "{sample}", "--holdout", "1.5"], "between 0 and 1"),
     (["--data", "{sample}", "--alias", "Live!"], "invalid alias"),
     (["--data", "{sample}", "--method", "magic"], "invalid choice"),
+    (
+        ["--data", "{sample}", "--attribute", "pronoun", "--attribute", "age_bracket"],
+        "--attribute was given twice ('pronoun', then 'age_bracket'); it takes one value",
+    ),
+    (["--data", "{sample}", "--task", "field", "--task", "age_bracket"], "--task was given twice"),
 ]
 
 
@@ -341,6 +350,7 @@ def test_bad_fit_input_exits_2_with_a_message_and_writes_nothing(
     result = run("fit", *filled, "--registry", fitted.registry, "--probes", "linear")
     assert result.code == 2
     assert message in result.err
+    assert len(result.err.strip().splitlines()) == 1
     assert "Traceback" not in result.err
     assert result.out == ""
     assert snapshot(fitted.registry) == before
@@ -358,6 +368,7 @@ BAD_USE = [
     (["apply", NAME, "--in", "/no/such.npy", "--out", "/tmp/out.npy"], "does not exist"),
     (["compare", NAME, "1"], "required"),
     (["verify", "nope"], "no eraser named 'nope'"),
+    (["versions", NAME, "--registry", "/elsewhere"], "--registry was given twice"),
 ]
 
 
@@ -367,6 +378,7 @@ def test_bad_usage_exits_2_with_a_message_and_changes_nothing(fitted: Fitted, ar
     result = run(*argv, "--registry", fitted.registry)
     assert result.code == 2
     assert message in result.err
+    assert len(result.err.strip().splitlines()) == 1
     assert "Traceback" not in result.err
     assert snapshot(fitted.registry) == before
 
@@ -399,3 +411,89 @@ def test_the_cli_works_on_an_fsspec_url(tmp_path: Path) -> None:
     assert run("verify", "--registry", url).code == 0
     assert run("show", NAME, "live", "--registry", url).code == 0
     assert json.loads(run("history", NAME, "--registry", url, "--json").out)[0]["to_version"] == version
+
+
+# What a command that fits nothing must not import: each takes a large share of a second to load.
+HEAVY_LIBRARIES = ("sklearn", "matplotlib", "fastapi", "pyarrow")
+_IMPORTS_OF = """
+import json, sys
+from veil.cli import main
+try:
+    code = main(sys.argv[1:])
+except SystemExit as exit_:
+    code = exit_.code
+heavy = sorted({module.split(".")[0] for module in sys.modules} & set(json.loads(sys.stdin.read())))
+print(json.dumps([code, heavy]), file=sys.stderr)
+"""
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [
+        ["--help"],
+        ["versions", "--help"],
+        ["versions", NAME],
+        ["show", NAME, "live"],
+        ["compare", NAME, "1", "2"],
+        ["history", NAME],
+        ["promote", NAME, "9"],
+        ["verify"],
+    ],
+)
+def test_commands_that_fit_nothing_import_neither_scikit_learn_nor_matplotlib_nor_fastapi(
+    fitted: Fitted, argv: list[str]
+) -> None:
+    # A fresh interpreter, so that nothing this test session imported counts.
+    registry = [] if "--help" in argv else ["--registry", str(fitted.registry)]
+    done = subprocess.run(
+        [sys.executable, "-c", _IMPORTS_OF, *argv, *registry],
+        input=json.dumps(HEAVY_LIBRARIES),
+        capture_output=True,
+        text=True,
+        check=True,
+    )
+    code, heavy = json.loads(done.stderr.strip().splitlines()[-1])
+    assert code in (0, 2, None), done.stderr
+    assert heavy == []
+
+
+def test_the_method_table_the_parser_shows_is_the_fitting_jobs() -> None:
+    assert set(METHOD_NAMES) == set(METHODS)
+    # The options are read from the estimators (scikit-learn get_params) when `veil fit --help` is shown.
+    shown = run("fit", "--help").out
+    for method in METHODS:
+        assert f"  {method}: " in shown
+    assert "max_iter=300" in shown  # R-LACE's default iteration count
+
+
+def test_a_registry_path_that_is_a_file_is_refused_in_one_line(tmp_path: Path) -> None:
+    blocker = tmp_path / "m6"
+    blocker.write_text("not a registry")
+    cases = [
+        (("versions", NAME, "--registry", blocker), f"the registry {blocker} is a file, not a directory"),
+        (("verify", "--registry", blocker), f"the registry {blocker} is a file, not a directory"),
+        (("history", NAME, "--registry", blocker), f"the registry {blocker} is a file, not a directory"),
+        (("promote", NAME, "1", "--registry", blocker), f"the registry {blocker} is a file, not a directory"),
+        (
+            ("versions", NAME, "--registry", blocker / "inside"),
+            f"the registry {blocker / 'inside'} cannot be a directory: {blocker} is a file",
+        ),
+        (
+            ("fit", "--data", SAMPLE, "--attribute", "pronoun", "--method", "meanproj", "--name", NAME,
+             "--probes", "linear", "--registry", blocker),
+            f"the registry {blocker} is a file, not a directory",
+        ),
+    ]  # fmt: skip
+    for argv, message in cases:
+        result = run(*argv)
+        assert (result.code, result.err) == (2, f"veil {argv[0]}: {message}\n")
+    assert blocker.read_text() == "not a registry"
+    # A file where the registry keeps a folder: a damaged registry (exit 1), named as such.
+    (tmp_path / "r" / NAME).mkdir(parents=True)
+    (tmp_path / "r" / NAME / "versions").write_text("")
+    damaged = run("versions", NAME, "--registry", tmp_path / "r")
+    assert damaged.code == 1
+    assert damaged.err == (
+        f"veil versions: the registry {tmp_path / 'r'} is damaged: "
+        f"{tmp_path / 'r' / NAME / 'versions'} is a file where a folder belongs\n"
+    )

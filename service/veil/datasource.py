@@ -25,11 +25,12 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from veil.defaults import EMBEDDINGS_KEY
 from veil.errors import DataError
 from veil.progress import advance
 from veil.tables import embedding_matrix
 
-DEFAULT_EMBEDDINGS_KEY = "embedding"
+DEFAULT_EMBEDDINGS_KEY = EMBEDDINGS_KEY
 _HASH_BLOCK = 8 << 20
 PARQUET_SUFFIXES = (".parquet", ".pq")
 

@@ -24,6 +24,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil._validation import encode_attribute
+from veil.defaults import AUDIT_ROWS, ENGINES, FIT_SAMPLE_ROWS
 from veil.errors import DataError
 from veil.fitting import FitOutcome, audit_and_store, fit_collecting_notes, make_eraser
 from veil.moments import MomentState
@@ -32,9 +33,8 @@ from veil.splitting import holdout_mask
 from veil.streaming import DEFAULT_CHUNK_ROWS, Chunk, Partition, StreamedSample
 from veil.thresholds import AlertThresholds
 
-ENGINES = ("local", "dask")
-DEFAULT_AUDIT_ROWS = 20_000
-DEFAULT_FIT_SAMPLE_ROWS = 50_000
+DEFAULT_AUDIT_ROWS = AUDIT_ROWS
+DEFAULT_FIT_SAMPLE_ROWS = FIT_SAMPLE_ROWS
 # Independent hash streams for the held-out split and the two samples drawn from its sides.
 _HELD_SAMPLE_SALT, _FIT_SAMPLE_SALT = 0x5EED1, 0x5EED2
 

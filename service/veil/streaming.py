@@ -23,11 +23,12 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.datasource import PARQUET_SUFFIXES, check_embeddings, csv_columns, file_sha256, fingerprint_of
+from veil.defaults import STREAM_CHUNK_ROWS
 from veil.errors import DataError
 from veil.progress import advance
 from veil.tables import embedding_matrix
 
-DEFAULT_CHUNK_ROWS = 65536
+DEFAULT_CHUNK_ROWS = STREAM_CHUNK_ROWS
 
 
 @dataclass(frozen=True, eq=False)
