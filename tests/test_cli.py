@@ -497,3 +497,50 @@ def test_a_registry_path_that_is_a_file_is_refused_in_one_line(tmp_path: Path) -
         f"veil versions: the registry {tmp_path / 'r'} is damaged: "
         f"{tmp_path / 'r' / NAME / 'versions'} is a file where a folder belongs\n"
     )
+
+
+def test_missing_labels_are_refused_or_dropped_and_the_card_counts_them(tmp_path: Path) -> None:
+    sample = load_harbourline_profiles()
+    np.save(tmp_path / "x.npy", sample.embedding)
+    pronoun, field = sample.pronoun.astype(object), sample.field.astype(object)
+    blank = np.arange(40, 3000, 47)  # 63 blank cells, as in the incident this guards against
+    pronoun[blank] = ""
+    pronoun[[7, 11]] = ["NA", "NaN"]
+    field[[3, 7]] = ["", "nan"]
+    rows = zip(pronoun, field, sample.age_bracket, strict=True)
+    (tmp_path / "labels.csv").write_text("pronoun,field,age\n" + "".join(f"{p},{f},{a}\n" for p, f, a in rows))
+    common = ["fit", "--data", tmp_path / "x.npy", "--labels", tmp_path / "labels.csv", "--method", "leace",
+              "--name", NAME, "--registry", tmp_path / "r", "--probes", "linear"]  # fmt: skip
+    refused = run(*common, "--attribute", "pronoun")
+    assert refused.code == 2
+    assert refused.err == (
+        f"veil fit: {tmp_path / 'labels.csv'}: 65 row(s) have no attribute label in 'pronoun' "
+        "(blank, NA, NaN or null), the first at row 7 (from 0); fill them in, or drop those rows (--drop-missing)\n"
+    )
+    task = run(*common, "--attribute", "age", "--task", "field")
+    assert task.code == 2
+    assert "2 row(s) have no task label in 'field'" in task.err
+    streamed = run(*common, "--attribute", "pronoun", "--task", "field", "--drop-missing", "--stream")
+    assert streamed.code == 0, streamed.err
+
+    kept = np.ones(3000, dtype=bool)
+    kept[[*blank, 7, 11, 3]] = False
+    dropped = int(np.count_nonzero(~kept))
+    in_memory = run(*common, "--attribute", "pronoun", "--task", "field", "--drop-missing")
+    assert in_memory.code == 0, in_memory.err
+    assert f"note: {dropped} of 3000 rows were dropped for a missing attribute or task label" in in_memory.out
+    registry = Registry(tmp_path / "r")
+    streamed_card = registry.read_version(NAME, "1").card
+    stored = registry.read_version(NAME, "2")
+    assert stored.card["attribute"]["classes"] == ["he", "she"]
+    assert stored.card["data"]["missing_labels_dropped"] == streamed_card["data"]["missing_labels_dropped"] == dropped
+    assert stored.card["data"]["rows"] == 3000 - dropped
+    # Rows keep their index in the file for the hash split, so dropping rows moves no other row across it,
+    # and the streamed fit uses exactly the rows the in-memory one does.
+    held = holdout_mask(3000, fraction=0.2, seed=0)
+    fit_rows = kept & ~held
+    assert stored.card["data"]["fit_rows"] == streamed_card["data"]["fit_rows"] == int(np.count_nonzero(fit_rows))
+    expected = LEACE().fit(sample.embedding[fit_rows], sample.pronoun[fit_rows])
+    np.testing.assert_allclose(stored.artifact.apply(sample.embedding), expected.transform(sample.embedding), atol=1e-5)
+    shown = run("show", NAME, "2", "--registry", tmp_path / "r")
+    assert f"{3000 - dropped} rows ({dropped} dropped for a missing label)" in shown.out

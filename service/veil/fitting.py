@@ -105,7 +105,11 @@ def _split(
 ) -> NDArray[np.bool_]:
     if not 0.0 < holdout < 1.0:
         raise DataError(f"the held-out share must be between 0 and 1, got {holdout}")
-    held = give_every_class_both_parts(holdout_mask(sample.rows, fraction=holdout, seed=seed), codes)
+    # The hash is of each row's index in the files, so rows dropped for a missing label move no other row.
+    held = holdout_mask(sample.rows + sample.dropped_rows, fraction=holdout, seed=seed)
+    if sample.kept is not None:
+        held = held[sample.kept]
+    held = give_every_class_both_parts(held, codes)
     counts = np.bincount(codes[held], minlength=labels.size)
     smallest = int(np.argmin(counts))
     if counts[smallest] < 2:

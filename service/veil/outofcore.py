@@ -78,8 +78,11 @@ class PassPlan:
     keep_fit_rows: bool  # INLP-moments streams its own fit rows through partial_fit on the driver
 
     def process(self, chunk: Chunk) -> PartResult:
+        # The split hashes each row's index in the files, then rows without a label (dropped on request) leave
+        # both sides: the same rows are held out as in memory, where dropped rows keep their indices too.
         held = holdout_mask(chunk.embeddings.shape[0], fraction=self.holdout, seed=self.seed, start=chunk.start)
-        fit = ~held
+        fit = ~held & ~chunk.missing
+        held &= ~chunk.missing
         held_rows = _select(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
         fit_rows = _select(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT)
         moments = None
@@ -164,13 +167,13 @@ def fit_version_streaming(
         raise DataError(f"unknown engine {engine!r}; choose one of {', '.join(ENGINES)}")
     if engine == "dask" and streams_inlp:
         raise DataError("INLP with the moments classifier fits sequentially; use the local engine (--stream)")
-    expected_held = int(sample.rows * holdout)
+    expected_held = int(sample.labelled_rows * holdout)
     fit_limit = fit_sample_rows if not (exact_moments or streams_inlp) else audit_rows
     plan = PassPlan(
         holdout=holdout,
         seed=seed,
         held_fraction=min(1.0, audit_rows / max(expected_held, 1)),
-        fit_fraction=min(1.0, fit_limit / max(sample.rows - expected_held, 1)),
+        fit_fraction=min(1.0, fit_limit / max(sample.labelled_rows - expected_held, 1)),
         exact_moments=exact_moments,
         keep_fit_rows=streams_inlp,
     )

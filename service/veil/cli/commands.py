@@ -49,6 +49,7 @@ def fit(args: argparse.Namespace) -> int:
         "task": args.task,
         "embeddings_key": args.embeddings,
         "labels": args.labels,
+        "drop_missing": args.drop_missing,
     }
     if args.stream or args.engine == "dask" or Path(args.data).is_dir():
         outcome = fit_version_streaming(

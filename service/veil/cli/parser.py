@@ -121,6 +121,12 @@ def build_parser() -> VeilParser:
     fit.add_argument("--attribute", required=True, help="key or column of the protected attribute")
     fit.add_argument("--task", help="key or column of a task label, for utility figures")
     fit.add_argument("--labels", help="labels for .npy input: a .npy (the attribute) or a .csv with a header")
+    fit.add_argument(
+        "--drop-missing",
+        action="store_true",
+        help="drop rows whose attribute or task label is missing (blank, NA, NaN, null) instead of refusing the "
+        "sample; the card records how many",
+    )
     fit.add_argument("--embeddings", default=EMBEDDINGS_KEY, help="key (.npz) or column (.parquet) of the embeddings")
     fit.add_argument("--method", required=True, choices=sorted(METHOD_NAMES))
     fit.add_argument("--option", action="append", default=[], metavar="KEY=VALUE", help="a method option")
