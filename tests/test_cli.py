@@ -69,7 +69,7 @@ class Fitted:
 def fitted(tmp_path_factory: pytest.TempPathFactory) -> Fitted:
     registry = tmp_path_factory.mktemp("cli") / "registry"
     commands = {
-        "leace": ["--task", "field", "--alias", "live", "--reason", "first fit"],
+        "leace": ["--task", "field", "--alias", "live", "--reason", "first fit", "--progress", "always"],
         "meanproj": ["--probes", "linear"],
         "inlp": [
             "--option",
@@ -115,6 +115,25 @@ def test_fit_prints_the_audit_then_the_version_id_last(fitted: Fitted) -> None:
     # Progress bars for the INLP iterations, on stderr only.
     assert "INLP classifiers" in fitted.outputs["inlp"].err
     assert "INLP classifiers" not in fitted.outputs["inlp"].out
+    # A bar for every phase of a fit: reading, fitting, each probe (by folds), the reference, storing.
+    phases = [
+        f"reading {SAMPLE_FILE}",
+        "fitting leace",
+        "linear probe, raw (folds)",
+        "linear probe, erased (folds)",
+        "MLP probe, raw (folds)",
+        "MLP probe, erased (folds)",
+        "task probe, raw (folds)",
+        "task probe, erased (folds)",
+        "reference statistics",
+        "report plots",
+        "storing the version",
+    ]
+    shown = fitted.outputs["leace"].err
+    assert [shown.find(f"{phase}: 100%") > -1 for phase in phases] == [True] * len(phases)
+    assert sorted(phases, key=shown.find) == phases
+    assert re.search(r"MLP probe, erased \(folds\): 100%\|[^|]+\| 5/5", shown)
+    assert "reading" not in fitted.outputs["meanproj"].err  # --progress auto, and stderr is no terminal
 
 
 def test_the_stored_leace_version_is_the_eraser_fitted_on_the_non_held_out_rows(fitted: Fitted) -> None:

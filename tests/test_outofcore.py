@@ -137,8 +137,13 @@ def test_the_cli_streams_a_folder_of_shards(tmp_path: Path, data: tuple[np.ndarr
     result = run(
         "fit", "--data", tmp_path / "shards", "--labels", labels, "--attribute", "region", "--method", "leace",
         "--name", "stream", "--registry", tmp_path / "r", "--chunk-rows", "500", "--probes", "linear",
+        "--progress", "always",
     )  # fmt: skip
     assert result.code == 0, result.err
+    # Every phase of the streamed fit shows on stderr: the pass, the fit, each probe, storing.
+    phases = ["reading (rows)", "fitting leace", "linear probe, raw (folds)", "linear probe, erased (folds)",
+              "reference statistics", "storing the version"]  # fmt: skip
+    assert [phase for phase in phases if f"{phase}: 100%" not in result.err] == []
     version = result.out.strip().splitlines()[-1]
     card = json.loads(run("show", "stream", version, "--registry", tmp_path / "r", "--json").out)
     assert card["data"]["rows"] == N

@@ -28,7 +28,7 @@ from numpy.typing import NDArray
 from veil.defaults import EMBEDDINGS_KEY
 from veil.errors import DataError
 from veil.labels import arrow_labels, missing_labels, rows_to_keep
-from veil.progress import advance
+from veil.progress import advance, phase
 from veil.tables import embedding_matrix
 
 DEFAULT_EMBEDDINGS_KEY = EMBEDDINGS_KEY
@@ -257,7 +257,18 @@ def load_labelled_sample(
         With a message naming the file and the problem (a missing label:
         its column, how many, and the first row).
     """
-    data_path = Path(path)
+    with phase(f"reading {Path(path).name}"):
+        return _read_sample(Path(path), attribute, task, embeddings_key, labels, drop_missing)
+
+
+def _read_sample(
+    data_path: Path,
+    attribute: str,
+    task: str | None,
+    embeddings_key: str,
+    labels: str | Path | None,
+    drop_missing: bool,
+) -> LabelledSample:
     _check_file(data_path)
     keys = [attribute] if task is None else [attribute, task]
     files = {str(data_path): file_sha256(data_path)}

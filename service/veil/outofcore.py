@@ -28,6 +28,7 @@ from veil.defaults import AUDIT_ROWS, ENGINES, FIT_SAMPLE_ROWS
 from veil.errors import DataError
 from veil.fitting import FitOutcome, audit_and_store, fit_collecting_notes, make_eraser
 from veil.moments import MomentState
+from veil.progress import phase
 from veil.registry import Registry
 from veil.splitting import holdout_mask
 from veil.streaming import DEFAULT_CHUNK_ROWS, Chunk, Partition, StreamedSample
@@ -195,10 +196,12 @@ def fit_version_streaming(
         moments = total.moments
         if moments is None or moments.labels is None or moments.labels.size < 2:
             raise DataError(f"attribute {sample.attribute_key!r} has a single class; erasure needs at least two")
-        notes += fit_collecting_notes(eraser, method, lambda: eraser.fit_moments(moments))
+        with phase(f"fitting {method}"):
+            notes += fit_collecting_notes(eraser, method, lambda: eraser.fit_moments(moments))
     elif not streams_inlp:
         x_sample, z_sample, _ = _rows(total.fit_sample, "fit")
-        notes += fit_collecting_notes(eraser, method, lambda: eraser.fit(x_sample, z_sample))
+        with phase(f"fitting {method}"):
+            notes += fit_collecting_notes(eraser, method, lambda: eraser.fit(x_sample, z_sample))
         notes.append(f"{method} was fitted on a hash-drawn sample of {x_sample.shape[0]} of {fit_rows} fitting rows")
     x_fit_sample, z_fit_sample, _ = _rows(total.fit_sample, "reference probe")
     x_held, z_held, task_held = _rows(total.held_sample, "audit")

@@ -25,6 +25,8 @@ class ProgressBars:
 
             bar = self._bars[stage] = tqdm(total=total, desc=stage, leave=False, dynamic_ncols=True)
         bar.update(done - bar.n)
+        if total is not None and done >= total:
+            bar.refresh()  # tqdm skips updates within 0.1 s of the last; a finished stage shows as finished
 
     def __enter__(self) -> ProgressBars:
         return self
