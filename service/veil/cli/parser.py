@@ -51,6 +51,10 @@ class VeilParser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: {message} (see {self.prog} --help)\n")
 
 
+#: Namespace attribute holding the options :class:`StoreOnce` has seen (removed after parsing).
+GIVEN = "_given_once"
+
+
 class StoreOnce(argparse.Action):
     """Store an option's value, refusing the option a second time rather than silently keeping the last."""
 
@@ -71,11 +75,8 @@ class StoreOnce(argparse.Action):
         setattr(namespace, self.dest, values)
 
 
-#: Namespace attribute holding the options :class:`StoreOnce` has seen (removed after parsing).
-GIVEN = "_given_once"
-
-
 def parse_arguments(argv: list[str] | None) -> argparse.Namespace:
+    """``argv`` (``sys.argv[1:]`` if None) parsed by :func:`build_parser`; exits 2 with one line on bad usage."""
     args = build_parser().parse_args(argv)
     vars(args).pop(GIVEN, None)
     return args
