@@ -10,6 +10,9 @@ B2  the service through a real uvicorn on loopback: binary and JSON apply vs an 
 B3  LEACE fit vs a bare NumPy Xᵀ X on the same data (n=200,000, d=768)
 B4  INLP: the moments classifier vs the logistic classifier (time, and final held-out leakage)
 B5  peak memory of a streaming fit against data size (needs out-of-core fitting, not built yet)
+B6  start-up: `veil versions NAME` vs `python -c "import numpy"` (wall time of a fresh process)
+B7  the default audit's probes (linear and MLP, raw and LEACE-erased, 5 folds) with BLAS on one thread, as veil
+    runs them, vs the same probes through cross_val_predict with BLAS on every thread; sample and 5,000 rows
 """
 
 from __future__ import annotations
@@ -31,6 +34,7 @@ import warnings
 from collections.abc import Callable
 from dataclasses import asdict, dataclass
 from datetime import UTC, datetime
+from functools import partial
 from pathlib import Path
 
 import httpx
@@ -38,17 +42,19 @@ import numpy as np
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.feature_selection import VarianceThreshold
 from sklearn.linear_model import LogisticRegression
-from sklearn.model_selection import train_test_split
+from sklearn.model_selection import StratifiedKFold, cross_val_predict, train_test_split
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from threadpoolctl import threadpool_info
 
 from veil import INLP, LEACE
+from veil.audit.probes import classification_score, linear_probe, nonlinear_probe
 from veil.datasets import load_harbourline_profiles
 from veil.datasource import LabelledSample
 from veil.fitting import fit_version
 from veil.lowrank import AffineLowRankMap
 from veil.registry import Registry
+from veil.splitting import give_every_class_both_parts, holdout_mask
 
 RESULTS = Path(__file__).resolve().parent / "results"
 
@@ -458,6 +464,98 @@ def bench_memory() -> list[Row]:
     ]
 
 
+# ---------------------------------------------------------------- B6
+
+
+def bench_startup() -> list[Row]:
+    folder = Path(tempfile.mkdtemp(prefix="veil-bench-startup-"))
+    try:
+        profiles = load_harbourline_profiles()
+        sample = LabelledSample(
+            embeddings=profiles.embedding, attribute=profiles.pronoun, attribute_key="pronoun", task=None,
+            task_key=None, files={},
+        )  # fmt: skip
+        fit_version(sample, registry=Registry(folder / "registry"), name="bench", method="meanproj", nonlinear=False)
+        script = Path(sys.executable).parent / "veil"  # the console script, as a user runs it
+        command = [str(script)] if script.exists() else [sys.executable, "-m", "veil.cli"]
+        versions = [*command, "versions", "bench", "--registry", str(folder / "registry")]
+        veil = median_seconds(lambda: subprocess.run(versions, check=True, capture_output=True), repeat=9)
+        bare = median_seconds(
+            lambda: subprocess.run([sys.executable, "-c", "import numpy"], check=True, capture_output=True), repeat=9
+        )
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+    return [
+        Row(
+            "B6 start-up: veil versions NAME / import numpy",
+            f"{veil * 1e3:.0f} ms / {bare * 1e3:.0f} ms",
+            veil / bare,
+            "<= 3",
+            veil / bare <= 3,
+            "wall time of a fresh process; a registry with one version",
+        )
+    ]
+
+
+# ---------------------------------------------------------------- B7
+
+
+def _all_threads_accuracy(model: object, x: np.ndarray, codes: np.ndarray) -> float:
+    """The probe scored as veil did before: cross_val_predict, BLAS on every thread."""
+    splitter = StratifiedKFold(n_splits=5, shuffle=True, random_state=0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        predicted = cross_val_predict(model, x, codes, cv=splitter)
+    return float(np.mean(predicted == codes))
+
+
+def _probe_accuracies(
+    probes: list[tuple[Callable[[int], object], np.ndarray]], codes: np.ndarray, *, veil: bool
+) -> list[float]:
+    if veil:
+        return [classification_score(make(0), x, codes, folds=5, random_state=0).accuracy for make, x in probes]
+    return [_all_threads_accuracy(make(0), x, codes) for make, x in probes]
+
+
+def bench_audit() -> list[Row]:
+    profiles = load_harbourline_profiles()
+    # 5,000 rows: the sample and 2,000 of its rows again with noise (a fifth of a row's norm), re-normalised.
+    rng = np.random.default_rng(7)
+    extra = rng.integers(0, profiles.embedding.shape[0], 2000)
+    noisy = profiles.embedding[extra] + rng.normal(scale=0.01, size=(2000, 384)).astype(np.float32)
+    larger = np.concatenate([profiles.embedding, noisy / np.linalg.norm(noisy, axis=1, keepdims=True)])
+    sets = {
+        "sample, 3,000 rows": (profiles.embedding, profiles.pronoun),
+        "5,000 rows": (larger, np.concatenate([profiles.pronoun, profiles.pronoun[extra]])),
+    }
+    rows = []
+    for label, (x, z) in sets.items():
+        codes = np.unique(z, return_inverse=True)[1]
+        held = give_every_class_both_parts(holdout_mask(codes.size, fraction=0.2, seed=0), codes)
+        eraser = LEACE().fit(x[~held], z[~held])
+        raw, erased, held_codes = x[held], eraser.transform(x[held]), codes[held]
+        probes = [(make, side) for make in (linear_probe, nonlinear_probe) for side in (raw, erased)]
+        one_thread = partial(_probe_accuracies, probes, held_codes, veil=True)
+        every_thread = partial(_probe_accuracies, probes, held_codes, veil=False)
+        figures, before = one_thread(), every_thread()
+        fast = median_seconds(one_thread, repeat=3)
+        slow = median_seconds(every_thread, repeat=3)
+        same = np.allclose(figures, before)
+        rows.append(
+            Row(
+                f"B7 audit probes, {label}: one BLAS thread / every thread",
+                f"{fast:.2f} s / {slow:.2f} s",
+                fast / slow,
+                "<= 0.5",
+                fast / slow <= 0.5 and same,
+                f"{held_codes.size} held-out rows; held-out accuracy linear {figures[0]:.3f} → {figures[1]:.3f}, "
+                f"MLP {figures[2]:.3f} → {figures[3]:.3f} (raw → LEACE)"
+                + ("" if same else f"; DIFFERENT with every thread: {before}"),
+            )
+        )
+    return rows
+
+
 def machine() -> dict[str, object]:
     cpu = next(
         (
@@ -477,7 +575,15 @@ def machine() -> dict[str, object]:
     }
 
 
-BENCHMARKS = {"B1": bench_apply, "B2": bench_service, "B3": bench_fit, "B4": bench_inlp, "B5": bench_memory}
+BENCHMARKS = {
+    "B1": bench_apply,
+    "B2": bench_service,
+    "B3": bench_fit,
+    "B4": bench_inlp,
+    "B5": bench_memory,
+    "B6": bench_startup,
+    "B7": bench_audit,
+}
 
 
 def main() -> int:

@@ -3,17 +3,23 @@
 from __future__ import annotations
 
 import json
+import warnings
 
 import numpy as np
 import pytest
 from scipy import stats
+from sklearn.base import BaseEstimator, ClassifierMixin
+from sklearn.datasets import load_breast_cancer
+from sklearn.exceptions import ConvergenceWarning
 from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import StratifiedKFold, cross_val_predict
 from sklearn.neighbors import NearestNeighbors
+from threadpoolctl import threadpool_info, threadpool_limits
 
 from veil import LEACE
-from veil.audit import AuditReport, ProbeScore, RegressionScore, audit, fit_and_audit, geometry
+from veil.audit import AuditReport, ProbeScore, RegressionScore, audit, fit_and_audit, geometry, probes
 from veil.audit.stats import wilson_interval
+from veil.progress import reporting
 
 from .conftest import planted
 
@@ -120,3 +126,41 @@ def test_audit_notes_dead_coordinates_of_real_embeddings(profiles) -> None:  # t
     # The floored scaler must not let the probe read the dead coordinates
     # (an unfloored standard scaler recovers the attribute almost perfectly).
     assert after.accuracy < 0.7
+
+
+_BLAS_THREADS_SEEN: list[int] = []
+
+
+class _ThreadRecorder(ClassifierMixin, BaseEstimator):  # type: ignore[misc]
+    """A majority-class model that notes how many BLAS threads it was given while fitting."""
+
+    def fit(self, X: np.ndarray, y: np.ndarray) -> _ThreadRecorder:
+        _BLAS_THREADS_SEEN.extend(info["num_threads"] for info in threadpool_info() if info["user_api"] == "blas")
+        self.classes_, counts = np.unique(y, return_counts=True)
+        self.majority_ = self.classes_[np.argmax(counts)]
+        return self
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        return np.full(len(X), self.majority_)
+
+
+def test_probes_predict_each_row_as_cross_val_predict_does_fold_by_fold_on_one_blas_thread() -> None:
+    x, z = load_breast_cancer(return_X_y=True)
+    folds = StratifiedKFold(5, shuffle=True, random_state=0)
+    # Reference: scikit-learn's cross_val_predict with the same folds, for both probes (bundled breast cancer set).
+    for model in (probes.linear_probe(0), probes.nonlinear_probe(0)):
+        with warnings.catch_warnings(), threadpool_limits(limits=1, user_api="blas"):  # the same figures, sooner
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            expected = cross_val_predict(model, x, z, cv=folds)
+        np.testing.assert_array_equal(probes.held_out_predictions(model, x, z, folds), expected)
+    # Each finished fold is reported, and BLAS runs on one thread meanwhile, whatever it had outside.
+    reported: list[tuple[str, int, int | None]] = []
+    _BLAS_THREADS_SEEN.clear()
+    with threadpool_limits(limits=2, user_api="blas"), reporting(lambda *report: reported.append(report)):
+        probes.held_out_predictions(_ThreadRecorder(), x, z, folds, stage="probe (folds)")
+        _ThreadRecorder().fit(x, z)
+    assert reported == [("probe (folds)", done, 5) for done in range(1, 6)]
+    blas_libraries = len(_BLAS_THREADS_SEEN) // 6
+    assert blas_libraries >= 1
+    assert _BLAS_THREADS_SEEN[: 5 * blas_libraries] == [1] * (5 * blas_libraries)
+    assert _BLAS_THREADS_SEEN[5 * blas_libraries :] == [2] * blas_libraries

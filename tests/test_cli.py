@@ -8,6 +8,8 @@ import io
 import json
 import re
 import shutil
+import subprocess
+import sys
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -20,6 +22,8 @@ import veil
 from veil import LEACE
 from veil.cli import main
 from veil.datasets import SAMPLE_FILE, load_harbourline_profiles
+from veil.defaults import METHOD_NAMES
+from veil.fitting import METHODS
 from veil.registry import SEAL_FILE, Registry
 from veil.splitting import give_every_class_both_parts, holdout_mask
 
@@ -65,7 +69,7 @@ class Fitted:
 def fitted(tmp_path_factory: pytest.TempPathFactory) -> Fitted:
     registry = tmp_path_factory.mktemp("cli") / "registry"
     commands = {
-        "leace": ["--task", "field", "--alias", "live", "--reason", "first fit"],
+        "leace": ["--task", "field", "--alias", "live", "--reason", "first fit", "--progress", "always"],
         "meanproj": ["--probes", "linear"],
         "inlp": [
             "--option",
@@ -111,6 +115,25 @@ def test_fit_prints_the_audit_then_the_version_id_last(fitted: Fitted) -> None:
     # Progress bars for the INLP iterations, on stderr only.
     assert "INLP classifiers" in fitted.outputs["inlp"].err
     assert "INLP classifiers" not in fitted.outputs["inlp"].out
+    # A bar for every phase of a fit: reading, fitting, each probe (by folds), the reference, storing.
+    phases = [
+        f"reading {SAMPLE_FILE}",
+        "fitting leace",
+        "linear probe, raw (folds)",
+        "linear probe, erased (folds)",
+        "MLP probe, raw (folds)",
+        "MLP probe, erased (folds)",
+        "task probe, raw (folds)",
+        "task probe, erased (folds)",
+        "reference statistics",
+        "report plots",
+        "storing the version",
+    ]
+    shown = fitted.outputs["leace"].err
+    assert [shown.find(f"{phase}: 100%") > -1 for phase in phases] == [True] * len(phases)
+    assert sorted(phases, key=shown.find) == phases
+    assert re.search(r"MLP probe, erased \(folds\): 100%\|[^|]+\| 5/5", shown)
+    assert "reading" not in fitted.outputs["meanproj"].err  # --progress auto, and stderr is no terminal
 
 
 def test_the_stored_leace_version_is_the_eraser_fitted_on_the_non_held_out_rows(fitted: Fitted) -> None:
@@ -329,6 +352,11 @@ BAD_FIT = [
     (["--data", "{sample}", "--holdout", "1.5"], "between 0 and 1"),
     (["--data", "{sample}", "--alias", "Live!"], "invalid alias"),
     (["--data", "{sample}", "--method", "magic"], "invalid choice"),
+    (
+        ["--data", "{sample}", "--attribute", "pronoun", "--attribute", "age_bracket"],
+        "--attribute was given twice ('pronoun', then 'age_bracket'); it takes one value",
+    ),
+    (["--data", "{sample}", "--task", "field", "--task", "age_bracket"], "--task was given twice"),
 ]
 
 
@@ -345,6 +373,7 @@ def test_bad_fit_input_exits_2_with_a_message_and_writes_nothing(
     result = run("fit", *filled, "--registry", fitted.registry, "--probes", "linear")
     assert result.code == 2
     assert message in result.err
+    assert len(result.err.strip().splitlines()) == 1
     assert "Traceback" not in result.err
     assert result.out == ""
     assert snapshot(fitted.registry) == before
@@ -362,6 +391,7 @@ BAD_USE = [
     (["apply", NAME, "--in", "/no/such.npy", "--out", "/tmp/out.npy"], "does not exist"),
     (["compare", NAME, "1"], "required"),
     (["verify", "nope"], "no eraser named 'nope'"),
+    (["versions", NAME, "--registry", "/elsewhere"], "--registry was given twice"),
 ]
 
 
@@ -371,6 +401,7 @@ def test_bad_usage_exits_2_with_a_message_and_changes_nothing(fitted: Fitted, ar
     result = run(*argv, "--registry", fitted.registry)
     assert result.code == 2
     assert message in result.err
+    assert len(result.err.strip().splitlines()) == 1
     assert "Traceback" not in result.err
     assert snapshot(fitted.registry) == before
 
@@ -403,3 +434,136 @@ def test_the_cli_works_on_an_fsspec_url(tmp_path: Path) -> None:
     assert run("verify", "--registry", url).code == 0
     assert run("show", NAME, "live", "--registry", url).code == 0
     assert json.loads(run("history", NAME, "--registry", url, "--json").out)[0]["to_version"] == version
+
+
+# What a command that fits nothing must not import: each takes a large share of a second to load.
+HEAVY_LIBRARIES = ("sklearn", "matplotlib", "fastapi", "pyarrow")
+_IMPORTS_OF = """
+import json, sys
+from veil.cli import main
+try:
+    code = main(sys.argv[1:])
+except SystemExit as exit_:
+    code = exit_.code
+heavy = sorted({module.split(".")[0] for module in sys.modules} & set(json.loads(sys.stdin.read())))
+print(json.dumps([code, heavy]), file=sys.stderr)
+"""
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [
+        ["--help"],
+        ["versions", "--help"],
+        ["versions", NAME],
+        ["show", NAME, "live"],
+        ["compare", NAME, "1", "2"],
+        ["history", NAME],
+        ["promote", NAME, "9"],
+        ["verify"],
+    ],
+)
+def test_commands_that_fit_nothing_import_neither_scikit_learn_nor_matplotlib_nor_fastapi(
+    fitted: Fitted, argv: list[str]
+) -> None:
+    # A fresh interpreter, so that nothing this test session imported counts.
+    registry = [] if "--help" in argv else ["--registry", str(fitted.registry)]
+    done = subprocess.run(
+        [sys.executable, "-c", _IMPORTS_OF, *argv, *registry],
+        input=json.dumps(HEAVY_LIBRARIES),
+        capture_output=True,
+        text=True,
+        check=True,
+    )
+    code, heavy = json.loads(done.stderr.strip().splitlines()[-1])
+    assert code in (0, 2, None), done.stderr
+    assert heavy == []
+
+
+def test_the_method_table_the_parser_shows_is_the_fitting_jobs() -> None:
+    assert set(METHOD_NAMES) == set(METHODS)
+    # The options are read from the estimators (scikit-learn get_params) when `veil fit --help` is shown.
+    shown = run("fit", "--help").out
+    for method in METHODS:
+        assert f"  {method}: " in shown
+    assert "max_iter=300" in shown  # R-LACE's default iteration count
+
+
+def test_a_registry_path_that_is_a_file_is_refused_in_one_line(tmp_path: Path) -> None:
+    blocker = tmp_path / "m6"
+    blocker.write_text("not a registry")
+    cases = [
+        (("versions", NAME, "--registry", blocker), f"the registry {blocker} is a file, not a directory"),
+        (("verify", "--registry", blocker), f"the registry {blocker} is a file, not a directory"),
+        (("history", NAME, "--registry", blocker), f"the registry {blocker} is a file, not a directory"),
+        (("promote", NAME, "1", "--registry", blocker), f"the registry {blocker} is a file, not a directory"),
+        (
+            ("versions", NAME, "--registry", blocker / "inside"),
+            f"the registry {blocker / 'inside'} cannot be a directory: {blocker} is a file",
+        ),
+        (
+            ("fit", "--data", SAMPLE, "--attribute", "pronoun", "--method", "meanproj", "--name", NAME,
+             "--probes", "linear", "--registry", blocker),
+            f"the registry {blocker} is a file, not a directory",
+        ),
+    ]  # fmt: skip
+    for argv, message in cases:
+        result = run(*argv)
+        assert (result.code, result.err) == (2, f"veil {argv[0]}: {message}\n")
+    assert blocker.read_text() == "not a registry"
+    # A file where the registry keeps a folder: a damaged registry (exit 1), named as such.
+    (tmp_path / "r" / NAME).mkdir(parents=True)
+    (tmp_path / "r" / NAME / "versions").write_text("")
+    damaged = run("versions", NAME, "--registry", tmp_path / "r")
+    assert damaged.code == 1
+    assert damaged.err == (
+        f"veil versions: the registry {tmp_path / 'r'} is damaged: "
+        f"{tmp_path / 'r' / NAME / 'versions'} is a file where a folder belongs\n"
+    )
+
+
+def test_missing_labels_are_refused_or_dropped_and_the_card_counts_them(tmp_path: Path) -> None:
+    sample = load_harbourline_profiles()
+    np.save(tmp_path / "x.npy", sample.embedding)
+    pronoun, field = sample.pronoun.astype(object), sample.field.astype(object)
+    blank = np.arange(40, 3000, 47)  # 63 blank cells, as in the incident this guards against
+    pronoun[blank] = ""
+    pronoun[[7, 11]] = ["NA", "NaN"]
+    field[[3, 7]] = ["", "nan"]
+    rows = zip(pronoun, field, sample.age_bracket, strict=True)
+    (tmp_path / "labels.csv").write_text("pronoun,field,age\n" + "".join(f"{p},{f},{a}\n" for p, f, a in rows))
+    common = ["fit", "--data", tmp_path / "x.npy", "--labels", tmp_path / "labels.csv", "--method", "leace",
+              "--name", NAME, "--registry", tmp_path / "r", "--probes", "linear"]  # fmt: skip
+    refused = run(*common, "--attribute", "pronoun")
+    assert refused.code == 2
+    assert refused.err == (
+        f"veil fit: {tmp_path / 'labels.csv'}: 65 row(s) have no attribute label in 'pronoun' "
+        "(blank, NA, NaN or null), the first at row 7 (from 0); fill them in, or drop those rows (--drop-missing)\n"
+    )
+    task = run(*common, "--attribute", "age", "--task", "field")
+    assert task.code == 2
+    assert "2 row(s) have no task label in 'field'" in task.err
+    streamed = run(*common, "--attribute", "pronoun", "--task", "field", "--drop-missing", "--stream")
+    assert streamed.code == 0, streamed.err
+
+    kept = np.ones(3000, dtype=bool)
+    kept[[*blank, 7, 11, 3]] = False
+    dropped = int(np.count_nonzero(~kept))
+    in_memory = run(*common, "--attribute", "pronoun", "--task", "field", "--drop-missing")
+    assert in_memory.code == 0, in_memory.err
+    assert f"note: {dropped} of 3000 rows were dropped for a missing attribute or task label" in in_memory.out
+    registry = Registry(tmp_path / "r")
+    streamed_card = registry.read_version(NAME, "1").card
+    stored = registry.read_version(NAME, "2")
+    assert stored.card["attribute"]["classes"] == ["he", "she"]
+    assert stored.card["data"]["missing_labels_dropped"] == streamed_card["data"]["missing_labels_dropped"] == dropped
+    assert stored.card["data"]["rows"] == 3000 - dropped
+    # Rows keep their index in the file for the hash split, so dropping rows moves no other row across it,
+    # and the streamed fit uses exactly the rows the in-memory one does.
+    held = holdout_mask(3000, fraction=0.2, seed=0)
+    fit_rows = kept & ~held
+    assert stored.card["data"]["fit_rows"] == streamed_card["data"]["fit_rows"] == int(np.count_nonzero(fit_rows))
+    expected = LEACE().fit(sample.embedding[fit_rows], sample.pronoun[fit_rows])
+    np.testing.assert_allclose(stored.artifact.apply(sample.embedding), expected.transform(sample.embedding), atol=1e-5)
+    shown = run("show", NAME, "2", "--registry", tmp_path / "r")
+    assert f"{3000 - dropped} rows ({dropped} dropped for a missing label)" in shown.out

@@ -96,3 +96,52 @@ def test_bad_inputs_name_their_problem(tmp_path: Path, arrays) -> None:  # type:
     for kwargs, message in cases:
         with pytest.raises(DataError, match=message):
             load_labelled_sample(**kwargs)  # type: ignore[arg-type]
+
+
+def test_missing_labels_are_refused_with_count_and_first_row_or_dropped(tmp_path: Path, arrays) -> None:  # type: ignore[no-untyped-def]
+    x, z, task = arrays
+    pronoun, field = z.astype(object), task.astype(object)
+    pronoun[[4, 9, 30]] = ["", " NA ", "n/a"]
+    field[[9, 12]] = ["NaN", "null"]
+    (tmp_path / "labels.csv").write_text(
+        "pronoun,field,region\n" + "".join(f"{a},{b},{c}\n" for a, b, c in zip(pronoun, field, z, strict=True))
+    )
+    np.save(tmp_path / "s.npy", x)
+    nulls = pa.table(
+        {
+            "embedding": pa.FixedSizeListArray.from_arrays(pa.array(x.reshape(-1)), x.shape[1]),
+            "pronoun": pa.array([None if i in (4, 9, 30) else v for i, v in enumerate(z)]).dictionary_encode(),
+            "field": pa.array([None if i in (9, 12) else i % 4 for i in range(40)], type=pa.int64()),
+            "region": pa.array(z),
+        }
+    )
+    pq.write_table(nulls, tmp_path / "s.parquet", row_group_size=16)
+    numbers = np.where(np.isin(np.arange(40), [4, 9, 30]), np.nan, (z == "south").astype(float))
+    np.savez(tmp_path / "s.npz", embedding=x, pronoun=numbers, field=np.arange(40) % 4)
+    reads = {
+        "csv": dict(path=tmp_path / "s.npy", labels=tmp_path / "labels.csv"),
+        "parquet": dict(path=tmp_path / "s.parquet"),
+        "npz": dict(path=tmp_path / "s.npz"),
+    }
+    for kind, where in reads.items():
+        with pytest.raises(DataError, match=r"3 row\(s\) have no attribute label in 'pronoun' .* first at row 4 "):
+            load_labelled_sample(**where, attribute="pronoun")  # type: ignore[arg-type]
+        if kind != "npz":
+            with pytest.raises(DataError, match=r"2 row\(s\) have no task label in 'field' .* first at row 9 "):
+                load_labelled_sample(**where, attribute="region", task="field")  # type: ignore[arg-type]
+        task_key = None if kind == "npz" else "field"
+        sample = load_labelled_sample(**where, attribute="pronoun", task=task_key, drop_missing=True)  # type: ignore[arg-type]
+        kept = ~np.isin(np.arange(40), [4, 9, 30] if kind == "npz" else [4, 9, 12, 30])
+        assert sample.kept is not None
+        np.testing.assert_array_equal(sample.kept, kept)
+        assert (sample.rows, sample.dropped_rows) == (int(kept.sum()), int((~kept).sum()))
+        np.testing.assert_array_equal(sample.embeddings, x[kept])
+        expected = (z == "south").astype(float)[kept] if kind == "npz" else z[kept]
+        assert list(sample.attribute) == list(expected)
+        if kind == "parquet":  # a null in an integer column leaves the others integers
+            assert sample.task is not None
+            assert sample.task.dtype.kind == "i"
+    # Nothing missing: nothing dropped, and the flag changes nothing.
+    whole = load_labelled_sample(tmp_path / "s.npz", attribute="field", drop_missing=True)
+    assert whole.kept is None
+    assert whole.dropped_rows == 0

@@ -12,7 +12,9 @@ import pyarrow.parquet as pq
 import pytest
 
 from veil import INLP, LEACE, MeanProjection
+from veil.datasource import load_labelled_sample
 from veil.errors import DataError
+from veil.fitting import fit_version
 from veil.outofcore import fit_version_streaming
 from veil.registry import Registry
 from veil.splitting import holdout_mask
@@ -135,8 +137,13 @@ def test_the_cli_streams_a_folder_of_shards(tmp_path: Path, data: tuple[np.ndarr
     result = run(
         "fit", "--data", tmp_path / "shards", "--labels", labels, "--attribute", "region", "--method", "leace",
         "--name", "stream", "--registry", tmp_path / "r", "--chunk-rows", "500", "--probes", "linear",
+        "--progress", "always",
     )  # fmt: skip
     assert result.code == 0, result.err
+    # Every phase of the streamed fit shows on stderr: the pass, the fit, each probe, storing.
+    phases = ["reading (rows)", "fitting leace", "linear probe, raw (folds)", "linear probe, erased (folds)",
+              "reference statistics", "storing the version"]  # fmt: skip
+    assert [phase for phase in phases if f"{phase}: 100%" not in result.err] == []
     version = result.out.strip().splitlines()[-1]
     card = json.loads(run("show", "stream", version, "--registry", tmp_path / "r", "--json").out)
     assert card["data"]["rows"] == N
@@ -206,3 +213,39 @@ def test_the_cli_fits_on_dask_and_refuses_what_needs_one_process(
     refused = run("fit", *common, "--method", "inlp", "--option", "classifier=moments")
     assert refused.code == 2
     assert "fits sequentially" in refused.err
+
+
+def test_a_streamed_fit_refuses_or_drops_missing_labels_like_the_in_memory_fit(
+    tmp_path: Path, data: tuple[np.ndarray, np.ndarray]
+) -> None:
+    x, z = data
+    gaps = np.arange(5, N, 97)
+    region = pa.array([None if i in set(gaps.tolist()) else v for i, v in enumerate(z)])
+    table = pa.table({"embedding": pa.FixedSizeListArray.from_arrays(pa.array(x.reshape(-1)), D), "region": region})
+    pq.write_table(table, tmp_path / "s.parquet", row_group_size=700)
+    # Refused before the pass, with the count and the first row.
+    with pytest.raises(
+        DataError, match=rf"{gaps.size} row\(s\) have no attribute label in 'region' .* first at row 5 "
+    ):
+        open_stream(tmp_path / "s.parquet", attribute="region")
+    streamed = fit_version_streaming(
+        open_stream(tmp_path / "s.parquet", attribute="region", drop_missing=True),
+        registry=Registry(tmp_path / "r"), name="streamed", method="leace", nonlinear=False, chunk_rows=700,
+    )  # fmt: skip
+    in_memory = fit_version(
+        load_labelled_sample(tmp_path / "s.parquet", attribute="region", drop_missing=True),
+        registry=Registry(tmp_path / "r"), name="in-memory", method="leace", nonlinear=False,
+    )  # fmt: skip
+    registry = Registry(tmp_path / "r")
+    one = registry.read_version("streamed", streamed.version_id).artifact
+    other = registry.read_version("in-memory", in_memory.version_id).artifact
+    # Both fit on the rows with a label that the hash does not hold out, counted by their index in the file.
+    keep = fit_rows() & ~np.isin(np.arange(N), gaps)
+    assert streamed.card["data"]["fit_rows"] == in_memory.card["data"]["fit_rows"] == int(keep.sum())
+    expected = LEACE().fit(x[keep], z[keep])
+    for artifact in (one, other):
+        np.testing.assert_allclose(artifact.apply(x), expected.transform(x), rtol=1e-9, atol=1e-6)
+    for card in (streamed.card, in_memory.card):
+        assert card["data"]["missing_labels_dropped"] == gaps.size
+        assert card["data"]["rows"] == N - gaps.size
+        assert card["attribute"]["classes"] == ["north", "south", "west"]

@@ -8,6 +8,7 @@ import json
 import threading
 import uuid
 from collections.abc import Iterator
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -22,6 +23,8 @@ from veil.registry import (
     NotFoundError,
     PromotionError,
     Registry,
+    RegistryError,
+    RegistryLocationError,
 )
 from veil.registry.storage import FsspecStorage, LocalStorage
 from veil.serialization import ARRAYS_FILE, DESCRIPTION_FILE, encode_artifact
@@ -287,3 +290,17 @@ def test_stored_arrays_load_without_pickle(registry: Registry) -> None:
     data = registry.storage.read(f"{NAME}/versions/{version_id}/{ARRAYS_FILE}")
     with np.load(io.BytesIO(data), allow_pickle=False) as stored:
         assert all(stored[name].dtype != object for name in stored.files)
+
+
+def test_a_registry_path_that_is_a_file_is_named_not_reported_as_errno_20(tmp_path: Path) -> None:
+    (tmp_path / "file").write_text("")
+    files = version_files(0)
+    for registry in (Registry(tmp_path / "file"), Registry(tmp_path / "file" / "below")):
+        for attempt in (registry.names, partial(registry.versions, NAME), partial(registry.add_version, NAME, files)):
+            with pytest.raises(RegistryLocationError, match=f"{tmp_path / 'file'} is a file") as caught:
+                attempt()
+            # Still an OSError and a RegistryError: callers that catch either (the service) keep catching it.
+            assert isinstance(caught.value, OSError)
+            assert isinstance(caught.value, RegistryError)
+            assert "Errno" not in str(caught.value)
+    assert (tmp_path / "file").read_text() == ""

@@ -1,9 +1,16 @@
 """veil: keep a protected attribute out of embeddings, and show that it stays out."""
 
+from __future__ import annotations
+
+import importlib
+from typing import TYPE_CHECKING, Any
+
 from veil.artifact import MapArtifact
-from veil.erasers import INLP, LEACE, RLACE, MeanProjection
 from veil.lowrank import AffineLowRankMap
 from veil.moments import MomentState
+
+if TYPE_CHECKING:
+    from veil.erasers import INLP, LEACE, RLACE, MeanProjection
 
 __version__ = "0.1.0"
 
@@ -17,3 +24,20 @@ __all__ = [
     "MomentState",
     "__version__",
 ]
+
+# The estimators import scikit-learn (about a second): they load on first use, so that `import veil` (and every
+# `veil` command that fits nothing) stays fast.
+_LAZY = {"INLP": "veil.erasers", "LEACE": "veil.erasers", "RLACE": "veil.erasers", "MeanProjection": "veil.erasers"}
+
+
+def __getattr__(name: str) -> Any:
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'veil' has no attribute {name!r}")
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted({*globals(), *_LAZY})

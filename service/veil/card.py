@@ -18,6 +18,7 @@ import numpy as np
 
 from veil.artifact import MapArtifact
 from veil.audit.report import AuditReport, ProbeScore, RegressionScore
+from veil.labels import dropped_note
 from veil.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
 from veil.thresholds import AlertThresholds
 
@@ -28,7 +29,9 @@ class SampleDescription(Protocol):
     """What a card records of the fitting data (an in-memory or a streamed sample)."""
 
     @property
-    def rows(self) -> int: ...
+    def labelled_rows(self) -> int: ...
+    @property
+    def dropped_rows(self) -> int: ...
     @property
     def dtype(self) -> np.dtype[Any]: ...
     @property
@@ -83,6 +86,8 @@ def build_card(
 ) -> dict[str, Any]:
     """The card of a freshly fitted version (a JSON-safe dict)."""
     classes = [] if artifact.classes is None else [str(c) for c in artifact.classes]
+    if sample.dropped_rows:
+        notes = [*notes, dropped_note(sample.dropped_rows, sample.labelled_rows + sample.dropped_rows)]
     card = {
         "card_format": CARD_FORMAT,
         "name": name,
@@ -96,7 +101,8 @@ def build_card(
         "data": {
             "fingerprint_sha256": sample.fingerprint,
             "files": {path.rsplit("/", 1)[-1]: digest for path, digest in sample.files.items()},
-            "rows": sample.rows,
+            "rows": sample.labelled_rows,
+            "missing_labels_dropped": sample.dropped_rows,
             "fit_rows": fit_rows,
             "heldout_rows": audit.n_heldout,
         },
@@ -121,6 +127,12 @@ def card_audit(card: dict[str, Any]) -> AuditReport:
     return AuditReport.from_dict(card["audit"])
 
 
+def _dropped(card: dict[str, Any]) -> str:
+    # Cards written before rows could be dropped for a missing label have no count.
+    dropped = card["data"].get("missing_labels_dropped", 0)
+    return f" ({dropped} dropped for a missing label)" if dropped else ""
+
+
 def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
     """The figures people compare between versions, as (label, text) pairs."""
     audit = card_audit(card)
@@ -128,7 +140,7 @@ def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
     rows = [
         ("method", f"{card['method']} (rank {card['rank']}, dim {card['dim']})"),
         ("created", f"{card['created_at']} by {card['created_by']}"),
-        ("data", f"{card['data']['rows']} rows, sha256 {card['data']['fingerprint_sha256'][:16]}…"),
+        ("data", f"{card['data']['rows']} rows{_dropped(card)}, sha256 {card['data']['fingerprint_sha256'][:16]}…"),
         ("split", f"{card['split']['holdout']:.0%} held out, seed {card['split']['seed']}"),
     ]
     if isinstance(lk.linear_after, ProbeScore) and isinstance(lk.linear_before, ProbeScore):

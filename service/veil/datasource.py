@@ -25,11 +25,13 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from veil.defaults import EMBEDDINGS_KEY
 from veil.errors import DataError
-from veil.progress import advance
+from veil.labels import arrow_labels, missing_labels, rows_to_keep
+from veil.progress import advance, phase
 from veil.tables import embedding_matrix
 
-DEFAULT_EMBEDDINGS_KEY = "embedding"
+DEFAULT_EMBEDDINGS_KEY = EMBEDDINGS_KEY
 _HASH_BLOCK = 8 << 20
 PARQUET_SUFFIXES = (".parquet", ".pq")
 
@@ -47,6 +49,10 @@ class LabelledSample:
     task_key : str or None
     files : dict of str to str
         sha256 of every file read, by path.
+    kept : ndarray of shape (n_read,), dtype bool, or None
+        Which rows of the files were kept when rows with a missing label
+        were dropped (None: every row).  The held-out split hashes a row's
+        index in the files, so dropping rows moves no other row across it.
     """
 
     embeddings: NDArray[np.floating]
@@ -55,10 +61,21 @@ class LabelledSample:
     task: NDArray[Any] | None
     task_key: str | None
     files: dict[str, str]
+    kept: NDArray[np.bool_] | None = None
 
     @property
     def rows(self) -> int:
         return int(self.embeddings.shape[0])
+
+    @property
+    def labelled_rows(self) -> int:
+        """Rows with every label present: here, every row."""
+        return self.rows
+
+    @property
+    def dropped_rows(self) -> int:
+        """Rows of the files dropped for a missing label."""
+        return 0 if self.kept is None else int(np.count_nonzero(~self.kept))
 
     @property
     def dtype(self) -> np.dtype[Any]:
@@ -118,8 +135,8 @@ def _labels(values: NDArray[Any], *, key: str, rows: int, source: str) -> NDArra
         raise DataError(f"{source}: labels {key!r} have {values.shape[0]} rows but the embeddings have {rows}")
     if values.dtype.kind == "O":
         raise DataError(f"{source}: labels {key!r} must be numbers or strings")
-    if values.dtype.kind == "f" and not np.isfinite(values).all():
-        raise DataError(f"{source}: labels {key!r} hold NaN or infinite values")
+    if values.dtype.kind == "f" and np.isinf(values).any():
+        raise DataError(f"{source}: labels {key!r} hold infinite values")
     return values
 
 
@@ -164,7 +181,10 @@ def csv_columns(path: Path, keys: list[str]) -> dict[str, NDArray[Any]]:
     return {key: np.array([row[key] for row in rows], dtype=str) for key in keys}
 
 
-def _parquet_arrays(path: Path, embeddings_key: str, keys: list[str]) -> tuple[NDArray[Any], dict[str, NDArray[Any]]]:
+def _parquet_arrays(
+    path: Path, embeddings_key: str, keys: list[str]
+) -> tuple[NDArray[Any], dict[str, NDArray[Any]], dict[str, NDArray[np.bool_]]]:
+    """The embeddings, the label columns (nulls filled in) and the masks of their missing labels."""
     import pyarrow as pa
     import pyarrow.parquet as pq
 
@@ -178,6 +198,7 @@ def _parquet_arrays(path: Path, embeddings_key: str, keys: list[str]) -> tuple[N
             raise DataError(f"{path} has no column {key!r}; its columns are {', '.join(names)}")
     blocks: list[NDArray[Any]] = []
     labels: dict[str, list[NDArray[Any]]] = {key: [] for key in keys}
+    missing: dict[str, list[NDArray[np.bool_]]] = {key: [] for key in keys}
     first_row = 0
     for group in range(parquet.num_row_groups):
         table = parquet.read_row_group(group, columns=[embeddings_key, *keys])
@@ -188,26 +209,18 @@ def _parquet_arrays(path: Path, embeddings_key: str, keys: list[str]) -> tuple[N
                 f"{blocks[-1].shape[1]} from row {first_row}"
             )
         for key in keys:
-            column = table.column(key)
-            if column.null_count:
-                raise DataError(f"{path}: column {key!r} has missing labels in rows {first_row}..")
-            if pa.types.is_dictionary(column.type):
-                column = column.cast(column.type.value_type)
-            if pa.types.is_string(column.type) or pa.types.is_large_string(column.type):
-                labels[key].append(column.to_numpy().astype(str))
-            elif (
-                pa.types.is_integer(column.type)
-                or pa.types.is_floating(column.type)
-                or pa.types.is_boolean(column.type)
-            ):
-                labels[key].append(column.to_numpy())
-            else:
-                raise DataError(f"{path}: column {key!r} holds {column.type}; labels must be numbers or strings")
+            values, absent = arrow_labels(table.column(key), key=key, source=str(path))
+            labels[key].append(values)
+            missing[key].append(absent)
         first_row += table.num_rows
         advance(f"reading {path.name} (row groups)", group + 1, parquet.num_row_groups)
     if not blocks:
         raise DataError(f"{path} has no rows")
-    return np.concatenate(blocks), {key: np.concatenate(parts) for key, parts in labels.items()}
+    return (
+        np.concatenate(blocks),
+        {key: np.concatenate(parts) for key, parts in labels.items()},
+        {key: np.concatenate(parts) for key, parts in missing.items()},
+    )
 
 
 def load_labelled_sample(
@@ -217,6 +230,7 @@ def load_labelled_sample(
     task: str | None = None,
     embeddings_key: str = DEFAULT_EMBEDDINGS_KEY,
     labels: str | Path | None = None,
+    drop_missing: bool = False,
 ) -> LabelledSample:
     """Read embeddings and labels for a fit.
 
@@ -233,17 +247,34 @@ def load_labelled_sample(
     labels : path, optional
         For ``.npy`` input: a ``.npy`` holding the attribute, or a ``.csv``
         with a header naming the attribute (and task) columns.
+    drop_missing : bool, default=False
+        Drop the rows whose attribute or task label is missing (see
+        :mod:`veil.labels`) instead of refusing the sample.
 
     Raises
     ------
     DataError
-        With a message naming the file and the problem.
+        With a message naming the file and the problem (a missing label:
+        its column, how many, and the first row).
     """
-    data_path = Path(path)
+    with phase(f"reading {Path(path).name}"):
+        return _read_sample(Path(path), attribute, task, embeddings_key, labels, drop_missing)
+
+
+def _read_sample(
+    data_path: Path,
+    attribute: str,
+    task: str | None,
+    embeddings_key: str,
+    labels: str | Path | None,
+    drop_missing: bool,
+) -> LabelledSample:
     _check_file(data_path)
     keys = [attribute] if task is None else [attribute, task]
     files = {str(data_path): file_sha256(data_path)}
     suffix = data_path.suffix.lower()
+    absent: dict[str, NDArray[np.bool_]] | None = None
+    label_source = data_path
     if labels is not None and suffix != ".npy":
         raise DataError(f"a separate labels file goes with .npy embeddings, not with {suffix} input")
     if suffix == ".npz":
@@ -252,7 +283,7 @@ def load_labelled_sample(
     elif suffix == ".npy":
         if labels is None:
             raise DataError(f"{data_path} holds embeddings only; give the labels file (.npy or .csv) too")
-        labels_path = Path(labels)
+        labels_path = label_source = Path(labels)
         _check_file(labels_path)
         files[str(labels_path)] = file_sha256(labels_path)
         matrix = _npy_array(data_path)
@@ -265,16 +296,25 @@ def load_labelled_sample(
         else:
             raise DataError(f"labels must be a .npy or .csv file, not {labels_path.name}")
     elif suffix in PARQUET_SUFFIXES:
-        matrix, columns = _parquet_arrays(data_path, embeddings_key, keys)
+        matrix, columns, absent = _parquet_arrays(data_path, embeddings_key, keys)
     else:
         raise DataError(f"{data_path}: unsupported input {suffix or '(no suffix)'}; use .npz, .npy or .parquet")
     embeddings = check_embeddings(np.asarray(matrix), source=str(data_path))
     rows = embeddings.shape[0]
+    found = {key: _labels(np.asarray(columns[key]), key=key, rows=rows, source=str(data_path)) for key in keys}
+    if absent is None:
+        absent = {key: missing_labels(values) for key, values in found.items()}
+    roles = [("attribute", attribute)] + ([] if task is None else [("task", task)])
+    kept = rows_to_keep([(role, key, absent[key]) for role, key in roles], source=str(label_source), drop=drop_missing)
+    if kept is not None:
+        embeddings = embeddings[kept]
+        found = {key: values[kept] for key, values in found.items()}
     return LabelledSample(
         embeddings=embeddings,
-        attribute=_labels(columns[attribute], key=attribute, rows=rows, source=str(data_path)),
+        attribute=found[attribute],
         attribute_key=attribute,
-        task=None if task is None else _labels(columns[task], key=task, rows=rows, source=str(data_path)),
+        task=None if task is None else found[task],
         task_key=task,
         files=files,
+        kept=kept,
     )

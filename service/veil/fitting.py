@@ -23,6 +23,7 @@ from veil.card import SampleDescription, build_card
 from veil.datasource import LabelledSample
 from veil.erasers import INLP, LEACE, RLACE, LinearErasure, MeanProjection
 from veil.errors import DataError
+from veil.progress import phase
 from veil.reference import REFERENCE_FILE, ReferenceStatistics
 from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
 from veil.registry.naming import check_name
@@ -105,7 +106,11 @@ def _split(
 ) -> NDArray[np.bool_]:
     if not 0.0 < holdout < 1.0:
         raise DataError(f"the held-out share must be between 0 and 1, got {holdout}")
-    held = give_every_class_both_parts(holdout_mask(sample.rows, fraction=holdout, seed=seed), codes)
+    # The hash is of each row's index in the files, so rows dropped for a missing label move no other row.
+    held = holdout_mask(sample.rows + sample.dropped_rows, fraction=holdout, seed=seed)
+    if sample.kept is not None:
+        held = held[sample.kept]
+    held = give_every_class_both_parts(held, codes)
     counts = np.bincount(codes[held], minlength=labels.size)
     smallest = int(np.argmin(counts))
     if counts[smallest] < 2:
@@ -173,7 +178,8 @@ def fit_version(
     held = _split(sample, codes, labels, holdout, seed)
     fit_rows = ~held
     x = sample.embeddings
-    notes = fit_collecting_notes(eraser, method, lambda: eraser.fit(x[fit_rows], sample.attribute[fit_rows]))
+    with phase(f"fitting {method}"):
+        notes = fit_collecting_notes(eraser, method, lambda: eraser.fit(x[fit_rows], sample.attribute[fit_rows]))
     return audit_and_store(
         eraser,
         sample,
@@ -239,10 +245,13 @@ def audit_and_store(
     x_held, z_held, task_held = held_out
     codes_held = np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp)
     folds = min(AUDIT_FOLDS, probe_folds(codes_held, AUDIT_FOLDS))
+    # The audit reports each probe's folds as a stage of its own.
     report = audit(eraser, x_held, z_held, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed)
     artifact = eraser.export()
-    reference = ReferenceStatistics.from_fit(artifact, fit_sample[0], fit_sample[1], random_state=seed)
-    plots = PlotData.from_heldout(x_held, eraser.transform(x_held), codes_held, seed=seed)
+    with phase("reference statistics"):
+        reference = ReferenceStatistics.from_fit(artifact, fit_sample[0], fit_sample[1], random_state=seed)
+    with phase("report plots"):
+        plots = PlotData.from_heldout(x_held, eraser.transform(x_held), codes_held, seed=seed)
     card = build_card(
         name=name,
         artifact=artifact,
@@ -264,8 +273,9 @@ def audit_and_store(
     def report_page(version_id: str) -> dict[str, bytes]:
         return {REPORT_FILE: render_report(version_id, card, artifact.history, plots).encode()}
 
-    version_id = registry.add_version(name, files, derived=report_page)
-    promotion = None
-    if alias is not None:
-        promotion = registry.promote(name, version_id, alias=alias, reason=reason)
+    with phase("storing the version"):
+        version_id = registry.add_version(name, files, derived=report_page)
+        promotion = None
+        if alias is not None:
+            promotion = registry.promote(name, version_id, alias=alias, reason=reason)
     return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion)

@@ -24,17 +24,18 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil._validation import encode_attribute
+from veil.defaults import AUDIT_ROWS, ENGINES, FIT_SAMPLE_ROWS
 from veil.errors import DataError
 from veil.fitting import FitOutcome, audit_and_store, fit_collecting_notes, make_eraser
 from veil.moments import MomentState
+from veil.progress import phase
 from veil.registry import Registry
 from veil.splitting import holdout_mask
 from veil.streaming import DEFAULT_CHUNK_ROWS, Chunk, Partition, StreamedSample
 from veil.thresholds import AlertThresholds
 
-ENGINES = ("local", "dask")
-DEFAULT_AUDIT_ROWS = 20_000
-DEFAULT_FIT_SAMPLE_ROWS = 50_000
+DEFAULT_AUDIT_ROWS = AUDIT_ROWS
+DEFAULT_FIT_SAMPLE_ROWS = FIT_SAMPLE_ROWS
 # Independent hash streams for the held-out split and the two samples drawn from its sides.
 _HELD_SAMPLE_SALT, _FIT_SAMPLE_SALT = 0x5EED1, 0x5EED2
 
@@ -78,8 +79,11 @@ class PassPlan:
     keep_fit_rows: bool  # INLP-moments streams its own fit rows through partial_fit on the driver
 
     def process(self, chunk: Chunk) -> PartResult:
+        # The split hashes each row's index in the files, then rows without a label (dropped on request) leave
+        # both sides: the same rows are held out as in memory, where dropped rows keep their indices too.
         held = holdout_mask(chunk.embeddings.shape[0], fraction=self.holdout, seed=self.seed, start=chunk.start)
-        fit = ~held
+        fit = ~held & ~chunk.missing
+        held &= ~chunk.missing
         held_rows = _select(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
         fit_rows = _select(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT)
         moments = None
@@ -164,13 +168,13 @@ def fit_version_streaming(
         raise DataError(f"unknown engine {engine!r}; choose one of {', '.join(ENGINES)}")
     if engine == "dask" and streams_inlp:
         raise DataError("INLP with the moments classifier fits sequentially; use the local engine (--stream)")
-    expected_held = int(sample.rows * holdout)
+    expected_held = int(sample.labelled_rows * holdout)
     fit_limit = fit_sample_rows if not (exact_moments or streams_inlp) else audit_rows
     plan = PassPlan(
         holdout=holdout,
         seed=seed,
         held_fraction=min(1.0, audit_rows / max(expected_held, 1)),
-        fit_fraction=min(1.0, fit_limit / max(sample.rows - expected_held, 1)),
+        fit_fraction=min(1.0, fit_limit / max(sample.labelled_rows - expected_held, 1)),
         exact_moments=exact_moments,
         keep_fit_rows=streams_inlp,
     )
@@ -192,10 +196,12 @@ def fit_version_streaming(
         moments = total.moments
         if moments is None or moments.labels is None or moments.labels.size < 2:
             raise DataError(f"attribute {sample.attribute_key!r} has a single class; erasure needs at least two")
-        notes += fit_collecting_notes(eraser, method, lambda: eraser.fit_moments(moments))
+        with phase(f"fitting {method}"):
+            notes += fit_collecting_notes(eraser, method, lambda: eraser.fit_moments(moments))
     elif not streams_inlp:
         x_sample, z_sample, _ = _rows(total.fit_sample, "fit")
-        notes += fit_collecting_notes(eraser, method, lambda: eraser.fit(x_sample, z_sample))
+        with phase(f"fitting {method}"):
+            notes += fit_collecting_notes(eraser, method, lambda: eraser.fit(x_sample, z_sample))
         notes.append(f"{method} was fitted on a hash-drawn sample of {x_sample.shape[0]} of {fit_rows} fitting rows")
     x_fit_sample, z_fit_sample, _ = _rows(total.fit_sample, "reference probe")
     x_held, z_held, task_held = _rows(total.held_sample, "audit")

@@ -33,3 +33,11 @@ def reporting(listener: Listener) -> Iterator[None]:
         yield
     finally:
         _listener.reset(token)
+
+
+@contextmanager
+def phase(stage: str) -> Iterator[None]:
+    """Report one step of a longer job (reading, fitting, storing) as a stage of one step, started then finished."""
+    advance(stage, 0, 1)
+    yield
+    advance(stage, 1, 1)

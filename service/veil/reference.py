@@ -17,7 +17,6 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.artifact import MapArtifact
-from veil.audit.probes import linear_probe
 
 REFERENCE_FILE = "reference.npz"
 # Leading eigenvectors kept; all eigenvalues are kept.
@@ -61,6 +60,8 @@ class ReferenceStatistics:
         cls, artifact: MapArtifact, X: NDArray[np.floating], codes: NDArray[np.intp], *, random_state: int
     ) -> ReferenceStatistics:
         """Statistics of the rows the eraser was fitted on (``codes`` index ``artifact.classes``)."""
+        from veil.audit.probes import linear_probe  # scikit-learn: only when fitting, never to read a card
+
         covariance = artifact.covariance
         eigenvalues, eigenvectors = np.linalg.eigh(covariance)
         order = np.argsort(eigenvalues)[::-1]

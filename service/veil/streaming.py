@@ -23,26 +23,34 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.datasource import PARQUET_SUFFIXES, check_embeddings, csv_columns, file_sha256, fingerprint_of
+from veil.defaults import STREAM_CHUNK_ROWS
 from veil.errors import DataError
+from veil.labels import arrow_labels, missing_labels, rows_to_keep
 from veil.progress import advance
 from veil.tables import embedding_matrix
 
-DEFAULT_CHUNK_ROWS = 65536
+DEFAULT_CHUNK_ROWS = STREAM_CHUNK_ROWS
 
 
 @dataclass(frozen=True, eq=False)
 class Chunk:
-    """Rows ``start .. start + len(embeddings) - 1`` of the stream."""
+    """Rows ``start .. start + len(embeddings) - 1`` of the stream; ``missing`` marks rows lacking a label."""
 
     start: int
     embeddings: NDArray[np.floating]
     attribute: NDArray[Any]
     task: NDArray[Any] | None
+    missing: NDArray[np.bool_]
 
 
 @dataclass(frozen=True, eq=False)
 class StreamedSample:
-    """A labelled sample read chunk by chunk; the counterpart of :class:`veil.datasource.LabelledSample`."""
+    """A labelled sample read chunk by chunk; the counterpart of :class:`veil.datasource.LabelledSample`.
+
+    ``rows`` counts every row of the files; ``dropped_rows`` of them lack a
+    label and are skipped by the fit (only when dropping was asked for: a
+    sample with missing labels is refused otherwise).
+    """
 
     rows: int
     dim: int
@@ -51,6 +59,12 @@ class StreamedSample:
     task_key: str | None
     files: dict[str, str]
     _partitions: Any = field(repr=False)
+    dropped_rows: int = 0
+
+    @property
+    def labelled_rows(self) -> int:
+        """Rows with every label present."""
+        return self.rows - self.dropped_rows
 
     def partitions(self, chunk_rows: int = DEFAULT_CHUNK_ROWS) -> list[Partition]:
         """The sample cut into self-contained pieces a worker process can load on its own, in row order."""
@@ -158,7 +172,10 @@ class NpyPartition:
         block = check_embeddings(
             self.file.read(self.offset, self.rows), source=f"{self.file.path} rows {self.offset}.."
         )
-        return Chunk(start=self.start, embeddings=block, attribute=self.attribute, task=self.task)
+        missing = missing_labels(self.attribute)
+        if self.task is not None:
+            missing |= missing_labels(self.task)
+        return Chunk(start=self.start, embeddings=block, attribute=self.attribute, task=self.task, missing=missing)
 
 
 def _array_partitions(parts: list[NpyFile], columns: dict[str, NDArray[Any]], attribute: str, task: str | None) -> Any:
@@ -203,20 +220,19 @@ class ParquetPartition:
         matrix = embedding_matrix(table.column(self.embeddings_key), name=self.embeddings_key, first_row=self.start)
         if matrix.shape[1] != self.dim:
             raise DataError(f"{self.path}: column {self.embeddings_key!r} mixes dimensions from row {self.start}")
+        source = str(self.path)
+        attribute, missing = arrow_labels(table.column(self.attribute_key), key=self.attribute_key, source=source)
+        task = None
+        if self.task_key is not None:
+            task, task_missing = arrow_labels(table.column(self.task_key), key=self.task_key, source=source)
+            missing = missing | task_missing
         return Chunk(
             start=self.start,
             embeddings=check_embeddings(matrix, source=f"{self.path} rows {self.start}.."),
-            attribute=_parquet_labels(self.path, table, self.attribute_key),
-            task=None if self.task_key is None else _parquet_labels(self.path, table, self.task_key),
+            attribute=attribute,
+            task=task,
+            missing=missing,
         )
-
-
-def _parquet_labels(path: Path, table: Any, key: str) -> NDArray[Any]:
-    column = table.column(key)
-    if column.null_count:
-        raise DataError(f"{path}: column {key!r} has missing labels")
-    values: NDArray[Any] = column.to_numpy()
-    return values.astype(str) if values.dtype == object else values
 
 
 Partition = NpyPartition | ParquetPartition
@@ -252,6 +268,10 @@ def _parquet_partitions(path: Path, embeddings_key: str, attribute: str, task: s
     return partitions, rows, first.shape[1], first.dtype
 
 
+def _dropped(kept: NDArray[np.bool_] | None) -> int:
+    return 0 if kept is None else int(np.count_nonzero(~kept))
+
+
 def open_stream(
     path: str | Path,
     *,
@@ -259,18 +279,24 @@ def open_stream(
     task: str | None = None,
     embeddings_key: str = "embedding",
     labels: str | Path | None = None,
+    drop_missing: bool = False,
 ) -> StreamedSample:
-    """Describe a large labelled sample without reading it (every file is hashed, in one streaming pass each).
+    """Describe a large labelled sample without reading its embeddings (every file is hashed, in one pass each).
+
+    The labels are read whole here (a few bytes a row), so that missing ones
+    are refused, or counted for dropping, before the long pass starts.
 
     Raises
     ------
     DataError
-        A missing or unreadable file, shards of different dimensions, labels of the wrong length.
+        A missing or unreadable file, shards of different dimensions, labels
+        of the wrong length, a missing label (unless ``drop_missing``).
     """
     source = Path(path)
     if not source.exists():
         raise DataError(f"{source} does not exist")
     keys = [attribute] if task is None else [attribute, task]
+    roles = [("attribute", attribute)] + ([] if task is None else [("task", task)])
     if source.is_dir() or source.suffix.lower() == ".npy":
         shards = sorted(source.glob("*.npy")) if source.is_dir() else [source]
         if not shards:
@@ -283,20 +309,33 @@ def open_stream(
             raise DataError(f"{source}: the shards have different dimensions ({sorted(dims)})")
         rows = sum(part.shape[0] for part in parts)
         columns = _label_columns(Path(labels), keys, rows)
+        kept = rows_to_keep(
+            [(role, key, missing_labels(np.asarray(columns[key]))) for role, key in roles],
+            source=str(labels),
+            drop=drop_missing,
+        )
         files = {str(shard): file_sha256(shard) for shard in shards}
         files[str(labels)] = file_sha256(Path(labels))
         dtypes = {part.dtype for part in parts}
         dtype = np.dtype(np.float32) if dtypes == {np.dtype(np.float32)} else np.dtype(np.float64)
         return StreamedSample(
             rows=rows, dim=dims.pop(), dtype=dtype, attribute_key=attribute, task_key=task, files=files,
-            _partitions=_array_partitions(parts, columns, attribute, task),
+            _partitions=_array_partitions(parts, columns, attribute, task), dropped_rows=_dropped(kept),
         )  # fmt: skip
     if source.suffix.lower() in PARQUET_SUFFIXES:
         if labels is not None:
             raise DataError("Parquet input carries its labels in columns; --labels goes with .npy input")
         partitions, rows, dim, dtype = _parquet_partitions(source, embeddings_key, attribute, task)
+        import pyarrow.parquet as pq
+
+        table = pq.read_table(source, columns=list(dict.fromkeys(keys)))
+        kept = rows_to_keep(
+            [(role, key, arrow_labels(table.column(key), key=key, source=str(source))[1]) for role, key in roles],
+            source=str(source),
+            drop=drop_missing,
+        )
         return StreamedSample(
             rows=rows, dim=dim, dtype=np.dtype(dtype), attribute_key=attribute, task_key=task,
-            files={str(source): file_sha256(source)}, _partitions=partitions,
+            files={str(source): file_sha256(source)}, _partitions=partitions, dropped_rows=_dropped(kept),
         )  # fmt: skip
     raise DataError(f"{source}: streaming reads a .npy file, a folder of .npy shards or Parquet, not {source.suffix}")

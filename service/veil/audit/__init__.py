@@ -1,6 +1,29 @@
 """The leakage and utility audit of a fitted eraser, on held-out data."""
 
+from __future__ import annotations
+
+import importlib
+from typing import TYPE_CHECKING, Any
+
 from veil.audit.report import AuditReport, Leakage, ProbeScore, RegressionScore, Retrieval, Utility
-from veil.audit.run import audit, fit_and_audit
+
+if TYPE_CHECKING:
+    from veil.audit.run import audit, fit_and_audit
 
 __all__ = ["AuditReport", "Leakage", "ProbeScore", "RegressionScore", "Retrieval", "Utility", "audit", "fit_and_audit"]
+
+# Running an audit needs scikit-learn; reading one (a version card) does not, so the runner loads on first use.
+_LAZY = {"audit": "veil.audit.run", "fit_and_audit": "veil.audit.run"}
+
+
+def __getattr__(name: str) -> Any:
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'veil.audit' has no attribute {name!r}")
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted({*globals(), *_LAZY})

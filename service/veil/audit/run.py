@@ -88,16 +88,20 @@ def audit(
         codes = attribute.codes
         model = probes.linear_probe(random_state)
         linear_before: ProbeScore | RegressionScore = probes.classification_score(
-            model, raw, codes, folds=folds, random_state=random_state
+            model, raw, codes, folds=folds, random_state=random_state, stage="linear probe, raw (folds)"
         )
         linear_after: ProbeScore | RegressionScore = probes.classification_score(
-            model, erased, codes, folds=folds, random_state=random_state
+            model, erased, codes, folds=folds, random_state=random_state, stage="linear probe, erased (folds)"
         )
         nonlinear_before = nonlinear_after = None
         if nonlinear:
             mlp = probes.nonlinear_probe(random_state)
-            nonlinear_before = probes.classification_score(mlp, raw, codes, folds=folds, random_state=random_state)
-            nonlinear_after = probes.classification_score(mlp, erased, codes, folds=folds, random_state=random_state)
+            nonlinear_before = probes.classification_score(
+                mlp, raw, codes, folds=folds, random_state=random_state, stage="MLP probe, raw (folds)"
+            )
+            nonlinear_after = probes.classification_score(
+                mlp, erased, codes, folds=folds, random_state=random_state, stage="MLP probe, erased (folds)"
+            )
         # Whitened by the fitting data's covariance, so before and after are
         # measured in the same units.
         eigenvectors, scale = whitening_factors(eraser.moments_.covariance_xx)
@@ -117,8 +121,12 @@ def audit(
     task_before = task_after = tpr_before = tpr_after = None
     if task_codes is not None:
         model = probes.linear_probe(random_state)
-        predicted_before = probes.cross_val_labels(model, raw, task_codes, folds=folds, random_state=random_state)
-        predicted_after = probes.cross_val_labels(model, erased, task_codes, folds=folds, random_state=random_state)
+        predicted_before = probes.cross_val_labels(
+            model, raw, task_codes, folds=folds, random_state=random_state, stage="task probe, raw (folds)"
+        )
+        predicted_after = probes.cross_val_labels(
+            model, erased, task_codes, folds=folds, random_state=random_state, stage="task probe, erased (folds)"
+        )
         task_before = float(np.mean(predicted_before == task_codes))
         task_after = float(np.mean(predicted_after == task_codes))
         if codes is not None and attribute.labels is not None and attribute.labels.size == 2:

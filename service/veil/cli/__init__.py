@@ -13,17 +13,24 @@ import sys
 from collections.abc import Sequence
 
 from veil.cli.commands import HANDLERS
-from veil.cli.parser import build_parser
+from veil.cli.parser import parse_arguments
 from veil.cli.progress_bars import ProgressBars
 from veil.errors import DataError
 from veil.progress import reporting
-from veil.registry import IntegrityError, InvalidReferenceError, NotFoundError, PromotionError, RegistryError
+from veil.registry import (
+    IntegrityError,
+    InvalidReferenceError,
+    NotFoundError,
+    PromotionError,
+    RegistryError,
+    RegistryLocationError,
+)
 
-BAD_INPUT = (DataError, InvalidReferenceError, NotFoundError, PromotionError)
+BAD_INPUT = (DataError, InvalidReferenceError, NotFoundError, PromotionError, RegistryLocationError)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
+    args = parse_arguments(None if argv is None else list(argv))
     show_progress = args.progress == "always" or (args.progress == "auto" and sys.stderr.isatty())
     try:
         with ProgressBars(enabled=show_progress) as bars, reporting(bars):

@@ -10,14 +10,11 @@ from pathlib import Path
 from typing import Any
 
 from veil.card import compare_cards, format_card
-from veil.corpus import apply_to_file, manifest_path
-from veil.datasource import load_labelled_sample
 from veil.errors import DataError
-from veil.fitting import fit_version, parse_parameters
-from veil.outofcore import fit_version_streaming
 from veil.registry import DEFAULT_ALIAS, Registry
-from veil.reporting import PLOT_DATA_FILE, PlotData, render_report
-from veil.streaming import open_stream
+
+# The commands that fit, render or clean import their modules when they run: scikit-learn, matplotlib and pyarrow
+# take a second to import, and `veil versions` or `veil show` need none of them.
 
 
 def _print_table(header: list[str], rows: list[list[str]]) -> None:
@@ -27,9 +24,16 @@ def _print_table(header: list[str], rows: list[list[str]]) -> None:
 
 
 def fit(args: argparse.Namespace) -> int:
+    from veil.datasource import load_labelled_sample
+    from veil.fitting import fit_version, parse_parameters
+    from veil.outofcore import fit_version_streaming
+    from veil.streaming import open_stream
+
     params = parse_parameters(args.method, args.option)
+    registry = Registry(args.registry)
+    registry.storage.list("")  # a registry that cannot take the version fails now, not after the fit
     common: dict[str, Any] = {
-        "registry": Registry(args.registry),
+        "registry": registry,
         "name": args.name,
         "method": args.method,
         "params": params,
@@ -40,7 +44,13 @@ def fit(args: argparse.Namespace) -> int:
         "alias": args.alias,
         "reason": args.reason,
     }
-    source = {"attribute": args.attribute, "task": args.task, "embeddings_key": args.embeddings, "labels": args.labels}
+    source = {
+        "attribute": args.attribute,
+        "task": args.task,
+        "embeddings_key": args.embeddings,
+        "labels": args.labels,
+        "drop_missing": args.drop_missing,
+    }
     if args.stream or args.engine == "dask" or Path(args.data).is_dir():
         outcome = fit_version_streaming(
             open_stream(args.data, **source),
@@ -153,6 +163,8 @@ def verify(args: argparse.Namespace) -> int:
 
 
 def report(args: argparse.Namespace) -> int:
+    from veil.reporting import PLOT_DATA_FILE, PlotData, render_report
+
     out = Path(args.out)
     if not out.parent.is_dir():
         raise DataError(f"the output folder {out.parent} does not exist")
@@ -164,6 +176,8 @@ def report(args: argparse.Namespace) -> int:
 
 
 def apply(args: argparse.Namespace) -> int:
+    from veil.corpus import apply_to_file, manifest_path
+
     requested = args.version or args.alias or DEFAULT_ALIAS
     stored = Registry(args.registry).read_version(args.name, requested)
     manifest: dict[str, Any] = apply_to_file(

@@ -4,28 +4,87 @@ from __future__ import annotations
 
 import argparse
 import os
+from collections.abc import Callable
+from typing import Any, NoReturn
 
-from veil.corpus import DEFAULT_CHUNK_ROWS
-from veil.datasource import DEFAULT_EMBEDDINGS_KEY
-from veil.fitting import METHODS, method_parameters
-from veil.outofcore import DEFAULT_AUDIT_ROWS, DEFAULT_FIT_SAMPLE_ROWS, ENGINES
+from veil.defaults import (
+    APPLY_CHUNK_ROWS,
+    AUDIT_ROWS,
+    EMBEDDINGS_KEY,
+    ENGINES,
+    FIT_SAMPLE_ROWS,
+    METHOD_NAMES,
+    STREAM_CHUNK_ROWS,
+)
 from veil.registry import DEFAULT_ALIAS
-from veil.streaming import DEFAULT_CHUNK_ROWS as DEFAULT_STREAM_CHUNK_ROWS
 
 DEFAULT_REGISTRY = "./veil-registry"
 
 
-def _method_options_help() -> str:
+def method_options_help() -> str:
+    """The epilog of ``veil fit --help``: every method's options and their defaults, read from the estimators."""
+    from veil.fitting import method_parameters  # imports scikit-learn: only when this help is shown
+
     lines = ["method options (--option KEY=VALUE, repeatable):"]
-    for method in METHODS:
+    for method in METHOD_NAMES:
         options = ", ".join(f"{key}={value!r}" for key, value in sorted(method_parameters(method).items()))
         lines.append(f"  {method}: {options or '(none)'}")
     return "\n".join(lines)
 
 
-def _common_options() -> argparse.ArgumentParser:
+class VeilParser(argparse.ArgumentParser):
+    """argparse with one-line errors, options that refuse to be given twice, and an epilog made on demand."""
+
+    def __init__(self, *args: Any, epilog_factory: Callable[[], str] | None = None, **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        self.epilog_factory = epilog_factory
+        self.register("action", None, StoreOnce)
+        self.register("action", "store", StoreOnce)
+
+    def format_help(self) -> str:
+        if self.epilog_factory is not None:
+            self.epilog = self.epilog_factory()
+        return super().format_help()
+
+    def error(self, message: str) -> NoReturn:
+        # One line, like every other refusal of the command (the usage is one `--help` away).
+        self.exit(2, f"{self.prog}: {message} (see {self.prog} --help)\n")
+
+
+#: Namespace attribute holding the options :class:`StoreOnce` has seen (removed after parsing).
+GIVEN = "_given_once"
+
+
+class StoreOnce(argparse.Action):
+    """Store an option's value, refusing the option a second time rather than silently keeping the last."""
+
+    def __call__(
+        self,
+        parser: argparse.ArgumentParser,
+        namespace: argparse.Namespace,
+        values: str | Any,
+        option_string: str | None = None,
+    ) -> None:
+        given: set[str] = vars(namespace).setdefault(GIVEN, set())
+        if self.dest in given:
+            first = getattr(namespace, self.dest)
+            parser.error(
+                f"{option_string or self.dest} was given twice ({first!r}, then {values!r}); it takes one value"
+            )
+        given.add(self.dest)
+        setattr(namespace, self.dest, values)
+
+
+def parse_arguments(argv: list[str] | None) -> argparse.Namespace:
+    """``argv`` (``sys.argv[1:]`` if None) parsed by :func:`build_parser`; exits 2 with one line on bad usage."""
+    args = build_parser().parse_args(argv)
+    vars(args).pop(GIVEN, None)
+    return args
+
+
+def _common_options() -> VeilParser:
     """Options every subcommand takes, after its name: ``veil versions NAME --registry R``."""
-    common = argparse.ArgumentParser(add_help=False)
+    common = VeilParser(add_help=False)
     common.add_argument(
         "--registry",
         default=os.environ.get("VEIL_REGISTRY", DEFAULT_REGISTRY),
@@ -40,8 +99,8 @@ def _common_options() -> argparse.ArgumentParser:
     return common
 
 
-def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+def build_parser() -> VeilParser:
+    parser = VeilParser(
         prog="veil",
         description="Fit, store, inspect, promote and apply erasers that keep a protected attribute out of embeddings.",
     )
@@ -52,7 +111,7 @@ def build_parser() -> argparse.ArgumentParser:
         "fit",
         parents=common,
         help="fit an eraser on a labelled sample, audit it on held-out rows, store it as a new version",
-        epilog=_method_options_help(),
+        epilog_factory=method_options_help,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     fit.add_argument(
@@ -64,9 +123,13 @@ def build_parser() -> argparse.ArgumentParser:
     fit.add_argument("--task", help="key or column of a task label, for utility figures")
     fit.add_argument("--labels", help="labels for .npy input: a .npy (the attribute) or a .csv with a header")
     fit.add_argument(
-        "--embeddings", default=DEFAULT_EMBEDDINGS_KEY, help="key (.npz) or column (.parquet) of the embeddings"
+        "--drop-missing",
+        action="store_true",
+        help="drop rows whose attribute or task label is missing (blank, NA, NaN, null) instead of refusing the "
+        "sample; the card records how many",
     )
-    fit.add_argument("--method", required=True, choices=sorted(METHODS))
+    fit.add_argument("--embeddings", default=EMBEDDINGS_KEY, help="key (.npz) or column (.parquet) of the embeddings")
+    fit.add_argument("--method", required=True, choices=sorted(METHOD_NAMES))
     fit.add_argument("--option", action="append", default=[], metavar="KEY=VALUE", help="a method option")
     fit.add_argument("--name", required=True, help="the eraser's name in the registry, e.g. profiles-minilm")
     fit.add_argument("--alias", help="point this alias (e.g. live) at the new version")
@@ -82,17 +145,17 @@ def build_parser() -> argparse.ArgumentParser:
         action="store_true",
         help="read the sample in chunks with bounded memory (always on for a folder of .npy shards)",
     )
-    fit.add_argument("--chunk-rows", type=int, default=DEFAULT_STREAM_CHUNK_ROWS, help="rows per chunk when streaming")
+    fit.add_argument("--chunk-rows", type=int, default=STREAM_CHUNK_ROWS, help="rows per chunk when streaming")
     fit.add_argument(
         "--audit-rows",
         type=int,
-        default=DEFAULT_AUDIT_ROWS,
+        default=AUDIT_ROWS,
         help="held-out rows audited when streaming (a hash sample)",
     )
     fit.add_argument(
         "--fit-sample-rows",
         type=int,
-        default=DEFAULT_FIT_SAMPLE_ROWS,
+        default=FIT_SAMPLE_ROWS,
         help="when streaming, INLP logistic/svm and R-LACE fit on a hash sample of this many rows",
     )
     fit.add_argument(
@@ -165,8 +228,8 @@ def build_parser() -> argparse.ArgumentParser:
     target.add_argument("--alias", help=f"an alias (default {DEFAULT_ALIAS})")
     apply.add_argument("--in", dest="source", required=True, help="the corpus: .npy or .parquet")
     apply.add_argument("--out", dest="target", required=True, help="the cleaned corpus, same format")
-    apply.add_argument("--embeddings", default=DEFAULT_EMBEDDINGS_KEY, help="the Parquet embedding column")
-    apply.add_argument("--chunk-rows", type=int, default=DEFAULT_CHUNK_ROWS, help="rows cleaned at a time")
+    apply.add_argument("--embeddings", default=EMBEDDINGS_KEY, help="the Parquet embedding column")
+    apply.add_argument("--chunk-rows", type=int, default=APPLY_CHUNK_ROWS, help="rows cleaned at a time")
     apply.set_defaults(handler="apply")
 
     serve = commands.add_parser(

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 from types import TracebackType
+from typing import TYPE_CHECKING
 
-from tqdm import tqdm
+if TYPE_CHECKING:
+    from tqdm import tqdm
 
 
 class ProgressBars:
@@ -19,8 +21,12 @@ class ProgressBars:
             return
         bar = self._bars.get(stage)
         if bar is None:
+            from tqdm import tqdm  # imported with the first bar: most commands draw none
+
             bar = self._bars[stage] = tqdm(total=total, desc=stage, leave=False, dynamic_ncols=True)
         bar.update(done - bar.n)
+        if total is not None and done >= total:
+            bar.refresh()  # tqdm skips updates within 0.1 s of the last; a finished stage shows as finished
 
     def __enter__(self) -> ProgressBars:
         return self

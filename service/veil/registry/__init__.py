@@ -7,6 +7,7 @@ from veil.registry.errors import (
     NotFoundError,
     PromotionError,
     RegistryError,
+    RegistryLocationError,
 )
 from veil.registry.registry import (
     CARD_FILE,
@@ -34,6 +35,7 @@ __all__ = [
     "PromotionError",
     "Registry",
     "RegistryError",
+    "RegistryLocationError",
     "StoredVersion",
     "VerificationResult",
     "VersionSummary",

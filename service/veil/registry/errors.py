@@ -25,3 +25,7 @@ class PromotionError(RegistryError):
 
 class LockTimeoutError(RegistryError, TimeoutError):
     """Another process held the eraser's lock for longer than the timeout."""
+
+
+class RegistryLocationError(RegistryError, NotADirectoryError):
+    """The registry's path is a file, or lies under one: no registry can be there."""

@@ -31,7 +31,7 @@ from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any, Protocol
 
-from veil.registry.errors import LockTimeoutError
+from veil.registry.errors import LockTimeoutError, RegistryLocationError
 
 STAGING_DIR = ".staging"
 # A staging directory untouched this long belongs to a writer that died.
@@ -99,8 +99,30 @@ class LocalStorage:
     def _path(self, path: str) -> Path:
         return self.root / path
 
+    @contextlib.contextmanager
+    def _located(self) -> Iterator[None]:
+        """Name a file that stands where the registry needs a directory, instead of a bare ``[Errno 20]``."""
+        try:
+            yield
+        except RegistryLocationError:
+            raise
+        except NotADirectoryError as error:
+            raise self._misplaced_file(error) from None
+
+    def _misplaced_file(self, error: NotADirectoryError) -> NotADirectoryError:
+        failed = Path(error.filename) if error.filename else self.root
+        blocking = next((p for p in [*reversed(failed.parents), failed] if p.exists() and not p.is_dir()), None)
+        if blocking is None:
+            return error
+        if blocking == self.root:
+            return RegistryLocationError(f"the registry {self.root} is a file, not a directory")
+        if blocking in self.root.parents:
+            return RegistryLocationError(f"the registry {self.root} cannot be a directory: {blocking} is a file")
+        return NotADirectoryError(f"the registry {self.root} is damaged: {blocking} is a file where a folder belongs")
+
     def read(self, path: str) -> bytes:
-        return self._path(path).read_bytes()
+        with self._located():
+            return self._path(path).read_bytes()
 
     def exists(self, path: str) -> bool:
         return self._path(path).exists()
@@ -108,7 +130,8 @@ class LocalStorage:
     def list(self, path: str) -> list[str]:
         # Only a missing path lists as empty: a file in the way or a refused read is an error to report.
         try:
-            return sorted(entry.name for entry in self._path(path).iterdir())
+            with self._located():
+                return sorted(entry.name for entry in self._path(path).iterdir())
         except FileNotFoundError:
             return []
 
@@ -122,13 +145,15 @@ class LocalStorage:
 
     def replace(self, path: str, data: bytes) -> None:
         target = self._path(path)
-        temporary = self._temporary_beside(target, data)
+        with self._located():
+            temporary = self._temporary_beside(target, data)
         os.replace(temporary, target)
         _fsync_directory(target.parent)
 
     def create_once(self, path: str, data: bytes) -> bool:
         target = self._path(path)
-        temporary = self._temporary_beside(target, data)
+        with self._located():
+            temporary = self._temporary_beside(target, data)
         try:
             # link(2) fails if the name exists, and the file it names is already complete.
             os.link(temporary, target)
@@ -144,7 +169,8 @@ class LocalStorage:
         if target.exists():
             raise FileExistsError(f"{target} already exists")
         staging_root = target.parent.parent / STAGING_DIR
-        staging_root.mkdir(parents=True, exist_ok=True)
+        with self._located():
+            staging_root.mkdir(parents=True, exist_ok=True)
         self._remove_stale_staging(staging_root)
         staging = staging_root / uuid.uuid4().hex
         staging.mkdir()
@@ -175,7 +201,8 @@ class LocalStorage:
     @contextlib.contextmanager
     def lock(self, path: str, *, timeout: float) -> Iterator[None]:
         target = self._path(path)
-        target.parent.mkdir(parents=True, exist_ok=True)
+        with self._located():
+            target.parent.mkdir(parents=True, exist_ok=True)
         deadline = time.monotonic() + timeout
         # flock is released by the kernel when the holder dies, so a kill -9 never leaves a stuck lock.
         with target.open("a+b") as handle:

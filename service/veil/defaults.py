@@ -1,0 +1,23 @@
+"""Defaults shared by the library and the ``veil`` command line.
+
+They live here, in a module that imports nothing, so that the command line can
+show them without importing the modules that use them (and scikit-learn,
+pyarrow or matplotlib with those): ``veil versions`` must start fast.
+"""
+
+from __future__ import annotations
+
+#: The fitting methods ``veil fit --method`` accepts (``veil.fitting.METHODS`` maps them to estimators).
+METHOD_NAMES = ("leace", "meanproj", "inlp", "rlace")
+#: Key (.npz) or column (Parquet) of the embeddings.
+EMBEDDINGS_KEY = "embedding"
+#: Rows cleaned at a time by ``veil apply``.
+APPLY_CHUNK_ROWS = 8192
+#: Rows read at a time by a streamed fit.
+STREAM_CHUNK_ROWS = 65536
+#: Held-out rows a streamed fit audits (a hash sample).
+AUDIT_ROWS = 20_000
+#: Fitting rows INLP (logistic / SVM) and R-LACE see in a streamed fit (a hash sample).
+FIT_SAMPLE_ROWS = 50_000
+#: Where a streamed fit runs.
+ENGINES = ("local", "dask")
