@@ -49,12 +49,12 @@ from threadpoolctl import threadpool_info
 
 from veil import INLP, LEACE
 from veil.audit.probes import classification_score, linear_probe, nonlinear_probe
-from veil.datasets import load_harbourline_profiles
-from veil.datasource import LabelledSample
-from veil.fitting import fit_version
-from veil.lowrank import AffineLowRankMap
+from veil.fitting.job import fit_version
+from veil.maps.lowrank import AffineLowRankMap
 from veil.registry import Registry
-from veil.splitting import give_every_class_both_parts, holdout_mask
+from veil.samples.harbourline import load_harbourline_profiles
+from veil.samples.sources import LabelledSample
+from veil.samples.splitting import give_every_class_both_parts, holdout_mask
 
 RESULTS = Path(__file__).resolve().parent / "results"
 

@@ -25,9 +25,9 @@ from reliability.load import APPLY, sample_batches
 from reliability.loadgen import LoadPlan, LoadResult, run_load
 from reliability.outcome import Outcome
 from reliability.workbench import PROFILES, ServiceRegistry, planted_population, sample_of
-from veil.datasets import load_harbourline_profiles
-from veil.fitting import fit_version
+from veil.fitting.job import fit_version
 from veil.registry import Registry
+from veil.samples.harbourline import load_harbourline_profiles
 
 
 @dataclass(frozen=True)

@@ -14,8 +14,8 @@ from reliability.expected import ExpectedOutputs
 from reliability.loadgen import LoadPlan, LoadResult, run_load
 from reliability.outcome import Outcome
 from reliability.workbench import PROFILES, ServiceRegistry
-from veil.datasets import load_harbourline_profiles
 from veil.registry import Registry
+from veil.samples.harbourline import load_harbourline_profiles
 
 APPLY = f"/v1/erasers/{PROFILES}/apply"
 DISTINCT_BATCHES = 8

@@ -8,10 +8,10 @@ from pathlib import Path
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.datasets import load_harbourline_profiles
-from veil.datasource import LabelledSample
-from veil.fitting import fit_version
+from veil.fitting.job import fit_version
 from veil.registry import Registry
+from veil.samples.harbourline import load_harbourline_profiles
+from veil.samples.sources import LabelledSample
 
 PROFILES = "profiles-minilm"
 PLANTED = "planted"

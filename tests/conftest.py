@@ -11,7 +11,7 @@ from sklearn.datasets import load_breast_cancer, load_wine
 from sklearn.model_selection import train_test_split
 from sklearn.preprocessing import StandardScaler
 
-from veil.datasets import load_harbourline_profiles
+from veil.samples.harbourline import load_harbourline_profiles
 
 from .service_fixtures import ServiceRegistry, build_registry
 

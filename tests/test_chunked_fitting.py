@@ -10,9 +10,9 @@ from numpy.typing import NDArray
 from sklearn.exceptions import ConvergenceWarning
 
 from veil import INLP, LEACE, MeanProjection, MomentState
-from veil import moments as moments_module
-from veil._validation import encode_attribute
 from veil.erasers import LinearErasure
+from veil.maps import moments as moments_module
+from veil.maps.attribute import encode_attribute
 
 from .conftest import planted
 

@@ -21,11 +21,11 @@ import pytest
 import veil
 from veil import LEACE
 from veil.cli import main
-from veil.datasets import SAMPLE_FILE, load_harbourline_profiles
 from veil.defaults import METHOD_NAMES
-from veil.fitting import METHODS
+from veil.fitting.methods import METHODS
 from veil.registry import SEAL_FILE, Registry
-from veil.splitting import give_every_class_both_parts, holdout_mask
+from veil.samples.harbourline import SAMPLE_FILE, load_harbourline_profiles
+from veil.samples.splitting import give_every_class_both_parts, holdout_mask
 
 SAMPLE = Path(veil.__file__).parent / "data" / SAMPLE_FILE
 NAME = "profiles-minilm"

@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 from fastapi.testclient import TestClient
 
-from veil.datasets import load_harbourline_profiles
 from veil.registry import Registry
+from veil.samples.harbourline import load_harbourline_profiles
 from veil_client import (
     AsyncVeilClient,
     VeilClient,

@@ -11,7 +11,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from veil.corpus import apply_to_file, manifest_path
+from veil.cleaning.corpus import apply_to_file, manifest_path
 from veil.errors import DataError
 from veil.registry import Registry, StoredVersion
 

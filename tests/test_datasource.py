@@ -10,8 +10,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from veil.datasource import load_labelled_sample
 from veil.errors import DataError
+from veil.samples.sources import load_labelled_sample
 
 from .conftest import planted
 

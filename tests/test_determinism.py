@@ -11,8 +11,8 @@ from sklearn.exceptions import ConvergenceWarning
 from threadpoolctl import threadpool_limits
 
 from veil import INLP, LEACE, MeanProjection, MomentState
-from veil.datasets import load_harbourline_profiles
 from veil.erasers import LinearErasure, MomentErasure
+from veil.samples.harbourline import load_harbourline_profiles
 
 MOMENT_METHODS: dict[str, Callable[[], MomentErasure]] = {"leace": LEACE, "meanproj": MeanProjection}
 ALL_METHODS: dict[str, Callable[[], LinearErasure]] = {

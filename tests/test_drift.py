@@ -9,8 +9,8 @@ import orjson
 import pytest
 from scipy import stats
 
-from veil.datasets import load_harbourline_profiles
 from veil.registry import Registry
+from veil.samples.harbourline import load_harbourline_profiles
 from veil.server.reservoir import Reservoir
 
 from .service_fixtures import PLANTED, PROFILES, ServiceRegistry, app_for, client_for, planted_population

@@ -12,13 +12,12 @@ import pyarrow.parquet as pq
 import pytest
 
 from veil import INLP, LEACE, MeanProjection
-from veil.datasource import load_labelled_sample
 from veil.errors import DataError
-from veil.fitting import fit_version
-from veil.outofcore import fit_version_streaming
+from veil.fitting.job import fit_version
 from veil.registry import Registry
-from veil.splitting import holdout_mask
-from veil.streaming import open_stream
+from veil.samples.sources import load_labelled_sample
+from veil.samples.splitting import holdout_mask
+from veil.samples.streaming import open_stream
 
 from .test_cli import run
 
@@ -54,7 +53,7 @@ def test_streamed_moment_fits_equal_the_in_memory_fit_of_the_same_rows(
     labels = write_shards(tmp_path / "shards", x, z)
     sample = open_stream(tmp_path / "shards", attribute="region", labels=labels)
     assert (sample.rows, sample.dim) == (N, D)
-    outcome = fit_version_streaming(
+    outcome = fit_version(
         sample, registry=Registry(tmp_path / "r"), name="stream", method=method, nonlinear=False, chunk_rows=777
     )
     stored = Registry(tmp_path / "r").read_version("stream", outcome.version_id).artifact
@@ -73,7 +72,7 @@ def test_streamed_inlp_with_the_moments_classifier_equals_its_in_memory_fit(
     np.save(tmp_path / "z.npy", z)
     sample = open_stream(tmp_path / "x.npy", attribute="region", labels=tmp_path / "z.npy")
     params = {"classifier": "moments", "max_iter": 8}
-    outcome = fit_version_streaming(
+    outcome = fit_version(
         sample, registry=Registry(tmp_path / "r"), name="stream", method="inlp", params=params, nonlinear=False,
         chunk_rows=1000,
     )  # fmt: skip
@@ -92,7 +91,7 @@ def test_row_methods_fit_on_a_hash_sample_and_the_audit_on_a_bounded_sample(
     )
     pq.write_table(table, tmp_path / "s.parquet", row_group_size=1000)
     sample = open_stream(tmp_path / "s.parquet", attribute="region")
-    outcome = fit_version_streaming(
+    outcome = fit_version(
         sample, registry=Registry(tmp_path / "r"), name="stream", method="rlace", params={"max_iter": 30},
         nonlinear=False, chunk_rows=500, audit_rows=400, fit_sample_rows=1500,
     )  # fmt: skip
@@ -111,7 +110,7 @@ def _streamed_peak(folder: Path, rows: int, dim: int = 64) -> int:
     sample = open_stream(folder / "x.npy", attribute="g", labels=folder / "z.npy")
     tracemalloc.start()
     try:
-        fit_version_streaming(
+        fit_version(
             sample, registry=Registry(folder / "r"), name="stream", method="leace", nonlinear=False, chunk_rows=2000,
             audit_rows=500,
         )  # fmt: skip
@@ -171,7 +170,7 @@ def test_bad_streamed_input_is_refused(tmp_path: Path, data: tuple[np.ndarray, n
             attempt()
     one_class = open_stream(tmp_path / "x.npy", attribute="g", labels=tmp_path / "one.npy")
     with pytest.raises(DataError, match="single class"):
-        fit_version_streaming(one_class, registry=Registry(tmp_path / "r"), name="stream", method="leace")
+        fit_version(one_class, registry=Registry(tmp_path / "r"), name="stream", method="leace")
     assert not (tmp_path / "r").exists()
 
 
@@ -183,10 +182,10 @@ def test_the_dask_engine_equals_the_single_process_fit(
     x, z = data
     labels = write_shards(tmp_path / "shards", x, z, pieces=4)
     sample = open_stream(tmp_path / "shards", attribute="region", labels=labels)
-    local = fit_version_streaming(
+    local = fit_version(
         sample, registry=Registry(tmp_path / "r"), name="local", method=method, nonlinear=False, chunk_rows=400
     )
-    distributed = fit_version_streaming(
+    distributed = fit_version(
         sample, registry=Registry(tmp_path / "r"), name="dask", method=method, nonlinear=False, chunk_rows=400,
         engine="dask", workers=2,
     )  # fmt: skip
@@ -228,7 +227,7 @@ def test_a_streamed_fit_refuses_or_drops_missing_labels_like_the_in_memory_fit(
         DataError, match=rf"{gaps.size} row\(s\) have no attribute label in 'region' .* first at row 5 "
     ):
         open_stream(tmp_path / "s.parquet", attribute="region")
-    streamed = fit_version_streaming(
+    streamed = fit_version(
         open_stream(tmp_path / "s.parquet", attribute="region", drop_missing=True),
         registry=Registry(tmp_path / "r"), name="streamed", method="leace", nonlinear=False, chunk_rows=700,
     )  # fmt: skip

@@ -8,9 +8,9 @@ from sklearn.decomposition import PCA
 
 from veil import LEACE
 from veil.audit.probes import linear_probe
-from veil.reference import ReferenceStatistics
+from veil.checks.reference import ReferenceStatistics
+from veil.checks.thresholds import AlertThresholds, Band
 from veil.reporting import PlotData
-from veil.thresholds import AlertThresholds, Band
 
 from .conftest import planted
 

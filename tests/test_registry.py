@@ -26,8 +26,8 @@ from veil.registry import (
     RegistryError,
     RegistryLocationError,
 )
+from veil.registry.artifact_files import ARRAYS_FILE, DESCRIPTION_FILE, encode_artifact
 from veil.registry.storage import FsspecStorage, LocalStorage
-from veil.serialization import ARRAYS_FILE, DESCRIPTION_FILE, encode_artifact
 
 from .conftest import planted
 

@@ -15,11 +15,11 @@ import numpy as np
 import pytest
 from matplotlib import image
 
-from veil.datasets import load_harbourline_profiles
-from veil.datasource import LabelledSample
-from veil.fitting import fit_version
+from veil.fitting.job import fit_version
 from veil.registry import Registry
 from veil.reporting import REPORT_FILE
+from veil.samples.harbourline import load_harbourline_profiles
+from veil.samples.sources import LabelledSample
 
 BROWSER = shutil.which("chromium") or shutil.which("chromium-browser")
 # The flags a sandboxed, offline machine needs: no sandbox as root, no GPU, no background connections.

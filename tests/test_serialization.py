@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from veil import INLP, LEACE, MeanProjection
-from veil.serialization import (
+from veil.registry.artifact_files import (
     ARRAYS_FILE,
     DESCRIPTION_FILE,
     ArtifactFormatError,

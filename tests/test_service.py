@@ -13,8 +13,8 @@ import numpy as np
 import orjson
 import pytest
 
-from veil.datasets import load_harbourline_profiles
 from veil.registry import Registry
+from veil.samples.harbourline import load_harbourline_profiles
 
 from .service_fixtures import ADMIN_TOKEN, PLANTED, PROFILES, ServiceRegistry, app_for, client_for
 from .test_cli import snapshot

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from veil.splitting import give_every_class_both_parts, holdout_mask
+from veil.samples.splitting import give_every_class_both_parts, holdout_mask
 
 
 def test_chunked_masks_equal_the_whole_mask() -> None:

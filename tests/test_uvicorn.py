@@ -20,8 +20,8 @@ from uvicorn.protocols.http.h11_impl import H11Protocol
 from uvicorn.server import ServerState
 
 from reliability.server import live_server, wait_until
-from veil.datasets import load_harbourline_profiles
 from veil.registry import Registry
+from veil.samples.harbourline import load_harbourline_profiles
 from veil.server.protocol import NoDelayH11Protocol
 
 from .service_fixtures import ADMIN_TOKEN, PROFILES, ServiceRegistry

@@ -3,16 +3,18 @@
 from __future__ import annotations
 
 import importlib
+from importlib import metadata
 from typing import TYPE_CHECKING, Any
 
-from veil.artifact import MapArtifact
-from veil.lowrank import AffineLowRankMap
-from veil.moments import MomentState
+from veil.maps.artifact import MapArtifact
+from veil.maps.lowrank import AffineLowRankMap
+from veil.maps.moments import MomentState
 
 if TYPE_CHECKING:
     from veil.erasers import INLP, LEACE, RLACE, MeanProjection
 
-__version__ = "0.1.0"
+# The one version number is the distribution's (pyproject.toml).
+__version__ = metadata.version("veil")
 
 __all__ = [
     "INLP",

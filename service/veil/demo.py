@@ -28,11 +28,11 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import geometry
-from veil.datasets import SAMPLE_FILE, load_harbourline_profiles
-from veil.datasource import load_labelled_sample
-from veil.fitting import fit_version
+from veil.fitting.job import fit_version
 from veil.registry import Registry
 from veil.reporting import REPORT_FILE
+from veil.samples.harbourline import SAMPLE_FILE, load_harbourline_profiles
+from veil.samples.sources import load_labelled_sample
 from veil_client import VeilClient
 
 DEMO_REGISTRY = Path("demo-registry")

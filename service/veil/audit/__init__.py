@@ -1,4 +1,8 @@
-"""The leakage and utility audit of a fitted eraser, on held-out data."""
+"""The leakage and utility audit of a fitted eraser, on held-out data: probes, geometry, the typed report.
+
+May import: ``veil.erasers``, ``veil.maps``, ``veil.samples``, ``veil.errors``, ``veil.progress``.
+Never the registry, the live checks, the fitting job or the service.
+"""
 
 from __future__ import annotations
 

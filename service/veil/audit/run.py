@@ -9,11 +9,11 @@ from numpy.typing import ArrayLike, NDArray
 from sklearn.model_selection import train_test_split
 from sklearn.utils.validation import check_array, check_is_fitted
 
-from veil._validation import encode_attribute
 from veil.audit import geometry, probes
 from veil.audit.report import AuditReport, Leakage, ProbeScore, RegressionScore, Retrieval, Utility
 from veil.erasers._base import LinearErasure
-from veil.linalg import whiten, whitening_factors
+from veil.maps.attribute import encode_attribute
+from veil.maps.linalg import whiten, whitening_factors
 
 E = TypeVar("E", bound=LinearErasure)
 NEIGHBOURS = 10

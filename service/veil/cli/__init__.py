@@ -4,6 +4,10 @@ Exit 0 on success, 2 on bad usage or input (a missing file, an unknown name,
 a refused promotion), 1 on any other failure (a damaged version, a lock held
 too long, an I/O error).  Errors go to stderr as one line, without a
 traceback; set ``VEIL_DEBUG=1`` to see the traceback of an unexpected one.
+
+May import every stage below it; nothing imports it.  Commands import the
+heavy stages (fitting, reports, the service) only when they run, so that
+``veil versions`` starts fast.
 """
 
 from __future__ import annotations

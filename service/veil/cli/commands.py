@@ -9,9 +9,9 @@ from dataclasses import asdict
 from pathlib import Path
 from typing import Any
 
-from veil.card import compare_cards, format_card
 from veil.errors import DataError
 from veil.registry import DEFAULT_ALIAS, Registry
+from veil.registry.card import compare_cards, format_card
 
 # The commands that fit, render or clean import their modules when they run: scikit-learn, matplotlib and pyarrow
 # take a second to import, and `veil versions` or `veil show` need none of them.
@@ -24,10 +24,10 @@ def _print_table(header: list[str], rows: list[list[str]]) -> None:
 
 
 def fit(args: argparse.Namespace) -> int:
-    from veil.datasource import load_labelled_sample
-    from veil.fitting import fit_version, parse_parameters
-    from veil.outofcore import fit_version_streaming
-    from veil.streaming import open_stream
+    from veil.fitting.job import fit_version
+    from veil.fitting.methods import parse_parameters
+    from veil.samples.sources import load_labelled_sample
+    from veil.samples.streaming import open_stream
 
     params = parse_parameters(args.method, args.option)
     registry = Registry(args.registry)
@@ -52,7 +52,7 @@ def fit(args: argparse.Namespace) -> int:
         "drop_missing": args.drop_missing,
     }
     if args.stream or args.engine == "dask" or Path(args.data).is_dir():
-        outcome = fit_version_streaming(
+        outcome = fit_version(
             open_stream(args.data, **source),
             chunk_rows=args.chunk_rows,
             audit_rows=args.audit_rows,
@@ -176,7 +176,7 @@ def report(args: argparse.Namespace) -> int:
 
 
 def apply(args: argparse.Namespace) -> int:
-    from veil.corpus import apply_to_file, manifest_path
+    from veil.cleaning.corpus import apply_to_file, manifest_path
 
     requested = args.version or args.alias or DEFAULT_ALIAS
     stored = Registry(args.registry).read_version(args.name, requested)

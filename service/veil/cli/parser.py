@@ -23,7 +23,7 @@ DEFAULT_REGISTRY = "./veil-registry"
 
 def method_options_help() -> str:
     """The epilog of ``veil fit --help``: every method's options and their defaults, read from the estimators."""
-    from veil.fitting import method_parameters  # imports scikit-learn: only when this help is shown
+    from veil.fitting.methods import method_parameters  # imports scikit-learn: only when this help is shown
 
     lines = ["method options (--option KEY=VALUE, repeatable):"]
     for method in METHOD_NAMES:

@@ -1,4 +1,11 @@
-"""Linear concept erasers: each fits an affine low-rank map ``x' = x - U Vᵀ (x - μ)``."""
+"""Linear concept erasers: each fits an affine low-rank map ``x' = x - U Vᵀ (x - μ)``.
+
+Scikit-learn transformers named after their methods (LEACE, INLP, R-LACE,
+mean projection); each exports a :class:`~veil.maps.artifact.MapArtifact`.
+
+May import: ``veil.maps``, ``veil.samples`` (the hash split INLP holds rows
+out by), ``veil.progress``.  Nothing that reads or writes versions.
+"""
 
 from veil.erasers._base import LinearErasure, MomentErasure
 from veil.erasers.inlp import INLP

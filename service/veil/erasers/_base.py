@@ -10,11 +10,11 @@ from numpy.typing import ArrayLike, NDArray
 from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import check_is_fitted, validate_data
 
-from veil._validation import EncodedAttribute, check_enough_rows, encode_attribute
-from veil.artifact import MapArtifact
-from veil.lowrank import AffineLowRankMap
-from veil.moments import MomentState
-from veil.postprocess import unit_normalize
+from veil.maps.artifact import MapArtifact
+from veil.maps.attribute import EncodedAttribute, check_enough_rows, encode_attribute
+from veil.maps.lowrank import AffineLowRankMap
+from veil.maps.moments import MomentState
+from veil.maps.postprocess import unit_normalize
 
 FLOAT_DTYPES = (np.float64, np.float32)
 

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.moments import MomentState
+from veil.maps.moments import MomentState
 
 Float64Array = NDArray[np.float64]
 

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.linalg import orthonormal_basis
+from veil.maps.linalg import orthonormal_basis
 
 Float64Array = NDArray[np.float64]
 

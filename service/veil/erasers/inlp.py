@@ -15,14 +15,14 @@ from sklearn.svm import LinearSVC
 from sklearn.utils import check_random_state
 from sklearn.utils.metaestimators import available_if
 
-from veil._validation import EncodedAttribute, check_enough_rows, check_positive_int
 from veil.erasers._base import LinearErasure
 from veil.erasers._discriminant import expected_accuracy, fit_discriminant
-from veil.linalg import extend_basis, restrict_to_support
-from veil.lowrank import AffineLowRankMap
-from veil.moments import MomentState
+from veil.maps.attribute import EncodedAttribute, check_enough_rows, check_positive_int
+from veil.maps.linalg import extend_basis, restrict_to_support
+from veil.maps.lowrank import AffineLowRankMap
+from veil.maps.moments import MomentState
 from veil.progress import advance
-from veil.splitting import give_every_class_both_parts, holdout_mask
+from veil.samples.splitting import give_every_class_both_parts, holdout_mask
 
 Float64Array = NDArray[np.float64]
 # One INLP step: given the directions removed so far, train a classifier on
@@ -79,7 +79,7 @@ class INLP(LinearErasure):
         for a more thorough erasure.
     validation_fraction : float, default=0.2
         Share of the fitting rows held out for the stopping rule, drawn by a
-        seeded hash of the row index (see :func:`veil.splitting.holdout_mask`).
+        seeded hash of the row index (see :func:`veil.samples.splitting.holdout_mask`).
     C : float, default=1.0
         Inverse regularisation strength of the logistic and SVM classifiers.
     regularization : float, default=0.01

@@ -3,9 +3,9 @@
 from __future__ import annotations
 
 from veil.erasers._base import MomentErasure
-from veil.linalg import orthonormal_basis, whitening_factors
-from veil.lowrank import AffineLowRankMap
-from veil.moments import MomentState
+from veil.maps.linalg import orthonormal_basis, whitening_factors
+from veil.maps.lowrank import AffineLowRankMap
+from veil.maps.moments import MomentState
 
 
 class LEACE(MomentErasure):
@@ -16,7 +16,7 @@ class LEACE(MomentErasure):
     space of ``W Cov(x, z)``.  That space has at most ``C - 1`` dimensions
     for ``C`` classes (as many as the attribute has independent columns if
     numeric); directions whose canonical correlation with ``z`` is below
-    :data:`veil.linalg.BASIS_RTOL` count as absent.  After erasure no linear classifier predicts
+    :data:`veil.maps.linalg.BASIS_RTOL` count as absent.  After erasure no linear classifier predicts
     ``z`` better than a constant on the fitting distribution (the erased class
     means coincide, ``Cov(r(x), z) = 0``), and among all affine erasers with
     that property ``r`` moves the data least in mean squared distance.
@@ -29,7 +29,7 @@ class LEACE(MomentErasure):
     eigenvalue_rtol : float, optional
         Eigenvalues of ``Cov(x)`` at or below ``eigenvalue_rtol * λ_max`` are
         treated as zero (rank-deficient covariance: ``d > n``, dead or
-        duplicated features).  Default: :data:`veil.linalg.COVARIANCE_RTOL`
+        duplicated features).  Default: :data:`veil.maps.linalg.COVARIANCE_RTOL`
         (``1e-10``), far above rounding noise and far below any live spread.
     normalize : bool, default=False
         Re-normalise erased rows to unit length.

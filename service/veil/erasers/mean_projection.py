@@ -3,9 +3,9 @@
 from __future__ import annotations
 
 from veil.erasers._base import MomentErasure
-from veil.linalg import orthonormal_basis, restrict_to_support
-from veil.lowrank import AffineLowRankMap
-from veil.moments import MomentState
+from veil.maps.linalg import orthonormal_basis, restrict_to_support
+from veil.maps.lowrank import AffineLowRankMap
+from veil.maps.moments import MomentState
 
 
 class MeanProjection(MomentErasure):

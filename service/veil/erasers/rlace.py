@@ -7,12 +7,12 @@ from numpy.typing import ArrayLike, NDArray
 from sklearn.utils import check_random_state
 from threadpoolctl import threadpool_limits
 
-from veil._validation import check_enough_rows, check_positive_int
 from veil.erasers._base import LinearErasure
 from veil.erasers._fantope import FantopePoint, ascend
-from veil.linalg import restrict_to_support
-from veil.lowrank import AffineLowRankMap
-from veil.moments import MomentState
+from veil.maps.attribute import check_enough_rows, check_positive_int
+from veil.maps.linalg import restrict_to_support
+from veil.maps.lowrank import AffineLowRankMap
+from veil.maps.moments import MomentState
 from veil.progress import advance
 
 Float64Array = NDArray[np.float64]

@@ -26,11 +26,11 @@ from dataclasses import asdict, dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from veil.artifact import MapArtifact
+from veil.maps.artifact import MapArtifact
+from veil.registry.artifact_files import ArtifactFormatError, decode_artifact
 from veil.registry.errors import IntegrityError, InvalidReferenceError, NotFoundError, PromotionError
 from veil.registry.naming import check_name, format_version_id, parse_sequence, parse_version_id
 from veil.registry.storage import Storage, open_storage
-from veil.serialization import ArtifactFormatError, decode_artifact
 
 CARD_FILE = "card.json"
 SEAL_FILE = "checksums.json"

@@ -1,4 +1,8 @@
-"""The per-version HTML report: the data its plots need, and the page itself."""
+"""The per-version HTML report: the data its plots need, and the page itself.
+
+May import: ``veil.registry`` (the card it renders), ``veil.audit``,
+``veil.maps``.  Never the fitting job, the service or the CLI.
+"""
 
 from veil.reporting.html import REPORT_FILE, render_report
 from veil.reporting.plotdata import PLOT_DATA_FILE, PlotData

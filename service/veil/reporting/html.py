@@ -15,7 +15,7 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from veil.audit.report import AuditReport, ProbeScore
-from veil.card import card_audit
+from veil.registry.card import card_audit
 from veil.reporting.plotdata import PlotData
 
 REPORT_FILE = "report.html"

@@ -9,13 +9,13 @@ from __future__ import annotations
 import asyncio
 import contextlib
 from collections.abc import AsyncIterator
+from importlib import metadata
 
 from fastapi import FastAPI
 from fastapi.concurrency import run_in_threadpool
 from fastapi.middleware.cors import CORSMiddleware
 from threadpoolctl import threadpool_limits
 
-from veil import __version__
 from veil.registry import Registry
 from veil.server.catalog import Catalog
 from veil.server.errors import install_error_handlers
@@ -59,7 +59,7 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
 
     app = FastAPI(
         title="veil",
-        version=__version__,
+        version=metadata.version("veil"),
         summary="Erase a protected attribute from embeddings on the fly, and check that it stays out.",
         lifespan=lifespan,
     )

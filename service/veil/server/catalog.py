@@ -19,15 +19,15 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.artifact import MapArtifact
-from veil.postprocess import unit_normalize
-from veil.reference import REFERENCE_FILE, ReferenceStatistics
+from veil.checks.reference import REFERENCE_FILE, ReferenceStatistics
+from veil.checks.thresholds import AlertThresholds
+from veil.maps.artifact import MapArtifact
+from veil.maps.postprocess import unit_normalize
 from veil.registry import IntegrityError, NotFoundError, Registry, RegistryError, StoredVersion
 from veil.registry.errors import InvalidReferenceError
 from veil.registry.naming import parse_version_id
 from veil.server.errors import ServiceError
 from veil.server.metrics import ServiceMetrics
-from veil.thresholds import AlertThresholds
 
 logger = logging.getLogger("veil.server")
 

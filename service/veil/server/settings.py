@@ -30,8 +30,8 @@ from typing import Any
 from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+from veil.checks.thresholds import AlertThresholds
 from veil.registry.naming import check_name
-from veil.thresholds import AlertThresholds
 
 
 def load_settings() -> ServiceSettings:

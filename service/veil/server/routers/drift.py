@@ -9,7 +9,7 @@ from fastapi import APIRouter, Depends, Request
 from fastapi.concurrency import run_in_threadpool
 from numpy.typing import NDArray
 
-from veil.drift import check_drift
+from veil.checks.drift import check_drift
 from veil.server.catalog import Catalog, ServedVersion
 from veil.server.codecs import JSON_MEDIA_TYPE
 from veil.server.dependencies import (

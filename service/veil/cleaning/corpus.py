@@ -20,13 +20,13 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.datasource import DEFAULT_EMBEDDINGS_KEY, PARQUET_SUFFIXES, file_sha256
 from veil.defaults import APPLY_CHUNK_ROWS
 from veil.errors import DataError
 from veil.progress import advance
 from veil.registry import StoredVersion, current_user
-from veil.streaming import NpyFile
-from veil.tables import embedding_column, embedding_matrix
+from veil.samples.sources import DEFAULT_EMBEDDINGS_KEY, PARQUET_SUFFIXES, file_sha256
+from veil.samples.streaming import NpyFile
+from veil.samples.tables import embedding_column, embedding_matrix
 
 DEFAULT_CHUNK_ROWS = APPLY_CHUNK_ROWS
 MANIFEST_SUFFIX = ".manifest.json"

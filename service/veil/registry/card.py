@@ -12,36 +12,16 @@ import math
 import platform
 from datetime import UTC, datetime
 from importlib import metadata
-from typing import Any, Protocol
+from typing import Any
 
-import numpy as np
-
-from veil.artifact import MapArtifact
 from veil.audit.report import AuditReport, ProbeScore, RegressionScore
-from veil.labels import dropped_note
-from veil.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
-from veil.thresholds import AlertThresholds
+from veil.checks.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
+from veil.checks.thresholds import AlertThresholds
+from veil.maps.artifact import MapArtifact
+from veil.samples.chunks import Sample
+from veil.samples.labels import dropped_note
 
 CARD_FORMAT = 1
-
-
-class SampleDescription(Protocol):
-    """What a card records of the fitting data (an in-memory or a streamed sample)."""
-
-    @property
-    def labelled_rows(self) -> int: ...
-    @property
-    def dropped_rows(self) -> int: ...
-    @property
-    def dtype(self) -> np.dtype[Any]: ...
-    @property
-    def fingerprint(self) -> str: ...
-    @property
-    def attribute_key(self) -> str: ...
-    @property
-    def task_key(self) -> str | None: ...
-    @property
-    def files(self) -> dict[str, str]: ...
 
 
 _LIBRARIES = ("veil", "numpy", "scipy", "scikit-learn")
@@ -74,7 +54,7 @@ def build_card(
     *,
     name: str,
     artifact: MapArtifact,
-    sample: SampleDescription,
+    sample: Sample,
     fit_rows: int,
     split_seed: int,
     holdout: float,

@@ -26,11 +26,11 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.artifact import MapArtifact
 from veil.audit import probes
 from veil.audit.report import ProbeScore
-from veil.reference import ReferenceStatistics
-from veil.thresholds import AlertThresholds
+from veil.checks.reference import ReferenceStatistics
+from veil.checks.thresholds import AlertThresholds
+from veil.maps.artifact import MapArtifact
 
 MIN_ROWS = 20
 PROBE_FOLDS = 5

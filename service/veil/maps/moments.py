@@ -14,8 +14,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from veil._validation import EncodedAttribute
-from veil.linalg import whitening_factors
+from veil.maps.attribute import EncodedAttribute
+from veil.maps.linalg import whitening_factors
 
 # Rows converted to float64 at a time by MomentState.from_batch (64k × 768 × 8 bytes ≈ 400 MB at most).
 BLOCK_ROWS = 65536
@@ -201,7 +201,7 @@ class MomentState:
 
         ``r`` is :attr:`attribute_rank` for a categorical attribute; for a
         numeric one it is the rank of ``Cov(z)`` under the covariance cut of
-        :func:`veil.linalg.whitening_factors` (at most the number of columns).
+        :func:`veil.maps.linalg.whitening_factors` (at most the number of columns).
         """
         return whitening_factors(self.covariance_zz, rank=self.attribute_rank)
 

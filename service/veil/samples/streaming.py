@@ -14,7 +14,6 @@ are read whole (a few bytes a row); ``.npy`` labels are memory-mapped.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -22,30 +21,17 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.datasource import PARQUET_SUFFIXES, check_embeddings, csv_columns, file_sha256, fingerprint_of
 from veil.defaults import STREAM_CHUNK_ROWS
 from veil.errors import DataError
-from veil.labels import arrow_labels, missing_labels, rows_to_keep
-from veil.progress import advance
-from veil.tables import embedding_matrix
-
-DEFAULT_CHUNK_ROWS = STREAM_CHUNK_ROWS
-
-
-@dataclass(frozen=True, eq=False)
-class Chunk:
-    """Rows ``start .. start + len(embeddings) - 1`` of the stream; ``missing`` marks rows lacking a label."""
-
-    start: int
-    embeddings: NDArray[np.floating]
-    attribute: NDArray[Any]
-    task: NDArray[Any] | None
-    missing: NDArray[np.bool_]
+from veil.samples.chunks import Chunk
+from veil.samples.labels import arrow_labels, missing_labels, rows_to_keep
+from veil.samples.sources import PARQUET_SUFFIXES, check_embeddings, csv_columns, file_sha256, fingerprint_of
+from veil.samples.tables import embedding_matrix
 
 
 @dataclass(frozen=True, eq=False)
 class StreamedSample:
-    """A labelled sample read chunk by chunk; the counterpart of :class:`veil.datasource.LabelledSample`.
+    """A labelled sample read chunk by chunk; the counterpart of :class:`veil.samples.sources.LabelledSample`.
 
     ``rows`` counts every row of the files; ``dropped_rows`` of them lack a
     label and are skipped by the fit (only when dropping was asked for: a
@@ -66,18 +52,10 @@ class StreamedSample:
         """Rows with every label present."""
         return self.rows - self.dropped_rows
 
-    def partitions(self, chunk_rows: int = DEFAULT_CHUNK_ROWS) -> list[Partition]:
+    def partitions(self, chunk_rows: int = STREAM_CHUNK_ROWS) -> list[NpyPartition] | list[ParquetPartition]:
         """The sample cut into self-contained pieces a worker process can load on its own, in row order."""
-        parts: list[Partition] = self._partitions(chunk_rows)
+        parts: list[NpyPartition] | list[ParquetPartition] = self._partitions(chunk_rows)
         return parts
-
-    def chunks(self, chunk_rows: int = DEFAULT_CHUNK_ROWS) -> Iterator[Chunk]:
-        """Every row once, in order, a partition at a time (checked for finite numbers on the way)."""
-        partitions = self.partitions(chunk_rows)
-        for partition in partitions:
-            chunk = partition.load()
-            advance("reading (rows)", chunk.start + chunk.embeddings.shape[0], self.rows)
-            yield chunk
 
     @property
     def fingerprint(self) -> str:
@@ -175,7 +153,11 @@ class NpyPartition:
         missing = missing_labels(self.attribute)
         if self.task is not None:
             missing |= missing_labels(self.task)
-        return Chunk(start=self.start, embeddings=block, attribute=self.attribute, task=self.task, missing=missing)
+        return Chunk.of_rows(self.start, block, self.attribute, self.task, missing)
+
+    @property
+    def stop(self) -> int:
+        return self.start + self.rows
 
 
 def _array_partitions(parts: list[NpyFile], columns: dict[str, NDArray[Any]], attribute: str, task: str | None) -> Any:
@@ -207,6 +189,7 @@ class ParquetPartition:
     path: Path
     group: int
     start: int
+    stop: int
     embeddings_key: str
     attribute_key: str
     task_key: str | None
@@ -226,16 +209,9 @@ class ParquetPartition:
         if self.task_key is not None:
             task, task_missing = arrow_labels(table.column(self.task_key), key=self.task_key, source=source)
             missing = missing | task_missing
-        return Chunk(
-            start=self.start,
-            embeddings=check_embeddings(matrix, source=f"{self.path} rows {self.start}.."),
-            attribute=attribute,
-            task=task,
-            missing=missing,
+        return Chunk.of_rows(
+            self.start, check_embeddings(matrix, source=f"{self.path} rows {self.start}.."), attribute, task, missing
         )
-
-
-Partition = NpyPartition | ParquetPartition
 
 
 def _parquet_partitions(path: Path, embeddings_key: str, attribute: str, task: str | None) -> tuple[Any, int, int, Any]:
@@ -261,7 +237,9 @@ def _parquet_partitions(path: Path, embeddings_key: str, attribute: str, task: s
     def partitions(chunk_rows: int) -> list[ParquetPartition]:
         # A row group is the unit Parquet reads; write files with row groups of a chunk's size or less.
         return [
-            ParquetPartition(path, group, int(starts[group]), embeddings_key, attribute, task, first.shape[1])
+            ParquetPartition(
+                path, group, int(starts[group]), int(starts[group + 1]), embeddings_key, attribute, task, first.shape[1]
+            )
             for group in range(parquet.num_row_groups)
         ]
 

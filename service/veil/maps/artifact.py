@@ -9,10 +9,10 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.lowrank import AffineLowRankMap
-from veil.mapkinds import EmbeddingMap
-from veil.moments import MomentState
-from veil.postprocess import unit_normalize
+from veil.maps.kinds import EmbeddingMap
+from veil.maps.lowrank import AffineLowRankMap
+from veil.maps.moments import MomentState
+from veil.maps.postprocess import unit_normalize
 
 Float64Array = NDArray[np.float64]
 
@@ -29,7 +29,7 @@ class MapArtifact:
         The estimator's constructor parameters.
     map : EmbeddingMap
         The fitted map; today always an :class:`AffineLowRankMap`,
-        ``x' = x - U Vᵀ (x - μ)`` (see :mod:`veil.mapkinds`).
+        ``x' = x - U Vᵀ (x - μ)`` (see :mod:`veil.maps.kinds`).
     normalize : bool
         Whether served vectors are re-normalised to unit length after erasure.
     moments : MomentState

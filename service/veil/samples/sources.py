@@ -25,11 +25,12 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.defaults import EMBEDDINGS_KEY
+from veil.defaults import EMBEDDINGS_KEY, STREAM_CHUNK_ROWS
 from veil.errors import DataError
-from veil.labels import arrow_labels, missing_labels, rows_to_keep
 from veil.progress import advance, phase
-from veil.tables import embedding_matrix
+from veil.samples.chunks import Chunk, InMemoryPartition
+from veil.samples.labels import arrow_labels, missing_labels, rows_to_keep
+from veil.samples.tables import embedding_matrix
 
 DEFAULT_EMBEDDINGS_KEY = EMBEDDINGS_KEY
 _HASH_BLOCK = 8 << 20
@@ -78,12 +79,26 @@ class LabelledSample:
         return 0 if self.kept is None else int(np.count_nonzero(~self.kept))
 
     @property
+    def dim(self) -> int:
+        return int(self.embeddings.shape[1])
+
+    @property
     def dtype(self) -> np.dtype[Any]:
         return self.embeddings.dtype
 
     @property
     def fingerprint(self) -> str:
         return fingerprint_of(self.files)
+
+    def partitions(self, chunk_rows: int = STREAM_CHUNK_ROWS) -> list[InMemoryPartition]:
+        """The whole sample as one partition: in memory already, it is a stream of one chunk.
+
+        ``chunk_rows`` is accepted for the :class:`~veil.samples.chunks.Sample`
+        protocol and does not apply.
+        """
+        index = np.arange(self.rows, dtype=np.int64) if self.kept is None else np.flatnonzero(self.kept)
+        chunk = Chunk(index=index, embeddings=self.embeddings, attribute=self.attribute, task=self.task)
+        return [InMemoryPartition(chunk=chunk, stop=self.rows + self.dropped_rows)]
 
 
 def fingerprint_of(files: dict[str, str]) -> str:
@@ -249,7 +264,7 @@ def load_labelled_sample(
         with a header naming the attribute (and task) columns.
     drop_missing : bool, default=False
         Drop the rows whose attribute or task label is missing (see
-        :mod:`veil.labels`) instead of refusing the sample.
+        :mod:`veil.samples.labels`) instead of refusing the sample.
 
     Raises
     ------

@@ -23,10 +23,10 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.artifact import MapArtifact
-from veil.lowrank import AffineLowRankMap
-from veil.mapkinds import EmbeddingMap, map_from_arrays
-from veil.moments import MomentState
+from veil.maps.artifact import MapArtifact
+from veil.maps.kinds import EmbeddingMap, map_from_arrays
+from veil.maps.lowrank import AffineLowRankMap
+from veil.maps.moments import MomentState
 
 ARRAYS_FILE = "arrays.npz"
 DESCRIPTION_FILE = "artifact.json"

@@ -13,8 +13,8 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-from veil.outofcore import PartResult, PassPlan
-from veil.streaming import Partition
+from veil.fitting.plan import PartResult, PassPlan
+from veil.samples.chunks import Partition
 
 
 def _merge(earlier: PartResult, later: PartResult) -> PartResult:

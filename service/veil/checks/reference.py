@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.artifact import MapArtifact
+from veil.maps.artifact import MapArtifact
 
 REFERENCE_FILE = "reference.npz"
 # Leading eigenvectors kept; all eigenvalues are kept.

@@ -42,12 +42,34 @@ def holdout_mask(n_rows: int, *, fraction: float, seed: int, start: int = 0) -> 
     -------
     mask : ndarray of shape (n_rows,), dtype bool
     """
+    if start < 0 or n_rows < 0:
+        raise ValueError("start and n_rows must be non-negative")
+    return held_out_rows(np.arange(start, start + n_rows, dtype=np.int64), fraction=fraction, seed=seed)
+
+
+def held_out_rows(index: NDArray[np.integer], *, fraction: float, seed: int) -> NDArray[np.bool_]:
+    """Boolean mask of the held-out rows among the rows of global indices ``index``.
+
+    The same as :func:`holdout_mask` for rows that need not be consecutive
+    (rows dropped for a missing label keep every other row's index).
+
+    Parameters
+    ----------
+    index : ndarray of shape (n,), non-negative integers
+    fraction : float
+        Expected share of held-out rows, in [0, 1).
+    seed : int
+        Any non-negative integer.
+
+    Returns
+    -------
+    mask : ndarray of shape (n,), dtype bool
+    """
     if not 0.0 <= fraction < 1.0:
         raise ValueError(f"the held-out fraction must be in [0, 1), got {fraction}")
-    if seed < 0 or start < 0 or n_rows < 0:
-        raise ValueError("seed, start and n_rows must be non-negative")
-    index = np.arange(start, start + n_rows, dtype=np.uint64)
-    keyed = _splitmix64(index ^ _splitmix64(np.array([seed], dtype=np.uint64)))
+    if seed < 0:
+        raise ValueError("seed must be non-negative")
+    keyed = _splitmix64(np.asarray(index, dtype=np.uint64) ^ _splitmix64(np.array([seed], dtype=np.uint64)))
     # The top 53 bits as a float in [0, 1).
     uniform = (keyed >> np.uint64(11)).astype(np.float64) * (2.0**-53)
     return uniform < fraction

@@ -1,6 +1,6 @@
 """The kinds of map an artifact can hold, and what every kind offers the stages after fitting.
 
-Today every method ends in an :class:`~veil.lowrank.AffineLowRankMap`
+Today every method ends in an :class:`~veil.maps.lowrank.AffineLowRankMap`
 (kind ``"affine-lowrank"``).  An artifact names its kind, and the storage
 format, the service, ``veil apply`` and the live checks go through
 :class:`EmbeddingMap` only, so a map that is not affine can be added as
@@ -15,7 +15,7 @@ from typing import Any, ClassVar, Protocol
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.lowrank import AffineLowRankMap
+from veil.maps.lowrank import AffineLowRankMap
 
 FloatArray = NDArray[np.floating]
 

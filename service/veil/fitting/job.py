@@ -1,0 +1,241 @@
+"""The fitting job, one way for every sample: one pass, fit, audit on held-out rows, store an immutable version.
+
+:func:`fit_version` is what ``veil fit`` runs; it is as usable from a
+notebook or a scheduler as from the command line.  A sample in memory is a
+stream of one partition; a large one arrives in many (``.npy`` row ranges,
+shards, Parquet row groups), read once, here or on Dask workers.  The pass
+gives the fitting rows' float64 moments and hash-drawn samples of both sides
+of the split (see :mod:`veil.fitting.plan`); the same fit, checks, audit and
+store steps then run whatever the source and the engine.
+
+==================================  ============================  ======================================
+method                              fitted from                   a sample of many partitions
+==================================  ============================  ======================================
+LEACE, mean projection              the moments of every row      exact: equal to the in-memory fit
+INLP, moments classifier            ``partial_fit`` chunk by      equal to the in-memory fit of the
+                                    chunk                         same rows where the split needs no repair
+INLP (logistic, SVM), R-LACE        the rows                      a hash sample of ``fit_sample_rows``
+==================================  ============================  ======================================
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from functools import partial
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.checks.thresholds import AlertThresholds
+from veil.defaults import AUDIT_ROWS, ENGINES, FIT_SAMPLE_ROWS, STREAM_CHUNK_ROWS
+from veil.erasers import INLP, LinearErasure
+from veil.errors import DataError
+from veil.fitting.methods import fit_collecting_notes, make_eraser
+from veil.fitting.plan import PartResult, PassPlan, concatenated
+from veil.fitting.store import FitOutcome, audit_and_store
+from veil.maps.moments import MomentState
+from veil.progress import advance, phase
+from veil.registry import Registry
+from veil.samples.chunks import Partition, Sample
+
+MOMENT_METHODS = ("leace", "meanproj")
+
+
+def fit_version(
+    sample: Sample,
+    *,
+    registry: Registry,
+    name: str,
+    method: str,
+    params: Mapping[str, Any] | None = None,
+    holdout: float = 0.2,
+    seed: int = 0,
+    normalize: bool = False,
+    nonlinear: bool = True,
+    alias: str | None = None,
+    reason: str = "",
+    thresholds: AlertThresholds | None = None,
+    chunk_rows: int = STREAM_CHUNK_ROWS,
+    audit_rows: int | None = None,
+    fit_sample_rows: int | None = None,
+    engine: str = "local",
+    scheduler: str | None = None,
+    workers: int = 2,
+) -> FitOutcome:
+    """Fit an eraser on part of ``sample``, audit it on the rest, and store it as a new version of ``name``.
+
+    Parameters
+    ----------
+    sample : Sample
+        Embeddings with a categorical attribute (and optionally a task label):
+        a :class:`~veil.samples.sources.LabelledSample` in memory or a
+        :class:`~veil.samples.streaming.StreamedSample`.
+    registry : Registry
+    name : str
+        The eraser's name in the registry (one per embedding space and attribute).
+    method : {"leace", "meanproj", "inlp", "rlace"}
+    params : mapping, optional
+        Keyword arguments of the method's eraser (see :func:`veil.fitting.methods.parse_parameters`).
+    holdout : float, default=0.2
+        Share of rows held out for the audit, drawn by a seeded hash of the row index.
+    seed : int, default=0
+        Seeds the split, the probes and any randomised method.
+    normalize : bool, default=False
+        Re-normalise served vectors to unit length.
+    nonlinear : bool, default=True
+        Also audit with an MLP probe.
+    alias : str, optional
+        Point this alias at the new version once it is stored.
+    reason : str
+        Recorded in the history if an alias is moved.
+    thresholds : AlertThresholds, optional
+        Alert levels of the live checks (the defaults otherwise).
+    chunk_rows : int
+        Rows read at a time from a streamed sample (a sample in memory is one chunk).
+    audit_rows, fit_sample_rows : int, optional
+        At most about this many held-out rows are audited, and fitting rows
+        given to the methods that need rows, drawn by a hash.  Default: every
+        row for a sample of one partition, :data:`veil.defaults.AUDIT_ROWS` and
+        :data:`veil.defaults.FIT_SAMPLE_ROWS` for a streamed one, so that its
+        memory is O(d² + chunk_rows · d + audit_rows · d) whatever its size.
+    engine : {"local", "dask"}
+        Run the pass in this process, or on dask.distributed workers (each
+        partition read where it is processed, merged by a tree reduction, see
+        :mod:`veil.fitting.distributed`).
+    scheduler : str, optional
+        Address of a running Dask scheduler; None starts a local cluster of ``workers`` processes.
+
+    Raises
+    ------
+    DataError
+        The sample or the options cannot make a version; nothing is written.
+    """
+    if not 0.0 < holdout < 1.0:
+        raise DataError(f"the held-out share must be between 0 and 1, got {holdout}")
+    if chunk_rows < 1 or any(limit is not None and limit < 2 for limit in (audit_rows, fit_sample_rows)):
+        raise DataError("chunk_rows must be at least 1, and the sample sizes at least 2 rows")
+    if engine not in ENGINES:
+        raise DataError(f"unknown engine {engine!r}; choose one of {', '.join(ENGINES)}")
+    eraser = make_eraser(name, alias, method, params, seed=seed, normalize=normalize)
+    partitions = sample.partitions(chunk_rows)
+    streamed = len(partitions) > 1
+    exact_moments = method in MOMENT_METHODS
+    # INLP's moments classifier streams through partial_fit; a sample of one partition is simply fitted.
+    streams_inlp = streamed and isinstance(eraser, INLP) and eraser.classifier == "moments"
+    if engine == "dask" and streams_inlp:
+        raise DataError("INLP with the moments classifier fits sequentially; use the local engine (--stream)")
+    if streamed:
+        audit_rows = AUDIT_ROWS if audit_rows is None else audit_rows
+        fit_sample_rows = FIT_SAMPLE_ROWS if fit_sample_rows is None else fit_sample_rows
+    expected_held = int(sample.labelled_rows * holdout)
+    # The reference probe needs a sample of the fitting rows: as large as the audit's where the fit needs none.
+    fit_limit = audit_rows if exact_moments or streams_inlp else fit_sample_rows
+    plan = PassPlan(
+        holdout=holdout,
+        seed=seed,
+        held_fraction=_share(audit_rows, expected_held),
+        fit_fraction=_share(fit_limit, sample.labelled_rows - expected_held),
+        exact_moments=exact_moments,
+        whole=not streamed,
+    )
+    notes: list[str] = []
+    if engine == "dask":
+        from veil.fitting.distributed import run_pass
+
+        total = run_pass(plan, partitions, scheduler=scheduler, workers=workers)
+    else:
+        total = _local_pass(plan, partitions, eraser if streams_inlp else None, notes)
+
+    x_sample, z_sample, _ = concatenated(total.fit_sample, "fit")
+    x_held, z_held, task_held = concatenated(total.held_sample, "audit")
+    if exact_moments:
+        fitted = _classes_of(total.moments)
+    elif streams_inlp:
+        fitted = _classes_of(getattr(eraser, "moments_", None))
+    else:
+        fitted = np.unique(z_sample)
+    _check_split(sample, total.fit_rows, fitted, z_held, audit_sampled=audit_rows is not None)
+    if exact_moments:
+        moments = total.moments
+        assert moments is not None  # _check_split refuses a pass without fitting rows
+        with phase(f"fitting {method}"):
+            notes += fit_collecting_notes(eraser, method, lambda: eraser.fit_moments(moments))
+    elif not streams_inlp:
+        with phase(f"fitting {method}"):
+            notes += fit_collecting_notes(eraser, method, lambda: eraser.fit(x_sample, z_sample))
+        if fit_sample_rows is not None:
+            notes.append(
+                f"{method} was fitted on a hash-drawn sample of {x_sample.shape[0]} of {total.fit_rows} fitting rows"
+            )
+    if audit_rows is not None:
+        notes.append(f"audited on a hash-drawn sample of {x_held.shape[0]} of about {expected_held} held-out rows")
+    classes = np.asarray(eraser.classes_)
+    return audit_and_store(
+        eraser,
+        sample,
+        registry=registry,
+        name=name,
+        fit_rows=total.fit_rows,
+        fit_sample=(x_sample, np.searchsorted(classes, z_sample).astype(np.intp)),
+        held_out=(x_held, z_held, task_held),
+        holdout=holdout,
+        seed=seed,
+        nonlinear=nonlinear,
+        alias=alias,
+        reason=reason or f"fitted by veil fit ({method}{', streamed' if streamed else ''})",
+        thresholds=thresholds,
+        notes=notes,
+    )
+
+
+def _share(limit: int | None, rows: int) -> float:
+    """The share of ``rows`` a hash draws to keep about ``limit`` of them (all of them without a limit)."""
+    return 1.0 if limit is None else min(1.0, limit / max(rows, 1))
+
+
+def _local_pass(
+    plan: PassPlan, partitions: Sequence[Partition], streaming: LinearErasure | None, notes: list[str]
+) -> PartResult:
+    """The pass in this process, partition by partition; ``streaming`` is given each chunk's fitting rows."""
+    total = PartResult.empty()
+    stop = partitions[-1].stop if partitions else 0
+    for partition in partitions:
+        chunk = partition.load()
+        held = plan.split(chunk)
+        if streaming is not None and (~held).any():
+            x_fit, z_fit = chunk.embeddings[~held], chunk.attribute[~held]
+            notes += fit_collecting_notes(streaming, "inlp", partial(streaming.partial_fit, x_fit, z_fit))
+        # Only moments and the drawn samples are kept: the chunk's other rows are dropped here.
+        total = total.merge(plan.process(chunk, held))
+        advance("reading (rows)", partition.stop, stop)
+    return total
+
+
+def _classes_of(moments: MomentState | None) -> NDArray[Any]:
+    return np.array([]) if moments is None or moments.labels is None else moments.labels
+
+
+def _check_split(
+    sample: Sample, fit_rows: int, fitted: NDArray[Any], z_held: NDArray[Any], *, audit_sampled: bool
+) -> None:
+    """Refuse a split the eraser or the audit cannot use: before anything is fitted, where the fit needs rows."""
+    if fitted.size < 2:
+        raise DataError(f"attribute {sample.attribute_key!r} has a single class; erasure needs at least two")
+    unseen = sorted(set(np.unique(z_held).tolist()) - set(fitted.tolist()))
+    if unseen:
+        raise DataError(f"class {unseen[0]!r} appears only in held-out rows; the eraser never saw it")
+    counts = np.array([np.count_nonzero(z_held == c) for c in fitted])
+    smallest = int(np.argmin(counts))
+    if counts[smallest] < 2:
+        where, remedy = (
+            (" in the audit sample", "raise the held-out share or the audit sample")
+            if audit_sampled
+            else ("", "add rows or raise the held-out share")
+        )
+        raise DataError(
+            f"class {fitted[smallest]!r} of {sample.attribute_key!r} has {int(counts[smallest])} held-out row(s)"
+            f"{where}; the audit needs at least 2 per class: {remedy}"
+        )
+    if fit_rows <= sample.dim // 10:
+        raise DataError(f"only {fit_rows} rows are left to fit on; lower the held-out share")

@@ -1,0 +1,93 @@
+"""The last steps of every fit: audit on held-out rows, card, reference statistics, report, and the stored version."""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.audit import audit
+from veil.audit.probes import probe_folds
+from veil.audit.report import AuditReport
+from veil.checks.reference import REFERENCE_FILE, ReferenceStatistics
+from veil.checks.thresholds import AlertThresholds
+from veil.erasers import LinearErasure
+from veil.progress import phase
+from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
+from veil.registry.artifact_files import encode_artifact
+from veil.registry.card import build_card
+from veil.reporting import PLOT_DATA_FILE, REPORT_FILE, PlotData, render_report
+from veil.samples.chunks import Sample
+
+# The probes score by cross-validation inside the held-out rows.
+AUDIT_FOLDS = 5
+
+
+@dataclass(frozen=True)
+class FitOutcome:
+    """What a fit stored: the new version's id, its audit and card, and the alias move if one was asked for."""
+
+    version_id: str
+    audit: AuditReport
+    card: dict[str, Any]
+    promotion: HistoryEvent | None
+
+
+def audit_and_store(
+    eraser: LinearErasure,
+    sample: Sample,
+    *,
+    registry: Registry,
+    name: str,
+    fit_rows: int,
+    fit_sample: tuple[NDArray[np.floating], NDArray[np.intp]],
+    held_out: tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None],
+    holdout: float,
+    seed: int,
+    nonlinear: bool,
+    alias: str | None,
+    reason: str,
+    thresholds: AlertThresholds | None,
+    notes: list[str],
+) -> FitOutcome:
+    """Audit a fitted eraser on held-out rows, build its card, reference and report, and store the version."""
+    x_held, z_held, task_held = held_out
+    codes_held = np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp)
+    folds = min(AUDIT_FOLDS, probe_folds(codes_held, AUDIT_FOLDS))
+    # The audit reports each probe's folds as a stage of its own.
+    report = audit(eraser, x_held, z_held, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed)
+    artifact = eraser.export()
+    with phase("reference statistics"):
+        reference = ReferenceStatistics.from_fit(artifact, fit_sample[0], fit_sample[1], random_state=seed)
+    with phase("report plots"):
+        plots = PlotData.from_heldout(x_held, eraser.transform(x_held), codes_held, seed=seed)
+    card = build_card(
+        name=name,
+        artifact=artifact,
+        sample=sample,
+        fit_rows=fit_rows,
+        split_seed=seed,
+        holdout=holdout,
+        audit=report,
+        reference=reference,
+        thresholds=thresholds or AlertThresholds(),
+        user=current_user(),
+        notes=notes + list(report.notes),
+    )
+    files = encode_artifact(artifact)
+    files[CARD_FILE] = json.dumps(card, indent=2, sort_keys=True, allow_nan=False).encode()
+    files[REFERENCE_FILE] = reference.to_bytes()
+    files[PLOT_DATA_FILE] = plots.to_bytes()
+
+    def report_page(version_id: str) -> dict[str, bytes]:
+        return {REPORT_FILE: render_report(version_id, card, artifact.history, plots).encode()}
+
+    with phase("storing the version"):
+        version_id = registry.add_version(name, files, derived=report_page)
+        promotion = None
+        if alias is not None:
+            promotion = registry.promote(name, version_id, alias=alias, reason=reason)
+    return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion)

@@ -1,0 +1,111 @@
+"""What the fitting job reads from every sample, in memory or streamed: partitions that load as chunks of rows.
+
+A row is known by its index in the files, so the held-out split (a hash of
+that index, see :mod:`veil.samples.splitting`) is the same however the rows
+are chunked, whichever rows were dropped for a missing label, and on every
+worker.  An in-memory sample is one partition; a streamed one is many.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+import numpy as np
+from numpy.typing import NDArray
+
+
+@dataclass(frozen=True, eq=False)
+class Chunk:
+    """Labelled rows of a sample, each with its index in the files.
+
+    Attributes
+    ----------
+    index : ndarray of shape (n,), int64
+        Index of each row in the files (increasing).
+    embeddings : ndarray of shape (n, d)
+    attribute : ndarray of shape (n,)
+    task : ndarray of shape (n,) or None
+    """
+
+    index: NDArray[np.int64]
+    embeddings: NDArray[np.floating]
+    attribute: NDArray[Any]
+    task: NDArray[Any] | None
+
+    @classmethod
+    def of_rows(
+        cls,
+        start: int,
+        embeddings: NDArray[np.floating],
+        attribute: NDArray[Any],
+        task: NDArray[Any] | None,
+        missing: NDArray[np.bool_] | None = None,
+    ) -> Chunk:
+        """Rows ``start, start + 1, …`` of the files, less those ``missing`` marks as lacking a label."""
+        index = np.arange(start, start + embeddings.shape[0], dtype=np.int64)
+        if missing is None or not missing.any():
+            return cls(index, embeddings, np.asarray(attribute), None if task is None else np.asarray(task))
+        kept = ~missing
+        return cls(
+            index[kept], embeddings[kept], np.asarray(attribute)[kept], None if task is None else np.asarray(task)[kept]
+        )
+
+    def __len__(self) -> int:
+        return int(self.index.shape[0])
+
+
+class Partition(Protocol):
+    """A self-contained piece of a sample that any process can load on its own."""
+
+    @property
+    def stop(self) -> int:
+        """Index in the files just past the partition's last row (for progress reports)."""
+        ...
+
+    def load(self) -> Chunk:
+        """Read the partition's labelled rows (checked for finite numbers)."""
+        ...
+
+
+class Sample(Protocol):
+    """A labelled sample as the fitting job sees it, whatever holds it."""
+
+    @property
+    def labelled_rows(self) -> int:
+        """Rows with every label present: the rows the job uses."""
+        ...
+
+    @property
+    def dropped_rows(self) -> int:
+        """Rows of the files dropped for a missing label."""
+        ...
+
+    @property
+    def dim(self) -> int: ...
+    @property
+    def dtype(self) -> np.dtype[Any]: ...
+    @property
+    def attribute_key(self) -> str: ...
+    @property
+    def task_key(self) -> str | None: ...
+    @property
+    def files(self) -> dict[str, str]: ...
+    @property
+    def fingerprint(self) -> str: ...
+
+    def partitions(self, chunk_rows: int) -> Sequence[Partition]:
+        """The sample in row order, in pieces of about ``chunk_rows`` rows (one piece for a sample in memory)."""
+        ...
+
+
+@dataclass(frozen=True, eq=False)
+class InMemoryPartition:
+    """A sample held in memory, as one partition."""
+
+    chunk: Chunk
+    stop: int
+
+    def load(self) -> Chunk:
+        return self.chunk
