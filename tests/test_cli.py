@@ -6,6 +6,7 @@ import contextlib
 import hashlib
 import io
 import json
+import os
 import re
 import shutil
 import subprocess
@@ -487,6 +488,33 @@ def test_the_method_table_the_parser_shows_is_the_fitting_jobs() -> None:
     for method in METHODS:
         assert f"  {method}: " in shown
     assert "max_iter=300" in shown  # R-LACE's default iteration count
+
+
+def test_a_reader_that_stops_early_is_no_failure(fitted: Fitted) -> None:
+    # `veil show | head -n 1` once head has gone: stdout is a pipe whose reading end is closed before veil
+    # starts, so every write fails with EPIPE.  veil then ends quietly, as a program killed by SIGPIPE does
+    # (status 141), instead of printing "[Errno 32] Broken pipe".
+    read_end, write_end = os.pipe()
+    os.close(read_end)
+    try:
+        done = subprocess.run(
+            [str(Path(sys.executable).with_name("veil")), "show", NAME, fitted.ids["leace"],
+             "--registry", str(fitted.registry)],
+            stdout=write_end, stderr=subprocess.PIPE, text=True, check=False,
+        )  # fmt: skip
+    finally:
+        os.close(write_end)
+    assert (done.returncode, done.stderr) == (141, "")
+
+
+def test_a_registry_url_no_storage_can_open_is_refused_in_one_line() -> None:
+    # fsspec knows no protocol "nowhere": every command, `veil serve` included, refuses it before doing anything.
+    for argv in (("versions", NAME), ("verify",), ("serve", "--port", "1")):
+        result = run(*argv, "--registry", "nowhere://x")
+        assert (result.code, result.err) == (
+            2,
+            f"veil {argv[0]}: the registry nowhere://x cannot be opened: Protocol not known: nowhere\n",
+        )
 
 
 def test_a_registry_path_that_is_a_file_is_refused_in_one_line(tmp_path: Path) -> None:

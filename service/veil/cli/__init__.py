@@ -42,6 +42,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     except BAD_INPUT as error:
         print(f"veil {args.command}: {error}", file=sys.stderr)
         return 2
+    except BrokenPipeError:
+        # The reader of stdout left early (`veil show ... | head`): not a failure worth a message.  Python's
+        # documented handling: point stdout at devnull so the final flush at exit cannot fail again; the
+        # status is the shell's for a process ended by SIGPIPE (128 + 13).
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 141
     except (IntegrityError, RegistryError, OSError) as error:
         print(f"veil {args.command}: {error}", file=sys.stderr)
         return 1

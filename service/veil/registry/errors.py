@@ -28,4 +28,5 @@ class LockTimeoutError(RegistryError, TimeoutError):
 
 
 class RegistryLocationError(RegistryError, NotADirectoryError):
-    """The registry's path is a file, or lies under one: no registry can be there."""
+    """No registry can be at this location: its path is a file or lies under one, or its URL names a storage
+    this installation cannot open (an unknown protocol, a backend that is not installed)."""

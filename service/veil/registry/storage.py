@@ -233,7 +233,11 @@ class FsspecStorage:
         import fsspec  # only registries on remote stores need it
 
         self.url = url.rstrip("/")
-        self.fs, self._root = fsspec.core.url_to_fs(self.url, **dict(storage_options or {}))
+        try:
+            self.fs, self._root = fsspec.core.url_to_fs(self.url, **dict(storage_options or {}))
+        except (ValueError, ImportError) as error:
+            # fsspec's words for an unknown protocol or a missing backend ("Install s3fs to access S3").
+            raise RegistryLocationError(f"the registry {self.url} cannot be opened: {error}") from None
         self.lease_seconds = lease_seconds
 
     def _path(self, path: str) -> str:

@@ -8,6 +8,7 @@ import os
 import uvicorn
 
 from veil.registry.naming import check_name
+from veil.registry.storage import open_storage
 from veil.server.settings import load_settings
 
 
@@ -16,6 +17,9 @@ def serve_forever(*, registry: str, names: list[str], alias: str, host: str, por
     for name in names:
         check_name(name)
     check_name(alias, what="alias")
+    # A URL no storage can open is refused here, in one line; a registry that does not exist yet is served
+    # (and /readyz says why nothing is loaded) until it appears.
+    open_storage(registry)
     # Through the environment, so every worker process the factory starts gets the same settings.
     os.environ["VEIL_REGISTRY"] = registry
     os.environ["VEIL_ALIAS"] = alias
