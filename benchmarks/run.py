@@ -9,7 +9,8 @@ B1  apply in process: factored vs dense d×d product vs a plain copy (d=768, k=8
 B2  the service through a real uvicorn on loopback: binary and JSON apply vs an echo route, batch 1 and 256
 B3  LEACE fit vs a bare NumPy Xᵀ X on the same data (n=200,000, d=768)
 B4  INLP: the moments classifier vs the logistic classifier (time, and final held-out leakage)
-B5  a streamed LEACE fit (`veil fit --stream`) of a 2,000,000 × 768 file: peak memory and wall time vs a bare chunked XᵀX pass
+B5  a streamed LEACE fit (`veil fit --stream`) of a 2,000,000 × 768 file: peak memory and wall time vs a bare
+    chunked XᵀX pass
 B6  start-up: `veil versions NAME` vs `python -c "import numpy"` (wall time of a fresh process)
 B7  the default audit's probes (linear and MLP, raw and LEACE-erased, 5 folds) with BLAS on one thread, as veil
     runs them, vs the same probes through cross_val_predict with BLAS on every thread; sample and 5,000 rows
