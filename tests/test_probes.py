@@ -11,7 +11,7 @@ from sklearn.metrics import balanced_accuracy_score, recall_score
 from sklearn.model_selection import StratifiedKFold, train_test_split
 
 from veil import LEACE
-from veil.audit import ProbeScore, probes, readers
+from veil.audit import ProbeScore, audit, probes, readers
 from veil.audit.report import PROBES, Leakage
 from veil.datasets import load_harbourline_profiles
 
@@ -147,3 +147,17 @@ def test_the_trees_probe_does_not_read_rounding_level_copies_in_dead_coordinates
     bare = probes.held_out_predictions(HistGradientBoostingClassifier(random_state=0), x, codes, folds)
     assert np.mean(bare == codes) > 0.9
     assert _misses(_scores(x, codes, ("trees",))["trees"])
+
+
+def test_a_dozen_held_out_rows_are_enough_for_every_probe() -> None:
+    # Four rows per class: stratified folds of 3 training rows per class leave no room for a validation split,
+    # so the trees and the MLP run without early stopping instead of failing.
+    rng = np.random.default_rng(0)
+    z = np.arange(300) % 3
+    eraser = LEACE().fit(rng.normal(size=(300, 10)) + z[:, None], z)
+    held = np.arange(12) % 3
+    report = audit(eraser, rng.normal(size=(12, 10)) + held[:, None], held)
+    assert report.protocol is not None
+    assert report.protocol.folds == 4
+    assert [name for name, _, _ in report.leakage.probes()] == list(PROBES)
+    assert all(after.n == 12 for _, _, after in report.leakage.probes())

@@ -221,7 +221,7 @@ def audit(
         and strongest_after.interval_low > max(linear_after.accuracy, linear_after.majority)
     ):
         notes.append(
-            f"a nonlinear probe ({PROBE_LABELS[str(strongest)]}) recovers more than a linear one: "
+            f"the {PROBE_LABELS[str(strongest)]} recovers more than the linear one: "
             "linear erasure does not remove nonlinear traces"
         )
     return AuditReport(
