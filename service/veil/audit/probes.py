@@ -94,9 +94,9 @@ def held_out_predictions(
     Fold by fold so that each finished fold can be reported to ``stage``.
     BLAS and OpenMP run on one thread meanwhile: a probe multiplies matrices
     of a few hundred rows, where a second thread's start-up and spin-waiting
-    cost more than it adds (the MLP probe ran 4-9 times slower with two BLAS
-    threads on a busy 2-core machine, the boosted trees 2-4 times slower with
-    two OpenMP threads, with the same result).
+    cost more than it adds (on a busy 2-core machine the MLP probe ran 4-9
+    times slower with two BLAS threads, and the boosted trees 2-4 times slower
+    with two OpenMP threads, with the same result).
     """
     folds = list(splitter.split(x, y))
     parts = []
