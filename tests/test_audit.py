@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import json
 import warnings
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -17,9 +19,16 @@ from sklearn.neighbors import NearestNeighbors
 from threadpoolctl import threadpool_info, threadpool_limits
 
 from veil import LEACE
-from veil.audit import AuditReport, ProbeScore, RegressionScore, audit, fit_and_audit, geometry, probes
+from veil.audit import AuditReport, ProbeScore, RegressionScore, audit, fit_and_audit, geometry, probes, readers
+from veil.audit.report import HELD_OUT_KFOLD, PROBES
 from veil.audit.stats import wilson_interval
+from veil.fitting.job import fit_version
 from veil.progress import reporting
+from veil.registry import Registry
+from veil.registry.card import format_card
+from veil.samples.sources import LabelledSample
+from veil.samples.splitting import give_every_class_both_parts, holdout_mask
+from veil.samples.streaming import open_stream
 
 from .conftest import planted
 
@@ -113,8 +122,59 @@ def test_report_round_trips_through_json() -> None:
     _, report = fit_and_audit(LEACE(), x, z, task=(x[:, 0] > 0).astype(int), nonlinear=True)
     text = report.to_json()
     assert AuditReport.from_json(text) == report
-    assert json.loads(text)["leakage"]["linear_after"]["n"] == report.n_heldout
+    stored = json.loads(text)
+    assert stored["leakage"]["linear_after"]["n"] == report.n_heldout
+    assert stored["leakage"]["strongest"] in PROBES
+    assert [name for name, _, _ in report.leakage.probes()] == list(PROBES)
     assert "linear probe accuracy" in report.format_table()
+
+
+@pytest.mark.parametrize("streamed", [False, True])
+def test_every_probe_is_trained_and_tested_on_held_out_rows_only_and_the_card_says_so(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, streamed: bool
+) -> None:
+    x, codes = planted(n=1500, d=6, seed=8)
+    x = x.astype(np.float32)
+    labels = np.array(["a", "b"])[codes]
+    seen: list[np.ndarray] = []
+    original = probes.held_out_predictions
+
+    def recording(model: Any, rows: np.ndarray, *args: Any, **kwargs: Any) -> np.ndarray:
+        seen.append(np.array(rows, dtype=np.float64))
+        return original(model, rows, *args, **kwargs)
+
+    monkeypatch.setattr(probes, "held_out_predictions", recording)
+    registry = Registry(tmp_path / "r")
+    held = holdout_mask(x.shape[0], fraction=0.2, seed=0)
+    if streamed:
+        np.save(tmp_path / "x.npy", x)
+        np.save(tmp_path / "z.npy", labels)
+        sample = open_stream(tmp_path / "x.npy", attribute="g", labels=tmp_path / "z.npy")
+        outcome = fit_version(sample, registry=registry, name="held", method="leace", chunk_rows=400)
+    else:
+        held = give_every_class_both_parts(held, codes)
+        sample = LabelledSample(embeddings=x, attribute=labels, attribute_key="g", task=None, task_key=None, files={})
+        outcome = fit_version(sample, registry=registry, name="held", method="leace")
+    erased = registry.read_version("held", outcome.version_id).artifact.apply(x)
+    # Which row each probed row is, raw or erased: its nearest neighbour among both (scikit-learn's search).
+    index = NearestNeighbors(n_neighbors=1).fit(np.concatenate([x, erased]).astype(np.float64))
+    assert len(seen) == 2 * len(PROBES)  # raw and erased rows, every probe
+    for rows in seen:
+        distance, found = index.kneighbors(rows)
+        assert distance.max() < 1e-4
+        probed = found[:, 0] % x.shape[0]
+        assert held[probed].all()  # never a row the eraser was fitted on
+        assert np.unique(probed).size == outcome.audit.n_heldout == rows.shape[0]
+    protocol = outcome.card["audit"]["protocol"]
+    assert protocol == {
+        "scheme": HELD_OUT_KFOLD,
+        "folds": 5,
+        "seed": 0,
+        "eraser_rows": outcome.card["data"]["fit_rows"],
+    }
+    assert outcome.card["data"]["fit_rows"] == int(np.count_nonzero(~held))
+    shown = format_card(outcome.version_id, outcome.card)
+    assert f"trained and tested only on the {outcome.audit.n_heldout} held-out rows the eraser never saw" in shown
 
 
 def test_audit_notes_dead_coordinates_of_real_embeddings(profiles) -> None:  # type: ignore[no-untyped-def]
@@ -129,13 +189,15 @@ def test_audit_notes_dead_coordinates_of_real_embeddings(profiles) -> None:  # t
 
 
 _BLAS_THREADS_SEEN: list[int] = []
+_OPENMP_THREADS_SEEN: list[int] = []
 
 
 class _ThreadRecorder(ClassifierMixin, BaseEstimator):  # type: ignore[misc]
-    """A majority-class model that notes how many BLAS threads it was given while fitting."""
+    """A majority-class model that notes how many BLAS and OpenMP threads it was given while fitting."""
 
     def fit(self, X: np.ndarray, y: np.ndarray) -> _ThreadRecorder:
         _BLAS_THREADS_SEEN.extend(info["num_threads"] for info in threadpool_info() if info["user_api"] == "blas")
+        _OPENMP_THREADS_SEEN.extend(info["num_threads"] for info in threadpool_info() if info["user_api"] == "openmp")
         self.classes_, counts = np.unique(y, return_counts=True)
         self.majority_ = self.classes_[np.argmax(counts)]
         return self
@@ -144,23 +206,27 @@ class _ThreadRecorder(ClassifierMixin, BaseEstimator):  # type: ignore[misc]
         return np.full(len(X), self.majority_)
 
 
-def test_probes_predict_each_row_as_cross_val_predict_does_fold_by_fold_on_one_blas_thread() -> None:
+def test_probes_predict_each_row_as_cross_val_predict_does_fold_by_fold_on_one_thread() -> None:
     x, z = load_breast_cancer(return_X_y=True)
     folds = StratifiedKFold(5, shuffle=True, random_state=0)
-    # Reference: scikit-learn's cross_val_predict with the same folds, for both probes (bundled breast cancer set).
-    for model in (probes.linear_probe(0), probes.nonlinear_probe(0)):
-        with warnings.catch_warnings(), threadpool_limits(limits=1, user_api="blas"):  # the same figures, sooner
+    sizes = readers.fold_sizes(z, 5)
+    # Reference: scikit-learn's cross_val_predict with the same folds, for every probe (bundled breast cancer set).
+    for name in PROBES:
+        model = readers.build_probe(name, 0, sizes=sizes, features=x.shape[1])
+        with warnings.catch_warnings(), threadpool_limits(limits=1):  # the same figures, sooner
             warnings.simplefilter("ignore", ConvergenceWarning)
             expected = cross_val_predict(model, x, z, cv=folds)
         np.testing.assert_array_equal(probes.held_out_predictions(model, x, z, folds), expected)
-    # Each finished fold is reported, and BLAS runs on one thread meanwhile, whatever it had outside.
+    # Each finished fold is reported, and BLAS and OpenMP run on one thread meanwhile, whatever they had outside.
     reported: list[tuple[str, int, int | None]] = []
     _BLAS_THREADS_SEEN.clear()
-    with threadpool_limits(limits=2, user_api="blas"), reporting(lambda *report: reported.append(report)):
+    _OPENMP_THREADS_SEEN.clear()
+    with threadpool_limits(limits=2), reporting(lambda *report: reported.append(report)):
         probes.held_out_predictions(_ThreadRecorder(), x, z, folds, stage="probe (folds)")
         _ThreadRecorder().fit(x, z)
     assert reported == [("probe (folds)", done, 5) for done in range(1, 6)]
-    blas_libraries = len(_BLAS_THREADS_SEEN) // 6
-    assert blas_libraries >= 1
-    assert _BLAS_THREADS_SEEN[: 5 * blas_libraries] == [1] * (5 * blas_libraries)
-    assert _BLAS_THREADS_SEEN[5 * blas_libraries :] == [2] * blas_libraries
+    for seen in (_BLAS_THREADS_SEEN, _OPENMP_THREADS_SEEN):  # scikit-learn's boosted trees load OpenMP
+        libraries = len(seen) // 6
+        assert libraries >= 1
+        assert seen[: 5 * libraries] == [1] * (5 * libraries)
+        assert seen[5 * libraries :] == [2] * libraries

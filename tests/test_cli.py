@@ -111,7 +111,9 @@ def test_fit_prints_the_audit_then_the_version_id_last(fitted: Fitted) -> None:
         assert VERSION_ID.match(fitted.ids[method])
         assert f"{method} eraser, rank" in result.out
         assert "linear probe accuracy" in result.out
-    assert "nonlinear probe (MLP) accuracy" in fitted.outputs["leace"].out
+    for probe in ("quadratic probe", "RBF kernel probe", "boosted-trees probe", "MLP probe"):
+        assert f"{probe} accuracy" in fitted.outputs["leace"].out
+    assert "strongest probe after erasure: " in fitted.outputs["leace"].out
     assert "alias 'live' now points at" in fitted.outputs["leace"].out
     # Progress bars for the INLP iterations, on stderr only.
     assert "INLP classifiers" in fitted.outputs["inlp"].err
@@ -122,6 +124,12 @@ def test_fit_prints_the_audit_then_the_version_id_last(fitted: Fitted) -> None:
         "fitting leace",
         "linear probe, raw (folds)",
         "linear probe, erased (folds)",
+        "quadratic probe, raw (folds)",
+        "quadratic probe, erased (folds)",
+        "RBF kernel probe, raw (folds)",
+        "RBF kernel probe, erased (folds)",
+        "boosted-trees probe, raw (folds)",
+        "boosted-trees probe, erased (folds)",
         "MLP probe, raw (folds)",
         "MLP probe, erased (folds)",
         "task probe, raw (folds)",

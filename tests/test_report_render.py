@@ -54,7 +54,6 @@ def report_page(tmp_path_factory: pytest.TempPathFactory) -> Path:
         name="profiles-minilm",
         method="inlp",
         params={"classifier": "moments", "max_iter": 15},
-        nonlinear=False,
     )
     page = folder / "report.html"
     page.write_bytes(registry.read_version("profiles-minilm", outcome.version_id).files[REPORT_FILE])
@@ -79,8 +78,16 @@ def test_the_rendered_page_has_every_plot(report_page: Path, tmp_path: Path) -> 
     dom = chromium("--dump-dom", report_page.as_uri(), profile=tmp_path / "profile").stdout
     assert dom.count('<figure class="plot"><svg') == 5
     assert "veil report: profiles-minilm v0001-" in dom
-    for heading in ("Leakage before and after erasure", "Fitting iterations", "Per-vector distortion"):
+    for heading in ("Leakage before and after erasure", "Probes", "Fitting iterations", "Per-vector distortion"):
         assert heading in dom
+    # Every probe's row in the probe table, one of them marked strongest, with per-class recall and chance.
+    for probe in ("linear probe", "quadratic probe", "RBF kernel probe", "boosted-trees probe", "MLP probe"):
+        assert f"<td>{probe}" in dom
+    assert dom.count('<tr class="strongest">') == 1
+    assert "balanced accuracy after (chance 0.500)" in dom
+    assert "recall after: he" in dom
+    assert "recall after: she" in dom
+    assert "trained and tested only on the 610 held-out rows the eraser never saw" in dom
 
 
 def test_the_screenshot_shows_drawn_plots(report_page: Path, tmp_path: Path) -> None:

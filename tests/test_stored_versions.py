@@ -41,3 +41,23 @@ def test_aliases_and_history_of_the_older_release_read_back(registry_path: Path)
     shown = run("show", "legacy", "live", "--registry", str(registry_path))
     assert shown.code == 0
     assert "leace" in shown.out
+
+
+def test_cards_of_the_older_release_show_and_render_with_todays_probe_figures(
+    registry_path: Path, tmp_path: Path
+) -> None:
+    # Those cards hold the linear probe only, without per-class recall or the probe protocol.
+    for number in VERSIONS:
+        shown = run("show", "legacy", number, "--registry", str(registry_path))
+        assert shown.code == 0, shown.err
+        assert "not recorded (the card was written before the audit recorded its protocol)" in shown.out
+        # Three classes of `region`: the balanced accuracy's chance level comes from the card's classes.
+        assert "linear probe balanced accuracy (chance 0.333)" in shown.out
+        assert "strongest probe" not in shown.out  # one probe ran: there is nothing to rank
+        page = tmp_path / f"{number}.html"
+        rendered = run("report", "legacy", number, "--out", str(page), "--registry", str(registry_path))
+        assert rendered.code == 0, rendered.err
+        text = page.read_text()
+        assert "<td>linear probe</td>" in text
+        assert "balanced accuracy after (chance 0.333)" in text
+        assert text.count("<td>not recorded</td>") == 3

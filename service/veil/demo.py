@@ -134,7 +134,8 @@ def main() -> None:
         print(f"   same field as the query:   {raw[1]:.3f} raw -> {erased[1]:.3f} erased (task relevance kept)")
         print(
             "   (who the neighbours are depends on more than the linear directions erased: the linear probe\n"
-            "   is down to near the majority baseline, the neighbourhoods much less; see the MLP and 10-NN rows)\n"
+            "   is down to near the majority baseline, the neighbourhoods much less; see the nonlinear probes'\n"
+            "   and 10-NN rows)\n"
         )
 
         print("4. Drift checks on live traffic samples")
@@ -166,7 +167,7 @@ def main() -> None:
     print(f"\nDone in {time.perf_counter() - started:.0f} s.")
     print(f"Try: .venv/bin/veil versions {NAME} --registry {DEMO_REGISTRY}")
     print(
-        "Linear erasure leaves nonlinear traces (see the MLP rows); these figures hold for this sample's "
+        "Linear erasure leaves nonlinear traces (see the nonlinear probes' rows); these figures hold for this sample's "
         "distribution only, and are no legal or compliance guarantee."
     )
 

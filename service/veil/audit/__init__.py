@@ -9,12 +9,22 @@ from __future__ import annotations
 import importlib
 from typing import TYPE_CHECKING, Any
 
-from veil.audit.report import AuditReport, Leakage, ProbeScore, RegressionScore, Retrieval, Utility
+from veil.audit.report import AuditReport, Leakage, ProbeProtocol, ProbeScore, RegressionScore, Retrieval, Utility
 
 if TYPE_CHECKING:
     from veil.audit.run import audit, fit_and_audit
 
-__all__ = ["AuditReport", "Leakage", "ProbeScore", "RegressionScore", "Retrieval", "Utility", "audit", "fit_and_audit"]
+__all__ = [
+    "AuditReport",
+    "Leakage",
+    "ProbeProtocol",
+    "ProbeScore",
+    "RegressionScore",
+    "Retrieval",
+    "Utility",
+    "audit",
+    "fit_and_audit",
+]
 
 # Running an audit needs scikit-learn; reading one (a version card) does not, so the runner loads on first use.
 _LAZY = {"audit": "veil.audit.run", "fit_and_audit": "veil.audit.run"}

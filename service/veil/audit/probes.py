@@ -1,4 +1,7 @@
-"""Held-out probes of the attribute: linear (logistic / ridge) and nonlinear (MLP)."""
+"""Held-out probes of the attribute, scored fold by fold: the linear and MLP probes and the scoring itself.
+
+The other nonlinear probes are in :mod:`veil.audit.readers`.
+"""
 
 from __future__ import annotations
 
@@ -10,7 +13,7 @@ from numpy.typing import NDArray
 from sklearn.base import BaseEstimator, TransformerMixin, clone
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.linear_model import LogisticRegression, RidgeCV
-from sklearn.metrics import balanced_accuracy_score, r2_score
+from sklearn.metrics import r2_score
 from sklearn.model_selection import BaseCrossValidator, KFold, StratifiedKFold
 from sklearn.neural_network import MLPClassifier
 from sklearn.pipeline import Pipeline, make_pipeline
@@ -39,6 +42,24 @@ class FlooredScaler(TransformerMixin, BaseEstimator):  # type: ignore[misc]
 
     def transform(self, X: NDArray[np.floating]) -> NDArray[np.float64]:
         return np.asarray((X - self.mean_) / self.scale_)
+
+
+class LiveFeatures(TransformerMixin, BaseEstimator):  # type: ignore[misc]
+    """Keep the coordinates whose spread is at least ``DEAD_SPREAD`` times the typical spread.
+
+    For models that ignore scale (trees split on thresholds): flooring a
+    dead coordinate's scale does not hide its rounding-level content from
+    them, so it is dropped instead.
+    """
+
+    def fit(self, X: NDArray[np.floating], y: object = None) -> LiveFeatures:
+        spread = np.asarray(X, dtype=np.float64).std(axis=0)
+        typical = float(np.sqrt(np.mean(spread**2)))
+        self.keep_ = np.flatnonzero(spread >= DEAD_SPREAD * typical)
+        return self
+
+    def transform(self, X: NDArray[np.floating]) -> NDArray[np.floating]:
+        return np.asarray(X)[:, self.keep_]
 
 
 def count_dead_features(x: NDArray[np.floating]) -> int:
@@ -71,14 +92,15 @@ def held_out_predictions(
     """What ``cross_val_predict`` returns (each row predicted by a clone fitted on the other folds), fold by fold.
 
     Fold by fold so that each finished fold can be reported to ``stage``.
-    BLAS runs on one thread meanwhile: a probe multiplies matrices of a few
-    hundred rows, where a second thread's start-up and spin-waiting cost more
-    than it adds (the MLP probe ran 4-9 times slower with two threads on a
-    busy 2-core machine, with the same result).
+    BLAS and OpenMP run on one thread meanwhile: a probe multiplies matrices
+    of a few hundred rows, where a second thread's start-up and spin-waiting
+    cost more than it adds (on a busy 2-core machine the MLP probe ran 4-9
+    times slower with two BLAS threads, and the boosted trees 2-4 times slower
+    with two OpenMP threads, with the same result).
     """
     folds = list(splitter.split(x, y))
     parts = []
-    with warnings.catch_warnings(), threadpool_limits(limits=1, user_api="blas"):
+    with warnings.catch_warnings(), threadpool_limits(limits=1):
         warnings.simplefilter("ignore", ConvergenceWarning)
         for done, (train, test) in enumerate(folds, start=1):
             parts.append((test, np.asarray(clone(model).fit(x[train], y[train]).predict(x[test]))))
@@ -89,6 +111,28 @@ def held_out_predictions(
     for test, values in parts:
         predicted[test] = values
     return predicted
+
+
+def score_predictions(codes: NDArray[np.intp], predicted: NDArray[np.intp]) -> ProbeScore:
+    """Accuracy (with its Wilson interval), majority baseline, per-class recall and balanced accuracy.
+
+    ``codes`` are ``0 .. classes - 1`` with every class present; the
+    balanced accuracy is the mean of the per-class recalls.
+    """
+    counts = np.bincount(codes)
+    right = np.bincount(codes[predicted == codes], minlength=counts.size)
+    recall = right / counts
+    hits = int(right.sum())
+    low, high = wilson_interval(hits, codes.size)
+    return ProbeScore(
+        accuracy=hits / codes.size,
+        balanced_accuracy=float(np.mean(recall)),
+        majority=float(counts.max() / codes.size),
+        interval_low=low,
+        interval_high=high,
+        n=int(codes.size),
+        recall=tuple(float(r) for r in recall),
+    )
 
 
 def probe_folds(codes: NDArray[np.intp], folds: int) -> int:
@@ -117,17 +161,7 @@ def classification_score(
     Finished folds are reported to ``stage`` (see :mod:`veil.progress`).
     """
     splitter = StratifiedKFold(n_splits=probe_folds(codes, folds), shuffle=True, random_state=random_state)
-    predicted = held_out_predictions(model, x, codes, splitter, stage=stage)
-    hits = int(np.count_nonzero(predicted == codes))
-    low, high = wilson_interval(hits, codes.size)
-    return ProbeScore(
-        accuracy=hits / codes.size,
-        balanced_accuracy=float(balanced_accuracy_score(codes, predicted)),
-        majority=float(np.bincount(codes).max() / codes.size),
-        interval_low=low,
-        interval_high=high,
-        n=int(codes.size),
-    )
+    return score_predictions(codes, held_out_predictions(model, x, codes, splitter, stage=stage))
 
 
 def cross_val_labels(

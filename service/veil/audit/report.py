@@ -3,8 +3,21 @@
 from __future__ import annotations
 
 import json
+from collections.abc import Iterator
 from dataclasses import asdict, dataclass, field
 from typing import Any
+
+#: Every probe the audit can run, in the order tables list them (and ties for the strongest are broken).
+PROBES = ("linear", "quadratic", "kernel", "trees", "mlp")
+PROBE_LABELS = {
+    "linear": "linear probe",
+    "quadratic": "quadratic probe",
+    "kernel": "RBF kernel probe",
+    "trees": "boosted-trees probe",
+    "mlp": "MLP probe",
+}
+#: The protocol :func:`veil.audit.audit` follows.
+HELD_OUT_KFOLD = "k-fold cross-validation within held-out rows"
 
 
 @dataclass(frozen=True)
@@ -13,6 +26,10 @@ class ProbeScore:
 
     ``gap = |accuracy - majority|``: accuracy far *below* majority on held-out
     data is leakage too (the probe has learned the attribute, inverted).
+    ``recall`` holds each class's recall in the order of the report's
+    ``classes``; ``balanced_accuracy`` is their mean, whose chance level is
+    ``1 / classes`` whatever the class shares.  Cards written before per-class
+    figures have no ``recall``.
     """
 
     accuracy: float
@@ -21,10 +38,25 @@ class ProbeScore:
     interval_low: float
     interval_high: float
     n: int
+    recall: tuple[float, ...] | None = None
 
     @property
     def gap(self) -> float:
         return abs(self.accuracy - self.majority)
+
+    def with_interval(self) -> str:
+        """``accuracy [low, high]`` to three decimals."""
+        return f"{self.accuracy:.3f} [{self.interval_low:.3f}, {self.interval_high:.3f}]"
+
+    @property
+    def hits(self) -> int:
+        """Rows predicted right (an exact count: ``accuracy`` is ``hits / n``)."""
+        return round(self.accuracy * self.n)
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> ProbeScore:
+        recall = data.get("recall")
+        return cls(**{**data, "recall": None if recall is None else tuple(recall)})
 
 
 @dataclass(frozen=True)
@@ -37,7 +69,14 @@ class RegressionScore:
 
 @dataclass(frozen=True)
 class Leakage:
-    """How much of the attribute a probe recovers before and after erasure."""
+    """How much of the attribute each probe recovers before and after erasure.
+
+    ``nonlinear_*`` hold the MLP probe (the name predates the other nonlinear
+    probes); the quadratic, kernel and trees probes are absent from cards
+    written before them.  ``strongest`` is derived, never given: the probe
+    with the most held-out rows right after erasure (ties go to the probe
+    listed first in :data:`PROBES`), or None for a continuous attribute.
+    """
 
     linear_before: ProbeScore | RegressionScore
     linear_after: ProbeScore | RegressionScore
@@ -46,6 +85,41 @@ class Leakage:
     guardedness_gap_before: float | None
     guardedness_gap_after: float | None
     guardedness_noise_floor: float | None = None
+    quadratic_before: ProbeScore | None = None
+    quadratic_after: ProbeScore | None = None
+    kernel_before: ProbeScore | None = None
+    kernel_after: ProbeScore | None = None
+    trees_before: ProbeScore | None = None
+    trees_after: ProbeScore | None = None
+    strongest: str | None = field(init=False)
+
+    def __post_init__(self) -> None:
+        # Counts, not accuracies, are compared, so round-off cannot decide the rank.
+        scored = [(name, after) for name, _, after in self.probes() if isinstance(after, ProbeScore)]
+        best = max(scored, key=lambda item: item[1].hits, default=None)
+        object.__setattr__(self, "strongest", None if best is None else best[0])
+
+    def probes(self) -> Iterator[tuple[str, ProbeScore | RegressionScore, ProbeScore | RegressionScore]]:
+        """``(name, before, after)`` of each probe that ran, in the order of :data:`PROBES`."""
+        for name in PROBES:
+            before, after = self.scores(name)
+            if before is not None and after is not None:
+                yield name, before, after
+
+    def scores(self, name: str) -> tuple[ProbeScore | RegressionScore | None, ProbeScore | RegressionScore | None]:
+        """The ``(before, after)`` scores of probe ``name`` (None where it did not run)."""
+        field_name = {"mlp": "nonlinear"}.get(name, name)
+        before: ProbeScore | RegressionScore | None = getattr(self, f"{field_name}_before")
+        after: ProbeScore | RegressionScore | None = getattr(self, f"{field_name}_after")
+        return before, after
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> Leakage:
+        values = {key: value for key, value in data.items() if key != "strongest"}
+        for key, value in values.items():
+            if isinstance(value, dict):
+                values[key] = RegressionScore(**value) if "r2" in value else ProbeScore.from_dict(value)
+        return cls(**values)
 
 
 @dataclass(frozen=True)
@@ -74,8 +148,43 @@ class Retrieval:
 
 
 @dataclass(frozen=True)
+class ProbeProtocol:
+    """How the probes were trained and tested.
+
+    Attributes
+    ----------
+    scheme : str
+        :data:`HELD_OUT_KFOLD`: every probe is trained and tested only on
+        held-out rows, which the eraser never saw, each row predicted by a
+        probe trained on the other folds.
+    folds : int
+        Folds of the cross-validation (stratified by the attribute's class).
+    seed : int
+        Seeds the folds and the probes.
+    eraser_rows : int
+        Rows the eraser was fitted on (none of them reaches a probe).
+    """
+
+    scheme: str
+    folds: int
+    seed: int
+    eraser_rows: int
+
+    def describe(self, heldout_rows: int) -> str:
+        return (
+            f"trained and tested only on the {heldout_rows} held-out rows the eraser never saw "
+            f"(it was fitted on {self.eraser_rows} others): {self.folds}-fold cross-validation, seed {self.seed}"
+        )
+
+
+@dataclass(frozen=True)
 class AuditReport:
-    """The audit of one eraser on held-out data."""
+    """The audit of one eraser on held-out data.
+
+    ``classes`` names the attribute's classes in the order of each probe's
+    ``recall``; ``protocol`` says how the probes were scored.  Both are None
+    in cards written before they were recorded.
+    """
 
     method: str
     rank: int
@@ -85,6 +194,13 @@ class AuditReport:
     utility: Utility
     retrieval: Retrieval | None
     notes: list[str] = field(default_factory=list)
+    classes: tuple[str, ...] | None = None
+    protocol: ProbeProtocol | None = None
+
+    @property
+    def balanced_chance(self) -> float | None:
+        """The balanced accuracy of a probe that cannot tell the classes apart: ``1 / classes``."""
+        return None if not self.classes else 1 / len(self.classes)
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -94,21 +210,20 @@ class AuditReport:
 
     @classmethod
     def from_dict(cls, data: dict[str, Any]) -> AuditReport:
-        leakage = dict(data["leakage"])
-        for key in ("linear_before", "linear_after", "nonlinear_before", "nonlinear_after"):
-            value = leakage[key]
-            if value is not None:
-                leakage[key] = RegressionScore(**value) if "r2" in value else ProbeScore(**value)
         retrieval = data.get("retrieval")
+        classes = data.get("classes")
+        protocol = data.get("protocol")
         return cls(
             method=data["method"],
             rank=data["rank"],
             n_heldout=data["n_heldout"],
             dim=data["dim"],
-            leakage=Leakage(**leakage),
+            leakage=Leakage.from_dict(data["leakage"]),
             utility=Utility(**data["utility"]),
             retrieval=None if retrieval is None else Retrieval(**retrieval),
             notes=list(data.get("notes", [])),
+            classes=None if classes is None else tuple(classes),
+            protocol=None if protocol is None else ProbeProtocol(**protocol),
         )
 
     @classmethod
@@ -119,12 +234,17 @@ class AuditReport:
         """A plain-text before/after table for terminals and READMEs."""
         rows: list[tuple[str, str, str]] = []
 
+        chance = self.balanced_chance
+        balanced = "balanced accuracy" + ("" if chance is None else f" (chance {chance:.3f})")
+
         def probe(label: str, before: object, after: object) -> None:
             if isinstance(before, ProbeScore) and isinstance(after, ProbeScore):
-                rows.append((f"{label} accuracy", _ci(before), _ci(after)))
+                rows.append((f"{label} accuracy", before.with_interval(), after.with_interval()))
                 rows.append(
-                    (f"{label} balanced accuracy", f"{before.balanced_accuracy:.3f}", f"{after.balanced_accuracy:.3f}")
+                    (f"{label} {balanced}", f"{before.balanced_accuracy:.3f}", f"{after.balanced_accuracy:.3f}")
                 )
+                if self.classes and before.recall is not None and after.recall is not None:
+                    rows.append((f"{label} recall {' / '.join(self.classes)}", _recall(before), _recall(after)))
                 rows.append((f"{label} |accuracy - majority|", f"{before.gap:.3f}", f"{after.gap:.3f}"))
             elif isinstance(before, RegressionScore) and isinstance(after, RegressionScore):
                 rows.append((f"{label} R²", f"{before.r2:.3f}", f"{after.r2:.3f}"))
@@ -133,8 +253,8 @@ class AuditReport:
         majority = lk.linear_before.majority if isinstance(lk.linear_before, ProbeScore) else None
         if majority is not None:
             rows.append(("majority baseline", f"{majority:.3f}", f"{majority:.3f}"))
-        probe("linear probe", lk.linear_before, lk.linear_after)
-        probe("nonlinear probe (MLP)", lk.nonlinear_before, lk.nonlinear_after)
+        for name, before, after in lk.probes():
+            probe(PROBE_LABELS[name], before, after)
         if lk.guardedness_gap_before is not None and lk.guardedness_gap_after is not None:
             floor = "" if lk.guardedness_noise_floor is None else f" (noise {lk.guardedness_noise_floor:.2f})"
             rows.append(
@@ -171,15 +291,33 @@ class AuditReport:
                     )
                 )
         width = max(len(r[0]) for r in rows)
+        column = max(21, *(len(text) for row in rows for text in row[1:]))
         lines = [
             f"{self.method} eraser, rank {self.rank}, "
             f"audited on {self.n_heldout} held-out rows of dimension {self.dim}",
-            f"{'':{width}}  {'before':>21}  {'after':>21}",
         ]
-        lines += [f"{name:{width}}  {b:>21}  {a:>21}" for name, b, a in rows]
+        if self.protocol is not None:
+            lines.append("probes " + self.protocol.describe(self.n_heldout))
+        strongest = self.strongest_after()
+        if strongest is not None:
+            lines.append(f"strongest probe after erasure: {strongest}")
+        lines.append(f"{'':{width}}  {'before':>{column}}  {'after':>{column}}")
+        lines += [f"{name:{width}}  {b:>{column}}  {a:>{column}}" for name, b, a in rows]
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
 
+    def strongest_after(self) -> str | None:
+        """The strongest probe after erasure with its figures; None unless two or more classification probes ran."""
+        name = self.leakage.strongest
+        if name is None or sum(1 for _ in self.leakage.probes()) < 2:
+            return None
+        after = self.leakage.scores(name)[1]
+        if not isinstance(after, ProbeScore):
+            return None
+        chance = self.balanced_chance
+        balanced = f"balanced {after.balanced_accuracy:.3f}" + ("" if chance is None else f" (chance {chance:.3f})")
+        return f"{PROBE_LABELS[name]}, {after.with_interval()} (majority {after.majority:.3f}), {balanced}"
 
-def _ci(score: ProbeScore) -> str:
-    return f"{score.accuracy:.3f} [{score.interval_low:.3f}, {score.interval_high:.3f}]"
+
+def _recall(score: ProbeScore) -> str:
+    return " / ".join(f"{value:.3f}" for value in score.recall or ())

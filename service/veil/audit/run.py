@@ -9,8 +9,19 @@ from numpy.typing import ArrayLike, NDArray
 from sklearn.model_selection import train_test_split
 from sklearn.utils.validation import check_array, check_is_fitted
 
-from veil.audit import geometry, probes
-from veil.audit.report import AuditReport, Leakage, ProbeScore, RegressionScore, Retrieval, Utility
+from veil.audit import geometry, probes, readers
+from veil.audit.report import (
+    HELD_OUT_KFOLD,
+    PROBE_LABELS,
+    PROBES,
+    AuditReport,
+    Leakage,
+    ProbeProtocol,
+    ProbeScore,
+    RegressionScore,
+    Retrieval,
+    Utility,
+)
 from veil.erasers._base import LinearErasure
 from veil.maps.attribute import encode_attribute
 from veil.maps.linalg import whiten, whitening_factors
@@ -47,9 +58,12 @@ def audit(
 ) -> AuditReport:
     """Measure leakage and utility of a fitted eraser on data it never saw.
 
-    Probes are scored by stratified cross-validation inside the held-out
-    rows, so every figure comes from a probe that never saw the row it
-    predicts, and the eraser never saw any of them.
+    Probes are trained and tested only on ``X``, by stratified k-fold
+    cross-validation: every figure comes from a probe that never saw the row
+    it predicts, and ``X`` must be rows the eraser never saw (the report's
+    ``protocol`` records this).  Each probe reports its accuracy with a
+    Wilson interval, the majority baseline, per-class recall and balanced
+    accuracy; the strongest is the one with the most rows right after erasure.
 
     Parameters
     ----------
@@ -67,7 +81,8 @@ def audit(
     folds : int, default=5
         Cross-validation folds of the probes.
     nonlinear : bool, default=True
-        Also run an MLP probe (slower).
+        Also run the nonlinear probes (quadratic, RBF kernel, boosted trees,
+        MLP); otherwise the linear probe only.
     random_state : int, default=0
         Seeds the folds and the probes.
 
@@ -86,22 +101,32 @@ def audit(
 
     if attribute.labels is not None:
         codes = attribute.codes
-        model = probes.linear_probe(random_state)
-        linear_before: ProbeScore | RegressionScore = probes.classification_score(
-            model, raw, codes, folds=folds, random_state=random_state, stage="linear probe, raw (folds)"
-        )
-        linear_after: ProbeScore | RegressionScore = probes.classification_score(
-            model, erased, codes, folds=folds, random_state=random_state, stage="linear probe, erased (folds)"
-        )
-        nonlinear_before = nonlinear_after = None
-        if nonlinear:
-            mlp = probes.nonlinear_probe(random_state)
-            nonlinear_before = probes.classification_score(
-                mlp, raw, codes, folds=folds, random_state=random_state, stage="MLP probe, raw (folds)"
+        used_folds = probes.probe_folds(codes, folds)
+        sizes = readers.fold_sizes(codes, folds)
+        scores: dict[str, tuple[ProbeScore, ProbeScore]] = {}
+        for name in PROBES if nonlinear else ("linear",):
+            model = readers.build_probe(name, random_state, sizes=sizes, features=raw.shape[1])
+            scores[name] = (
+                probes.classification_score(
+                    model,
+                    raw,
+                    codes,
+                    folds=folds,
+                    random_state=random_state,
+                    stage=f"{PROBE_LABELS[name]}, raw (folds)",
+                ),
+                probes.classification_score(
+                    model,
+                    erased,
+                    codes,
+                    folds=folds,
+                    random_state=random_state,
+                    stage=f"{PROBE_LABELS[name]}, erased (folds)",
+                ),
             )
-            nonlinear_after = probes.classification_score(
-                mlp, erased, codes, folds=folds, random_state=random_state, stage="MLP probe, erased (folds)"
-            )
+        linear_before: ProbeScore | RegressionScore
+        linear_after: ProbeScore | RegressionScore
+        linear_before, linear_after = scores.pop("linear")
         # Whitened by the fitting data's covariance, so before and after are
         # measured in the same units.
         eigenvectors, scale = whitening_factors(eraser.moments_.covariance_xx)
@@ -110,10 +135,28 @@ def audit(
         noise_floor = _class_mean_noise_floor(codes, scale.size)
     else:
         codes = None
+        used_folds = min(folds, raw.shape[0])
+        scores = {}
         linear_before = probes.regression_score(raw, attribute.matrix, folds=folds, random_state=random_state)
         linear_after = probes.regression_score(erased, attribute.matrix, folds=folds, random_state=random_state)
-        nonlinear_before = nonlinear_after = None
         gap_before = gap_after = noise_floor = None
+    absent: tuple[None, None] = (None, None)
+    mlp, quadratic, kernel, trees = (scores.get(name, absent) for name in ("mlp", "quadratic", "kernel", "trees"))
+    leakage = Leakage(
+        linear_before=linear_before,
+        linear_after=linear_after,
+        nonlinear_before=mlp[0],
+        nonlinear_after=mlp[1],
+        guardedness_gap_before=gap_before,
+        guardedness_gap_after=gap_after,
+        guardedness_noise_floor=noise_floor,
+        quadratic_before=quadratic[0],
+        quadratic_after=quadratic[1],
+        kernel_before=kernel[0],
+        kernel_after=kernel[1],
+        trees_before=trees[0],
+        trees_after=trees[1],
+    )
 
     neighbours_raw = geometry.nearest_neighbours(raw, NEIGHBOURS)
     neighbours_erased = geometry.nearest_neighbours(erased, NEIGHBOURS)
@@ -169,31 +212,31 @@ def audit(
             f"the eraser was fitted on {eraser.moments_.count} rows for {raw.shape[1]} dimensions; "
             "held-out leakage shrinks as the fitting sample grows relative to the dimension"
         )
+    linear_after = leakage.linear_after
+    strongest = leakage.strongest
+    strongest_after = None if strongest is None else leakage.scores(strongest)[1]
     if (
         isinstance(linear_after, ProbeScore)
-        and nonlinear_after is not None
-        and nonlinear_after.interval_low > max(linear_after.accuracy, linear_after.majority)
+        and isinstance(strongest_after, ProbeScore)
+        and strongest_after.interval_low > max(linear_after.accuracy, linear_after.majority)
     ):
         notes.append(
-            "a nonlinear probe recovers more than a linear one: linear erasure does not remove nonlinear traces"
+            f"the {PROBE_LABELS[str(strongest)]} recovers more than the linear one: "
+            "linear erasure does not remove nonlinear traces"
         )
     return AuditReport(
         method=eraser.method,
         rank=eraser.map_.rank,
         n_heldout=int(raw.shape[0]),
         dim=int(raw.shape[1]),
-        leakage=Leakage(
-            linear_before,
-            linear_after,
-            nonlinear_before,
-            nonlinear_after,
-            gap_before,
-            gap_after,
-            noise_floor,
-        ),
+        leakage=leakage,
         utility=utility,
         retrieval=retrieval,
         notes=notes,
+        classes=None if attribute.labels is None else tuple(str(label) for label in attribute.labels),
+        protocol=ProbeProtocol(
+            scheme=HELD_OUT_KFOLD, folds=used_folds, seed=random_state, eraser_rows=int(eraser.moments_.count)
+        ),
     )
 
 

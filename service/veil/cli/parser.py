@@ -138,7 +138,10 @@ def build_parser() -> VeilParser:
     fit.add_argument("--seed", type=int, default=0, help="seeds the split, probes and randomised methods")
     fit.add_argument("--normalize", action="store_true", help="re-normalise served vectors to unit length")
     fit.add_argument(
-        "--probes", choices=("all", "linear"), default="all", help="audit with linear and MLP probes, or linear only"
+        "--probes",
+        choices=("all", "linear"),
+        default="all",
+        help="audit with every probe (linear, quadratic, RBF kernel, boosted trees, MLP), or the linear one only",
     )
     fit.add_argument(
         "--stream",

@@ -84,7 +84,7 @@ def fit_version(
     normalize : bool, default=False
         Re-normalise served vectors to unit length.
     nonlinear : bool, default=True
-        Also audit with an MLP probe.
+        Also audit with the nonlinear probes (quadratic, RBF kernel, boosted trees, MLP).
     alias : str, optional
         Point this alias at the new version once it is stored.
     reason : str

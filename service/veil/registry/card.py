@@ -8,13 +8,14 @@ thresholds, library versions, and who made it when.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import platform
 from datetime import UTC, datetime
 from importlib import metadata
 from typing import Any
 
-from veil.audit.report import AuditReport, ProbeScore, RegressionScore
+from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
 from veil.maps.artifact import MapArtifact
@@ -104,7 +105,18 @@ def build_card(
 
 
 def card_audit(card: dict[str, Any]) -> AuditReport:
-    return AuditReport.from_dict(card["audit"])
+    audit = AuditReport.from_dict(card["audit"])
+    # Cards written before the audit named its classes hold them in the attribute (sorted, as the audit's codes).
+    if audit.classes is None and card["attribute"]["classes"]:
+        audit = dataclasses.replace(audit, classes=tuple(card["attribute"]["classes"]))
+    return audit
+
+
+def protocol_text(audit: AuditReport) -> str:
+    """How the card's probes were trained and tested."""
+    if audit.protocol is None:
+        return "not recorded (the card was written before the audit recorded its protocol)"
+    return audit.protocol.describe(audit.n_heldout)
 
 
 def _dropped(card: dict[str, Any]) -> str:
@@ -122,6 +134,7 @@ def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
         ("created", f"{card['created_at']} by {card['created_by']}"),
         ("data", f"{card['data']['rows']} rows{_dropped(card)}, sha256 {card['data']['fingerprint_sha256'][:16]}…"),
         ("split", f"{card['split']['holdout']:.0%} held out, seed {card['split']['seed']}"),
+        ("probes", protocol_text(audit)),
     ]
     if isinstance(lk.linear_after, ProbeScore) and isinstance(lk.linear_before, ProbeScore):
         rows.append(("majority baseline", f"{lk.linear_after.majority:.3f}"))
@@ -135,10 +148,12 @@ def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
         )
     elif isinstance(lk.linear_after, RegressionScore) and isinstance(lk.linear_before, RegressionScore):
         rows.append(("ridge R² before / after", f"{lk.linear_before.r2:.3f} / {lk.linear_after.r2:.3f}"))
-    if lk.nonlinear_after is not None and lk.nonlinear_before is not None:
-        rows.append(
-            ("MLP probe before / after", f"{lk.nonlinear_before.accuracy:.3f} / {lk.nonlinear_after.accuracy:.3f}")
-        )
+    for name, before, after in lk.probes():
+        if name != "linear" and isinstance(before, ProbeScore) and isinstance(after, ProbeScore):
+            rows.append((f"{PROBE_LABELS[name]} before / after", f"{before.accuracy:.3f} / {after.accuracy:.3f}"))
+    strongest = audit.strongest_after()
+    if strongest is not None:
+        rows.append(("strongest probe after", strongest))
     rows += [
         ("relative distortion", f"{ut.relative_distortion:.4f}"),
         ("mean cosine(x, x')", f"{ut.mean_cosine:.4f}"),

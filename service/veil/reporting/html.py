@@ -14,8 +14,8 @@ import matplotlib.pyplot as plt
 import numpy as np
 from matplotlib.figure import Figure
 
-from veil.audit.report import AuditReport, ProbeScore
-from veil.registry.card import card_audit
+from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore
+from veil.registry.card import card_audit, protocol_text
 from veil.reporting.plotdata import PlotData
 
 REPORT_FILE = "report.html"
@@ -24,16 +24,17 @@ body { font: 15px/1.45 system-ui, sans-serif; margin: 2em auto; max-width: 1080p
 h1 { font-size: 1.6em; margin-bottom: .2em; }
 h2 { font-size: 1.2em; margin-top: 1.8em; border-bottom: 1px solid #d8dde6; }
 table { border-collapse: collapse; margin: .6em 0; } td, th { padding: .25em .8em; border-bottom: 1px solid #eef0f4; }
-th { text-align: left; font-weight: 600; } .muted { color: #5b6575; }
+th { text-align: left; font-weight: 600; } .muted { color: #5b6575; } .strongest { background: #eef4fb; }
+table.probes td { white-space: nowrap; }
 .caution { background: #fff6e0; border-left: 4px solid #e0a800; padding: .6em 1em; margin: 1em 0; }
 figure { margin: 1em 0; } figure svg { max-width: 100%; height: auto; }
 pre { background: #f5f7fa; padding: .8em; overflow-x: auto; font-size: 13px; }
 """
 _BEFORE, _AFTER = "#8a94a6", "#2b6cb0"
 _CAUTION = (
-    "Linear erasure removes what a linear model can read; nonlinear models may still recover traces (see the MLP "
-    "figures). Every figure here holds for the data measured and its distribution only. This report is no legal "
-    "or compliance guarantee: defer to local law and qualified review."
+    "Linear erasure removes what a linear model can read; nonlinear models may still recover traces (see the "
+    "nonlinear probes' figures). Every figure here holds for the data measured and its distribution only. This "
+    "report is no legal or compliance guarantee: defer to local law and qualified review."
 )
 
 
@@ -52,10 +53,9 @@ def _svg(draw: Callable[[Figure], None], size: tuple[float, float]) -> str:
 
 
 def _leakage_plot(audit: AuditReport) -> Callable[[Figure], None]:
-    lk = audit.leakage
-    pairs = [("linear probe", lk.linear_before, lk.linear_after)]
-    if lk.nonlinear_before is not None and lk.nonlinear_after is not None:
-        pairs.append(("MLP probe", lk.nonlinear_before, lk.nonlinear_after))
+    pairs = [
+        (PROBE_LABELS[name].removesuffix(" probe"), before, after) for name, before, after in audit.leakage.probes()
+    ]
 
     def draw(figure: Figure) -> None:
         axes = figure.add_subplot()
@@ -77,7 +77,8 @@ def _leakage_plot(audit: AuditReport) -> Callable[[Figure], None]:
         axes.set_xticks(range(len(pairs)), [p[0] for p in pairs])
         axes.set_ylim(0, 1.05)
         axes.set_ylabel("held-out accuracy (95% interval)")
-        axes.legend(loc="lower right")
+        # Beside the axes: with five probes, bars fill every corner inside them.
+        axes.legend(loc="center left", bbox_to_anchor=(1.01, 0.5))
 
     return draw
 
@@ -169,6 +170,50 @@ def _retrieval_plot(audit: AuditReport) -> Callable[[Figure], None] | None:
     return draw
 
 
+def _probe_table(audit: AuditReport) -> str:
+    """Each probe's held-out figures before and after erasure, per class too; the strongest after is marked."""
+    lk = audit.leakage
+    chance = audit.balanced_chance
+    classes = audit.classes or ()
+    header = [
+        "probe",
+        "accuracy before [95%]",
+        "accuracy after [95%]",
+        "majority",
+        "balanced accuracy after" + ("" if chance is None else f" (chance {chance:.3f})"),
+        *(f"recall after: {label}" for label in classes),
+    ]
+    body = []
+    strongest = lk.strongest if audit.strongest_after() is not None else None
+    for name, before, after in lk.probes():
+        if not (isinstance(before, ProbeScore) and isinstance(after, ProbeScore)):
+            continue
+        # Cards written before per-class figures have no recall.
+        recall = [f"{value:.3f}" for value in after.recall or ()] or ["not recorded"] * len(classes)
+        cells = [
+            PROBE_LABELS[name] + (" (strongest)" if name == strongest else ""),
+            before.with_interval(),
+            after.with_interval(),
+            f"{after.majority:.3f}",
+            f"{after.balanced_accuracy:.3f}",
+            *recall,
+        ]
+        marked = ' class="strongest"' if name == strongest else ""
+        body.append(f"<tr{marked}>" + "".join(f"<td>{html.escape(cell)}</td>" for cell in cells) + "</tr>")
+    if not body:
+        return (
+            '<h2>Probes</h2><p class="muted">A continuous attribute: only the ridge probe ran (see the full audit).</p>'
+        )
+    head = "<tr>" + "".join(f"<th>{html.escape(cell)}</th>" for cell in header) + "</tr>"
+    text = f"Probes: {protocol_text(audit)}."
+    if strongest is not None:
+        text += (
+            " The strongest is the probe with the most held-out rows right after erasure (a tie goes to the one "
+            "listed first); where intervals overlap, the order between those probes is not settled."
+        )
+    return f'<h2>Probes</h2><p class="muted">{html.escape(text)}</p><table class="probes">{head}{"".join(body)}</table>'
+
+
 def _table(rows: Sequence[tuple[str, str]]) -> str:
     cells = "".join(f"<tr><th>{html.escape(a)}</th><td>{html.escape(b)}</td></tr>" for a, b in rows)
     return f"<table>{cells}</table>"
@@ -190,6 +235,7 @@ def render_report(version_id: str, card: dict[str, Any], history: Sequence[dict[
         ("fitting data", f"{card['data']['rows']} rows ({card['data']['fit_rows']} fit, {audit.n_heldout} held out)"),
         ("data sha256", card["data"]["fingerprint_sha256"]),
         ("split", f"row-index hash, seed {card['split']['seed']}, {card['split']['holdout']:.0%} held out"),
+        ("probes", protocol_text(audit)),
         ("created", f"{card['created_at']} by {card['created_by']}"),
         ("software", ", ".join(f"{k} {v}" for k, v in card["software"].items())),
     ]
@@ -201,7 +247,8 @@ def render_report(version_id: str, card: dict[str, Any], history: Sequence[dict[
         f"<h1>veil report: {html.escape(card['name'])} {html.escape(version_id)}</h1>",
         f'<p class="caution">{html.escape(_CAUTION)}</p>',
         "<h2>Version</h2>" + _table(summary),
-        _figure("Leakage before and after erasure", _leakage_plot(audit), (7, 3.6), ""),
+        _figure("Leakage before and after erasure", _leakage_plot(audit), (8, 3.6), ""),
+        _probe_table(audit),
         _figure("Fitting iterations", _history_plot(card["method"], history), (7, 3.2), iterations_missing),
         _figure("Held-out embeddings, coloured by attribute", _scatter_plot(plots, classes), (11, 4.4), ""),
         _figure("Per-vector distortion", _distortion_plot(plots), (7, 3.2), ""),
