@@ -160,8 +160,9 @@ def classification_score(
     baseline is the accuracy of always predicting the commonest class.
     Finished folds are reported to ``stage`` (see :mod:`veil.progress`).
     """
-    splitter = StratifiedKFold(n_splits=probe_folds(codes, folds), shuffle=True, random_state=random_state)
-    return score_predictions(codes, held_out_predictions(model, x, codes, splitter, stage=stage))
+    return score_predictions(
+        codes, cross_val_labels(model, x, codes, folds=folds, random_state=random_state, stage=stage)
+    )
 
 
 def cross_val_labels(
