@@ -145,3 +145,17 @@ def test_rlace_of_rank_one_on_real_embeddings_leaves_what_mean_projection_leaves
     after_rlace = _held_out_probe_after(RLACE(rank=1, random_state=0), profiles)
     after_mean_projection = _held_out_probe_after(MeanProjection(), profiles)
     assert abs(after_rlace - after_mean_projection) <= 0.02
+
+
+@pytest.mark.parametrize("eraser_name", ["leace", "meanproj", "inlp-moments", "rlace"])
+def test_dead_coordinates_of_real_embeddings_pass_through_untouched(eraser_name: str, profiles: Split) -> None:
+    make = {**ERASERS, "rlace": lambda: RLACE(random_state=0)}[eraser_name]
+    # all-MiniLM-L6-v2 leaves three coordinates with values near 1e-33 and 1e-8 (numpy's variance: at most
+    # 1e-10 of the largest).  An eraser that wrote even rounding into them would leave a copy of the attribute
+    # that scikit-learn's boosted trees read, since a split threshold does not care about scale.
+    eraser = make().fit(profiles.x_fit, profiles.z_fit)
+    variances = profiles.x_fit.astype(np.float64).var(axis=0)
+    dead = np.flatnonzero(variances <= 1e-10 * variances.max())
+    assert dead.size == 3
+    erased = eraser.transform(profiles.x_held)
+    np.testing.assert_array_equal(erased[:, dead], profiles.x_held[:, dead])

@@ -74,3 +74,19 @@ def test_normalize_returns_unit_rows_and_is_what_the_artifact_serves() -> None:
     out = eraser.transform(x)
     np.testing.assert_allclose(np.linalg.norm(out, axis=1), 1.0, rtol=1e-12)
     np.testing.assert_allclose(eraser.export().apply(x), out, rtol=1e-12)
+
+
+def test_a_map_leaving_coordinates_untouched_passes_them_through_and_is_the_map_with_those_rows_zeroed() -> None:
+    rng = np.random.default_rng(5)
+    d, k = 9, 3
+    mapping = AffineLowRankMap(mean=rng.normal(size=d), u=rng.normal(size=(d, k)), v=rng.normal(size=(d, k)))
+    kept = mapping.leaving_untouched(np.array([2, 7]))
+    x = rng.normal(size=(50, d))
+    out = kept.apply(x)
+    np.testing.assert_array_equal(out[:, [2, 7]], x[:, [2, 7]])
+    # Reference: the dense map x' = x - (x - μ) V Uᵀ built with numpy from the zeroed factors.
+    u, v = mapping.u.copy(), mapping.v.copy()
+    u[[2, 7]] = 0.0
+    v[[2, 7]] = 0.0
+    np.testing.assert_allclose(out, x - (x - mapping.mean) @ v @ u.T, rtol=1e-12, atol=1e-12)
+    assert mapping.leaving_untouched(np.array([], dtype=np.intp)) is mapping

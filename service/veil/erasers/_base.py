@@ -12,6 +12,7 @@ from sklearn.utils.validation import check_is_fitted, validate_data
 
 from veil.maps.artifact import MapArtifact
 from veil.maps.attribute import EncodedAttribute, check_enough_rows, encode_attribute
+from veil.maps.linalg import dead_coordinates
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
 from veil.maps.postprocess import unit_normalize
@@ -47,7 +48,11 @@ class LinearErasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         return array, encode_attribute(z, array.shape[0], require_categorical=self._requires_categorical)
 
     def _set_fitted(self, mapping: AffineLowRankMap, moments: MomentState) -> None:
-        self.map_ = mapping
+        # A coordinate the fitting data does not use (an embedding model's dead coordinate) is passed through
+        # exactly: the factors' entries there are rounding or a correlation at 1e-8 scale, and written back they
+        # would put a copy of the attribute where the data had none, at 1e-18, which boosted trees read at 0.99
+        # on the committed sample although no dot product sees it.
+        self.map_ = mapping.leaving_untouched(dead_coordinates(moments.covariance_xx))
         self.moments_ = moments
         self.classes_ = moments.labels
 

@@ -131,6 +131,25 @@ def whitening_factors(
     return np.ascontiguousarray(eigenvectors[:, keep]), 1.0 / np.sqrt(eigenvalues[keep])
 
 
+def dead_coordinates(covariance: Float64Array) -> NDArray[np.intp]:
+    """Coordinates whose variance is at most :data:`COVARIANCE_RTOL` of the largest coordinate's.
+
+    Embedding models leave a few such coordinates (all-MiniLM-L6-v2 has three,
+    with values near 1e-33 and 1e-8): they carry nothing a dot product sees.
+
+    Parameters
+    ----------
+    covariance : ndarray of shape (d, d)
+
+    Returns
+    -------
+    ndarray of shape (n_dead,), in increasing order
+    """
+    variances = np.diag(np.asarray(covariance, dtype=np.float64))
+    top = float(variances.max()) if variances.size else 0.0
+    return np.flatnonzero(variances <= COVARIANCE_RTOL * max(top, 0.0))
+
+
 def whiten(x: NDArray[np.floating], eigenvectors: Float64Array, scale: Float64Array) -> Float64Array:
     """Apply ``W`` from :func:`whitening_factors` to the rows of ``x`` (shape (n, d) → (n, r))."""
     return (np.asarray(x, dtype=np.float64) @ eigenvectors) * scale

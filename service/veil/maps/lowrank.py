@@ -101,6 +101,19 @@ class AffineLowRankMap:
         """``U Vᵀ (m - μ)``: the component a row at mean ``m`` carries, shape (d,)."""
         return np.asarray(((np.asarray(target_mean, dtype=np.float64) - self.mean) @ self.v) @ self.u.T)
 
+    def leaving_untouched(self, coordinates: NDArray[np.integer]) -> AffineLowRankMap:
+        """The same map with the rows of ``U`` and ``V`` at ``coordinates`` set to zero.
+
+        Those coordinates then neither feed the removed component nor receive
+        any of it: the map passes them through exactly.
+        """
+        if len(coordinates) == 0:
+            return self
+        u, v = self.u.copy(), self.v.copy()
+        u[coordinates] = 0.0
+        v[coordinates] = 0.0
+        return AffineLowRankMap(mean=self.mean, u=u, v=v)
+
     def removed_variance_share(self, covariance: Float64Array) -> float:
         """``E‖U Vᵀ (x − μ)‖² / E‖x − μ‖² = tr(Uᵀ U Vᵀ Σ V) / tr Σ`` for data of covariance ``Σ`` (d, d)."""
         total = float(np.trace(covariance))
