@@ -1,0 +1,297 @@
+"""Class-conditional Gaussian transport: every class's Gaussian carried onto their common barycenter."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from typing import Any, Literal
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+from sklearn.base import BaseEstimator, TransformerMixin
+from sklearn.covariance import ledoit_wolf_shrinkage
+from sklearn.linear_model import LogisticRegression
+from sklearn.utils.validation import check_is_fitted, validate_data
+
+from veil._validation import check_enough_rows, check_positive_int, encode_attribute
+from veil.audit.probes import FlooredScaler
+from veil.erasers._base import FLOAT_DTYPES
+from veil.erasers.leace import LEACE
+from veil.gaussians import barycenter_covariance, monge_matrix, require_positive_definite
+from veil.linalg import COVARIANCE_RTOL, whitening_factors
+from veil.postprocess import unit_normalize
+from veil.transport_map import ClassTransportMap
+
+Float64Array = NDArray[np.float64]
+
+
+class GaussianTransport(TransformerMixin, BaseEstimator):  # type: ignore[misc]
+    """Move each class's Gaussian onto the classes' 2-Wasserstein barycenter.
+
+    Each class ``c`` is modelled as ``N(μ_c, Σ_c)`` within the support of the
+    fitting data (directions with no spread are left as they are).  The
+    barycenter ``N(μ, S)`` of the class Gaussians, weighted by the class
+    shares, has the overall mean ``μ`` and the covariance ``S`` of the
+    fixed-point iteration in :func:`veil.gaussians.barycenter_covariance`;
+    each class is carried onto it by the closed-form Monge map between
+    Gaussians, ``T_c(x) = μ + A_c (x - μ_c)``.  On the fitting rows, moved
+    with their own class's map and without shrinkage, every class then has
+    the same mean and the same covariance: no reader of first or second
+    moments tells the classes apart.
+
+    **This map reads the attribute in order to remove it, and it is not
+    affine.**  At apply time the class of a row is inferred by a stored
+    linear (logistic) classifier, which takes the most probable class
+    (``inference="hard"``) or averages the class maps by its probabilities
+    (``inference="soft"``).  Where that classifier errs, a row is moved by
+    the wrong class's map; where the attribute is hard to infer linearly,
+    the map removes correspondingly less.
+
+    Parameters
+    ----------
+    shrinkage : "ledoit-wolf" or float, default="ledoit-wolf"
+        Shrink each class covariance towards a multiple of the identity:
+        the Ledoit-Wolf coefficient, or a fixed coefficient in [0, 1].  With
+        0 every class needs more rows than the support has dimensions.
+    inference : {"hard", "soft"}, default="hard"
+        How the class of a row is taken at apply time.
+    rank : int or None, default=None
+        Directions of ``A_c - I`` kept per class, those that move the class's
+        rows most (largest ``g² · Var``); ``None`` keeps all of the support.
+        Applying costs about ``2·d·rank`` multiply-adds per row.
+    then_leace : bool, default=False
+        Fit LEACE on the transported fitting rows and apply it after the
+        transport (it removes the linear trace the inference leaves).
+    classifier_c : float, default=1.0
+        Inverse L2 penalty of the stored logistic classifier (on standardised features).
+    max_iter : int, default=200
+        Iterations of the barycenter's fixed point.
+    tol : float, default=1e-10
+        Relative Frobenius change at which the barycenter iteration stops.
+    normalize : bool, default=False
+        Re-normalise cleaned rows to unit length.
+    random_state : int or None, default=None
+        Seed of the classifier (for solvers that use one).
+
+    Attributes
+    ----------
+    map_ : ClassTransportMap
+        The fitted map.
+    classes_ : ndarray of shape (n_classes,)
+    class_means_ : ndarray of shape (n_classes, n_features)
+    barycenter_covariance_ : ndarray of shape (r, r)
+        ``S`` in the support basis ``support_``.
+    class_covariances_ : ndarray of shape (n_classes, r, r)
+        The (shrunk) class covariances in the support basis.
+    support_ : ndarray of shape (n_features, r)
+        Orthonormal basis of the fitting data's support.
+    shrinkage_ : ndarray of shape (n_classes,)
+        The shrinkage coefficient used for each class.
+    n_iter_ : int
+        Iterations the barycenter took.
+    n_features_in_ : int
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from veil.erasers.transport import GaussianTransport
+    >>> rng = np.random.default_rng(0)
+    >>> z = rng.integers(0, 2, 2000)
+    >>> X = rng.normal(size=(2000, 4)) * np.where(z[:, None] == 1, 2.0, 0.5) + 3.0 * z[:, None]
+    >>> moved = GaussianTransport(shrinkage=0.0).fit(X, z).transform(X)
+    >>> spread = [moved[z == c].std(axis=0).round(1) for c in (0, 1)]
+    >>> bool(np.allclose(spread[0], spread[1], atol=0.1))
+    True
+    """
+
+    method = "transport"
+
+    def __init__(
+        self,
+        *,
+        shrinkage: Literal["ledoit-wolf"] | float = "ledoit-wolf",
+        inference: Literal["hard", "soft"] = "hard",
+        rank: int | None = None,
+        then_leace: bool = False,
+        classifier_c: float = 1.0,
+        max_iter: int = 200,
+        tol: float = 1e-10,
+        normalize: bool = False,
+        random_state: int | None = None,
+    ) -> None:
+        self.shrinkage = shrinkage
+        self.inference = inference
+        self.rank = rank
+        self.then_leace = then_leace
+        self.classifier_c = classifier_c
+        self.max_iter = max_iter
+        self.tol = tol
+        self.normalize = normalize
+        self.random_state = random_state
+
+    def __sklearn_tags__(self) -> Any:
+        tags = super().__sklearn_tags__()
+        # The attribute z plays the role of y: no fit without it.
+        tags.target_tags.required = True
+        tags.transformer_tags.preserves_dtype = ["float64", "float32"]
+        return tags
+
+    def _check_params(self) -> None:
+        if self.shrinkage != "ledoit-wolf" and not (
+            isinstance(self.shrinkage, (int, float))
+            and not isinstance(self.shrinkage, bool)
+            and 0 <= self.shrinkage <= 1
+        ):
+            raise ValueError(f"shrinkage must be 'ledoit-wolf' or a number in [0, 1], got {self.shrinkage!r}")
+        if self.inference not in ("hard", "soft"):
+            raise ValueError(f"inference must be 'hard' or 'soft', got {self.inference!r}")
+        if self.rank is not None:
+            check_positive_int("rank", self.rank)
+        check_positive_int("max_iter", self.max_iter)
+        if not (isinstance(self.classifier_c, (int, float)) and self.classifier_c > 0):
+            raise ValueError(f"classifier_c must be a positive number, got {self.classifier_c!r}")
+        if not (isinstance(self.tol, (int, float)) and self.tol > 0):
+            raise ValueError(f"tol must be a positive number, got {self.tol!r}")
+
+    def _class_covariance(self, rows: Float64Array, label: object) -> tuple[Float64Array, float]:
+        centred = rows - rows.mean(axis=0)
+        covariance = centred.T @ centred / (rows.shape[0] - 1)
+        if self.shrinkage == "ledoit-wolf":
+            coefficient = float(ledoit_wolf_shrinkage(centred, assume_centered=True))
+        else:
+            coefficient = float(self.shrinkage)
+        if coefficient > 0:
+            level = float(np.trace(covariance)) / covariance.shape[0]
+            covariance = (1 - coefficient) * covariance + coefficient * level * np.eye(covariance.shape[0])
+        elif rows.shape[0] <= covariance.shape[0]:
+            # Structural: fewer centred rows than dimensions cannot span them, whatever the values.
+            raise ValueError(
+                f"class {label!r} has {rows.shape[0]} rows for a {covariance.shape[0]}-dimensional support; "
+                "its covariance is singular: use shrinkage"
+            )
+        require_positive_definite(covariance, f"the covariance of class {label!r}", rtol=COVARIANCE_RTOL)
+        return covariance, coefficient
+
+    def _classifier(self, x: Float64Array, codes: NDArray[np.intp]) -> tuple[Float64Array, Float64Array]:
+        scaler = FlooredScaler().fit(x)
+        model = LogisticRegression(C=float(self.classifier_c), max_iter=3000, random_state=self.random_state)
+        model.fit(scaler.transform(x), codes)
+        # Fold the standardisation into the coefficients, so applying is one product with the raw rows.
+        coef = np.asarray(model.coef_, dtype=np.float64) / scaler.scale_
+        intercept = np.asarray(model.intercept_, dtype=np.float64) - coef @ scaler.mean_
+        if coef.shape[0] == 1:
+            # Binary: logits (0, w·x + b) give the same probabilities as the sigmoid.
+            coef = np.vstack([np.zeros_like(coef), coef])
+            intercept = np.concatenate([[0.0], intercept])
+        return coef, intercept
+
+    def fit(self, X: ArrayLike, z: object) -> GaussianTransport:
+        """Fit the class Gaussians, their barycenter, the class maps and the classifier.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            Embeddings.
+        z : array-like of shape (n_samples,)
+            Class labels of the attribute (integers or strings).
+
+        Returns
+        -------
+        self
+        """
+        self._check_params()
+        array = validate_data(self, X, reset=True, dtype=FLOAT_DTYPES, ensure_min_samples=1)
+        attribute = encode_attribute(z, array.shape[0], require_categorical=True)
+        labels = attribute.labels
+        assert labels is not None  # require_categorical guarantees class labels
+        check_enough_rows(array.shape[0], labels)
+        codes = attribute.codes
+        counts = np.bincount(codes, minlength=labels.size)
+        if counts.min() < 2:
+            smallest = labels[int(np.argmin(counts))]
+            raise ValueError(f"every class needs at least 2 rows for a covariance; class {smallest!r} has 1")
+        x = np.asarray(array, dtype=np.float64)
+        mean = x.mean(axis=0)
+        centred = x - mean
+        # The same support cut as LEACE's whitening: no spread, no transport (and no rank decided by round-off).
+        support, _ = whitening_factors(centred.T @ centred / (x.shape[0] - 1))
+        if support.shape[1] == 0:
+            raise ValueError("the rows of X do not vary: there is nothing to transport")
+        inside = centred @ support
+        priors = counts / counts.sum()
+        class_means = np.stack([inside[codes == c].mean(axis=0) for c in range(labels.size)])
+        fitted = [self._class_covariance(inside[codes == c], labels[c]) for c in range(labels.size)]
+        covariances = [covariance for covariance, _ in fitted]
+        barycenter = barycenter_covariance(covariances, priors, max_iter=self.max_iter, tol=self.tol)
+        keep = support.shape[1] if self.rank is None else min(int(self.rank), support.shape[1])
+        directions, gains = [], []
+        for covariance in covariances:
+            eigenvalues, eigenvectors = np.linalg.eigh(
+                monge_matrix(covariance, barycenter.covariance) - np.eye(len(covariance))
+            )
+            # Order by how far each direction moves the class's rows: g² · Var_c along it.
+            moved = eigenvalues**2 * np.einsum("ij,ik,kj->j", eigenvectors, covariance, eigenvectors)
+            order = np.argsort(-moved, kind="stable")[:keep]
+            directions.append(support @ eigenvectors[:, order])
+            gains.append(eigenvalues[order])
+        coef, intercept = self._classifier(x, codes)
+        transport_map = ClassTransportMap(
+            mean=mean,
+            class_means=mean + class_means @ support.T,
+            directions=np.stack(directions),
+            gains=np.stack(gains),
+            classifier_coef=coef,
+            classifier_intercept=intercept,
+            priors=priors,
+            soft=self.inference == "soft",
+        )
+        if self.then_leace:
+            after = LEACE().fit(transport_map.apply(x), codes).map_
+            transport_map = replace(transport_map, after=after)
+        self.map_ = transport_map
+        self.classes_ = labels
+        self.class_means_ = transport_map.class_means
+        self.barycenter_covariance_ = barycenter.covariance
+        self.class_covariances_ = np.stack(covariances)
+        self.support_ = support
+        self.shrinkage_ = np.array([coefficient for _, coefficient in fitted])
+        self.n_iter_ = barycenter.n_iter
+        return self
+
+    def transform(self, X: ArrayLike) -> NDArray[np.floating]:
+        """Move each row onto the barycenter with the map of its inferred class.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+
+        Returns
+        -------
+        X_moved : ndarray of shape (n_samples, n_features)
+            float32 for float32 input, float64 otherwise; unit-length rows
+            when ``normalize=True``.
+        """
+        check_is_fitted(self, "map_")
+        array = validate_data(self, X, reset=False, dtype=FLOAT_DTYPES)
+        out = self.map_.apply(array)
+        return unit_normalize(out) if self.normalize else out
+
+    def counterfactual(self, X: ArrayLike, target: object) -> NDArray[np.floating]:
+        """Carry each row from its inferred class onto the Gaussian of class ``target``.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+        target : label
+            One of ``classes_``.
+
+        Returns
+        -------
+        X_cf : ndarray of shape (n_samples, n_features)
+        """
+        check_is_fitted(self, "map_")
+        array = validate_data(self, X, reset=False, dtype=FLOAT_DTYPES)
+        matches = np.flatnonzero(self.classes_ == np.asarray(target))
+        if matches.size != 1:
+            raise ValueError(f"unknown target class {target!r}; the classes are {self.classes_.tolist()}")
+        out = self.map_.towards(array, int(matches[0]))
+        return unit_normalize(out) if self.normalize else out
