@@ -1,4 +1,4 @@
-"""Optimal transport between Gaussians (veil.gaussians) against scipy.linalg and closed forms."""
+"""Optimal transport between Gaussians (veil.maps.gaussians) against scipy.linalg and closed forms."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import pytest
 import scipy.linalg
 from numpy.typing import NDArray
 
-from veil.gaussians import barycenter_covariance, monge_matrix, psd_power, require_positive_definite, wasserstein2
+from veil.maps.gaussians import barycenter_covariance, monge_matrix, psd_power, require_positive_definite, wasserstein2
 
 
 def _spd(rng: np.random.Generator, r: int) -> NDArray[np.float64]:

@@ -14,8 +14,8 @@ from sklearn.utils.estimator_checks import parametrize_with_checks
 
 from veil.erasers import LEACE
 from veil.erasers.transport import GaussianTransport
-from veil.gaussians import monge_matrix
-from veil.transport_map import ClassTransportMap
+from veil.maps.gaussians import monge_matrix
+from veil.maps.transport import ClassTransportMap
 
 
 def _planted(n: int = 3000, d: int = 6, seed: int = 0) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
@@ -147,7 +147,7 @@ def test_stored_arrays_rebuild_the_same_map() -> None:
     rebuilt = ClassTransportMap.from_arrays(fitted.arrays())
     np.testing.assert_array_equal(rebuilt.apply(x), fitted.apply(x))
     np.testing.assert_allclose(fitted.component(x), x - fitted.apply(x))
-    assert rebuilt.describe() == fitted.describe() == {"dim": 6, "classes": 3, "rank": 6, "rank_after": 2}
+    assert rebuilt.describe() == fitted.describe() == {"dim": 6, "class_maps": 3, "rank": 6, "rank_after": 2}
     assert ClassTransportMap.kind == "class-transport"
     arrays = dict(fitted.arrays())
     arrays["gains"] = np.full_like(arrays["gains"], -1.5)

@@ -8,7 +8,7 @@ pyarrow or matplotlib with those): ``veil versions`` must start fast.
 from __future__ import annotations
 
 #: The fitting methods ``veil fit --method`` accepts (``veil.fitting.METHODS`` maps them to estimators).
-METHOD_NAMES = ("leace", "meanproj", "inlp", "rlace")
+METHOD_NAMES = ("leace", "meanproj", "inlp", "rlace", "transport")
 #: Key (.npz) or column (Parquet) of the embeddings.
 EMBEDDINGS_KEY = "embedding"
 #: Rows cleaned at a time by ``veil apply``.

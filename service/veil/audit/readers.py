@@ -23,8 +23,9 @@ from sklearn.model_selection import train_test_split
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import PolynomialFeatures, StandardScaler
 
-from veil.audit.probes import FlooredScaler, LiveFeatures, linear_probe, nonlinear_probe, probe_folds
+from veil.audit.probes import LiveFeatures, linear_probe, nonlinear_probe, probe_folds
 from veil.audit.report import PROBES
+from veil.erasers.scaling import FlooredScaler
 
 # Principal components the quadratic probe expands: 32 give 560 features (components and their pairwise
 # products), few enough for a logistic regression on a thousand rows.  On the committed sample after LEACE

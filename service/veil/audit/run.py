@@ -22,11 +22,11 @@ from veil.audit.report import (
     Retrieval,
     Utility,
 )
-from veil.erasers._base import LinearErasure
+from veil.erasers._base import Erasure
 from veil.maps.attribute import encode_attribute
 from veil.maps.linalg import whiten, whitening_factors
 
-E = TypeVar("E", bound=LinearErasure)
+E = TypeVar("E", bound=Erasure)
 NEIGHBOURS = 10
 
 
@@ -47,7 +47,7 @@ def _class_mean_noise_floor(codes: NDArray[np.intp], rank: int) -> float:
 
 
 def audit(
-    eraser: LinearErasure,
+    eraser: Erasure,
     X: ArrayLike,
     z: object,
     *,
@@ -67,7 +67,7 @@ def audit(
 
     Parameters
     ----------
-    eraser : LinearErasure
+    eraser : Erasure
         A fitted eraser.  What is audited is ``eraser.transform``: exactly
         what would be served, re-normalisation included.
     X : array-like of shape (n_heldout, d)
@@ -220,13 +220,15 @@ def audit(
         and isinstance(strongest_after, ProbeScore)
         and strongest_after.interval_low > max(linear_after.accuracy, linear_after.majority)
     ):
-        notes.append(
-            f"the {PROBE_LABELS[str(strongest)]} recovers more than the linear one: "
+        why = (
             "linear erasure does not remove nonlinear traces"
+            if eraser.map_.kind == "affine-lowrank"
+            else "this map leaves nonlinear traces"
         )
+        notes.append(f"the {PROBE_LABELS[str(strongest)]} recovers more than the linear one: {why}")
     return AuditReport(
         method=eraser.method,
-        rank=eraser.map_.rank,
+        rank=eraser.map_.describe()["rank"],
         n_heldout=int(raw.shape[0]),
         dim=int(raw.shape[1]),
         leakage=leakage,

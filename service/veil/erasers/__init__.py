@@ -7,10 +7,10 @@ May import: ``veil.maps``, ``veil.samples`` (the hash split INLP holds rows
 out by), ``veil.progress``.  Nothing that reads or writes versions.
 """
 
-from veil.erasers._base import LinearErasure, MomentErasure
+from veil.erasers._base import Erasure, LinearErasure, MomentErasure
 from veil.erasers.inlp import INLP
 from veil.erasers.leace import LEACE
 from veil.erasers.mean_projection import MeanProjection
 from veil.erasers.rlace import RLACE
 
-__all__ = ["INLP", "LEACE", "RLACE", "LinearErasure", "MeanProjection", "MomentErasure"]
+__all__ = ["INLP", "LEACE", "RLACE", "Erasure", "LinearErasure", "MeanProjection", "MomentErasure"]

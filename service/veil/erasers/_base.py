@@ -1,4 +1,4 @@
-"""What every veil eraser shares: validation, the factored transform, counterfactuals, export."""
+"""What every veil eraser shares: validation, transform, export; and what the linear ones share on top."""
 
 from __future__ import annotations
 
@@ -12,6 +12,7 @@ from sklearn.utils.validation import check_is_fitted, validate_data
 
 from veil.maps.artifact import MapArtifact
 from veil.maps.attribute import EncodedAttribute, check_enough_rows, encode_attribute
+from veil.maps.kinds import EmbeddingMap
 from veil.maps.linalg import dead_coordinates
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
@@ -20,16 +21,18 @@ from veil.maps.postprocess import unit_normalize
 FLOAT_DTYPES = (np.float64, np.float32)
 
 
-class LinearErasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
-    """Base class of the erasers: a fitted eraser is an :class:`AffineLowRankMap`.
+class Erasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
+    """Base class of every eraser: fitted on rows and their attribute, it holds a map of some kind.
 
-    Subclasses set, in ``fit``, ``map_`` (the map), ``moments_`` (raw-space
-    statistics of the fitting data) and ``n_features_in_``.
+    Subclasses set, in ``fit``, ``map_`` (an :class:`~veil.maps.kinds.EmbeddingMap`),
+    ``moments_`` (raw-space statistics of the fitting data, which the live
+    checks compare traffic to), ``classes_`` and ``n_features_in_``, and
+    implement :meth:`counterfactual`.
     """
 
     method: ClassVar[str]
     normalize: bool
-    map_: AffineLowRankMap
+    map_: EmbeddingMap
     moments_: MomentState
     _requires_categorical: ClassVar[bool] = False
 
@@ -40,12 +43,51 @@ class LinearErasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         tags.transformer_tags.preserves_dtype = ["float64", "float32"]
         return tags
 
-    # -- validation -----------------------------------------------------
     def _validate_fit_input(
         self, x: ArrayLike, z: object, *, reset: bool
     ) -> tuple[NDArray[np.floating], EncodedAttribute]:
         array = validate_data(self, x, reset=reset, dtype=FLOAT_DTYPES, ensure_min_samples=1)
         return array, encode_attribute(z, array.shape[0], require_categorical=self._requires_categorical)
+
+    def transform(self, X: ArrayLike) -> NDArray[np.floating]:
+        """Erase the attribute from each row.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+
+        Returns
+        -------
+        X_erased : ndarray of shape (n_samples, n_features)
+            float32 for float32 input, float64 otherwise; unit-length rows
+            when ``normalize=True``.
+        """
+        check_is_fitted(self, "map_")
+        array = validate_data(self, X, reset=False, dtype=FLOAT_DTYPES)
+        out = self.map_.apply(array)
+        return unit_normalize(out) if self.normalize else out
+
+    @abstractmethod
+    def counterfactual(self, X: ArrayLike, target: object) -> NDArray[np.floating]:
+        """Erase, then give every row the attribute ``target`` (see the subclasses)."""
+
+    def export(self) -> MapArtifact:
+        """The fitted eraser as a :class:`MapArtifact` (for the registry and the service)."""
+        check_is_fitted(self, "map_")
+        return MapArtifact(
+            method=self.method,
+            params=self.get_params(deep=False),
+            map=self.map_,
+            normalize=bool(self.normalize),
+            moments=self.moments_,
+            history=list(getattr(self, "history_", [])),
+        )
+
+
+class LinearErasure(Erasure):
+    """Base class of the linear erasers: a fitted one is an :class:`AffineLowRankMap`."""
+
+    map_: AffineLowRankMap
 
     def _set_fitted(self, mapping: AffineLowRankMap, moments: MomentState) -> None:
         # A coordinate the fitting data does not use (an embedding model's dead coordinate) is passed through
@@ -68,24 +110,6 @@ class LinearErasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         """Number of directions the eraser removes."""
         check_is_fitted(self, "map_")
         return self.map_.rank
-
-    def transform(self, X: ArrayLike) -> NDArray[np.floating]:
-        """Erase the attribute from each row.
-
-        Parameters
-        ----------
-        X : array-like of shape (n_samples, n_features)
-
-        Returns
-        -------
-        X_erased : ndarray of shape (n_samples, n_features)
-            float32 for float32 input, float64 otherwise; unit-length rows
-            when ``normalize=True``.
-        """
-        check_is_fitted(self, "map_")
-        array = validate_data(self, X, reset=False, dtype=FLOAT_DTYPES)
-        out = self.map_.apply(array)
-        return unit_normalize(out) if self.normalize else out
 
     def _target_mean(self, target: object) -> NDArray[np.float64]:
         moments: MomentState = self.moments_
@@ -126,18 +150,6 @@ class LinearErasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         out = self.map_.apply(array)
         out += self.map_.shift_towards(self._target_mean(target)).astype(out.dtype)
         return unit_normalize(out) if self.normalize else out
-
-    def export(self) -> MapArtifact:
-        """The fitted eraser as an :class:`MapArtifact` (for the registry and the service)."""
-        check_is_fitted(self, "map_")
-        return MapArtifact(
-            method=self.method,
-            params=self.get_params(deep=False),
-            map=self.map_,
-            normalize=bool(self.normalize),
-            moments=self.moments_,
-            history=list(getattr(self, "history_", [])),
-        )
 
 
 class MomentErasure(LinearErasure):

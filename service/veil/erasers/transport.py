@@ -3,35 +3,35 @@
 from __future__ import annotations
 
 from dataclasses import replace
-from typing import Any, Literal
+from typing import Literal
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.covariance import ledoit_wolf_shrinkage
 from sklearn.linear_model import LogisticRegression
 from sklearn.utils.validation import check_is_fitted, validate_data
 
-from veil._validation import check_enough_rows, check_positive_int, encode_attribute
-from veil.audit.probes import FlooredScaler
-from veil.erasers._base import FLOAT_DTYPES
+from veil.erasers._base import FLOAT_DTYPES, Erasure
 from veil.erasers.leace import LEACE
-from veil.gaussians import barycenter_covariance, monge_matrix, require_positive_definite
-from veil.linalg import COVARIANCE_RTOL, whitening_factors
-from veil.postprocess import unit_normalize
-from veil.transport_map import ClassTransportMap
+from veil.erasers.scaling import FlooredScaler
+from veil.maps.attribute import check_enough_rows, check_positive_int
+from veil.maps.gaussians import barycenter_covariance, monge_matrix, require_positive_definite
+from veil.maps.linalg import COVARIANCE_RTOL, dead_coordinates, whitening_factors
+from veil.maps.moments import MomentState
+from veil.maps.postprocess import unit_normalize
+from veil.maps.transport import ClassTransportMap
 
 Float64Array = NDArray[np.float64]
 
 
-class GaussianTransport(TransformerMixin, BaseEstimator):  # type: ignore[misc]
+class GaussianTransport(Erasure):
     """Move each class's Gaussian onto the classes' 2-Wasserstein barycenter.
 
     Each class ``c`` is modelled as ``N(μ_c, Σ_c)`` within the support of the
     fitting data (directions with no spread are left as they are).  The
     barycenter ``N(μ, S)`` of the class Gaussians, weighted by the class
     shares, has the overall mean ``μ`` and the covariance ``S`` of the
-    fixed-point iteration in :func:`veil.gaussians.barycenter_covariance`;
+    fixed-point iteration in :func:`veil.maps.gaussians.barycenter_covariance`;
     each class is carried onto it by the closed-form Monge map between
     Gaussians, ``T_c(x) = μ + A_c (x - μ_c)``.  On the fitting rows, moved
     with their own class's map and without shrinkage, every class then has
@@ -76,6 +76,8 @@ class GaussianTransport(TransformerMixin, BaseEstimator):  # type: ignore[misc]
     ----------
     map_ : ClassTransportMap
         The fitted map.
+    moments_ : MomentState
+        Statistics of the fitting data (for the live checks and the audit).
     classes_ : ndarray of shape (n_classes,)
     class_means_ : ndarray of shape (n_classes, n_features)
     barycenter_covariance_ : ndarray of shape (r, r)
@@ -104,6 +106,8 @@ class GaussianTransport(TransformerMixin, BaseEstimator):  # type: ignore[misc]
     """
 
     method = "transport"
+    _requires_categorical = True
+    map_: ClassTransportMap
 
     def __init__(
         self,
@@ -127,13 +131,6 @@ class GaussianTransport(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         self.tol = tol
         self.normalize = normalize
         self.random_state = random_state
-
-    def __sklearn_tags__(self) -> Any:
-        tags = super().__sklearn_tags__()
-        # The attribute z plays the role of y: no fit without it.
-        tags.target_tags.required = True
-        tags.transformer_tags.preserves_dtype = ["float64", "float32"]
-        return tags
 
     def _check_params(self) -> None:
         if self.shrinkage != "ledoit-wolf" and not (
@@ -199,8 +196,7 @@ class GaussianTransport(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         self
         """
         self._check_params()
-        array = validate_data(self, X, reset=True, dtype=FLOAT_DTYPES, ensure_min_samples=1)
-        attribute = encode_attribute(z, array.shape[0], require_categorical=True)
+        array, attribute = self._validate_fit_input(X, z, reset=True)
         labels = attribute.labels
         assert labels is not None  # require_categorical guarantees class labels
         check_enough_rows(array.shape[0], labels)
@@ -210,10 +206,19 @@ class GaussianTransport(TransformerMixin, BaseEstimator):  # type: ignore[misc]
             smallest = labels[int(np.argmin(counts))]
             raise ValueError(f"every class needs at least 2 rows for a covariance; class {smallest!r} has 1")
         x = np.asarray(array, dtype=np.float64)
-        mean = x.mean(axis=0)
+        moments = MomentState.from_batch(array, attribute)
+        mean = moments.mean_x
         centred = x - mean
         # The same support cut as LEACE's whitening: no spread, no transport (and no rank decided by round-off).
-        support, _ = whitening_factors(centred.T @ centred / (x.shape[0] - 1))
+        # An embedding model's dead coordinates are left out of it exactly, so no class map writes into them
+        # (a rounding-level copy of the attribute there is what boosted trees read; see LinearErasure).
+        covariance = moments.covariance_xx * (x.shape[0] / (x.shape[0] - 1))
+        live = np.setdiff1d(np.arange(x.shape[1]), dead_coordinates(covariance))
+        support = np.zeros((x.shape[1], 0))
+        if live.size:
+            live_support, _ = whitening_factors(covariance[np.ix_(live, live)])
+            support = np.zeros((x.shape[1], live_support.shape[1]))
+            support[live] = live_support
         if support.shape[1] == 0:
             raise ValueError("the rows of X do not vary: there is nothing to transport")
         inside = centred @ support
@@ -248,6 +253,7 @@ class GaussianTransport(TransformerMixin, BaseEstimator):  # type: ignore[misc]
             after = LEACE().fit(transport_map.apply(x), codes).map_
             transport_map = replace(transport_map, after=after)
         self.map_ = transport_map
+        self.moments_ = moments
         self.classes_ = labels
         self.class_means_ = transport_map.class_means
         self.barycenter_covariance_ = barycenter.covariance
@@ -256,24 +262,6 @@ class GaussianTransport(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         self.shrinkage_ = np.array([coefficient for _, coefficient in fitted])
         self.n_iter_ = barycenter.n_iter
         return self
-
-    def transform(self, X: ArrayLike) -> NDArray[np.floating]:
-        """Move each row onto the barycenter with the map of its inferred class.
-
-        Parameters
-        ----------
-        X : array-like of shape (n_samples, n_features)
-
-        Returns
-        -------
-        X_moved : ndarray of shape (n_samples, n_features)
-            float32 for float32 input, float64 otherwise; unit-length rows
-            when ``normalize=True``.
-        """
-        check_is_fitted(self, "map_")
-        array = validate_data(self, X, reset=False, dtype=FLOAT_DTYPES)
-        out = self.map_.apply(array)
-        return unit_normalize(out) if self.normalize else out
 
     def counterfactual(self, X: ArrayLike, target: object) -> NDArray[np.floating]:
         """Carry each row from its inferred class onto the Gaussian of class ``target``.

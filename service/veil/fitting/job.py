@@ -29,7 +29,7 @@ from numpy.typing import NDArray
 
 from veil.checks.thresholds import AlertThresholds
 from veil.defaults import AUDIT_ROWS, ENGINES, FIT_SAMPLE_ROWS, STREAM_CHUNK_ROWS
-from veil.erasers import INLP, LinearErasure
+from veil.erasers import INLP, Erasure
 from veil.errors import DataError
 from veil.fitting.methods import fit_collecting_notes, make_eraser
 from veil.fitting.plan import PartResult, PassPlan, concatenated
@@ -195,7 +195,7 @@ def _share(limit: int | None, rows: int) -> float:
 
 
 def _local_pass(
-    plan: PassPlan, partitions: Sequence[Partition], streaming: LinearErasure | None, notes: list[str]
+    plan: PassPlan, partitions: Sequence[Partition], streaming: Erasure | None, notes: list[str]
 ) -> PartResult:
     """The pass in this process, partition by partition; ``streaming`` is given each chunk's fitting rows."""
     total = PartResult.empty()

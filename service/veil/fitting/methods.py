@@ -7,15 +7,17 @@ import warnings
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
-from veil.erasers import INLP, LEACE, RLACE, LinearErasure, MeanProjection
+from veil.erasers import INLP, LEACE, RLACE, Erasure, MeanProjection
+from veil.erasers.transport import GaussianTransport
 from veil.errors import DataError
 from veil.registry.naming import check_name
 
-METHODS: dict[str, type[LinearErasure]] = {
+METHODS: dict[str, type[Erasure]] = {
     "leace": LEACE,
     "meanproj": MeanProjection,
     "inlp": INLP,
     "rlace": RLACE,
+    "transport": GaussianTransport,
 }
 
 
@@ -28,7 +30,11 @@ def method_parameters(method: str) -> dict[str, Any]:
 
 
 def _convert(method: str, key: str, text: str, default: Any) -> Any:
-    """``text`` as the type of the parameter's default (a JSON literal where the default is None)."""
+    """``text`` as the type of the parameter's default (a JSON literal where the default is None).
+
+    Where the default is a word, a number is taken as a number: a parameter may take a named rule or a value
+    (transport's ``shrinkage=ledoit-wolf`` or ``shrinkage=0.3``), and the estimator checks which it accepts.
+    """
     try:
         if isinstance(default, bool):
             if text.lower() not in ("true", "false"):
@@ -39,7 +45,10 @@ def _convert(method: str, key: str, text: str, default: Any) -> Any:
         if isinstance(default, float):
             return float(text)
         if isinstance(default, str):
-            return text
+            try:
+                return float(text)
+            except ValueError:
+                return text
         return json.loads(text)
     except ValueError:
         kind = type(default).__name__ if default is not None else "JSON value"
@@ -70,7 +79,7 @@ def parse_parameters(method: str, assignments: Sequence[str]) -> dict[str, Any]:
 
 def make_eraser(
     name: str, alias: str | None, method: str, params: Mapping[str, Any] | None, *, seed: int, normalize: bool
-) -> LinearErasure:
+) -> Erasure:
     check_name(name)
     if alias is not None:
         check_name(alias, what="alias")
@@ -83,7 +92,7 @@ def make_eraser(
     return METHODS[method](**options, normalize=normalize)
 
 
-def fit_collecting_notes(eraser: LinearErasure, method: str, fit: Callable[[], object]) -> list[str]:
+def fit_collecting_notes(eraser: Erasure, method: str, fit: Callable[[], object]) -> list[str]:
     """Run ``fit``; bad data becomes a :class:`DataError`, and warnings become notes for the card."""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")

@@ -14,7 +14,7 @@ from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
 from veil.checks.reference import REFERENCE_FILE, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
-from veil.erasers import LinearErasure
+from veil.erasers import Erasure
 from veil.progress import phase
 from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
 from veil.registry.artifact_files import encode_artifact
@@ -37,7 +37,7 @@ class FitOutcome:
 
 
 def audit_and_store(
-    eraser: LinearErasure,
+    eraser: Erasure,
     sample: Sample,
     *,
     registry: Registry,

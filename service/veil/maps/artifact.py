@@ -10,7 +10,6 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.maps.kinds import EmbeddingMap
-from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
 from veil.maps.postprocess import unit_normalize
 
@@ -28,8 +27,7 @@ class MapArtifact:
     params : mapping
         The estimator's constructor parameters.
     map : EmbeddingMap
-        The fitted map; today always an :class:`AffineLowRankMap`,
-        ``x' = x - U Vᵀ (x - μ)`` (see :mod:`veil.maps.kinds`).
+        The fitted map, of the kind :attr:`kind` names (see :mod:`veil.maps.kinds`).
     normalize : bool
         Whether served vectors are re-normalised to unit length after erasure.
     moments : MomentState
@@ -68,13 +66,19 @@ class MapArtifact:
     def covariance(self) -> Float64Array:
         return self.moments.covariance_xx
 
-    def counterfactual_shifts(self) -> Float64Array:
-        """``U Vᵀ (μ_c − μ)`` for every class ``c``, shape (n_classes, d): what a counterfactual adds after erasure."""
-        if self.class_means is None:
+    def counterfactual(self, x: NDArray[np.floating], target: int) -> NDArray[np.floating]:
+        """Clean a batch and give every row class ``target`` (an index into :attr:`classes`), as it is served.
+
+        For an affine map, ``x' + U Vᵀ (μ_t − μ)``; for class transport, the
+        move from each row's inferred class onto class ``t``'s Gaussian.
+        """
+        class_means = self.class_means
+        if class_means is None:
             raise ValueError("counterfactuals by class need a categorical attribute")
-        if not isinstance(self.map, AffineLowRankMap):
-            raise ValueError(f"counterfactuals by class are defined for affine maps, not {self.kind!r}")
-        return np.stack([self.map.shift_towards(mean) for mean in self.class_means])
+        if not 0 <= target < class_means.shape[0]:
+            raise ValueError(f"the target class index must lie in range({class_means.shape[0]}), got {target}")
+        out = self.map.counterfactual(x, class_means, target)
+        return unit_normalize(out) if self.normalize else out
 
     def apply(self, x: NDArray[np.floating]) -> NDArray[np.floating]:
         """Erase a batch exactly as it is served (re-normalised if the artifact says so)."""

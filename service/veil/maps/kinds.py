@@ -1,21 +1,23 @@
 """The kinds of map an artifact can hold, and what every kind offers the stages after fitting.
 
-Today every method ends in an :class:`~veil.maps.lowrank.AffineLowRankMap`
-(kind ``"affine-lowrank"``).  An artifact names its kind, and the storage
-format, the service, ``veil apply`` and the live checks go through
-:class:`EmbeddingMap` only, so a map that is not affine can be added as
-another entry of :data:`MAP_KINDS`.
+The linear methods end in an :class:`~veil.maps.lowrank.AffineLowRankMap`
+(kind ``"affine-lowrank"``); class-conditional transport ends in a
+:class:`~veil.maps.transport.ClassTransportMap` (kind ``"class-transport"``),
+which is not affine.  An artifact names its kind, and the storage format,
+the service, ``veil apply`` and the live checks go through
+:class:`EmbeddingMap` only.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from typing import Any, ClassVar, Protocol
 
 import numpy as np
 from numpy.typing import NDArray
 
 from veil.maps.lowrank import AffineLowRankMap
+from veil.maps.transport import ClassTransportMap
 
 FloatArray = NDArray[np.floating]
 
@@ -36,6 +38,10 @@ class EmbeddingMap(Protocol):
         """What cleaning takes out of each row, ``x - apply(x)``, shape (n, d)."""
         ...
 
+    def counterfactual(self, x: FloatArray, class_means: NDArray[np.float64], target: int) -> FloatArray:
+        """Clean each row, then give it class ``target``; ``class_means`` (C, d) are the fitting data's."""
+        ...
+
     def removed_variance_share(self, covariance: NDArray[np.float64]) -> float:
         """Share of the variance of data with this covariance that cleaning removes."""
         ...
@@ -49,7 +55,11 @@ class EmbeddingMap(Protocol):
         ...
 
 
-MAP_KINDS: dict[str, type[AffineLowRankMap]] = {AffineLowRankMap.kind: AffineLowRankMap}
+#: How each kind is rebuilt from its stored arrays.
+MAP_KINDS: dict[str, Callable[[Mapping[str, NDArray[Any]]], EmbeddingMap]] = {
+    AffineLowRankMap.kind: AffineLowRankMap.from_arrays,
+    ClassTransportMap.kind: ClassTransportMap.from_arrays,
+}
 
 
 def map_from_arrays(kind: str, arrays: Mapping[str, NDArray[Any]]) -> EmbeddingMap:
@@ -62,4 +72,4 @@ def map_from_arrays(kind: str, arrays: Mapping[str, NDArray[Any]]) -> EmbeddingM
     """
     if kind not in MAP_KINDS:
         raise ValueError(f"unknown map kind {kind!r}; this release reads {', '.join(sorted(MAP_KINDS))}")
-    return MAP_KINDS[kind].from_arrays(arrays)
+    return MAP_KINDS[kind](arrays)

@@ -133,6 +133,12 @@ class AffineLowRankMap:
         """Its shape for people and cards: dimension and rank."""
         return {"dim": self.dim, "rank": self.rank}
 
+    def counterfactual(self, x: FloatArray, class_means: Float64Array, target: int) -> FloatArray:
+        """Erase, then add the component a row at class ``target``'s mean carries: ``x' + U Vᵀ (μ_t - μ)``."""
+        out = self.apply(x)
+        out += self.shift_towards(class_means[target]).astype(out.dtype)
+        return out
+
     def to_dense(self) -> tuple[Float64Array, Float64Array]:
         """The same map as ``x' = A x + b`` with a dense ``A`` (d, d).
 

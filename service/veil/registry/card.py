@@ -51,6 +51,16 @@ def software_versions() -> dict[str, str]:
     return versions
 
 
+# What a card says of a map kind whose guarantees differ from the linear methods'.
+KIND_CAUTIONS = {
+    "class-transport": (
+        "this map reads the attribute in order to remove it: a stored linear classifier infers each row's class "
+        "and the row is moved by that class's map; it is not affine, so its figures are measured on the "
+        "held-out rows, not guaranteed, and where the classifier errs a row is moved by another class's map"
+    ),
+}
+
+
 def build_card(
     *,
     name: str,
@@ -69,12 +79,15 @@ def build_card(
     classes = [] if artifact.classes is None else [str(c) for c in artifact.classes]
     if sample.dropped_rows:
         notes = [*notes, dropped_note(sample.dropped_rows, sample.labelled_rows + sample.dropped_rows)]
+    if artifact.kind in KIND_CAUTIONS:
+        notes = [KIND_CAUTIONS[artifact.kind], *notes]
     card = {
         "card_format": CARD_FORMAT,
         "name": name,
         "method": artifact.method,
         "params": dict(artifact.params),
         "normalize": artifact.normalize,
+        "map_kind": artifact.kind,
         **artifact.map.describe(),
         "dtype": str(sample.dtype),
         "attribute": {"key": sample.attribute_key, "classes": classes, "priors": reference.class_priors.tolist()},
@@ -125,12 +138,22 @@ def _dropped(card: dict[str, Any]) -> str:
     return f" ({dropped} dropped for a missing label)" if dropped else ""
 
 
+def _method_text(card: dict[str, Any]) -> str:
+    # Cards written before map kinds existed hold affine low-rank maps.
+    if card.get("map_kind", "affine-lowrank") == "affine-lowrank":
+        return f"{card['method']} (rank {card['rank']}, dim {card['dim']})"
+    return (
+        f"{card['method']} ({card['map_kind']} map, not affine: {card['class_maps']} class maps of "
+        f"{card['rank']} directions, then rank {card['rank_after']}, dim {card['dim']})"
+    )
+
+
 def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
     """The figures people compare between versions, as (label, text) pairs."""
     audit = card_audit(card)
     lk, ut = audit.leakage, audit.utility
     rows = [
-        ("method", f"{card['method']} (rank {card['rank']}, dim {card['dim']})"),
+        ("method", _method_text(card)),
         ("created", f"{card['created_at']} by {card['created_by']}"),
         ("data", f"{card['data']['rows']} rows{_dropped(card)}, sha256 {card['data']['fingerprint_sha256'][:16]}…"),
         ("split", f"{card['split']['holdout']:.0%} held out, seed {card['split']['seed']}"),

@@ -22,7 +22,6 @@ from numpy.typing import NDArray
 from veil.checks.reference import REFERENCE_FILE, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
 from veil.maps.artifact import MapArtifact
-from veil.maps.postprocess import unit_normalize
 from veil.registry import IntegrityError, NotFoundError, Registry, RegistryError, StoredVersion
 from veil.registry.errors import InvalidReferenceError
 from veil.registry.naming import parse_version_id
@@ -43,7 +42,6 @@ class ServedVersion:
     reference: ReferenceStatistics
     thresholds: AlertThresholds
     classes: list[str]
-    shifts: NDArray[np.float64]
     whitening: NDArray[np.float64] = field(repr=False)
 
     @property
@@ -70,7 +68,6 @@ class ServedVersion:
             reference=reference,
             thresholds=thresholds,
             classes=[str(c) for c in card.get("attribute", {}).get("classes", [])],
-            shifts=stored.artifact.counterfactual_shifts(),
             whitening=whitening,
         )
 
@@ -82,9 +79,7 @@ class ServedVersion:
         self.check_dim(x)
         if target not in self.classes:
             raise ServiceError("unknown_class", f"{target!r} is not a class of {self.name}; classes: {self.classes}")
-        out = self.artifact.map.apply(x)
-        out += self.shifts[self.classes.index(target)].astype(out.dtype)
-        return unit_normalize(out) if self.artifact.normalize else out
+        return self.artifact.counterfactual(x, self.classes.index(target))
 
     def check_dim(self, x: NDArray[np.floating]) -> None:
         if x.shape[1] != self.dim:

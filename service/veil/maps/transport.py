@@ -22,7 +22,7 @@ from typing import Any, ClassVar
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.lowrank import AffineLowRankMap
+from veil.maps.lowrank import AffineLowRankMap
 
 Float64Array = NDArray[np.float64]
 FloatArray = NDArray[np.floating]
@@ -242,6 +242,10 @@ class ClassTransportMap:
         out += (self.class_means[target] - self.mean).astype(x.dtype)
         return out
 
+    def counterfactual(self, x: FloatArray, class_means: Float64Array, target: int) -> FloatArray:
+        """:meth:`towards` class ``target`` (the map holds its own class means; ``class_means`` is not needed)."""
+        return self.towards(x, target)
+
     # -- figures and storage ------------------------------------------------------------------------------------
     def removed_variance_share(self, covariance: Float64Array) -> float:
         """Share of the variance of data with covariance ``Σ`` that the class maps' linear parts move.
@@ -282,7 +286,7 @@ class ClassTransportMap:
         """Its shape for people and cards: dimension, classes, directions per class, rank of the map after."""
         return {
             "dim": self.dim,
-            "classes": self.n_classes,
+            "class_maps": self.n_classes,
             "rank": self.rank,
             "rank_after": 0 if self.after is None else self.after.rank,
         }

@@ -1,0 +1,104 @@
+"""Class-conditional transport served like every other version: fitted, stored, read back, applied, checked."""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import numpy as np
+import pytest
+from sklearn.linear_model import LogisticRegression
+
+from veil.erasers.transport import GaussianTransport
+from veil.fitting.job import fit_version
+from veil.registry import Registry
+from veil.registry.artifact_files import decode_artifact, encode_artifact
+from veil.samples.harbourline import load_harbourline_profiles
+from veil.samples.splitting import holdout_mask
+
+from .service_fixtures import app_for, client_for, sample_of
+from .test_cli import run
+
+NAME = "profiles-transport"
+
+
+@pytest.fixture(scope="module")
+def stored(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
+    path = tmp_path_factory.mktemp("transport") / "registry"
+    profiles = load_harbourline_profiles()
+    outcome = fit_version(
+        sample_of(profiles.embedding, profiles.pronoun, "pronoun"), registry=Registry(path), name=NAME,
+        method="transport", params={"rank": 64}, nonlinear=False, alias="live",
+    )  # fmt: skip
+    return path, outcome.version_id
+
+
+def test_the_stored_version_is_the_estimator_fitted_on_the_non_held_out_rows(stored: tuple[Path, str]) -> None:
+    path, version = stored
+    profiles = load_harbourline_profiles()
+    fit = ~holdout_mask(profiles.pronoun.size, fraction=0.2, seed=0)
+    expected = GaussianTransport(rank=64, random_state=0).fit(profiles.embedding[fit], profiles.pronoun[fit])
+    artifact = Registry(path).read_version(NAME, version).artifact
+    assert artifact.kind == "class-transport"
+    np.testing.assert_allclose(artifact.apply(profiles.embedding), expected.transform(profiles.embedding), atol=1e-5)
+    # The artifact files hold it exactly: bytes in, the same map out.
+    again = decode_artifact(encode_artifact(artifact))
+    np.testing.assert_array_equal(again.apply(profiles.embedding), artifact.apply(profiles.embedding))
+
+
+def test_the_card_names_the_kind_and_says_the_map_reads_the_attribute(stored: tuple[Path, str]) -> None:
+    path, version = stored
+    card = Registry(path).read_version(NAME, version).card
+    assert card["map_kind"] == "class-transport"
+    assert card["class_maps"] == 2
+    assert "reads the attribute in order to remove it" in card["notes"][0]
+    shown = run("show", NAME, version, "--registry", path)
+    assert shown.code == 0
+    assert "class-transport map, not affine" in shown.out
+
+
+@pytest.mark.anyio
+async def test_the_service_applies_and_counterfacts_like_the_artifact(stored: tuple[Path, str]) -> None:
+    path, version = stored
+    artifact = Registry(path).read_version(NAME, version).artifact
+    profiles = load_harbourline_profiles()
+    x = profiles.embedding[:256]
+    async with client_for(app_for(path, names=[NAME])) as client:
+        body = io.BytesIO()
+        np.save(body, x)
+        applied = await client.post(
+            f"/v1/erasers/{NAME}/apply", content=body.getvalue(), headers={"Content-Type": "application/x-npy"}
+        )
+        assert applied.status_code == 200
+        assert applied.headers["x-veil-version"] == version
+        np.testing.assert_allclose(np.load(io.BytesIO(applied.content)), artifact.apply(x), atol=1e-6)
+        moved = await client.post(f"/v1/erasers/{NAME}/counterfactual", json={"vectors": x.tolist(), "target": "she"})
+        assert moved.status_code == 200
+        np.testing.assert_allclose(np.array(moved.json()["vectors"]), artifact.counterfactual(x, 1), atol=1e-5)
+        # Live checks take the transport map like any other: the fitting population is normal traffic.
+        checked = await client.post(
+            f"/v1/erasers/{NAME}/drift",
+            json={"vectors": profiles.embedding[:600].tolist(), "labels": profiles.pronoun[:600].tolist()},
+        )
+        assert checked.status_code == 200
+        assert checked.json()["status"] == "ok", checked.json()
+
+
+def test_counterfactual_rows_carry_the_target_class(stored: tuple[Path, str]) -> None:
+    path, version = stored
+    artifact = Registry(path).read_version(NAME, version).artifact
+    profiles = load_harbourline_profiles()
+    x = profiles.embedding[profiles.pronoun == "he"]
+    # Reference: scikit-learn's logistic regression, trained on the raw sample, reads the target class back.
+    reader = LogisticRegression(max_iter=2000).fit(profiles.embedding, profiles.pronoun)
+    assert np.mean(reader.predict(artifact.counterfactual(x, 1)) == "she") > 0.9
+
+
+def test_veil_apply_cleans_a_corpus_with_the_transport_version(stored: tuple[Path, str], tmp_path: Path) -> None:
+    path, version = stored
+    x = load_harbourline_profiles().embedding[:300]
+    np.save(tmp_path / "corpus.npy", x)
+    result = run("apply", NAME, "--registry", path, "--in", tmp_path / "corpus.npy", "--out", tmp_path / "clean.npy")
+    assert result.code == 0, result.err
+    artifact = Registry(path).read_version(NAME, version).artifact
+    np.testing.assert_allclose(np.load(tmp_path / "clean.npy"), artifact.apply(x), atol=1e-6)
