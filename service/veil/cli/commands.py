@@ -23,13 +23,30 @@ def _print_table(header: list[str], rows: list[list[str]]) -> None:
         print("  ".join(f"{cell:{width}}" for cell, width in zip(row, widths, strict=True)).rstrip())
 
 
+def _sweep_values(text: str) -> list[int | None]:
+    """``"8,16,all"`` as the values of a sweep (``all``: the method's own maximum)."""
+    values: list[int | None] = []
+    for item in text.split(","):
+        item = item.strip().lower()
+        if item == "all":
+            values.append(None)
+        elif item.isdigit() and int(item) > 0:
+            values.append(int(item))
+        else:
+            raise DataError(f"--sweep values are positive integers or 'all', separated by commas; got {item!r}")
+    return values
+
+
 def fit(args: argparse.Namespace) -> int:
+    from veil.audit.points import Sweep
     from veil.fitting.job import fit_version
     from veil.fitting.methods import parse_parameters
+    from veil.fitting.sweep import TargetsMissedError
     from veil.samples.sources import load_labelled_sample
     from veil.samples.streaming import open_stream
 
     params = parse_parameters(args.method, args.option)
+    sweep_values = None if not args.sweep else _sweep_values(args.sweep)
     registry = Registry(args.registry)
     registry.storage.list("")  # a registry that cannot take the version fails now, not after the fit
     common: dict[str, Any] = {
@@ -43,6 +60,9 @@ def fit(args: argparse.Namespace) -> int:
         "nonlinear": args.probes == "all",
         "alias": args.alias,
         "reason": args.reason,
+        "sweep": args.sweep is not None,
+        "sweep_values": sweep_values,
+        "targets": args.target,
     }
     source = {
         "attribute": args.attribute,
@@ -51,19 +71,26 @@ def fit(args: argparse.Namespace) -> int:
         "labels": args.labels,
         "drop_missing": args.drop_missing,
     }
-    if args.stream or args.engine == "dask" or Path(args.data).is_dir():
-        outcome = fit_version(
-            open_stream(args.data, **source),
-            chunk_rows=args.chunk_rows,
-            audit_rows=args.audit_rows,
-            fit_sample_rows=args.fit_sample_rows,
-            engine=args.engine,
-            scheduler=args.scheduler,
-            workers=args.dask_workers,
-            **common,
-        )
-    else:
-        outcome = fit_version(load_labelled_sample(args.data, **source), **common)
+    try:
+        if args.stream or args.engine == "dask" or Path(args.data).is_dir():
+            outcome = fit_version(
+                open_stream(args.data, **source),
+                chunk_rows=args.chunk_rows,
+                audit_rows=args.audit_rows,
+                fit_sample_rows=args.fit_sample_rows,
+                engine=args.engine,
+                scheduler=args.scheduler,
+                workers=args.dask_workers,
+                **common,
+            )
+        else:
+            outcome = fit_version(load_labelled_sample(args.data, **source), **common)
+    except TargetsMissedError as missed:
+        # The points, so the targets can be set again with the figures in view; the error itself is one line.
+        print(missed.sweep.format_table())
+        raise
+    if "operating_points" in outcome.card:
+        print(Sweep.from_dict(outcome.card["operating_points"]).format_table())
     print(outcome.audit.format_table())
     for note in outcome.card["notes"]:
         if note not in outcome.audit.notes:

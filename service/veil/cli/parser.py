@@ -144,6 +144,22 @@ def build_parser() -> VeilParser:
         help="audit with every probe (linear, quadratic, RBF kernel, boosted trees, MLP), or the linear one only",
     )
     fit.add_argument(
+        "--sweep",
+        nargs="?",
+        const="",
+        metavar="VALUES",
+        help="also fit the method at several strengths and measure each point on the held-out rows (the card "
+        "and the report hold the curves); VALUES such as 8,16,64,all replace the method's grid",
+    )
+    fit.add_argument(
+        "--target",
+        action="append",
+        default=[],
+        metavar="EXPR",
+        help="store the sweep's point of least distortion that meets every target, e.g. "
+        "'nn-attribute <= base + 0.05' or 'task >= raw - 0.02' (repeatable; implies --sweep)",
+    )
+    fit.add_argument(
         "--stream",
         action="store_true",
         help="read the sample in chunks with bounded memory (always on for a folder of .npy shards)",

@@ -33,7 +33,9 @@ from veil.erasers import INLP, Erasure
 from veil.errors import DataError
 from veil.fitting.methods import fit_collecting_notes, make_eraser
 from veil.fitting.plan import PartResult, PassPlan, concatenated
-from veil.fitting.store import FitOutcome, audit_and_store
+from veil.fitting.store import FitOutcome, audit_and_store, audit_folds
+from veil.fitting.sweep import Value, parse_target, run_sweep
+from veil.fitting.sweep import sweep_values as strengths
 from veil.maps.moments import MomentState
 from veil.progress import advance, phase
 from veil.registry import Registry
@@ -62,6 +64,9 @@ def fit_version(
     engine: str = "local",
     scheduler: str | None = None,
     workers: int = 2,
+    sweep: bool = False,
+    sweep_values: Sequence[Value] | None = None,
+    targets: Sequence[str] = (),
 ) -> FitOutcome:
     """Fit an eraser on part of ``sample``, audit it on the rest, and store it as a new version of ``name``.
 
@@ -105,12 +110,27 @@ def fit_version(
         :mod:`veil.fitting.distributed`).
     scheduler : str, optional
         Address of a running Dask scheduler; None starts a local cluster of ``workers`` processes.
+    sweep : bool, default=False
+        Also fit the method at every strength of a grid and measure each
+        point on the held-out rows (see :mod:`veil.fitting.sweep`); the card
+        and the report hold the curves.
+    sweep_values : sequence, optional
+        The strengths (values of the method's strength parameter) instead of its default grid.
+    targets : sequence of str
+        Targets such as ``"nn-attribute <= base + 0.05"`` (they imply a sweep): the version stored is the
+        sweep's point of least distortion that meets every target.
 
     Raises
     ------
     DataError
         The sample or the options cannot make a version; nothing is written.
+    TargetsMissedError
+        No point of the sweep meets every target (the sweep is attached); nothing is written.
     """
+    wanted = [parse_target(text) for text in targets]
+    sweep = sweep or bool(wanted)
+    if sweep:
+        strengths(method, sweep_values)  # an unknown method or an empty grid is refused before the pass
     if not 0.0 < holdout < 1.0:
         raise DataError(f"the held-out share must be between 0 and 1, got {holdout}")
     if chunk_rows < 1 or any(limit is not None and limit < 2 for limit in (audit_rows, fit_sample_rows)):
@@ -125,6 +145,11 @@ def fit_version(
     streams_inlp = streamed and isinstance(eraser, INLP) and eraser.classifier == "moments"
     if engine == "dask" and streams_inlp:
         raise DataError("INLP with the moments classifier fits sequentially; use the local engine (--stream)")
+    if sweep and streams_inlp:
+        raise DataError(
+            "a sweep fits the method once per point, and INLP's moments classifier fits a streamed sample in its "
+            "one pass: sweep the logistic classifier, or a sample in memory"
+        )
     if streamed:
         audit_rows = AUDIT_ROWS if audit_rows is None else audit_rows
         fit_sample_rows = FIT_SAMPLE_ROWS if fit_sample_rows is None else fit_sample_rows
@@ -156,18 +181,43 @@ def fit_version(
     else:
         fitted = np.unique(z_sample)
     _check_split(sample, total.fit_rows, fitted, z_held, audit_sampled=audit_rows is not None)
-    if exact_moments:
-        moments = total.moments
-        assert moments is not None  # _check_split refuses a pass without fitting rows
-        with phase(f"fitting {method}"):
-            notes += fit_collecting_notes(eraser, method, lambda: eraser.fit_moments(moments))
-    elif not streams_inlp:
-        with phase(f"fitting {method}"):
-            notes += fit_collecting_notes(eraser, method, lambda: eraser.fit(x_sample, z_sample))
-        if fit_sample_rows is not None:
-            notes.append(
-                f"{method} was fitted on a hash-drawn sample of {x_sample.shape[0]} of {total.fit_rows} fitting rows"
+
+    def fit(candidate: Erasure) -> list[str]:
+        if exact_moments:
+            moments = total.moments
+            assert moments is not None  # _check_split refuses a pass without fitting rows
+            return fit_collecting_notes(candidate, method, partial(candidate.fit_moments, moments))
+        return fit_collecting_notes(candidate, method, partial(candidate.fit, x_sample, z_sample))
+
+    operating_points = None
+    if sweep:
+        point_notes: list[list[str]] = []
+
+        def fit_at(parameter: str, value: Value) -> Erasure:
+            point = make_eraser(
+                name, alias, method, {**(params or {}), parameter: value}, seed=seed, normalize=normalize
             )
+            with phase(f"sweep: fitting {method} at {parameter}={value}"):
+                point_notes.append(fit(point))
+            return point
+
+        codes_held = np.searchsorted(fitted, z_held).astype(np.intp)
+        task_codes = None if task_held is None else np.unique(task_held, return_inverse=True)[1].astype(np.intp)
+        with phase("sweep: measuring the points"):
+            operating_points, sweep_fits = run_sweep(
+                method, sweep_values, fit_at, x_held, codes_held, task_codes, targets=wanted,
+                folds=audit_folds(codes_held), nonlinear=nonlinear, random_state=seed,
+            )  # fmt: skip
+        if operating_points.chosen is not None:
+            eraser = sweep_fits[operating_points.chosen]
+            notes += point_notes[operating_points.chosen]
+    if (operating_points is None or operating_points.chosen is None) and not streams_inlp:
+        with phase(f"fitting {method}"):
+            notes += fit(eraser)
+    if fit_sample_rows is not None and not (exact_moments or streams_inlp):
+        notes.append(
+            f"{method} was fitted on a hash-drawn sample of {x_sample.shape[0]} of {total.fit_rows} fitting rows"
+        )
     if audit_rows is not None:
         notes.append(f"audited on a hash-drawn sample of {x_held.shape[0]} of about {expected_held} held-out rows")
     classes = np.asarray(eraser.classes_)
@@ -186,6 +236,7 @@ def fit_version(
         reason=reason or f"fitted by veil fit ({method}{', streamed' if streamed else ''})",
         thresholds=thresholds,
         notes=notes,
+        operating_points=operating_points,
     )
 
 

@@ -10,6 +10,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import audit
+from veil.audit.points import Sweep
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
 from veil.checks.reference import REFERENCE_FILE, ReferenceStatistics
@@ -36,6 +37,11 @@ class FitOutcome:
     promotion: HistoryEvent | None
 
 
+def audit_folds(codes: NDArray[np.intp]) -> int:
+    """The folds the probes use on held-out rows of these classes: :data:`AUDIT_FOLDS`, fewer for a rare class."""
+    return min(AUDIT_FOLDS, probe_folds(codes, AUDIT_FOLDS))
+
+
 def audit_and_store(
     eraser: Erasure,
     sample: Sample,
@@ -52,11 +58,12 @@ def audit_and_store(
     reason: str,
     thresholds: AlertThresholds | None,
     notes: list[str],
+    operating_points: Sweep | None = None,
 ) -> FitOutcome:
     """Audit a fitted eraser on held-out rows, build its card, reference and report, and store the version."""
     x_held, z_held, task_held = held_out
     codes_held = np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp)
-    folds = min(AUDIT_FOLDS, probe_folds(codes_held, AUDIT_FOLDS))
+    folds = audit_folds(codes_held)
     # The audit reports each probe's folds as a stage of its own.
     report = audit(eraser, x_held, z_held, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed)
     artifact = eraser.export()
@@ -76,6 +83,7 @@ def audit_and_store(
         thresholds=thresholds or AlertThresholds(),
         user=current_user(),
         notes=notes + list(report.notes),
+        operating_points=None if operating_points is None else operating_points.to_dict(),
     )
     files = encode_artifact(artifact)
     files[CARD_FILE] = json.dumps(card, indent=2, sort_keys=True, allow_nan=False).encode()

@@ -15,6 +15,7 @@ from datetime import UTC, datetime
 from importlib import metadata
 from typing import Any
 
+from veil.audit.points import Sweep, value_text
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
@@ -74,6 +75,7 @@ def build_card(
     thresholds: AlertThresholds,
     user: str,
     notes: list[str],
+    operating_points: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     """The card of a freshly fitted version (a JSON-safe dict)."""
     classes = [] if artifact.classes is None else [str(c) for c in artifact.classes]
@@ -114,6 +116,8 @@ def build_card(
         "created_by": user,
         "notes": notes,
     }
+    if operating_points is not None:
+        card["operating_points"] = operating_points
     return dict(_finite(card))
 
 
@@ -138,7 +142,8 @@ def _dropped(card: dict[str, Any]) -> str:
     return f" ({dropped} dropped for a missing label)" if dropped else ""
 
 
-def _method_text(card: dict[str, Any]) -> str:
+def method_text(card: dict[str, Any]) -> str:
+    """The method and the shape of its map, in a few words."""
     # Cards written before map kinds existed hold affine low-rank maps.
     if card.get("map_kind", "affine-lowrank") == "affine-lowrank":
         return f"{card['method']} (rank {card['rank']}, dim {card['dim']})"
@@ -153,7 +158,7 @@ def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
     audit = card_audit(card)
     lk, ut = audit.leakage, audit.utility
     rows = [
-        ("method", _method_text(card)),
+        ("method", method_text(card)),
         ("created", f"{card['created_at']} by {card['created_by']}"),
         ("data", f"{card['data']['rows']} rows{_dropped(card)}, sha256 {card['data']['fingerprint_sha256'][:16]}…"),
         ("split", f"{card['split']['holdout']:.0%} held out, seed {card['split']['seed']}"),
@@ -195,6 +200,18 @@ def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
     return rows
 
 
+def operating_points_text(record: dict[str, Any]) -> list[str]:
+    """The sweep a card records: its points, its targets and the point chosen (lines of text)."""
+    sweep = Sweep.from_dict(record)
+    lines = [f"operating points: {sweep.method} over {sweep.parameter}, measured on the held-out rows"]
+    lines += sweep.format_table().splitlines()
+    if sweep.targets:
+        lines.append("targets: " + "; ".join(sweep.targets))
+        lines.append(f"chosen: {sweep.parameter}={value_text(sweep.values[sweep.chosen or 0])}, {record['rule']}")
+        lines.append(f"note: {record['selection']}")
+    return lines
+
+
 def format_card(version_id: str, card: dict[str, Any]) -> str:
     """The card for a terminal: headline figures, the full audit table, thresholds and provenance."""
     lines = [f"{card['name']} {version_id}"]
@@ -205,7 +222,10 @@ def format_card(version_id: str, card: dict[str, Any]) -> str:
     if card.get("task"):
         lines.append(f"  {'task':{width}}  {card['task']['key']}")
     lines.append(f"  {'parameters':{width}}  " + ", ".join(f"{k}={v}" for k, v in sorted(card["params"].items())))
-    lines += ["", card_audit(card).format_table(), "", "alert thresholds (warn / alert):"]
+    lines += ["", card_audit(card).format_table()]
+    if "operating_points" in card:
+        lines += ["", *operating_points_text(card["operating_points"])]
+    lines += ["", "alert thresholds (warn / alert):"]
     lines += [f"  {figure}: {band['warn']} / {band['alert']}" for figure, band in card["thresholds"].items()]
     lines.append("software: " + ", ".join(f"{k} {v}" for k, v in card["software"].items()))
     lines += [f"note: {note}" for note in card.get("notes", [])]

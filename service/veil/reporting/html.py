@@ -14,8 +14,9 @@ import matplotlib.pyplot as plt
 import numpy as np
 from matplotlib.figure import Figure
 
+from veil.audit.points import Sweep, value_text
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore
-from veil.registry.card import card_audit, protocol_text
+from veil.registry.card import card_audit, method_text, operating_points_text, protocol_text
 from veil.reporting.plotdata import PlotData
 
 REPORT_FILE = "report.html"
@@ -170,6 +171,43 @@ def _retrieval_plot(audit: AuditReport) -> Callable[[Figure], None] | None:
     return draw
 
 
+def _operating_points_plot(record: dict[str, Any] | None) -> Callable[[Figure], None] | None:
+    """Leakage and utility figures of each point of a sweep, against their references; the chosen point marked."""
+    if record is None:
+        return None
+    sweep = Sweep.from_dict(record)
+    positions = list(range(len(sweep.values)))
+    labels = [value_text(value) for value in sweep.values]
+
+    def series(name: str) -> list[float]:
+        return [float(getattr(point, name)) for point in sweep.points]
+
+    def draw(figure: Figure) -> None:
+        leakage, utility = figure.add_subplot(1, 2, 1), figure.add_subplot(1, 2, 2)
+        leakage.plot(positions, series("linear"), marker="o", color=_AFTER, label="linear probe")
+        leakage.plot(positions, series("strongest"), marker="s", color="#805ad5", label="strongest probe")
+        leakage.plot(positions, series("nn_attribute"), marker="^", color="#dd6b20", label="10-NN attribute share")
+        leakage.axhline(sweep.baselines.majority, color="#c53030", linestyle="--", label="majority")
+        leakage.axhline(sweep.baselines.nn_attribute_base, color="#dd6b20", linestyle=":", label="10-NN base rate")
+        leakage.set_title("what is left of the attribute (lower is better)")
+        utility.plot(positions, series("distortion"), marker="o", color=_BEFORE, label="distortion")
+        if sweep.raw.task is not None and sweep.raw.nn_task is not None:
+            utility.plot(positions, series("task"), marker="s", color="#2f855a", label="task probe")
+            utility.plot(positions, series("nn_task"), marker="^", color="#38a169", label="10-NN task share")
+            utility.axhline(sweep.raw.task, color="#2f855a", linestyle="--", label="task probe, raw")
+            utility.axhline(sweep.raw.nn_task, color="#38a169", linestyle=":", label="10-NN task share, raw")
+        utility.set_title("what is kept, and the cost")
+        for axes in (leakage, utility):
+            axes.set_xticks(positions, labels)
+            axes.set_xlabel(f"{sweep.method}: {sweep.parameter}")
+            axes.set_ylim(0, 1.05)
+            if sweep.chosen is not None:
+                axes.axvline(sweep.chosen, color="#2d3748", linewidth=4, alpha=0.15, label="chosen")
+            axes.legend(loc="best", fontsize=7)
+
+    return draw
+
+
 def _probe_table(audit: AuditReport) -> str:
     """Each probe's held-out figures before and after erasure, per class too; the strongest after is marked."""
     lk = audit.leakage
@@ -230,7 +268,7 @@ def render_report(version_id: str, card: dict[str, Any], history: Sequence[dict[
     classes = card["attribute"]["classes"]
     summary = [
         ("eraser", f"{card['name']} {version_id}"),
-        ("method", f"{card['method']}, rank {card['rank']}, dimension {card['dim']}, {card['dtype']}"),
+        ("method", f"{method_text(card)}, {card['dtype']}"),
         ("attribute", f"{card['attribute']['key']} ({', '.join(classes)})"),
         ("fitting data", f"{card['data']['rows']} rows ({card['data']['fit_rows']} fit, {audit.n_heldout} held out)"),
         ("data sha256", card["data"]["fingerprint_sha256"]),
@@ -253,7 +291,18 @@ def render_report(version_id: str, card: dict[str, Any], history: Sequence[dict[
         _figure("Held-out embeddings, coloured by attribute", _scatter_plot(plots, classes), (11, 4.4), ""),
         _figure("Per-vector distortion", _distortion_plot(plots), (7, 3.2), ""),
         _figure("Retrieval: who the nearest neighbours are", _retrieval_plot(audit), (7, 3.4), "No retrieval figures."),
+        _figure(
+            "Operating points",
+            _operating_points_plot(card.get("operating_points")),
+            (11, 4.2),
+            "No strength sweep was run for this version (veil fit --sweep, --target).",
+        ),
         f"<h2>Full audit</h2><pre>{html.escape(audit.format_table())}</pre>",
+        *(
+            [f"<pre>{html.escape(chr(10).join(operating_points_text(card['operating_points'])))}</pre>"]
+            if "operating_points" in card
+            else []
+        ),
         "<h2>Alert thresholds of the live checks</h2>" + _table(thresholds),
     ]
     notes = card.get("notes", [])
