@@ -12,6 +12,8 @@ B4  INLP: the moments classifier vs the logistic classifier (time, and final hel
 B5  a streamed LEACE fit (`veil fit --stream`) of a 2,000,000 × 768 file: peak memory and wall time vs a bare
     chunked XᵀX pass
 B6  start-up: `veil versions NAME` vs `python -c "import numpy"` (wall time of a fresh process)
+B8  apply cost of the class-conditional transport map (kind class-transport) vs LEACE's factored map and a dense
+    d×d product, on the committed sample (d=384, batch 1024, float32, one BLAS thread)
 B7  the default audit's probes (linear, quadratic, RBF kernel, boosted trees, MLP; raw and LEACE-erased, 5 folds)
     with BLAS and OpenMP on one thread, as veil runs them, vs the same probes through cross_val_predict on every
     thread; and every probe vs the linear and MLP probes alone (what the audit ran before); sample and 5,000 rows
@@ -47,12 +49,13 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import StratifiedKFold, cross_val_predict, train_test_split
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
-from threadpoolctl import threadpool_info
+from threadpoolctl import threadpool_info, threadpool_limits
 
 from veil import INLP, LEACE
 from veil.audit.probes import classification_score
 from veil.audit.readers import build_probe, fold_sizes
 from veil.audit.report import PROBES
+from veil.erasers.transport import GaussianTransport
 from veil.fitting.job import fit_version
 from veil.maps.lowrank import AffineLowRankMap
 from veil.registry import Registry
@@ -592,6 +595,46 @@ def machine() -> dict[str, object]:
     }
 
 
+# ---------------------------------------------------------------- B8
+
+
+def bench_transport() -> list[Row]:
+    profiles = load_harbourline_profiles()
+    x_fit, z_fit = profiles.embedding, profiles.pronoun
+    x = x_fit[:1024].copy()
+    leace = LEACE().fit(x_fit, z_fit).map_
+    a, b = leace.to_dense()
+    a32, b32 = a.astype(np.float32), b.astype(np.float32)
+    maps = {rank: GaussianTransport(rank=rank, random_state=0).fit(x_fit, z_fit).map_ for rank in (64, None)}
+    soft = GaussianTransport(rank=64, inference="soft", random_state=0).fit(x_fit, z_fit).map_
+    with threadpool_limits(limits=1, user_api="blas"):
+        factored = median_seconds(lambda: leace.apply(x), repeat=15, number=20)
+        dense = median_seconds(lambda: x @ a32.T + b32, repeat=15, number=20)
+        hard = {rank: median_seconds(lambda m=m: m.apply(x), repeat=15, number=10) for rank, m in maps.items()}
+        soft_time = median_seconds(lambda: soft.apply(x), repeat=15, number=10)
+    per_vector = {
+        name: seconds / x.shape[0] * 1e6
+        for name, seconds in {
+            "leace": factored,
+            "dense": dense,
+            "64": hard[64],
+            "all": hard[None],
+            "soft": soft_time,
+        }.items()
+    }
+    measured = ", ".join(f"{name} {value:.2f} µs" for name, value in per_vector.items())
+    return [
+        Row("B8 transport rank 64 (hard) / dense d×d", f"{hard[64] * 1e3:.3f} ms / {dense * 1e3:.3f} ms",
+            hard[64] / dense, "<= 1", hard[64] / dense <= 1, "the serving rank docs/transport.md recommends"),
+        Row("B8 transport rank 64 (hard) / LEACE factored", f"{hard[64] * 1e3:.3f} ms / {factored * 1e3:.3f} ms",
+            hard[64] / factored, "-", None, "no target: what reading the attribute costs"),
+        Row("B8 transport full support (hard) / dense d×d", f"{hard[None] * 1e3:.3f} ms / {dense * 1e3:.3f} ms",
+            hard[None] / dense, "-", None, "381 directions per class"),
+        Row("B8 transport rank 64 soft / hard", f"{soft_time * 1e3:.3f} ms / {hard[64] * 1e3:.3f} ms",
+            soft_time / hard[64], "-", None, f"per vector: {measured}"),
+    ]  # fmt: skip
+
+
 BENCHMARKS = {
     "B1": bench_apply,
     "B2": bench_service,
@@ -600,6 +643,7 @@ BENCHMARKS = {
     "B5": bench_memory,
     "B6": bench_startup,
     "B7": bench_audit,
+    "B8": bench_transport,
 }
 
 
