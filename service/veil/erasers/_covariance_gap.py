@@ -2,7 +2,7 @@
 
 In the whitened coordinates ``y = W (x - μ)`` the data have identity
 covariance, and after LEACE's basis ``Q`` is removed the class means
-coincide; what still tells the classes apart linearly-in-second-moments is
+coincide; what still tells the classes apart by their second moments is
 how each class covariance ``S_c = W Σ_c W`` differs from the pooled one.  On
 the complement of ``Q`` (orthonormal basis ``C``) the pooled within-class
 covariance is exactly the identity (the between-class part lies in
@@ -16,7 +16,8 @@ Removing a subspace ``P`` of the complement leaves the differences
 eigenvectors of ``M`` maximise ``tr(P M)`` over rank-``k`` projections
 (Ky Fan's maximum principle).  For two classes ``p₀ G₀ = -p₁ G₁``: the
 ``G_c`` share eigenvectors, those of the generalised eigenproblem
-``Σ₁ v = λ Σ v`` ordered by ``|λ - 1|`` (the Fukunaga-Koontz transform),
+``Σ₁ v = λ Σ_w v`` (``Σ_w`` the pooled within-class covariance, which is
+``Σ`` on the complement) ordered by ``|λ - 1|`` (the Fukunaga-Koontz transform),
 and removing the leading ones takes out exactly the largest differences.
 """
 

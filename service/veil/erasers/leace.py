@@ -35,13 +35,14 @@ class LEACE(MomentErasure):
     still tells the classes apart by them.  With ``k > 0``, ``Q`` is extended
     by ``k`` orthonormal directions of the whitened space, orthogonal to
     LEACE's, along which the whitened class covariances ``W Σ_c W`` differ
-    most: the leading eigenvectors of ``Σ_c p_c (Cᵀ W Σ_c W C - I)²`` on the
-    complement ``C`` of LEACE's basis, where the pooled within-class
+    most: the leading eigenvectors of ``M = Σ_c p_c (Cᵀ W Σ_c W C - I)²``
+    on the complement ``C`` of LEACE's basis, where the pooled within-class
     covariance is the identity.  For two classes these are the directions
-    of the generalised eigenproblem ``Σ₁ v = λ Σ v`` farthest from
-    ``λ = 1`` (the Fukunaga-Koontz transform); for more classes they
-    maximise ``tr(P M)``, which bounds the removed share of the covariance
-    differences within a factor of 2 (Ky Fan's maximum principle; see
+    of the generalised eigenproblem ``Σ₁ v = λ Σ_w v`` (``Σ_w`` the pooled
+    within-class covariance) farthest from ``λ = 1`` (the Fukunaga-Koontz
+    transform); for more classes they maximise ``tr(P M)`` over rank-k
+    projections ``P`` (Ky Fan's maximum principle), which bounds the share
+    of the covariance differences removed within a factor of 2 (see
     :mod:`veil.erasers._covariance_gap`).  The whole basis is removed
     obliquely as above, so the LEACE guarantee still holds, the class
     covariances along the added directions are removed with them, and the
