@@ -33,6 +33,7 @@ def _skip_reason(estimator: Any, check: Callable[..., Any]) -> str | None:
 @parametrize_with_checks(
     [
         LEACE(),
+        LEACE(covariance_directions=2),
         MeanProjection(),
         INLP(max_iter=3, random_state=0),
         INLP(classifier="moments", max_iter=3, random_state=0),

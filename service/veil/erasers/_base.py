@@ -158,6 +158,15 @@ class MomentErasure(LinearErasure):
     @abstractmethod
     def _map_from_moments(self, moments: MomentState) -> AffineLowRankMap: ...
 
+    @property
+    def needs_class_moments(self) -> bool:
+        """Whether fitting needs per-class co-moments (``MomentState.from_batch(..., by_class=True)``).
+
+        Raises ``ValueError`` for parameters that cannot be fitted, so a
+        fitting job can refuse them before it reads any rows.
+        """
+        return False
+
     def fit(self, X: ArrayLike, z: object) -> MomentErasure:
         """Fit the eraser.
 
@@ -172,8 +181,9 @@ class MomentErasure(LinearErasure):
         -------
         self
         """
+        by_class = self.needs_class_moments
         array, attribute = self._validate_fit_input(X, z, reset=True)
-        return self._fit_state(MomentState.from_batch(array, attribute))
+        return self._fit_state(MomentState.from_batch(array, attribute, by_class=by_class))
 
     def partial_fit(self, X: ArrayLike, z: object) -> MomentErasure:
         """Add a chunk of rows; after each call the eraser is that of all rows so far.
@@ -185,9 +195,10 @@ class MomentErasure(LinearErasure):
         -------
         self
         """
+        by_class = self.needs_class_moments
         first = not hasattr(self, "moments_")
         array, attribute = self._validate_fit_input(X, z, reset=first)
-        chunk = MomentState.from_batch(array, attribute)
+        chunk = MomentState.from_batch(array, attribute, by_class=by_class)
         merged = chunk if first else self.moments_.merge(chunk)
         self.moments_ = merged
         try:
@@ -206,12 +217,18 @@ class MomentErasure(LinearErasure):
         Parameters
         ----------
         moments : MomentState
-            Statistics of all the fitting rows, e.g. the merge of per-worker states.
+            Statistics of all the fitting rows, e.g. the merge of per-worker states
+            (with per-class co-moments where :attr:`needs_class_moments`).
 
         Returns
         -------
         self
         """
+        if self.needs_class_moments and moments.class_comoments is None:
+            raise ValueError(
+                "these parameters need per-class co-moments: build the moments with MomentState.from_batch(..., "
+                "by_class=True)"
+            )
         self.n_features_in_ = moments.n_features
         return self._fit_state(moments)
 

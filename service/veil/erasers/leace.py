@@ -2,7 +2,12 @@
 
 from __future__ import annotations
 
+import warnings
+
+import numpy as np
+
 from veil.erasers._base import MomentErasure
+from veil.erasers._covariance_gap import covariance_gap_directions
 from veil.maps.linalg import orthonormal_basis, whitening_factors
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
@@ -24,8 +29,35 @@ class LEACE(MomentErasure):
     In factored form, with ``Q`` an orthonormal basis of ``W Cov(x, z)``:
     ``U = W⁺ Q`` and ``V = W Q``, so ``r(x) = x - U Vᵀ (x - μ)``.
 
+    **Second-moment directions** (``covariance_directions=k``, categorical
+    attributes): LEACE leaves the class covariances as they were, and a
+    reader of second moments (a quadratic or kernel probe, neighbourhoods)
+    still tells the classes apart by them.  With ``k > 0``, ``Q`` is extended
+    by ``k`` orthonormal directions of the whitened space, orthogonal to
+    LEACE's, along which the whitened class covariances ``W Σ_c W`` differ
+    most: the leading eigenvectors of ``M = Σ_c p_c (Cᵀ W Σ_c W C - I)²``
+    on the complement ``C`` of LEACE's basis, where the pooled within-class
+    covariance is the identity.  For two classes these are the directions
+    of the generalised eigenproblem ``Σ₁ v = λ Σ_w v`` (``Σ_w`` the pooled
+    within-class covariance) farthest from ``λ = 1`` (the Fukunaga-Koontz
+    transform); for more classes they maximise ``tr(P M)`` over rank-k
+    projections ``P`` (Ky Fan's maximum principle), which bounds the share
+    of the covariance differences removed within a factor of 2 (see
+    :mod:`veil.erasers._covariance_gap`).  The whole basis is removed
+    obliquely as above, so the LEACE guarantee still holds, the class
+    covariances along the added directions are removed with them, and the
+    map moves the data more (each added direction removes one unit of
+    whitened variance).  Counterfactuals restore the class mean only.
+    Fitting needs per-class co-moments (one d×d float64 matrix per class),
+    which are accumulated only when ``k > 0``.
+
     Parameters
     ----------
+    covariance_directions : int, default=0
+        ``k``, the second-moment directions to add; 0 is LEACE alone.  At
+        most the rest of the whitened space is taken, and fewer where the
+        class covariances agree or the next directions tie (a warning says
+        so): round-off never picks a direction.
     eigenvalue_rtol : float, optional
         Eigenvalues of ``Cov(x)`` at or below ``eigenvalue_rtol * λ_max`` are
         treated as zero (rank-deficient covariance: ``d > n``, dead or
@@ -40,7 +72,9 @@ class LEACE(MomentErasure):
         The fitted map; ``map_.rank`` is at most ``min(d, m)`` for ``m``
         attribute columns (``C - 1`` for ``C`` classes).
     moments_ : MomentState
-        Statistics of the fitting data (float64).
+        Statistics of the fitting data (float64); with per-class co-moments when ``covariance_directions > 0``.
+    n_covariance_directions_ : int
+        Second-moment directions removed (the last columns of ``map_.u``).
     classes_ : ndarray of shape (n_classes,) or None
     n_features_in_ : int
 
@@ -59,9 +93,19 @@ class LEACE(MomentErasure):
 
     method = "leace"
 
-    def __init__(self, *, eigenvalue_rtol: float | None = None, normalize: bool = False) -> None:
+    def __init__(
+        self, *, covariance_directions: int = 0, eigenvalue_rtol: float | None = None, normalize: bool = False
+    ) -> None:
+        self.covariance_directions = covariance_directions
         self.eigenvalue_rtol = eigenvalue_rtol
         self.normalize = normalize
+
+    @property
+    def needs_class_moments(self) -> bool:
+        k = self.covariance_directions
+        if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 0:
+            raise ValueError(f"covariance_directions must be a non-negative integer, got {k!r}")
+        return bool(k > 0)
 
     def _map_from_moments(self, moments: MomentState) -> AffineLowRankMap:
         eigenvectors, scale = whitening_factors(moments.covariance_xx, rtol=self.eigenvalue_rtol)
@@ -70,6 +114,30 @@ class LEACE(MomentErasure):
         # independent directions (C - 1 for C classes), so no direction of rounding noise can enter the basis.
         correlations = scale[:, None] * (eigenvectors.T @ moments.standardized_cross_covariance())
         in_basis = orthonormal_basis(correlations, reference=1.0)
+        self.n_covariance_directions_ = 0
+        if self.needs_class_moments:
+            added = covariance_gap_directions(
+                moments.class_covariances,
+                moments.class_priors,
+                eigenvectors * scale,
+                in_basis,
+                int(self.covariance_directions),
+            )
+            self.n_covariance_directions_ = added.shape[1]
+            in_basis = np.column_stack([in_basis, added])
         u = eigenvectors @ (in_basis / scale[:, None])  # W⁺ Q
         v = eigenvectors @ (in_basis * scale[:, None])  # W Q
         return AffineLowRankMap(mean=moments.mean_x, u=u, v=v)
+
+    def _fit_state(self, moments: MomentState) -> LEACE:
+        super()._fit_state(moments)
+        # Only a whole fit warns: a partial fit's early chunks are expected to support fewer directions.
+        if self.n_covariance_directions_ < self.covariance_directions:
+            warnings.warn(
+                f"LEACE removed {self.n_covariance_directions_} of the {self.covariance_directions} covariance "
+                "directions asked for: the whitened space beside LEACE's directions is smaller, or the class "
+                "covariances agree or tie beyond them",
+                UserWarning,
+                stacklevel=3,
+            )
+        return self

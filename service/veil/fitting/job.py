@@ -29,7 +29,7 @@ from numpy.typing import NDArray
 
 from veil.checks.thresholds import AlertThresholds
 from veil.defaults import AUDIT_ROWS, ENGINES, FIT_SAMPLE_ROWS, STREAM_CHUNK_ROWS
-from veil.erasers import INLP, Erasure
+from veil.erasers import INLP, Erasure, MomentErasure
 from veil.errors import DataError
 from veil.fitting.methods import fit_collecting_notes, make_eraser
 from veil.fitting.plan import PartResult, PassPlan, concatenated
@@ -141,6 +141,11 @@ def fit_version(
     partitions = sample.partitions(chunk_rows)
     streamed = len(partitions) > 1
     exact_moments = method in MOMENT_METHODS
+    try:
+        # Checked before the pass: a parameter the fit would refuse must not cost a read of the whole sample.
+        by_class = exact_moments and isinstance(eraser, MomentErasure) and eraser.needs_class_moments
+    except ValueError as error:
+        raise DataError(f"{method}: {error}") from None
     # INLP's moments classifier streams through partial_fit; a sample of one partition is simply fitted.
     streams_inlp = streamed and isinstance(eraser, INLP) and eraser.classifier == "moments"
     if engine == "dask" and streams_inlp:
@@ -163,6 +168,7 @@ def fit_version(
         fit_fraction=_share(fit_limit, sample.labelled_rows - expected_held),
         exact_moments=exact_moments,
         whole=not streamed,
+        by_class=by_class,
     )
     notes: list[str] = []
     if engine == "dask":

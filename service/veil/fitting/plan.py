@@ -69,6 +69,8 @@ class PassPlan:
         Shares of the held-out and of the fitting rows drawn into the samples (1: all of them).
     exact_moments : bool
         Accumulate the fitting rows' moments.
+    by_class : bool
+        With the per-class co-moments too (a method that reads class covariances).
     whole : bool
         The sample is one partition: the split of a small sample may then be
         repaired so every class has rows on both sides, which a stream
@@ -81,6 +83,7 @@ class PassPlan:
     fit_fraction: float
     exact_moments: bool
     whole: bool
+    by_class: bool = False
 
     def split(self, chunk: Chunk) -> NDArray[np.bool_]:
         """The held-out rows of ``chunk``."""
@@ -95,7 +98,9 @@ class PassPlan:
         moments = None
         if self.exact_moments and fit.any():
             x_fit, z_fit = chunk.embeddings[fit], chunk.attribute[fit]
-            moments = MomentState.from_batch(x_fit, encode_attribute(z_fit, x_fit.shape[0], require_categorical=True))
+            moments = MomentState.from_batch(
+                x_fit, encode_attribute(z_fit, x_fit.shape[0], require_categorical=True), by_class=self.by_class
+            )
         held_rows = _select(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
         fit_rows = _select(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT)
         return PartResult(
