@@ -138,9 +138,33 @@ def test_a_sweep_without_targets_stores_the_configured_fit_and_records_the_curve
 def test_what_cannot_be_swept_is_refused_before_any_work(sample: Path, tmp_path: Path) -> None:
     for argv, message in (
         (("--method", "meanproj", "--sweep"), "meanproj has no strength to sweep"),
-        (("--method", "transport", "--sweep", "8,x"), "--sweep values are positive integers or 'all'"),
+        (("--method", "transport", "--sweep", "8,x"), "--sweep values are whole numbers or 'all'"),
+        (("--method", "transport", "--sweep", "0,8"), "needs rank of at least 1, got 0"),
+        (("--method", "rlace", "--sweep", "1,all"), "'all' has no meaning"),
         (("--method", "transport", "--target", "nn-attr <= base"), "unknown figure"),
     ):
         result = run("fit", "--data", sample, "--attribute", "region", "--name", "p", "--registry", tmp_path, *argv)
         assert result.code == 2
         assert message in result.err
+
+
+def test_a_leace_sweep_over_second_moment_directions_accumulates_what_its_points_need(
+    sample: Path, tmp_path: Path
+) -> None:
+    # The configured LEACE needs no per-class co-moments; the sweep's points with k > 0 do, and every point is fitted
+    # from the moments of the job's one pass over the sample, so that pass must gather them.
+    registry = tmp_path / "r"
+    result = run(
+        "fit", "--data", sample, "--attribute", "region", "--task", "task", "--name", "planted",
+        "--registry", registry, "--method", "leace", "--sweep", "0,2,4", "--probes", "linear",
+    )  # fmt: skip
+    assert result.code == 0, result.err
+    card = json.loads(run("show", "planted", "1", "--registry", registry, "--json").out)
+    sweep = Sweep.from_dict(card["operating_points"])
+    assert (sweep.parameter, sweep.values) == ("covariance_directions", (0, 2, 4))
+    distortions = [point.distortion for point in sweep.points]
+    # Each added direction removes more of the data: the distortion grows with k.
+    assert distortions[0] < distortions[1] < distortions[2]
+    assert card["params"]["covariance_directions"] == 0  # no targets: the configured fit is stored
+    # The point k = 0 is plain LEACE, measured on the same rows as the stored version's audit.
+    assert card["audit"]["leakage"]["linear_after"]["accuracy"] == pytest.approx(sweep.points[0].linear)

@@ -30,10 +30,10 @@ def _sweep_values(text: str) -> list[int | None]:
         item = item.strip().lower()
         if item == "all":
             values.append(None)
-        elif item.isdigit() and int(item) > 0:
+        elif item.isdigit():
             values.append(int(item))
         else:
-            raise DataError(f"--sweep values are positive integers or 'all', separated by commas; got {item!r}")
+            raise DataError(f"--sweep values are whole numbers or 'all', separated by commas; got {item!r}")
     return values
 
 

@@ -129,8 +129,6 @@ def fit_version(
     """
     wanted = [parse_target(text) for text in targets]
     sweep = sweep or bool(wanted)
-    if sweep:
-        strengths(method, sweep_values)  # an unknown method or an empty grid is refused before the pass
     if not 0.0 < holdout < 1.0:
         raise DataError(f"the held-out share must be between 0 and 1, got {holdout}")
     if chunk_rows < 1 or any(limit is not None and limit < 2 for limit in (audit_rows, fit_sample_rows)):
@@ -141,9 +139,19 @@ def fit_version(
     partitions = sample.partitions(chunk_rows)
     streamed = len(partitions) > 1
     exact_moments = method in MOMENT_METHODS
+    # A sweep's points are configured (and checked) before the pass too: the pass accumulates what any needs.
+    candidates = [eraser]
+    if sweep:
+        parameter, values = strengths(method, sweep_values)
+        candidates += [
+            make_eraser(name, alias, method, {**(params or {}), parameter: value}, seed=seed, normalize=normalize)
+            for value in values
+        ]
     try:
         # Checked before the pass: a parameter the fit would refuse must not cost a read of the whole sample.
-        by_class = exact_moments and isinstance(eraser, MomentErasure) and eraser.needs_class_moments
+        by_class = exact_moments and any(
+            isinstance(candidate, MomentErasure) and candidate.needs_class_moments for candidate in candidates
+        )
     except ValueError as error:
         raise DataError(f"{method}: {error}") from None
     # INLP's moments classifier streams through partial_fit; a sample of one partition is simply fitted.

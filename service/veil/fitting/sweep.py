@@ -1,7 +1,7 @@
 """Operating points: a method fitted at several strengths, measured on held-out rows, and one chosen by targets.
 
-Each method has one strength parameter (the number of directions, of
-classifiers, of transport directions per class).  A sweep fits the method at
+Each method has one strength parameter (LEACE's second-moment directions,
+INLP's classifiers, R-LACE's rank, transport's directions per class).  A sweep fits the method at
 each value of a grid on the fitting rows and measures every point on the
 held-out rows with :func:`veil.audit.measure_points.point_figures`.  Targets such as
 ``nn-attribute <= base + 0.05`` or ``task >= raw - 0.02`` then choose a
@@ -27,11 +27,24 @@ from veil.errors import DataError
 
 Value = int | None
 
-#: The parameter a sweep varies for each method, and its default grid (None: the method's own maximum).
-STRENGTHS: dict[str, tuple[str, tuple[Value, ...]]] = {
-    "inlp": ("max_iter", (1, 2, 4, 8, 16, 32)),
-    "rlace": ("rank", (1, 2, 4, 8, 16)),
-    "transport": ("rank", (8, 16, 32, 64, 128, None)),
+
+@dataclass(frozen=True)
+class Strength:
+    """The parameter a sweep of one method varies, its default grid and the values it accepts."""
+
+    parameter: str
+    grid: tuple[Value, ...]
+    least: int
+    #: What ``None`` (``all`` on the command line) means for the method, or None where it has no meaning.
+    full: str | None = None
+
+
+#: The strength each method's sweep varies.
+STRENGTHS: dict[str, Strength] = {
+    "leace": Strength("covariance_directions", (0, 8, 16, 32, 64), least=0),
+    "inlp": Strength("max_iter", (1, 2, 4, 8, 16, 32), least=1),
+    "rlace": Strength("rank", (1, 2, 4, 8, 16), least=1),
+    "transport": Strength("rank", (8, 16, 32, 64, 128, None), least=1, full="the full support"),
 }
 # What each reference of a target may be compared with.
 _REFERENCES = {
@@ -120,14 +133,25 @@ def parse_target(text: str) -> Target:
 
 
 def sweep_values(method: str, values: Sequence[Value] | None) -> tuple[str, tuple[Value, ...]]:
-    """The parameter a sweep of ``method`` varies, and its values (the default grid without ``values``)."""
+    """The parameter a sweep of ``method`` varies, and its values (the default grid without ``values``).
+
+    Raises
+    ------
+    DataError
+        The method has no strength to sweep, or a value is one the method does not accept.
+    """
     if method not in STRENGTHS:
         raise DataError(f"{method} has no strength to sweep; sweeps exist for {', '.join(STRENGTHS)}")
-    parameter, grid = STRENGTHS[method]
-    chosen = tuple(grid if values is None else values)
+    strength = STRENGTHS[method]
+    chosen = tuple(strength.grid if values is None else values)
     if not chosen:
-        raise DataError(f"a sweep of {method} needs at least one value of {parameter}")
-    return parameter, chosen
+        raise DataError(f"a sweep of {method} needs at least one value of {strength.parameter}")
+    for value in chosen:
+        if value is None and strength.full is None:
+            raise DataError(f"a sweep of {method} over {strength.parameter} takes numbers only; 'all' has no meaning")
+        if value is not None and value < strength.least:
+            raise DataError(f"a sweep of {method} needs {strength.parameter} of at least {strength.least}, got {value}")
+    return strength.parameter, chosen
 
 
 def run_sweep(
