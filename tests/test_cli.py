@@ -187,7 +187,9 @@ def test_the_card_holds_what_auditors_and_the_service_need(fitted: Fitted) -> No
     human = run("show", NAME, "live", "--registry", fitted.registry)
     assert human.code == 0
     assert fitted.ids["leace"] in human.out
-    assert "alert thresholds" in human.out
+    assert "live-check thresholds (warn / alert):" in human.out
+    assert "audit thresholds (warn / alert):" in human.out
+    assert human.out.splitlines()[1].startswith("verdict at fitting time: ")
 
 
 def test_versions_compare_and_verify(fitted: Fitted) -> None:

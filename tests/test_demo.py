@@ -15,6 +15,10 @@ def test_the_demo_fits_serves_checks_drift_and_rolls_back(tmp_path: Path) -> Non
     assert result.returncode == 0, result.stderr
     out = result.stdout
     first, second = re.findall(r"stored (v0001-\w+) \(LEACE, live\) and (v0002-\w+)", out)[0]
+    # The first version's verdicts: at fitting time, and on the March sign-ups, recorded beside it.
+    assert re.search(r"verdict at fitting time: (ok|warn|alert)", out)
+    assert re.search(rf"fresh audit 1 of profiles-minilm {first}, on the 600 profiles that signed up in March: ", out)
+    assert (tmp_path / "demo-registry" / "profiles-minilm" / "records" / first / "audits").is_dir()
     assert f"cleaned 3000 profiles through the client in batches of 512 with {second}" in out
     assert re.search(r"a normal sample \(400, unlabelled\):\s+ok", out)
     assert re.search(r"the same sample, shifted:\s+alert", out)

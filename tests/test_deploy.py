@@ -51,7 +51,9 @@ def dockerfile() -> str:
 
 def test_every_manifest_has_the_kinds_the_cluster_needs() -> None:
     kinds = sorted(m["kind"] for m in manifests())
-    expected = ["ConfigMap", "Deployment", "HorizontalPodAutoscaler", "Job", "PodDisruptionBudget", "Service"]
+    expected = [
+        "ConfigMap", "CronJob", "Deployment", "HorizontalPodAutoscaler", "Job", "PodDisruptionBudget", "Service"
+    ]  # fmt: skip
     assert kinds == expected
 
 
@@ -99,6 +101,27 @@ def test_resources_settings_and_the_fit_job() -> None:
     (job,) = of_kind("Job")
     (fit,) = job["spec"]["template"]["spec"]["containers"]
     assert parses_as_veil(fit["command"]) == "fit"
+
+
+def test_the_patrol_cronjob_checks_the_service_once_per_scheduled_slot() -> None:
+    (cronjob,) = of_kind("CronJob")
+    (configmap,) = of_kind("ConfigMap")
+    (service,) = of_kind("Service")
+    spec = cronjob["spec"]
+    assert spec["concurrencyPolicy"] == "Forbid"
+    (patrol,) = spec["jobTemplate"]["spec"]["template"]["spec"]["containers"]
+    assert parses_as_veil(patrol["command"]) == "patrol"
+    arguments = build_parser().parse_args(patrol["command"][1:])
+    assert arguments.once
+    # One record per slot: the slot is the schedule's interval ("*/5": every 300 s), so a retried job adds nothing.
+    minutes = int(spec["schedule"].split()[0].removeprefix("*/"))
+    assert arguments.every == minutes * 60
+    # It reaches the Service by name on its port, and the registry through the same settings as the service.
+    assert arguments.service == f"http://{service['metadata']['name']}"
+    assert service["spec"]["ports"][0]["port"] == 80
+    assert patrol["envFrom"][0]["configMapRef"]["name"] == configmap["metadata"]["name"]
+    assert "VEIL_REGISTRY" in configmap["data"]
+    assert {"cpu", "memory"} <= patrol["resources"]["limits"].keys()
 
 
 def test_no_secret_is_inlined_anywhere() -> None:

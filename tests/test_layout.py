@@ -22,7 +22,7 @@ LAYERS: list[set[str]] = [
     {"checks"},
     {"registry"},
     {"reporting"},
-    {"fitting", "cleaning"},
+    {"fitting", "cleaning", "patrol"},
     {"server"},
     {"cli"},
     {"demo", "__init__", "__main__"},

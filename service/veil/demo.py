@@ -3,7 +3,8 @@
 Harbourline is an invented community job board whose profile search ranks
 member profiles by embedding similarity; the embeddings carry the member's
 pronoun, which the search must not use.  The demo fits two erasers into a
-fresh registry, promotes one, starts the service on a free loopback port,
+fresh registry on the profiles that signed up before March, audits the
+first on the March sign-ups and records that audit, promotes one, starts the service on a free loopback port,
 cleans the corpus through the client, compares search results before and
 after, checks a normal and a shifted traffic sample for drift, rolls back,
 shows the service picking the rollback up, and stops the service.
@@ -20,7 +21,6 @@ import subprocess
 import sys
 import time
 from collections.abc import Iterator
-from importlib import resources
 from pathlib import Path
 
 import httpx
@@ -28,14 +28,17 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import geometry
+from veil.fitting.fresh_audit import audit_stored_version
 from veil.fitting.job import fit_version
 from veil.registry import Registry
+from veil.registry.card import card_verdict
 from veil.reporting import REPORT_FILE
-from veil.samples.harbourline import SAMPLE_FILE, load_harbourline_profiles
+from veil.samples.harbourline import ProfileSample, load_harbourline_profiles
 from veil.samples.sources import load_labelled_sample
 from veil_client import VeilClient
 
 DEMO_REGISTRY = Path("demo-registry")
+DEMO_DATA = Path("demo-data")
 NAME = "profiles-minilm"
 ADMIN_TOKEN = "demo-admin-token"
 NEIGHBOURS = 10
@@ -89,21 +92,42 @@ def _neighbour_shares(
     return float(same_attribute.mean()), float(same_field.mean())
 
 
+def _signups(profiles: ProfileSample) -> tuple[Path, Path]:
+    """The committed sample as two files: the profiles that signed up before March (the first 80%), and in March."""
+    DEMO_DATA.mkdir(exist_ok=True)
+    cut = profiles.embedding.shape[0] * 4 // 5
+    paths = (DEMO_DATA / "signups-before-march.npz", DEMO_DATA / "signups-march.npz")
+    for path, rows in zip(paths, (slice(0, cut), slice(cut, None)), strict=True):
+        np.savez(path, embedding=profiles.embedding[rows], pronoun=profiles.pronoun[rows], field=profiles.field[rows])
+    return paths
+
+
 def main() -> None:
     started = time.perf_counter()
     shutil.rmtree(DEMO_REGISTRY, ignore_errors=True)  # the demo owns this folder
     registry = Registry(DEMO_REGISTRY)
     profiles = load_harbourline_profiles()
-    with resources.as_file(resources.files("veil").joinpath("data", SAMPLE_FILE)) as path:
-        sample = load_labelled_sample(path, attribute="pronoun", task="field")
+    before_march, march = _signups(profiles)
+    sample = load_labelled_sample(before_march, attribute="pronoun", task="field")
     print(
-        f"Harbourline profile search: {sample.rows} member profiles × {sample.embeddings.shape[1]} dims "
+        f"Harbourline profile search: {profiles.embedding.shape[0]} member profiles × {sample.dim} dims "
         f"(all-MiniLM-L6-v2); protected attribute: pronoun; task: field of work. Registry: {DEMO_REGISTRY}/\n"
     )
 
-    print("1. Fit two erasers, each audited on 20% held-out rows")
+    print(
+        f"1. Fit two erasers on the {sample.rows} profiles that signed up before March, each audited on 20% "
+        "held-out rows"
+    )
     leace = fit_version(sample, registry=registry, name=NAME, method="leace", alias="live", reason="first eraser")
     print(leace.audit.format_table())
+    print(f"verdict at fitting time: {card_verdict(leace.card).sentence()}")
+    fresh = audit_stored_version(
+        registry, NAME, leace.version_id, load_labelled_sample(march, attribute="pronoun", task="field")
+    )
+    print(
+        f"fresh audit {fresh.record.number} of {NAME} {leace.version_id}, on the {fresh.audit.n_heldout} profiles "
+        f"that signed up in March: {fresh.verdict.sentence()}"
+    )
     inlp = fit_version(
         sample, registry=registry, name=NAME, method="inlp", params={"classifier": "moments", "max_iter": 30},
         nonlinear=False,

@@ -1,4 +1,4 @@
-"""The leakage and utility audit of a fitted eraser, on held-out data: probes, geometry, the typed report.
+"""The leakage and utility audit of a fitted eraser on held-out data, or of a stored map on a fresh sample.
 
 May import: ``veil.erasers``, ``veil.maps``, ``veil.samples``, ``veil.errors``, ``veil.progress``.
 Never the registry, the live checks, the fitting job or the service.
@@ -12,7 +12,7 @@ from typing import TYPE_CHECKING, Any
 from veil.audit.report import AuditReport, Leakage, ProbeProtocol, ProbeScore, RegressionScore, Retrieval, Utility
 
 if TYPE_CHECKING:
-    from veil.audit.run import audit, fit_and_audit
+    from veil.audit.run import audit, audit_artifact, fit_and_audit
 
 __all__ = [
     "AuditReport",
@@ -23,11 +23,12 @@ __all__ = [
     "Retrieval",
     "Utility",
     "audit",
+    "audit_artifact",
     "fit_and_audit",
 ]
 
 # Running an audit needs scikit-learn; reading one (a version card) does not, so the runner loads on first use.
-_LAZY = {"audit": "veil.audit.run", "fit_and_audit": "veil.audit.run"}
+_LAZY = {"audit": "veil.audit.run", "audit_artifact": "veil.audit.run", "fit_and_audit": "veil.audit.run"}
 
 
 def __getattr__(name: str) -> Any:

@@ -18,6 +18,7 @@ PROBE_LABELS = {
 }
 #: The protocol :func:`veil.audit.audit` follows.
 HELD_OUT_KFOLD = "k-fold cross-validation within held-out rows"
+FRESH_KFOLD = "k-fold cross-validation within a fresh sample"
 
 
 @dataclass(frozen=True)
@@ -156,7 +157,8 @@ class ProbeProtocol:
     scheme : str
         :data:`HELD_OUT_KFOLD`: every probe is trained and tested only on
         held-out rows, which the eraser never saw, each row predicted by a
-        probe trained on the other folds.
+        probe trained on the other folds.  :data:`FRESH_KFOLD`: the same
+        within a fresh sample audited after the version was stored.
     folds : int
         Folds of the cross-validation (stratified by the attribute's class).
     seed : int
@@ -171,6 +173,11 @@ class ProbeProtocol:
     eraser_rows: int
 
     def describe(self, heldout_rows: int) -> str:
+        if self.scheme == FRESH_KFOLD:
+            return (
+                f"trained and tested only on the {heldout_rows} rows of a fresh sample (the eraser was fitted on "
+                f"{self.eraser_rows} rows of its own): {self.folds}-fold cross-validation, seed {self.seed}"
+            )
         return (
             f"trained and tested only on the {heldout_rows} held-out rows the eraser never saw "
             f"(it was fitted on {self.eraser_rows} others): {self.folds}-fold cross-validation, seed {self.seed}"
@@ -292,9 +299,11 @@ class AuditReport:
                 )
         width = max(len(r[0]) for r in rows)
         column = max(21, *(len(text) for row in rows for text in row[1:]))
+        fresh = self.protocol is not None and self.protocol.scheme == FRESH_KFOLD
         lines = [
             f"{self.method} eraser, rank {self.rank}, "
-            f"audited on {self.n_heldout} held-out rows of dimension {self.dim}",
+            f"audited on {self.n_heldout} {'rows of a fresh sample' if fresh else 'held-out rows'} "
+            f"of dimension {self.dim}",
         ]
         if self.protocol is not None:
             lines.append("probes " + self.protocol.describe(self.n_heldout))

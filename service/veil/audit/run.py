@@ -1,7 +1,9 @@
-"""Run the audit of a fitted eraser on held-out data."""
+"""Run the audit of a fitted eraser on held-out data, or of a stored map on a fresh sample."""
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from dataclasses import dataclass
 from typing import TypeVar
 
 import numpy as np
@@ -11,6 +13,7 @@ from sklearn.utils.validation import check_array, check_is_fitted
 
 from veil.audit import geometry, probes, readers
 from veil.audit.report import (
+    FRESH_KFOLD,
     HELD_OUT_KFOLD,
     PROBE_LABELS,
     PROBES,
@@ -23,8 +26,11 @@ from veil.audit.report import (
     Utility,
 )
 from veil.erasers._base import Erasure
+from veil.maps.artifact import MapArtifact
 from veil.maps.attribute import encode_attribute
+from veil.maps.kinds import EmbeddingMap
 from veil.maps.linalg import whiten, whitening_factors
+from veil.maps.moments import MomentState
 
 E = TypeVar("E", bound=Erasure)
 NEIGHBOURS = 10
@@ -91,9 +97,80 @@ def audit(
     AuditReport
     """
     check_is_fitted(eraser, "map_")
+    return _audit_map(
+        _Audited(eraser.method, eraser.map_, eraser.transform, eraser.moments_, HELD_OUT_KFOLD),
+        X,
+        z,
+        task=task,
+        folds=folds,
+        nonlinear=nonlinear,
+        random_state=random_state,
+    )
+
+
+def audit_artifact(
+    artifact: MapArtifact,
+    X: ArrayLike,
+    z: object,
+    *,
+    task: object = None,
+    folds: int = 5,
+    nonlinear: bool = True,
+    random_state: int = 0,
+) -> AuditReport:
+    """Measure leakage and utility of a stored map on a fresh sample, as :func:`audit` does for an eraser.
+
+    ``X`` must be rows the map was never fitted on, drawn after the fact (the
+    report's protocol says :data:`~veil.audit.report.FRESH_KFOLD`).  What is
+    audited is ``artifact.apply``: exactly what the service serves.
+
+    Parameters
+    ----------
+    artifact : MapArtifact
+    X : array-like of shape (n, d)
+    z : array-like of shape (n,)
+        Attribute labels of the fresh rows (classes the map was not fitted on are allowed: they are what they are).
+    task : array-like of shape (n,), optional
+
+    Returns
+    -------
+    AuditReport
+    """
+    return _audit_map(
+        _Audited(artifact.method, artifact.map, artifact.apply, artifact.moments, FRESH_KFOLD),
+        X,
+        z,
+        task=task,
+        folds=folds,
+        nonlinear=nonlinear,
+        random_state=random_state,
+    )
+
+
+@dataclass(frozen=True)
+class _Audited:
+    """What an audit needs of a map: its method, the map, how it is applied, its fitting statistics, the scheme."""
+
+    method: str
+    map: EmbeddingMap
+    apply: Callable[[NDArray[np.floating]], NDArray[np.floating]]
+    moments: MomentState
+    scheme: str
+
+
+def _audit_map(
+    audited: _Audited,
+    X: ArrayLike,
+    z: object,
+    *,
+    task: object,
+    folds: int,
+    nonlinear: bool,
+    random_state: int,
+) -> AuditReport:
     raw = check_array(X, dtype=(np.float64, np.float32))
     attribute = encode_attribute(z, raw.shape[0])
-    erased = eraser.transform(raw)
+    erased = audited.apply(raw)
     notes: list[str] = []
     gap_before: float | None
     gap_after: float | None
@@ -129,7 +206,7 @@ def audit(
         linear_before, linear_after = scores.pop("linear")
         # Whitened by the fitting data's covariance, so before and after are
         # measured in the same units.
-        eigenvectors, scale = whitening_factors(eraser.moments_.covariance_xx)
+        eigenvectors, scale = whitening_factors(audited.moments.covariance_xx)
         gap_before = _class_mean_gap(whiten(raw, eigenvectors, scale), codes)
         gap_after = _class_mean_gap(whiten(erased, eigenvectors, scale), codes)
         noise_floor = _class_mean_noise_floor(codes, scale.size)
@@ -206,10 +283,10 @@ def audit(
             f"{dead} coordinate(s) have almost no spread; erasure leaves them as they are, and a model "
             "that rescales them to unit variance may read attribute content at rounding level"
         )
-    rows_per_dim = eraser.moments_.count / raw.shape[1]
-    if rows_per_dim < 25:
+    fitted_rows = int(audited.moments.count)
+    if fitted_rows / raw.shape[1] < 25:
         notes.append(
-            f"the eraser was fitted on {eraser.moments_.count} rows for {raw.shape[1]} dimensions; "
+            f"the eraser was fitted on {fitted_rows} rows for {raw.shape[1]} dimensions; "
             "held-out leakage shrinks as the fitting sample grows relative to the dimension"
         )
     linear_after = leakage.linear_after
@@ -222,13 +299,13 @@ def audit(
     ):
         why = (
             "linear erasure does not remove nonlinear traces"
-            if eraser.map_.kind == "affine-lowrank"
+            if audited.map.kind == "affine-lowrank"
             else "this map leaves nonlinear traces"
         )
         notes.append(f"the {PROBE_LABELS[str(strongest)]} recovers more than the linear one: {why}")
     return AuditReport(
-        method=eraser.method,
-        rank=eraser.map_.describe()["rank"],
+        method=audited.method,
+        rank=audited.map.describe()["rank"],
         n_heldout=int(raw.shape[0]),
         dim=int(raw.shape[1]),
         leakage=leakage,
@@ -236,9 +313,7 @@ def audit(
         retrieval=retrieval,
         notes=notes,
         classes=None if attribute.labels is None else tuple(str(label) for label in attribute.labels),
-        protocol=ProbeProtocol(
-            scheme=HELD_OUT_KFOLD, folds=used_folds, seed=random_state, eraser_rows=int(eraser.moments_.count)
-        ),
+        protocol=ProbeProtocol(scheme=audited.scheme, folds=used_folds, seed=random_state, eraser_rows=fitted_rows),
     )
 
 

@@ -1,4 +1,4 @@
-"""Alert thresholds of the drift and leakage checks, stored in every version's card.
+"""Thresholds of the drift and leakage checks and of the audits, stored in every version's card.
 
 Each figure has a ``warn`` and an ``alert`` level; a check's status is the
 worst level any figure reaches.  The defaults are common-practice starting
@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, fields
-from typing import Any
+from typing import Any, Self
 
 
 @dataclass(frozen=True)
@@ -37,7 +37,24 @@ class Band:
 
 
 @dataclass(frozen=True)
-class AlertThresholds:
+class _BandSet:
+    """A dataclass of :class:`Band` fields, written to and read from a card as ``{figure: {warn, alert}}``."""
+
+    def to_dict(self) -> dict[str, dict[str, float]]:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> Self:
+        """Thresholds from a card or settings; figures left out keep their defaults, unknown ones are refused."""
+        known = {f.name for f in fields(cls)}
+        unknown = sorted(set(data) - known)
+        if unknown:
+            raise ValueError(f"unknown threshold {unknown[0]!r}; known: {', '.join(sorted(known))}")
+        return cls(**{key: Band(float(value["warn"]), float(value["alert"])) for key, value in data.items()})
+
+
+@dataclass(frozen=True)
+class AlertThresholds(_BandSet):
     """The levels at which each drift or leakage figure warns or alerts."""
 
     leakage_gap: Band = Band(0.02, 0.05)
@@ -46,14 +63,27 @@ class AlertThresholds:
     erased_variance_ratio: Band = Band(2.0, 4.0)
     prior_shift: Band = Band(0.1, 0.2)
 
-    def to_dict(self) -> dict[str, dict[str, float]]:
-        return asdict(self)
 
-    @classmethod
-    def from_dict(cls, data: dict[str, Any]) -> AlertThresholds:
-        """Thresholds from a card or settings; figures left out keep their defaults, unknown ones are refused."""
-        known = {f.name for f in fields(cls)}
-        unknown = sorted(set(data) - known)
-        if unknown:
-            raise ValueError(f"unknown threshold {unknown[0]!r}; known: {', '.join(sorted(known))}")
-        return cls(**{key: Band(float(value["warn"]), float(value["alert"])) for key, value in data.items()})
+@dataclass(frozen=True)
+class AuditThresholds(_BandSet):
+    """The levels at which each figure of an audit (at fitting time or on a fresh sample) warns or alerts.
+
+    ==========================  ===============================================================================
+    figure                      meaning
+    ==========================  ===============================================================================
+    ``linear_gap``              the linear probe after erasure, at the edge of its 95% interval nearest the
+                                majority baseline, as a distance from majority (0 when the interval holds it)
+    ``strongest_gap``           the same for the probe farthest from majority after erasure (a probe reliably
+                                below majority has learned the attribute too)
+    ``neighbour_excess``        share of each row's 10 nearest neighbours with its attribute, above the base
+                                rate (the share a neighbourhood blind to the attribute would have)
+    ``task_loss``               task probe accuracy lost to erasure (raw minus erased)
+    ==========================  ===============================================================================
+
+    The defaults are common-practice starting points, not derived values.
+    """
+
+    linear_gap: Band = Band(0.02, 0.05)
+    strongest_gap: Band = Band(0.05, 0.10)
+    neighbour_excess: Band = Band(0.05, 0.10)
+    task_loss: Band = Band(0.02, 0.05)

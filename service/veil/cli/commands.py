@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 from dataclasses import asdict
 from pathlib import Path
@@ -11,7 +12,7 @@ from typing import Any
 
 from veil.errors import DataError
 from veil.registry import DEFAULT_ALIAS, Registry
-from veil.registry.card import compare_cards, format_card
+from veil.registry.card import compare_cards, format_card, fresh_audits_text
 
 # The commands that fit, render or clean import their modules when they run: scikit-learn, matplotlib and pyarrow
 # take a second to import, and `veil versions` or `veil show` need none of them.
@@ -37,13 +38,35 @@ def _sweep_values(text: str) -> list[int | None]:
     return values
 
 
+def _open_sample(args: argparse.Namespace, *, streamed: bool) -> Any:
+    """The labelled sample ``--data`` and its label options name: read whole, or described for streaming."""
+    from veil.samples.sources import load_labelled_sample
+    from veil.samples.streaming import open_stream
+
+    source = {
+        "attribute": args.attribute,
+        "task": args.task,
+        "embeddings_key": args.embeddings,
+        "labels": args.labels,
+        "drop_missing": args.drop_missing,
+    }
+    return open_stream(args.data, **source) if streamed else load_labelled_sample(args.data, **source)
+
+
+def _audit_thresholds(bands: list[tuple[str, tuple[float, float]]]) -> Any:
+    from veil.checks.thresholds import AuditThresholds
+
+    try:
+        return AuditThresholds.from_dict({figure: {"warn": warn, "alert": alert} for figure, (warn, alert) in bands})
+    except ValueError as error:
+        raise DataError(f"--audit-threshold: {error}") from None
+
+
 def fit(args: argparse.Namespace) -> int:
     from veil.audit.points import Sweep
     from veil.fitting.job import fit_version
     from veil.fitting.methods import parse_parameters
     from veil.fitting.sweep import TargetsMissedError
-    from veil.samples.sources import load_labelled_sample
-    from veil.samples.streaming import open_stream
 
     params = parse_parameters(args.method, args.option)
     sweep_values = None if not args.sweep else _sweep_values(args.sweep)
@@ -63,18 +86,12 @@ def fit(args: argparse.Namespace) -> int:
         "sweep": args.sweep is not None,
         "sweep_values": sweep_values,
         "targets": args.target,
-    }
-    source = {
-        "attribute": args.attribute,
-        "task": args.task,
-        "embeddings_key": args.embeddings,
-        "labels": args.labels,
-        "drop_missing": args.drop_missing,
+        "audit_thresholds": _audit_thresholds(args.audit_threshold),
     }
     try:
         if args.stream or args.engine == "dask" or Path(args.data).is_dir():
             outcome = fit_version(
-                open_stream(args.data, **source),
+                _open_sample(args, streamed=True),
                 chunk_rows=args.chunk_rows,
                 audit_rows=args.audit_rows,
                 fit_sample_rows=args.fit_sample_rows,
@@ -84,7 +101,7 @@ def fit(args: argparse.Namespace) -> int:
                 **common,
             )
         else:
-            outcome = fit_version(load_labelled_sample(args.data, **source), **common)
+            outcome = fit_version(_open_sample(args, streamed=False), **common)
     except TargetsMissedError as missed:
         # The points, so the targets can be set again with the figures in view; the error itself is one line.
         print(missed.sweep.format_table())
@@ -119,11 +136,48 @@ def versions(args: argparse.Namespace) -> int:
 
 
 def show(args: argparse.Namespace) -> int:
-    stored = Registry(args.registry).read_version(args.name, args.version)
+    registry = Registry(args.registry)
+    stored = registry.read_version(args.name, args.version)
+    audits = registry.records(args.name, stored.id, "audits")
     if args.json:
-        print(json.dumps({"version": stored.id, **stored.card}, indent=2, sort_keys=True))
+        listed = [{"number": record.number, "key": record.key, **record.body} for record in audits]
+        print(json.dumps({"version": stored.id, **stored.card, "fresh_audits": listed}, indent=2, sort_keys=True))
     else:
         print(format_card(stored.id, dict(stored.card)))
+        print()
+        print(*fresh_audits_text([(record.number, record.body) for record in audits]), sep="\n")
+    return 0
+
+
+def audit(args: argparse.Namespace) -> int:
+    from veil.fitting.fresh_audit import audit_stored_version
+
+    registry = Registry(args.registry)
+    registry.read_version(args.name, args.version)  # an unknown or damaged version fails before the sample is read
+    streamed = args.stream or Path(args.data).is_dir()
+    outcome = audit_stored_version(
+        registry,
+        args.name,
+        args.version,
+        _open_sample(args, streamed=streamed),
+        nonlinear=args.probes == "all",
+        seed=args.seed,
+        max_rows=args.rows,
+        chunk_rows=args.chunk_rows,
+    )
+    record = outcome.record
+    if args.json:
+        print(json.dumps({"number": record.number, "key": record.key, **record.body}, indent=2, sort_keys=True))
+        return 0
+    print(outcome.audit.format_table())
+    for note in record.body["notes"]:
+        print(f"note: {note}")
+    print(f"verdict: {outcome.verdict.sentence()}")
+    where = f"{args.name} {record.version}"
+    if outcome.already_stored:
+        print(f"this audit was stored before, as fresh audit {record.number} of {where}")
+    else:
+        print(f"stored as fresh audit {record.number} of {where}")
     return 0
 
 
@@ -195,9 +249,12 @@ def report(args: argparse.Namespace) -> int:
     out = Path(args.out)
     if not out.parent.is_dir():
         raise DataError(f"the output folder {out.parent} does not exist")
-    stored = Registry(args.registry).read_version(args.name, args.version)
+    registry = Registry(args.registry)
+    stored = registry.read_version(args.name, args.version)
     plots = PlotData.from_bytes(stored.files[PLOT_DATA_FILE])
-    out.write_text(render_report(stored.id, dict(stored.card), stored.artifact.history, plots), encoding="utf-8")
+    audits = [(record.number, record.body) for record in registry.records(args.name, stored.id, "audits")]
+    page = render_report(stored.id, dict(stored.card), stored.artifact.history, plots, audits)
+    out.write_text(page, encoding="utf-8")
     print(out)
     return 0
 
@@ -230,8 +287,112 @@ def serve(args: argparse.Namespace) -> int:
     return 0
 
 
+def _posted_sample(args: argparse.Namespace) -> Any:
+    """The sample ``--sample`` names, as the patrol posts it (None: check the service's recent traffic)."""
+    import numpy as np
+
+    from veil.patrol.rounds import PostedSample
+    from veil.samples.sources import check_embeddings, file_sha256
+
+    if args.sample is None:
+        if args.attribute is not None:
+            raise DataError("--attribute names labels inside a --sample file; give the sample too")
+        return None
+    path = Path(args.sample)
+    if not path.is_file():
+        raise DataError(f"{path} does not exist")
+    try:
+        if path.suffix.lower() == ".npy":
+            if args.attribute is not None:
+                raise DataError(f"{path.name} holds vectors only; labels come with a .npz sample")
+            vectors, labels = np.load(path, allow_pickle=False), None
+        elif path.suffix.lower() == ".npz":
+            with np.load(path, allow_pickle=False) as arrays:
+                missing = [key for key in (args.embeddings, args.attribute) if key is not None and key not in arrays]
+                if missing:
+                    raise DataError(f"{path.name} has no array {missing[0]!r}; it has {', '.join(arrays.files)}")
+                vectors = arrays[args.embeddings]
+                labels = None if args.attribute is None else [str(label) for label in arrays[args.attribute]]
+        else:
+            raise DataError(f"a --sample is a .npy or .npz file, not {path.suffix or 'a file without a suffix'}")
+    except (ValueError, OSError) as error:
+        raise DataError(f"{path} cannot be read as a sample ({error})") from None
+    vectors = check_embeddings(vectors, source=str(path))
+    if labels is not None and len(labels) != vectors.shape[0]:
+        raise DataError(f"{path.name}: {len(labels)} labels for {vectors.shape[0]} vectors")
+    return PostedSample(vectors=vectors, labels=labels, file=path.name, sha256=file_sha256(path))
+
+
+def patrol(args: argparse.Namespace) -> int:
+    from veil.patrol.loop import run_patrol
+    from veil_client import VeilError
+
+    registry = Registry(args.registry)
+    registry.versions(args.name)  # an unknown eraser fails before the first round
+    try:
+        run_patrol(
+            registry,
+            args.name,
+            service=args.service,
+            token=os.environ.get("VEIL_DATA_TOKEN"),
+            sample=_posted_sample(args),
+            every=args.every,
+            rounds=1 if args.once else args.rounds,
+            say=lambda line: print(line, flush=True),
+        )
+    except VeilError as error:
+        print(f"veil patrol: the service at {args.service} did not answer: {error}", file=sys.stderr)
+        return 1
+    return 0
+
+
+def _since(text: str | None) -> Any:
+    """``--since``: an ISO date or time (UTC unless it says otherwise), or a span back from now."""
+    from datetime import UTC, datetime, timedelta
+
+    if text is None:
+        return None
+    units = {"m": 60, "h": 3600, "d": 86400}
+    if text[:-1].isdigit() and text[-1:] in units:
+        return datetime.now(UTC) - timedelta(seconds=int(text[:-1]) * units[text[-1]])
+    try:
+        moment = datetime.fromisoformat(text)
+    except ValueError:
+        raise DataError(
+            f"--since {text!r}: give an ISO date or time (2026-12-01T08:00) or a span (30m, 24h, 7d)"
+        ) from None
+    return moment if moment.tzinfo is not None else moment.replace(tzinfo=UTC)
+
+
+def checks(args: argparse.Namespace) -> int:
+    from veil.patrol.rounds import check_history
+
+    records = check_history(Registry(args.registry), args.name, since=_since(args.since))
+    if args.json:
+        listed = [{"number": record.number, "key": record.key, **record.body} for record in records]
+        print(json.dumps(listed, indent=2, sort_keys=True))
+        return 0
+    if not records:
+        print(f"no recorded checks of {args.name}" + ("" if args.since is None else f" since {args.since}"))
+        return 0
+    rows = [
+        [
+            record.body["checked_at"],
+            record.version,
+            str(record.body["report"].get("rows", "")),
+            record.body["checked"]["kind"],
+            record.body["status"],
+            "; ".join(record.body["reasons"]),
+        ]
+        for record in records
+    ]
+    _print_table(["checked at", "version", "rows", "checked", "status", "reasons"], rows)
+    return 0
+
+
 HANDLERS = {
     "fit": fit,
+    "audit": audit,
     "versions": versions,
     "show": show,
     "compare": compare,
@@ -242,4 +403,6 @@ HANDLERS = {
     "report": report,
     "apply": apply,
     "serve": serve,
+    "patrol": patrol,
+    "checks": checks,
 }

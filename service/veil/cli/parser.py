@@ -99,6 +99,46 @@ def _common_options() -> VeilParser:
     return common
 
 
+def _sample_options(command: argparse.ArgumentParser) -> None:
+    """The options that name a labelled sample, the same for ``veil fit`` and ``veil audit``."""
+    command.add_argument(
+        "--data",
+        required=True,
+        help="labelled sample: .npz, .npy (with --labels), .parquet, or a folder of .npy shards",
+    )
+    command.add_argument("--attribute", required=True, help="key or column of the protected attribute")
+    command.add_argument("--task", help="key or column of a task label, for utility figures")
+    command.add_argument("--labels", help="labels for .npy input: a .npy (the attribute) or a .csv with a header")
+    command.add_argument(
+        "--drop-missing",
+        action="store_true",
+        help="drop rows whose attribute or task label is missing (blank, NA, NaN, null) instead of refusing the "
+        "sample; the card records how many",
+    )
+    command.add_argument(
+        "--embeddings", default=EMBEDDINGS_KEY, help="key (.npz) or column (.parquet) of the embeddings"
+    )
+    command.add_argument(
+        "--stream",
+        action="store_true",
+        help="read the sample in chunks with bounded memory (always on for a folder of .npy shards)",
+    )
+    command.add_argument("--chunk-rows", type=int, default=STREAM_CHUNK_ROWS, help="rows per chunk when streaming")
+
+
+def _band(text: str) -> tuple[str, tuple[float, float]]:
+    """``FIGURE=WARN,ALERT`` as ``(figure, (warn, alert))``."""
+    figure, _, levels = text.partition("=")
+    parts = levels.split(",")
+    try:
+        warn, alert = (float(part) for part in parts)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} does not read as FIGURE=WARN,ALERT (e.g. strongest_gap=0.05,0.1)"
+        ) from None
+    return figure.strip().replace("-", "_"), (warn, alert)
+
+
 def build_parser() -> VeilParser:
     parser = VeilParser(
         prog="veil",
@@ -114,21 +154,7 @@ def build_parser() -> VeilParser:
         epilog_factory=method_options_help,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    fit.add_argument(
-        "--data",
-        required=True,
-        help="labelled sample: .npz, .npy (with --labels), .parquet, or a folder of .npy shards",
-    )
-    fit.add_argument("--attribute", required=True, help="key or column of the protected attribute")
-    fit.add_argument("--task", help="key or column of a task label, for utility figures")
-    fit.add_argument("--labels", help="labels for .npy input: a .npy (the attribute) or a .csv with a header")
-    fit.add_argument(
-        "--drop-missing",
-        action="store_true",
-        help="drop rows whose attribute or task label is missing (blank, NA, NaN, null) instead of refusing the "
-        "sample; the card records how many",
-    )
-    fit.add_argument("--embeddings", default=EMBEDDINGS_KEY, help="key (.npz) or column (.parquet) of the embeddings")
+    _sample_options(fit)
     fit.add_argument("--method", required=True, choices=sorted(METHOD_NAMES))
     fit.add_argument("--option", action="append", default=[], metavar="KEY=VALUE", help="a method option")
     fit.add_argument("--name", required=True, help="the eraser's name in the registry, e.g. profiles-minilm")
@@ -160,12 +186,6 @@ def build_parser() -> VeilParser:
         "'nn-attribute <= base + 0.05' or 'task >= raw - 0.02' (repeatable; implies --sweep)",
     )
     fit.add_argument(
-        "--stream",
-        action="store_true",
-        help="read the sample in chunks with bounded memory (always on for a folder of .npy shards)",
-    )
-    fit.add_argument("--chunk-rows", type=int, default=STREAM_CHUNK_ROWS, help="rows per chunk when streaming")
-    fit.add_argument(
         "--audit-rows",
         type=int,
         default=AUDIT_ROWS,
@@ -185,7 +205,35 @@ def build_parser() -> VeilParser:
     )
     fit.add_argument("--scheduler", help="address of a running Dask scheduler (default: start a local cluster)")
     fit.add_argument("--dask-workers", type=int, default=2, help="worker processes of the local Dask cluster")
+    fit.add_argument(
+        "--audit-threshold",
+        action="append",
+        default=[],
+        type=_band,
+        metavar="FIGURE=WARN,ALERT",
+        help="levels the verdict of this version's audits is judged by, e.g. strongest_gap=0.05,0.1 (repeatable; "
+        "figures: linear_gap, strongest_gap, neighbour_excess, task_loss)",
+    )
     fit.set_defaults(handler="fit")
+
+    audit = commands.add_parser(
+        "audit",
+        parents=common,
+        help="audit a stored version on a fresh labelled sample and record the result beside it",
+    )
+    audit.add_argument("name")
+    audit.add_argument("version", help="a version id, its sequence number (3 or v3), or an alias")
+    _sample_options(audit)
+    audit.add_argument(
+        "--probes",
+        choices=("all", "linear"),
+        default="all",
+        help="audit with every probe (linear, quadratic, RBF kernel, boosted trees, MLP), or the linear one only",
+    )
+    audit.add_argument("--seed", type=int, default=0, help="seeds the folds, the probes and the row draw")
+    audit.add_argument("--rows", type=int, help="audit a hash-drawn share of about this many rows (default: all)")
+    audit.add_argument("--json", action="store_true", help="print the stored record as JSON")
+    audit.set_defaults(handler="audit")
 
     versions = commands.add_parser(
         "versions", parents=common, help="list the versions of an eraser and the aliases on them"
@@ -250,6 +298,40 @@ def build_parser() -> VeilParser:
     apply.add_argument("--embeddings", default=EMBEDDINGS_KEY, help="the Parquet embedding column")
     apply.add_argument("--chunk-rows", type=int, default=APPLY_CHUNK_ROWS, help="rows cleaned at a time")
     apply.set_defaults(handler="apply")
+
+    patrol = commands.add_parser(
+        "patrol",
+        parents=common,
+        help="ask a running service for its drift and leakage checks and record each answer in the registry",
+    )
+    patrol.add_argument("name")
+    patrol.add_argument("--service", required=True, help="the service's base URL, e.g. http://veil.internal:8080")
+    patrol.add_argument(
+        "--every",
+        type=float,
+        default=300.0,
+        help="seconds per slot: one round, and one record, per slot (default 300; with --once, the schedule's "
+        "interval, so a retried run records nothing twice)",
+    )
+    rounds = patrol.add_mutually_exclusive_group()
+    rounds.add_argument("--once", action="store_true", help="one round, then stop (for a scheduler)")
+    rounds.add_argument("--rounds", type=int, help="this many rounds, one per slot, then stop (default: until stopped)")
+    patrol.add_argument(
+        "--sample",
+        help="post this sample of raw live vectors each round (.npy, or .npz with --embeddings and optionally "
+        "--attribute labels) instead of checking the service's recent traffic",
+    )
+    patrol.add_argument("--embeddings", default=EMBEDDINGS_KEY, help="key of the vectors in a .npz sample")
+    patrol.add_argument("--attribute", help="key of the attribute labels in a .npz sample")
+    patrol.set_defaults(handler="patrol")
+
+    checks = commands.add_parser("checks", parents=common, help="the recorded live checks of an eraser, in order")
+    checks.add_argument("name")
+    checks.add_argument(
+        "--since", help="from this time on: an ISO date or time, or a span back from now (30m, 24h, 7d)"
+    )
+    checks.add_argument("--json", action="store_true", help="machine-readable output")
+    checks.set_defaults(handler="checks")
 
     serve = commands.add_parser(
         "serve", parents=common, help="run the HTTP service (uvicorn); other settings come from VEIL_... variables"

@@ -27,7 +27,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.checks.thresholds import AlertThresholds
+from veil.checks.thresholds import AlertThresholds, AuditThresholds
 from veil.defaults import AUDIT_ROWS, ENGINES, FIT_SAMPLE_ROWS, STREAM_CHUNK_ROWS
 from veil.erasers import INLP, Erasure, MomentErasure
 from veil.errors import DataError
@@ -58,6 +58,7 @@ def fit_version(
     alias: str | None = None,
     reason: str = "",
     thresholds: AlertThresholds | None = None,
+    audit_thresholds: AuditThresholds | None = None,
     chunk_rows: int = STREAM_CHUNK_ROWS,
     audit_rows: int | None = None,
     fit_sample_rows: int | None = None,
@@ -96,6 +97,9 @@ def fit_version(
         Recorded in the history if an alias is moved.
     thresholds : AlertThresholds, optional
         Alert levels of the live checks (the defaults otherwise).
+    audit_thresholds : AuditThresholds, optional
+        Levels the verdict of this fit's audit and of later fresh audits is judged by (the defaults otherwise;
+        see :mod:`veil.checks.verdict`).
     chunk_rows : int
         Rows read at a time from a streamed sample (a sample in memory is one chunk).
     audit_rows, fit_sample_rows : int, optional
@@ -249,6 +253,7 @@ def fit_version(
         alias=alias,
         reason=reason or f"fitted by veil fit ({method}{', streamed' if streamed else ''})",
         thresholds=thresholds,
+        audit_thresholds=audit_thresholds,
         notes=notes,
         operating_points=operating_points,
     )

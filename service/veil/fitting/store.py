@@ -14,7 +14,7 @@ from veil.audit.points import Sweep
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
 from veil.checks.reference import REFERENCE_FILE, ReferenceStatistics
-from veil.checks.thresholds import AlertThresholds
+from veil.checks.thresholds import AlertThresholds, AuditThresholds
 from veil.erasers import Erasure
 from veil.progress import phase
 from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
@@ -59,6 +59,7 @@ def audit_and_store(
     thresholds: AlertThresholds | None,
     notes: list[str],
     operating_points: Sweep | None = None,
+    audit_thresholds: AuditThresholds | None = None,
 ) -> FitOutcome:
     """Audit a fitted eraser on held-out rows, build its card, reference and report, and store the version."""
     x_held, z_held, task_held = held_out
@@ -84,6 +85,7 @@ def audit_and_store(
         user=current_user(),
         notes=notes + list(report.notes),
         operating_points=None if operating_points is None else operating_points.to_dict(),
+        audit_thresholds=audit_thresholds,
     )
     files = encode_artifact(artifact)
     files[CARD_FILE] = json.dumps(card, indent=2, sort_keys=True, allow_nan=False).encode()

@@ -11,6 +11,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import platform
+from collections.abc import Mapping
 from datetime import UTC, datetime
 from importlib import metadata
 from typing import Any
@@ -18,7 +19,8 @@ from typing import Any
 from veil.audit.points import Sweep, value_text
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
-from veil.checks.thresholds import AlertThresholds
+from veil.checks.thresholds import AlertThresholds, AuditThresholds
+from veil.checks.verdict import Verdict, judge_audit
 from veil.maps.artifact import MapArtifact
 from veil.samples.chunks import Sample
 from veil.samples.labels import dropped_note
@@ -29,16 +31,16 @@ CARD_FORMAT = 1
 _LIBRARIES = ("veil", "numpy", "scipy", "scikit-learn")
 
 
-def _finite(value: Any) -> Any:
+def json_safe(value: Any) -> Any:
     """JSON-safe: NumPy scalars to Python, NaN/inf to None (strict JSON has neither), recursively."""
     if hasattr(value, "item") and not isinstance(value, (list, dict, str)):
         value = value.item()
     if isinstance(value, float) and not math.isfinite(value):
         return None
     if isinstance(value, dict):
-        return {str(k): _finite(v) for k, v in value.items()}
+        return {str(k): json_safe(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
-        return [_finite(v) for v in value]
+        return [json_safe(v) for v in value]
     return value
 
 
@@ -76,6 +78,7 @@ def build_card(
     user: str,
     notes: list[str],
     operating_points: dict[str, Any] | None = None,
+    audit_thresholds: AuditThresholds | None = None,
 ) -> dict[str, Any]:
     """The card of a freshly fitted version (a JSON-safe dict)."""
     classes = [] if artifact.classes is None else [str(c) for c in artifact.classes]
@@ -111,6 +114,7 @@ def build_card(
             "pre_erasure_probe": "logistic regression on standardised raw embeddings, fitted on the fit rows",
         },
         "thresholds": thresholds.to_dict(),
+        "verdict": verdict_record(audit, audit_thresholds or AuditThresholds()),
         "software": software_versions(),
         "created_at": datetime.now(UTC).isoformat(timespec="seconds"),
         "created_by": user,
@@ -118,15 +122,34 @@ def build_card(
     }
     if operating_points is not None:
         card["operating_points"] = operating_points
-    return dict(_finite(card))
+    return dict(json_safe(card))
 
 
-def card_audit(card: dict[str, Any]) -> AuditReport:
+def card_audit(card: Mapping[str, Any]) -> AuditReport:
     audit = AuditReport.from_dict(card["audit"])
     # Cards written before the audit named its classes hold them in the attribute (sorted, as the audit's codes).
     if audit.classes is None and card["attribute"]["classes"]:
         audit = dataclasses.replace(audit, classes=tuple(card["attribute"]["classes"]))
     return audit
+
+
+def verdict_record(audit: AuditReport, thresholds: AuditThresholds) -> dict[str, Any]:
+    """An audit's verdict with the thresholds it was judged by, as a card or an audit record stores it."""
+    return {"thresholds": thresholds.to_dict(), **judge_audit(audit, thresholds).to_dict()}
+
+
+def card_thresholds(card: Mapping[str, Any]) -> AuditThresholds:
+    """The audit thresholds a card records (the defaults for a card written before it recorded any)."""
+    recorded = card.get("verdict")
+    return AuditThresholds() if recorded is None else AuditThresholds.from_dict(recorded["thresholds"])
+
+
+def card_verdict(card: Mapping[str, Any]) -> Verdict:
+    """The verdict of a card's own audit: as recorded, or judged now by the defaults for an older card."""
+    recorded = card.get("verdict")
+    if recorded is None:
+        return judge_audit(card_audit(card), AuditThresholds())
+    return Verdict.from_dict(recorded)
 
 
 def protocol_text(audit: AuditReport) -> str:
@@ -212,9 +235,14 @@ def operating_points_text(record: dict[str, Any]) -> list[str]:
     return lines
 
 
+_DEFAULTS_NOTE = " (judged by the default thresholds: the card was written before it recorded a verdict)"
+
+
 def format_card(version_id: str, card: dict[str, Any]) -> str:
     """The card for a terminal: headline figures, the full audit table, thresholds and provenance."""
     lines = [f"{card['name']} {version_id}"]
+    verdict = card_verdict(card)
+    lines.append(f"verdict at fitting time: {verdict.sentence()}" + ("" if "verdict" in card else _DEFAULTS_NOTE))
     width = max(len(label) for label, _ in _headline(card))
     lines += [f"  {label:{width}}  {text}" for label, text in _headline(card)]
     attribute = card["attribute"]
@@ -225,11 +253,29 @@ def format_card(version_id: str, card: dict[str, Any]) -> str:
     lines += ["", card_audit(card).format_table()]
     if "operating_points" in card:
         lines += ["", *operating_points_text(card["operating_points"])]
-    lines += ["", "alert thresholds (warn / alert):"]
+    lines += ["", "audit thresholds (warn / alert):"]
+    audit_bands = card_thresholds(card).to_dict()
+    lines += [f"  {figure}: {band['warn']} / {band['alert']}" for figure, band in audit_bands.items()]
+    lines += ["live-check thresholds (warn / alert):"]
     lines += [f"  {figure}: {band['warn']} / {band['alert']}" for figure, band in card["thresholds"].items()]
     lines.append("software: " + ", ".join(f"{k} {v}" for k, v in card["software"].items()))
     lines += [f"note: {note}" for note in card.get("notes", [])]
     return "\n".join(lines)
+
+
+def fresh_audits_text(records: list[tuple[int, dict[str, Any]]]) -> list[str]:
+    """A version's fresh audits (``(number, body)`` of its audit records, oldest first) as lines of text."""
+    if not records:
+        return ["fresh audits: none (veil audit NAME VERSION --data FRESH records one)"]
+    lines = ["fresh audits:"]
+    for number, body in records:
+        data = body["data"]
+        verdict = Verdict.from_dict(body["verdict"])
+        lines.append(
+            f"  {number}. {body['audited_at']} by {body['audited_by']}: {data['audited_rows']} rows of "
+            f"{', '.join(data['files']) or 'a sample'} (sha256 {data['fingerprint_sha256'][:12]}), {verdict.sentence()}"
+        )
+    return lines
 
 
 def compare_cards(left_id: str, left: dict[str, Any], right_id: str, right: dict[str, Any]) -> str:

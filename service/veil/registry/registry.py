@@ -5,6 +5,7 @@ Layout under the registry root (a directory or an fsspec URL)::
     <name>/versions/<version id>/   the version's files; checksums.json (the seal) last
     <name>/aliases/<alias>.json     {"alias", "version", "event", "dim"}
     <name>/history/<event>.json     one file per promote or rollback, numbered 00000001, 00000002, ...
+    <name>/records/<version id>/    append-only records about the version (fresh audits), see veil.registry.records
     <name>/lock                     serialises promotes, rollbacks and new sequence numbers
 
 A version id is ``v<sequence>-<hash>``: the hash is the sha256 of the
@@ -30,6 +31,7 @@ from veil.maps.artifact import MapArtifact
 from veil.registry.artifact_files import ArtifactFormatError, decode_artifact
 from veil.registry.errors import IntegrityError, InvalidReferenceError, NotFoundError, PromotionError
 from veil.registry.naming import check_name, format_version_id, parse_sequence, parse_version_id
+from veil.registry.records import KINDS, Record, append_record, find_record, read_records
 from veil.registry.storage import Storage, open_storage
 
 CARD_FILE = "card.json"
@@ -256,7 +258,7 @@ class Registry:
         return StoredVersion(name=name, id=version_id, files=files, card=card, artifact=artifact)
 
     def verify(self, name: str | None = None) -> list[VerificationResult]:
-        """Verify every visible version of ``name`` (or of every eraser), and that each alias names a good one."""
+        """Verify every visible version of ``name`` (or of every eraser) with its records, and each alias."""
         results = []
         for each in [name] if name is not None else self.names():
             good = set()
@@ -268,12 +270,38 @@ class Registry:
                 else:
                     good.add(version_id)
                     results.append(VerificationResult(each, version_id, True))
+                    results += self._verify_records(each, version_id)
             for state in self.aliases(each).values():
                 if state.version not in good:
                     results.append(
                         VerificationResult(each, state.version, False, f"alias {state.alias!r} names a bad version")
                     )
         return results
+
+    def _verify_records(self, name: str, version_id: str) -> list[VerificationResult]:
+        failures = []
+        for kind in KINDS:
+            try:
+                read_records(self.storage, name, version_id, kind)
+            except IntegrityError as error:
+                failures.append(VerificationResult(name, version_id, False, str(error)))
+        return failures
+
+    # ----------------------------------------------------------------- records about a version
+
+    def add_record(
+        self, name: str, reference: str, kind: str, body: dict[str, Any], *, key: str | None = None
+    ) -> Record:
+        """Append a record about a version (see :mod:`veil.registry.records`); idempotent on ``key``."""
+        return append_record(self.storage, name, self.resolve(name, reference), kind, body, key=key)
+
+    def record(self, name: str, reference: str, kind: str, key: str) -> Record | None:
+        """A version's record of ``kind`` with ``key``, verified, or None (no other record is read)."""
+        return find_record(self.storage, name, self.resolve(name, reference), kind, key)
+
+    def records(self, name: str, reference: str, kind: str) -> list[Record]:
+        """A version's records of ``kind``, oldest first, each verified against its checksum."""
+        return read_records(self.storage, name, self.resolve(name, reference), kind)
 
     # ----------------------------------------------------------------- aliases and history
 

@@ -16,7 +16,15 @@ from matplotlib.figure import Figure
 
 from veil.audit.points import Sweep, value_text
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore
-from veil.registry.card import card_audit, method_text, operating_points_text, protocol_text
+from veil.checks.verdict import MEANINGS, RULE, Verdict
+from veil.registry.card import (
+    card_audit,
+    card_thresholds,
+    card_verdict,
+    method_text,
+    operating_points_text,
+    protocol_text,
+)
 from veil.reporting.plotdata import PlotData
 
 REPORT_FILE = "report.html"
@@ -30,6 +38,10 @@ table.probes td { white-space: nowrap; }
 .caution { background: #fff6e0; border-left: 4px solid #e0a800; padding: .6em 1em; margin: 1em 0; }
 figure { margin: 1em 0; } figure svg { max-width: 100%; height: auto; }
 pre { background: #f5f7fa; padding: .8em; overflow-x: auto; font-size: 13px; }
+.verdict { padding: .6em 1em; margin: 1em 0; border-left: 4px solid; }
+.verdict-ok { background: #e9f7ef; border-color: #2f855a; }
+.verdict-warn { background: #fff6e0; border-color: #e0a800; }
+.verdict-alert { background: #fdecec; border-color: #c53030; }
 """
 _BEFORE, _AFTER = "#8a94a6", "#2b6cb0"
 _CAUTION = (
@@ -252,6 +264,16 @@ def _probe_table(audit: AuditReport) -> str:
     return f'<h2>Probes</h2><p class="muted">{html.escape(text)}</p><table class="probes">{head}{"".join(body)}</table>'
 
 
+def _audit_thresholds_table(card: dict[str, Any]) -> str:
+    head = "<tr><th>figure</th><th>what it means</th><th>warn at</th><th>alert at</th></tr>"
+    rows = [
+        f"<tr><td>{html.escape(figure)}</td><td>{html.escape(MEANINGS[figure])}</td><td>{band['warn']:g}</td>"
+        f"<td>{band['alert']:g}</td></tr>"
+        for figure, band in card_thresholds(card).to_dict().items()
+    ]
+    return f"<table>{head}{''.join(rows)}</table>"
+
+
 def _table(rows: Sequence[tuple[str, str]]) -> str:
     cells = "".join(f"<tr><th>{html.escape(a)}</th><td>{html.escape(b)}</td></tr>" for a, b in rows)
     return f"<table>{cells}</table>"
@@ -262,8 +284,51 @@ def _figure(title: str, draw: Callable[[Figure], None] | None, size: tuple[float
     return f'<h2>{html.escape(title)}</h2><figure class="plot">{body}</figure>'
 
 
-def render_report(version_id: str, card: dict[str, Any], history: Sequence[dict[str, float]], plots: PlotData) -> str:
-    """The report page of one version, from its card, the eraser's iteration history and the plot data."""
+def _capitalized(text: str) -> str:
+    return text[:1].upper() + text[1:]
+
+
+def _verdict_paragraph(title: str, verdict: Verdict) -> str:
+    detail = _capitalized(verdict.sentence().split(": ", 1)[1])
+    return (
+        f'<p class="verdict verdict-{html.escape(verdict.status)}"><strong>{html.escape(title)}: '
+        f"{html.escape(verdict.status)}</strong>. {html.escape(detail)}.</p>"
+    )
+
+
+def _fresh_audits(audits: Sequence[tuple[int, dict[str, Any]]]) -> str:
+    if not audits:
+        return (
+            '<h2>Fresh audits</h2><p class="muted">None yet: <code>veil audit NAME VERSION --data FRESH</code> '
+            "audits the version on a sample drawn after it and records the result beside it.</p>"
+        )
+    head = "<tr><th>#</th><th>when, by whom</th><th>data</th><th>rows</th><th>status</th><th>why</th></tr>"
+    rows = []
+    for number, body in audits:
+        verdict = Verdict.from_dict(body["verdict"])
+        data = body["data"]
+        files = ", ".join(data["files"]) or "a sample"
+        why = "; ".join(verdict.reasons) or "every judged figure below its warn level"
+        rows.append(
+            f"<tr><td>{number}</td><td>{html.escape(body['audited_at'])} by {html.escape(body['audited_by'])}</td>"
+            f"<td>{html.escape(files)} (sha256 {html.escape(data['fingerprint_sha256'][:12])})</td>"
+            f'<td>{data["audited_rows"]}</td><td class="verdict-{html.escape(verdict.status)}">'
+            f"{html.escape(verdict.status)}</td><td>{html.escape(why)}</td></tr>"
+        )
+    return f"<h2>Fresh audits</h2><table>{head}{''.join(rows)}</table>"
+
+
+def render_report(
+    version_id: str,
+    card: dict[str, Any],
+    history: Sequence[dict[str, float]],
+    plots: PlotData,
+    audits: Sequence[tuple[int, dict[str, Any]]] = (),
+) -> str:
+    """The report page of one version, from its card, the eraser's iteration history and the plot data.
+
+    ``audits`` are the version's fresh audits as ``(number, record body)``, oldest first.
+    """
     audit = card_audit(card)
     classes = card["attribute"]["classes"]
     summary = [
@@ -283,6 +348,13 @@ def render_report(version_id: str, card: dict[str, Any], history: Sequence[dict[
     iterations_missing = f"{card['method']} is fitted in closed form: there are no iterations to plot."
     sections = [
         f"<h1>veil report: {html.escape(card['name'])} {html.escape(version_id)}</h1>",
+        _verdict_paragraph("Verdict at fitting time", card_verdict(card)),
+        *(
+            [_verdict_paragraph(f"Latest fresh audit ({audits[-1][0]})", Verdict.from_dict(audits[-1][1]["verdict"]))]
+            if audits
+            else []
+        ),
+        f'<p class="muted">{html.escape(RULE)}</p>',
         f'<p class="caution">{html.escape(_CAUTION)}</p>',
         "<h2>Version</h2>" + _table(summary),
         _figure("Leakage before and after erasure", _leakage_plot(audit), (8, 3.6), ""),
@@ -303,6 +375,8 @@ def render_report(version_id: str, card: dict[str, Any], history: Sequence[dict[
             if "operating_points" in card
             else []
         ),
+        _fresh_audits(audits),
+        "<h2>Audit thresholds</h2>" + _audit_thresholds_table(card),
         "<h2>Alert thresholds of the live checks</h2>" + _table(thresholds),
     ]
     notes = card.get("notes", [])

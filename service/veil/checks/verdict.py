@@ -1,0 +1,129 @@
+"""The status of an audit against the thresholds its version's card records: ``ok``, ``warn`` or ``alert``.
+
+The rule, the same for the audit made at fitting time and for every fresh
+audit: each figure of :class:`~veil.checks.thresholds.AuditThresholds` is
+compared with its band, and the status is the worst level any figure reaches
+(``alert`` at or above the band's alert level, ``warn`` at or above its warn
+level, else ``ok``).  A figure the audit has no data for (no task, a
+continuous attribute) is not judged, and the verdict says so.  The live checks
+use the same three words with their own figures.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore
+from veil.checks.thresholds import AuditThresholds, Band
+
+LEVELS = ("ok", "warn", "alert")
+RULE = (
+    "The rule: each figure is compared with the warn and alert levels the version's card records; the status is "
+    "ok when every figure judged is below its warn level, warn when any reaches its warn level, and alert when any "
+    "reaches its alert level."
+)
+
+# What each figure says, for the verdict's reasons and the report's explanations.
+MEANINGS = {
+    "linear_gap": "how far a linear probe on the erased rows reads the attribute beyond the majority baseline "
+    "(the edge of its 95% interval nearest that baseline; chance is 0)",
+    "strongest_gap": "the same for the probe farthest from majority of all that ran (linear, quadratic, RBF kernel, "
+    "boosted trees, MLP)",
+    "neighbour_excess": "how much more often a row's 10 nearest neighbours share its attribute than the base rate "
+    "(chance is 0)",
+    "task_loss": "task probe accuracy lost to erasure (raw minus erased; 0 is no loss)",
+}
+
+
+@dataclass(frozen=True)
+class Verdict:
+    """One audit's status, the figures it was judged on and, for each figure at warn or alert, why."""
+
+    status: str
+    figures: dict[str, float | None]
+    reasons: list[str] = field(default_factory=list)
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> Verdict:
+        return cls(status=str(data["status"]), figures=dict(data["figures"]), reasons=list(data.get("reasons", [])))
+
+    def sentence(self) -> str:
+        """The verdict in one plain sentence."""
+        if self.status == "ok":
+            judged = sum(value is not None for value in self.figures.values())
+            return f"ok: all {judged} judged figures are below their warn levels"
+        return f"{self.status}: " + "; ".join(self.reasons)
+
+
+def _edge_gap(score: ProbeScore) -> float:
+    """Distance from majority of the probe's 95% interval edge nearest it (0 when the interval holds majority)."""
+    return max(0.0, score.interval_low - score.majority, score.majority - score.interval_high)
+
+
+def _level(value: float | None, band: Band) -> str:
+    if value is None:
+        return "ok"
+    return "alert" if value >= band.alert else "warn" if value >= band.warn else "ok"
+
+
+def _widest(report: AuditReport) -> tuple[str, float] | None:
+    """The probe whose reading after erasure lies farthest from majority, and that distance (None: no probe).
+
+    Farthest, not most accurate: a probe reliably *below* majority has learned the attribute too.
+    """
+    gaps = [(name, _edge_gap(after)) for name, _, after in report.leakage.probes() if isinstance(after, ProbeScore)]
+    # Ties go to the probe listed first, so round-off in a tie cannot change the name reported.
+    return max(gaps, key=lambda item: item[1], default=None)
+
+
+def audit_figures(report: AuditReport) -> dict[str, float | None]:
+    """The figures a verdict judges, from an audit (None where the audit has no data for one)."""
+    leakage = report.leakage
+    linear = leakage.linear_after if isinstance(leakage.linear_after, ProbeScore) else None
+    widest = _widest(report)
+    retrieval = report.retrieval
+    utility = report.utility
+    task_loss = None
+    if utility.task_accuracy_before is not None and utility.task_accuracy_after is not None:
+        task_loss = utility.task_accuracy_before - utility.task_accuracy_after
+    return {
+        "linear_gap": None if linear is None else _edge_gap(linear),
+        "strongest_gap": None if widest is None else widest[1],
+        "neighbour_excess": None
+        if retrieval is None
+        else retrieval.attribute_share_after - retrieval.attribute_base_rate,
+        "task_loss": task_loss,
+    }
+
+
+def judge_audit(report: AuditReport, thresholds: AuditThresholds) -> Verdict:
+    """The status of ``report`` under ``thresholds``, with a reason for each figure at warn or alert."""
+    figures = audit_figures(report)
+    bands = {name: getattr(thresholds, name) for name in figures}
+    widest = _widest(report)
+    labels = {
+        "linear_gap": "the linear probe",
+        "strongest_gap": "the strongest probe" + ("" if widest is None else f" ({PROBE_LABELS[widest[0]]})"),
+        "neighbour_excess": "the 10-NN attribute share",
+        "task_loss": "the task probe",
+    }
+    what = {
+        "linear_gap": "reads the attribute {value:.3f} beyond majority",
+        "strongest_gap": "reads the attribute {value:.3f} beyond majority",
+        "neighbour_excess": "lies {value:.3f} above its base rate",
+        "task_loss": "lost {value:.3f} of accuracy",
+    }
+    status = "ok"
+    reasons = []
+    for name, value in figures.items():
+        level = _level(value, bands[name])
+        if level != "ok" and value is not None:
+            band = bands[name]
+            reasons.append(f"{labels[name]} {what[name].format(value=value)} ({level} at {getattr(band, level):g})")
+        if LEVELS.index(level) > LEVELS.index(status):
+            status = level
+    return Verdict(status=status, figures=figures, reasons=reasons)

@@ -1,0 +1,169 @@
+"""Audit a stored version on a fresh labelled sample and append the result to the registry (``veil audit``).
+
+The version is read (and verified) from the registry, applied exactly as the
+service applies it, and audited by the same probes as at fitting time, all
+trained and tested within the fresh sample by k-fold cross-validation.  The
+result, with its verdict under the thresholds the version's card records and
+what data was audited, becomes an immutable record beside the version
+(:mod:`veil.registry.records`); the version itself is not touched.
+
+The record's key is derived from the version, the data's sha256 and the
+audit's settings, so auditing the same data the same way again returns the
+record already stored rather than a second copy.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.audit import audit_artifact
+from veil.audit.report import AuditReport
+from veil.checks.verdict import Verdict
+from veil.defaults import STREAM_CHUNK_ROWS
+from veil.errors import DataError
+from veil.fitting.store import audit_folds
+from veil.progress import phase
+from veil.registry import Registry, current_user
+from veil.registry.card import card_thresholds, json_safe, verdict_record
+from veil.registry.records import Record
+from veil.samples.chunks import Sample
+from veil.samples.splitting import held_out_rows
+
+AUDITS = "audits"
+
+
+@dataclass(frozen=True)
+class FreshAudit:
+    """A fresh audit as stored: its record, the audit and its verdict, and whether it was stored before."""
+
+    record: Record
+    audit: AuditReport
+    verdict: Verdict
+    already_stored: bool
+
+
+def _rows(
+    sample: Sample, *, max_rows: int | None, seed: int, chunk_rows: int
+) -> tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None]:
+    """The sample's rows, or a hash-drawn share of about ``max_rows`` of them."""
+    share = 1.0 if max_rows is None else min(1.0, max_rows / max(sample.labelled_rows, 1))
+    xs, zs, tasks = [], [], []
+    for partition in sample.partitions(chunk_rows):
+        chunk = partition.load()
+        kept = np.ones(len(chunk), bool) if share >= 1.0 else held_out_rows(chunk.index, fraction=share, seed=seed)
+        xs.append(chunk.embeddings[kept])
+        zs.append(chunk.attribute[kept])
+        if chunk.task is not None:
+            tasks.append(chunk.task[kept])
+    if not xs or sum(len(z) for z in zs) == 0:
+        raise DataError("the fresh sample has no labelled rows to audit")
+    return np.concatenate(xs), np.concatenate(zs), np.concatenate(tasks) if tasks else None
+
+
+def audit_key(version_id: str, fingerprint: str, settings: dict[str, Any]) -> str:
+    """The record key of an audit: the same version, data and settings give the same key."""
+    text = json.dumps({"version": version_id, "data": fingerprint, **settings}, sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def audit_stored_version(
+    registry: Registry,
+    name: str,
+    reference: str,
+    sample: Sample,
+    *,
+    nonlinear: bool = True,
+    seed: int = 0,
+    max_rows: int | None = None,
+    chunk_rows: int = STREAM_CHUNK_ROWS,
+) -> FreshAudit:
+    """Audit version ``reference`` of ``name`` on ``sample`` and append the result to the version's audits.
+
+    Parameters
+    ----------
+    registry : Registry
+    name, reference : str
+        The eraser and its version (id, sequence number or alias).
+    sample : Sample
+        Fresh labelled rows: embeddings of the version's dimension, the attribute, optionally the task.
+    nonlinear : bool, default=True
+        Run every probe (otherwise the linear one only).
+    seed : int, default=0
+        Seeds the folds, the probes and the row draw.
+    max_rows : int, optional
+        Audit a hash-drawn share of about this many rows (all rows without it).
+
+    Raises
+    ------
+    DataError
+        The sample is the version's own fitting sample, has another dimension, or cannot be audited.
+    """
+    if max_rows is not None and max_rows < 2:
+        raise DataError("an audit needs at least 2 rows")
+    stored = registry.read_version(name, reference)
+    card = stored.card
+    if sample.fingerprint == card["data"]["fingerprint_sha256"]:
+        raise DataError(
+            f"this is the sample {name} {stored.id} was fitted on (its held-out rows are audited in its card); "
+            "audit a sample drawn independently of it"
+        )
+    if sample.dim != card["dim"]:
+        raise DataError(f"the sample has {sample.dim} dimensions and {name} {stored.id} takes {card['dim']}")
+    settings = {"nonlinear": nonlinear, "seed": seed, "max_rows": max_rows}
+    key = audit_key(stored.id, sample.fingerprint, settings)
+    thresholds = card_thresholds(card)
+    earlier = registry.record(name, stored.id, AUDITS, key)
+    if earlier is not None:
+        report = AuditReport.from_dict(earlier.body["audit"])
+        return FreshAudit(earlier, report, Verdict.from_dict(earlier.body["verdict"]), already_stored=True)
+    with phase("reading the fresh sample"):
+        x, z, task = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows)
+    labels, codes = np.unique(z, return_inverse=True)
+    if labels.size < 2:
+        raise DataError(f"the fresh sample holds one class of {sample.attribute_key!r}; an audit needs two or more")
+    report = audit_artifact(
+        stored.artifact,
+        x,
+        z,
+        task=task,
+        folds=audit_folds(codes.astype(np.intp)),
+        nonlinear=nonlinear,
+        random_state=seed,
+    )
+    notes = []
+    fitted = {str(label) for label in card["attribute"]["classes"]}
+    unseen = sorted({str(label) for label in labels} - fitted)
+    if unseen:
+        notes.append(f"classes the version was not fitted on: {', '.join(unseen)}")
+    if sample.attribute_key != card["attribute"]["key"]:
+        notes.append(f"the attribute is {sample.attribute_key!r} here and {card['attribute']['key']!r} in the card")
+    judged = verdict_record(report, thresholds)
+    body: dict[str, Any] = json_safe(
+        {
+            "audited_at": datetime.now(UTC).isoformat(timespec="seconds"),
+            "audited_by": current_user(),
+            "data": {
+                "fingerprint_sha256": sample.fingerprint,
+                "files": {path.rsplit("/", 1)[-1]: digest for path, digest in sample.files.items()},
+                "rows": sample.labelled_rows,
+                "audited_rows": int(x.shape[0]),
+                "missing_labels_dropped": sample.dropped_rows,
+                "attribute": sample.attribute_key,
+                "task": sample.task_key,
+            },
+            "settings": settings,
+            "audit": report.to_dict(),
+            "verdict": judged,
+            "notes": notes,
+        }
+    )
+    with phase("storing the audit"):
+        record = registry.add_record(name, stored.id, AUDITS, body, key=key)
+    return FreshAudit(record, report, Verdict.from_dict(judged), already_stored=False)

@@ -1,0 +1,84 @@
+"""The verdict rule on audits worked by hand: each figure against its band, the worst level wins."""
+
+from __future__ import annotations
+
+import pytest
+
+from veil.audit.report import AuditReport, Leakage, ProbeScore, Retrieval, Utility
+from veil.checks.thresholds import AuditThresholds, Band
+from veil.checks.verdict import judge_audit
+
+
+def _score(accuracy: float, low: float, high: float, majority: float = 0.5) -> ProbeScore:
+    return ProbeScore(
+        accuracy=accuracy, balanced_accuracy=accuracy, majority=majority, interval_low=low, interval_high=high, n=1000
+    )
+
+
+def _report(
+    linear: ProbeScore, trees: ProbeScore, share_after: float, task_after: float | None, base: float = 0.5
+) -> AuditReport:
+    raw = _score(0.99, 0.98, 1.0)
+    return AuditReport(
+        method="leace",
+        rank=1,
+        n_heldout=1000,
+        dim=8,
+        leakage=Leakage(
+            linear_before=raw,
+            linear_after=linear,
+            nonlinear_before=None,
+            nonlinear_after=None,
+            guardedness_gap_before=None,
+            guardedness_gap_after=None,
+            trees_before=raw,
+            trees_after=trees,
+        ),
+        utility=Utility(
+            relative_distortion=0.05,
+            mean_cosine=0.98,
+            knn_overlap_at_10=0.9,
+            task_accuracy_before=None if task_after is None else 0.95,
+            task_accuracy_after=task_after,
+        ),
+        retrieval=Retrieval(attribute_share_before=0.9, attribute_share_after=share_after, attribute_base_rate=base),
+    )
+
+
+def test_figures_worked_by_hand() -> None:
+    # Linear: interval [0.53, 0.59] against majority 0.5, so its edge nearest majority lies 0.03 beyond it (warn
+    # at 0.02).  Trees: [0.44, 0.52] holds 0.5, so 0.  Neighbours: 0.58 - 0.5 = 0.08 (warn at 0.05).  Task:
+    # 0.95 - 0.94 = 0.01 (below warn at 0.02).  The worst level is warn.
+    verdict = judge_audit(_report(_score(0.56, 0.53, 0.59), _score(0.48, 0.44, 0.52), 0.58, 0.94), AuditThresholds())
+    assert verdict.figures["linear_gap"] == pytest.approx(0.03)
+    assert verdict.figures["strongest_gap"] == pytest.approx(0.03)  # the linear probe lies farthest from majority
+    assert verdict.figures["neighbour_excess"] == pytest.approx(0.08)
+    assert verdict.figures["task_loss"] == pytest.approx(0.01)
+    assert verdict.status == "warn"
+    assert verdict.reasons == [
+        "the linear probe reads the attribute 0.030 beyond majority (warn at 0.02)",
+        "the 10-NN attribute share lies 0.080 above its base rate (warn at 0.05)",
+    ]
+
+
+def test_a_probe_far_below_majority_is_leakage_too_and_the_worst_level_wins() -> None:
+    # Trees at [0.30, 0.36] against majority 0.5: the edge nearest majority lies 0.14 below it (alert at 0.10): a
+    # probe that is reliably wrong has learned the attribute.
+    verdict = judge_audit(_report(_score(0.5, 0.47, 0.53), _score(0.33, 0.30, 0.36), 0.5, 0.95), AuditThresholds())
+    assert verdict.figures["linear_gap"] == 0.0
+    assert verdict.figures["strongest_gap"] == pytest.approx(0.14)
+    assert verdict.status == "alert"
+    assert verdict.reasons == [
+        "the strongest probe (boosted-trees probe) reads the attribute 0.140 beyond majority (alert at 0.1)"
+    ]
+
+
+def test_figures_without_data_are_not_judged_and_bands_are_read_at_or_above() -> None:
+    # Binary fractions, so the difference 0.625 - 0.5 is exactly the band's 0.125.
+    thresholds = AuditThresholds(neighbour_excess=Band(0.125, 0.25))
+    verdict = judge_audit(_report(_score(0.5, 0.47, 0.53), _score(0.5, 0.47, 0.53), 0.625, None), thresholds)
+    assert verdict.figures["task_loss"] is None
+    assert verdict.status == "warn"  # 0.125 reaches the warn level of 0.125
+    assert verdict.sentence() == "warn: the 10-NN attribute share lies 0.125 above its base rate (warn at 0.125)"
+    calm = judge_audit(_report(_score(0.5, 0.47, 0.53), _score(0.5, 0.47, 0.53), 0.52, None), thresholds)
+    assert calm.sentence() == "ok: all 3 judged figures are below their warn levels"
