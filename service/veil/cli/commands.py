@@ -13,6 +13,7 @@ from typing import Any
 from veil.errors import DataError
 from veil.registry import DEFAULT_ALIAS, Registry
 from veil.registry.card import compare_cards, format_card, fresh_audits_text
+from veil.registry.evidence import version_evidence
 
 # The commands that fit, render or clean import their modules when they run: scikit-learn, matplotlib and pyarrow
 # take a second to import, and `veil versions` or `veil show` need none of them.
@@ -137,15 +138,14 @@ def versions(args: argparse.Namespace) -> int:
 
 def show(args: argparse.Namespace) -> int:
     registry = Registry(args.registry)
+    if args.json:
+        print(json.dumps(version_evidence(registry, args.name, args.version), indent=2, sort_keys=True))
+        return 0
     stored = registry.read_version(args.name, args.version)
     audits = registry.records(args.name, stored.id, "audits")
-    if args.json:
-        listed = [{"number": record.number, "key": record.key, **record.body} for record in audits]
-        print(json.dumps({"version": stored.id, **stored.card, "fresh_audits": listed}, indent=2, sort_keys=True))
-    else:
-        print(format_card(stored.id, dict(stored.card)))
-        print()
-        print(*fresh_audits_text([(record.number, record.body) for record in audits]), sep="\n")
+    print(format_card(stored.id, dict(stored.card)))
+    print()
+    print(*fresh_audits_text([(record.number, record.body) for record in audits]), sep="\n")
     return 0
 
 

@@ -245,7 +245,12 @@ def build_parser() -> VeilParser:
     show = commands.add_parser("show", parents=common, help="show a version's card")
     show.add_argument("name")
     show.add_argument("version", help="a version id, its sequence number (3 or v3), or an alias")
-    show.add_argument("--json", action="store_true", help="print the card as JSON")
+    show.add_argument(
+        "--json",
+        action="store_true",
+        help="print the version's evidence as JSON: its card, verdict, fresh audits and live checks "
+        "(docs/version-evidence.schema.json)",
+    )
     show.set_defaults(handler="show")
 
     compare = commands.add_parser("compare", parents=common, help="two versions' figures side by side")
