@@ -9,7 +9,7 @@ from numpy.typing import ArrayLike, NDArray
 from sklearn.model_selection import train_test_split
 from sklearn.utils.validation import check_array, check_is_fitted
 
-from veil.audit import geometry, probes, readers
+from veil.audit import geometry, probes, ranking, readers
 from veil.audit.report import (
     HELD_OUT_KFOLD,
     PROBE_LABELS,
@@ -200,6 +200,8 @@ def audit(
             task_base_rate=None if task_codes is None else geometry.label_base_rate(task_codes),
         )
 
+    ranking_fairness = None if codes is None else ranking.ranking_before_after(raw, erased, codes, NEIGHBOURS)
+
     dead = probes.count_dead_features(raw)
     if dead:
         notes.append(
@@ -239,6 +241,7 @@ def audit(
         protocol=ProbeProtocol(
             scheme=HELD_OUT_KFOLD, folds=used_folds, seed=random_state, eraser_rows=int(eraser.moments_.count)
         ),
+        ranking=ranking_fairness,
     )
 
 

@@ -26,6 +26,8 @@ class EmbeddingMap(Protocol):
     """A fitted map from embeddings to cleaned embeddings of the same dimension."""
 
     kind: ClassVar[str]
+    #: Whether ``apply`` is one affine map ``A x + b`` for every row (so ``adjoint`` is its exact transpose).
+    affine: ClassVar[bool]
 
     @property
     def dim(self) -> int: ...
@@ -36,6 +38,13 @@ class EmbeddingMap(Protocol):
 
     def component(self, x: FloatArray) -> FloatArray:
         """What cleaning takes out of each row, ``x - apply(x)``, shape (n, d)."""
+        ...
+
+    def adjoint(self, y: FloatArray) -> FloatArray:
+        """``Aᵀ y`` for each row of ``y`` (n, d), with ``A`` the map's linear part, in ``y``'s dtype.
+
+        A kind that is not affine answers with its class maps' linear parts averaged by the fitted class shares.
+        """
         ...
 
     def counterfactual(self, x: FloatArray, class_means: NDArray[np.float64], target: int) -> FloatArray:

@@ -77,6 +77,7 @@ class ClassTransportMap:
     """
 
     kind: ClassVar[str] = "class-transport"
+    affine: ClassVar[bool] = False
 
     mean: Float64Array
     class_means: Float64Array
@@ -222,6 +223,23 @@ class ClassTransportMap:
     def component(self, x: FloatArray) -> FloatArray:
         """What cleaning takes out of each row, ``x - apply(x)``, shape (n, d)."""
         return x - self.apply(x)
+
+    def adjoint(self, y: FloatArray) -> FloatArray:
+        """``Σ_c π_c A_cᵀ Bᵀ y`` for each row of ``y`` (n, d): the class maps' linear parts averaged by the shares.
+
+        ``A_c = I + D_c G_c D_cᵀ`` is symmetric and ``B`` is the linear part of
+        the map after the transport (``I`` without one).  The map picks one
+        class per row, so no single linear part is exact for every row; this
+        average is the one the fitted class shares suggest.
+        """
+        self._check(y)
+        cast = self._factors(y.dtype)
+        read = y if self.after is None else self.after.adjoint(y)
+        out = read.copy()
+        for c in range(self.n_classes):
+            # D_c G_c D_cᵀ y, weighted by the class share; directions_t holds G_c D_cᵀ.
+            out += self.priors[c].astype(y.dtype) * ((read @ cast.directions[c]) @ cast.directions_t[c])
+        return out
 
     def towards(self, x: FloatArray, target: int) -> FloatArray:
         """Carry each row from its inferred class onto class ``target``'s Gaussian, shape (n, d).
