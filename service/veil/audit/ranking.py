@@ -47,10 +47,14 @@ def topk_shares(ranked_codes: NDArray[np.intp], n_classes: int) -> Float64Array:
 
 
 def skew_at_k(ranked_codes: NDArray[np.intp], base_rates: Float64Array) -> Float64Array:
-    """``ln(share / base rate)`` per query and class, shape (n_queries, n_classes); ``-inf`` for an absent class."""
+    """``ln(share / base rate)`` per query and class, shape (n_queries, C); ``-inf`` for an absent class.
+
+    Skew is not defined for a class of base rate 0: such classes are left out of the columns.
+    """
     shares = topk_shares(ranked_codes, base_rates.size)
+    present = base_rates > 0
     with np.errstate(divide="ignore"):
-        return np.asarray(np.log(shares) - np.log(base_rates))
+        return np.asarray(np.log(shares[:, present]) - np.log(base_rates[present]))
 
 
 def ndkl(ranked_codes: NDArray[np.intp], base_rates: Float64Array) -> Float64Array:
@@ -59,7 +63,8 @@ def ndkl(ranked_codes: NDArray[np.intp], base_rates: Float64Array) -> Float64Arr
     counts = np.cumsum(_one_hot(ranked_codes, base_rates.size), axis=1)
     prefix_shares = counts / np.arange(1, k + 1)[None, :, None]  # D_i, shape (n, k, C)
     # 0 ln 0 = 0: absent classes contribute nothing (and base rates of present classes are positive).
-    logs = np.log(np.where(prefix_shares > 0, prefix_shares, 1.0) / base_rates)
+    present = prefix_shares > 0
+    logs = np.log(np.where(present, prefix_shares, 1.0) / np.where(present, base_rates, 1.0))
     divergences = np.sum(prefix_shares * logs, axis=2)
     discounts = position_discounts(k)
     return np.asarray(divergences @ discounts / discounts.sum())
