@@ -26,7 +26,7 @@ class EmbeddingMap(Protocol):
     """A fitted map from embeddings to cleaned embeddings of the same dimension."""
 
     kind: ClassVar[str]
-    #: Whether ``apply`` is one affine map ``A x + b`` for every row (so ``adjoint`` is its exact transpose).
+    #: Whether ``apply`` is one affine map ``A x + b`` for every row.
     affine: ClassVar[bool]
 
     @property
@@ -40,10 +40,12 @@ class EmbeddingMap(Protocol):
         """What cleaning takes out of each row, ``x - apply(x)``, shape (n, d)."""
         ...
 
-    def adjoint(self, y: FloatArray) -> FloatArray:
-        """``Aᵀ y`` for each row of ``y`` (n, d), with ``A`` the map's linear part, in ``y``'s dtype.
+    def search_vector(self, cleaned: FloatArray) -> FloatArray:
+        """Query-side vectors, shape (n, d), for a raw inner-product index, from cleaned queries ``r(q)``.
 
-        A kind that is not affine answers with its class maps' linear parts averaged by the fitted class shares.
+        For an affine map ``A x + b``, ``Aᵀ r(q)``: the raw index then ranks
+        exactly as the cleaned one (:mod:`veil.maps.search`).  Other kinds say
+        what they give instead.
         """
         ...
 

@@ -107,6 +107,10 @@ class AffineLowRankMap:
         np.subtract(y, out, out=out)
         return out
 
+    def search_vector(self, cleaned: FloatArray) -> FloatArray:
+        """:meth:`adjoint`: ``Aᵀ r(q)`` ranks raw rows ``x`` as ``r(q)`` ranks cleaned rows ``r(x)`` (inner product)."""
+        return self.adjoint(cleaned)
+
     def shift_towards(self, target_mean: Float64Array) -> Float64Array:
         """``U Vᵀ (m - μ)``: the component a row at mean ``m`` carries, shape (d,)."""
         return np.asarray(((np.asarray(target_mean, dtype=np.float64) - self.mean) @ self.v) @ self.u.T)

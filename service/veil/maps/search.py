@@ -13,9 +13,9 @@ It is exact only for an inner-product index and a map that is affine and not
 re-normalised.  A cosine or L2 index divides by, or adds, the norm of each
 stored vector, and ``‖r(x)‖`` varies from row to row; a re-normalised map
 divides by ``‖A x + b‖``; a class-transport map applies another affine map
-to each inferred class.  There the vectors are still given (marked inexact),
-and for an affine map the identity above still holds for the unnormalised
-cleaned vectors ``A x + b``.
+to each inferred class (its search vector is the cleaned query itself).
+There the vectors are still given, marked inexact, and for an affine map the
+identity above still holds for the unnormalised cleaned vectors ``A x + b``.
 """
 
 from __future__ import annotations
@@ -40,7 +40,8 @@ class SearchVectors:
     Attributes
     ----------
     vectors : ndarray of shape (n, d)
-        ``Aᵀ r(q)`` for each query ``q``, in the queries' dtype.
+        ``Aᵀ r(q)`` for each query ``q`` (for a map that is not affine, what
+        its kind gives instead), in the queries' dtype.
     offsets : ndarray of shape (n,) or None
         ``⟨r(q), b⟩``: add it to the raw index's inner product to get the
         cleaned corpus's; None for a map that is not affine.
@@ -102,7 +103,7 @@ def search_vectors(
     if queries.ndim != 2 or queries.shape[1] != artifact.map.dim:
         raise ValueError(f"expected queries of shape (n, {artifact.map.dim}), got {queries.shape}")
     cleaned = artifact.apply(queries)
-    vectors = artifact.map.adjoint(cleaned)
+    vectors = artifact.map.search_vector(cleaned)
     offsets = None
     if artifact.map.affine:
         # b = r(0) for an affine map r(x) = A x + b; in float64 so the offsets carry no extra round-off.

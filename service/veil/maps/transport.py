@@ -224,22 +224,17 @@ class ClassTransportMap:
         """What cleaning takes out of each row, ``x - apply(x)``, shape (n, d)."""
         return x - self.apply(x)
 
-    def adjoint(self, y: FloatArray) -> FloatArray:
-        """``Σ_c π_c A_cᵀ Bᵀ y`` for each row of ``y`` (n, d): the class maps' linear parts averaged by the shares.
+    def search_vector(self, cleaned: FloatArray) -> FloatArray:
+        """The cleaned queries themselves, shape (n, d): no linear part serves every row of a class-transport map.
 
-        ``A_c = I + D_c G_c D_cᵀ`` is symmetric and ``B`` is the linear part of
-        the map after the transport (``I`` without one).  The map picks one
-        class per row, so no single linear part is exact for every row; this
-        average is the one the fitted class shares suggest.
+        Each inferred class has its own affine map, so no query-side vector
+        ranks a raw index exactly.  On the committed sample (docs/retrieval.md)
+        the cleaned query kept more of the cleaned index's top 10 than the
+        class maps' linear parts averaged by the class shares, or the query's
+        own class's linear part.
         """
-        self._check(y)
-        cast = self._factors(y.dtype)
-        read = y if self.after is None else self.after.adjoint(y)
-        out = read.copy()
-        for c in range(self.n_classes):
-            # D_c G_c D_cᵀ y, weighted by the class share; directions_t holds G_c D_cᵀ.
-            out += self.priors[c].astype(y.dtype) * ((read @ cast.directions[c]) @ cast.directions_t[c])
-        return out
+        self._check(cleaned)
+        return cleaned.copy()
 
     def towards(self, x: FloatArray, target: int) -> FloatArray:
         """Carry each row from its inferred class onto class ``target``'s Gaussian, shape (n, d).
