@@ -12,6 +12,7 @@ exposure share weighs position i by DCG's discount 1 / log2(i + 1).
 from __future__ import annotations
 
 import math
+import re
 
 import numpy as np
 from numpy.typing import NDArray
@@ -22,6 +23,8 @@ from veil.audit.ranking import ranked_neighbours, ranking_before_after, ranking_
 from veil.checks.drift import check_drift
 from veil.erasers import LEACE
 from veil.registry import Registry
+from veil.registry.card import card_audit, format_card
+from veil.reporting import REPORT_FILE
 
 from .conftest import Split
 from .service_fixtures import PLANTED, ServiceRegistry, planted_population
@@ -144,3 +147,14 @@ def test_the_live_checks_report_the_figures_of_the_posted_sample(service_registr
     queries = np.sort(np.random.default_rng(0).choice(700, 500, replace=False))
     assert rk == ranking_before_after(x, served.artifact.apply(x), codes, 10, queries=queries)
     assert rk.ndkl_before > rk.ndkl_after + 0.2
+
+
+def test_the_card_and_the_report_of_a_stored_version_show_the_figures(service_registry: ServiceRegistry) -> None:
+    stored = Registry(service_registry.path).read_version(PLANTED, "live")
+    rk = card_audit(stored.card).ranking
+    assert rk is not None
+    shown = format_card(stored.id, stored.card)
+    assert re.search(rf"NDKL@10 +{rk.ndkl_before:.4f} → {rk.ndkl_after:.4f}", shown)
+    report = stored.files[REPORT_FILE].decode()
+    assert "<h2>Ranking fairness</h2>" in report
+    assert f"<td>NDKL@10</td><td>{rk.ndkl_before:.4f}</td><td>{rk.ndkl_after:.4f}</td>" in report
