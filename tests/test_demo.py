@@ -8,7 +8,7 @@ import sys
 from pathlib import Path
 
 
-def test_the_demo_fits_serves_checks_drift_and_rolls_back(tmp_path: Path) -> None:
+def test_the_demo_fits_serves_searches_checks_drift_and_rolls_back(tmp_path: Path) -> None:
     result = subprocess.run(
         [sys.executable, "-m", "veil.demo"], cwd=tmp_path, capture_output=True, text=True, timeout=300, check=False
     )
@@ -23,6 +23,13 @@ def test_the_demo_fits_serves_checks_drift_and_rolls_back(tmp_path: Path) -> Non
     assert re.search(r"a normal sample \(400, unlabelled\):\s+ok", out)
     assert re.search(r"the same sample, shifted:\s+alert", out)
     assert f"the service now answers with {first}" in out
+    # faiss through search vectors on the raw index and the index veil apply rebuilt hold the same profiles, with
+    # the promoted version and with the rolled-back one (results tied within round-off may trade places at the edge).
+    assert f"both with {second}; the same 10 profiles for" in out
+    assert f"new index built with veil apply ({first})" in out
+    same = [int(count) for count in re.findall(r"the same 10 profiles for (\d+) of 300 queries", out)]
+    assert len(same) == 2
+    assert min(same) >= 297
     assert "service stopped cleanly" in out
     for version in (first, second):
         assert (tmp_path / "demo-registry" / "profiles-minilm" / "versions" / version / "report.html").is_file()

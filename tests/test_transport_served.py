@@ -102,3 +102,21 @@ def test_veil_apply_cleans_a_corpus_with_the_transport_version(stored: tuple[Pat
     assert result.code == 0, result.err
     artifact = Registry(path).read_version(NAME, version).artifact
     np.testing.assert_allclose(np.load(tmp_path / "clean.npy"), artifact.apply(x), atol=1e-6)
+
+
+@pytest.mark.anyio
+async def test_search_vectors_of_a_transport_map_are_marked_inexact_and_refused_when_exact_is_asked(
+    stored: tuple[Path, str],
+) -> None:
+    path, version = stored
+    x = load_harbourline_profiles().embedding[:8]
+    route = f"/v1/erasers/{NAME}/search-vector"
+    async with client_for(app_for(path, names=[NAME])) as client:
+        refused = await client.post(f"{route}?exact=true", json={"vectors": x.tolist()})
+        assert (refused.status_code, refused.json()["error"]["code"]) == (422, "inexact_search")
+        assert "class-transport map is not affine" in refused.json()["error"]["message"]
+        answered = await client.post(route, json={"vectors": x.tolist()})
+        assert (answered.status_code, answered.headers["x-veil-search-exact"]) == (200, "false")
+        assert answered.headers["x-veil-version"] == version
+        assert answered.json()["offsets"] is None
+        assert "not affine" in answered.json()["note"]

@@ -32,6 +32,25 @@ class CleanedBatch:
     eraser: str
 
 
+@dataclass(frozen=True)
+class SearchVectors:
+    """Query vectors for a raw (uncleaned) index, in input order, from one eraser version.
+
+    ``vectors[i] = Aᵀ r(q_i)``: a raw inner-product index ranks by them as the
+    index of the cleaned corpus ranks by the cleaned queries, exactly when
+    ``exact`` is true (``note`` says why not otherwise).  ``offsets[i] =
+    ⟨r(q_i), b⟩`` turns a raw inner product into the cleaned one (None for a
+    map that is not affine).
+    """
+
+    vectors: NDArray[np.floating]
+    offsets: NDArray[np.float64] | None
+    exact: bool
+    note: str
+    version: str
+    eraser: str
+
+
 def as_matrix(vectors: ArrayLike) -> NDArray[np.floating]:
     """A 2-D float16/32/64 array of finite numbers, or :class:`VeilValidationError` before any request."""
     try:
@@ -71,6 +90,20 @@ def decode(response: httpx.Response) -> NDArray[np.floating]:
         array: NDArray[np.floating] = np.load(io.BytesIO(response.content), allow_pickle=False)
         return array
     return np.asarray(response.json()["vectors"], dtype=np.float32)
+
+
+def search_vectors_of(answers: list[httpx.Response]) -> SearchVectors:
+    """The JSON answers of the batches of one ``search-vector`` call, put back together in order."""
+    bodies = [answer.json() for answer in answers]
+    offsets = [body["offsets"] for body in bodies]
+    return SearchVectors(
+        vectors=np.concatenate([np.asarray(body["vectors"], dtype=np.float32) for body in bodies]),
+        offsets=None if offsets[0] is None else np.concatenate([np.asarray(o, dtype=np.float64) for o in offsets]),
+        exact=bool(bodies[0]["exact"]),
+        note=str(bodies[0]["note"]),
+        version=answers[0].headers.get("x-veil-version", ""),
+        eraser=answers[0].headers.get("x-veil-eraser", ""),
+    )
 
 
 def raise_for_error(response: httpx.Response) -> None:

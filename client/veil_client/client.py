@@ -20,12 +20,14 @@ from veil_client._base import (
     CleanedBatch,
     ClientSettings,
     RetryPolicy,
+    SearchVectors,
     as_matrix,
     batches,
     decode,
     encode,
     pin_headers,
     raise_for_error,
+    search_vectors_of,
 )
 from veil_client.errors import VeilTransportError, VeilValidationError
 
@@ -65,6 +67,14 @@ class _Requests:
     def _batch_request(self, batch: NDArray[np.floating], pin: dict[str, str]) -> dict[str, Any]:
         body, media = encode(batch, self.settings.wire)
         return {"content": body, "headers": {**pin, "Content-Type": media, "Accept": media}}
+
+    def _search_request(
+        self, batch: NDArray[np.floating], pin: dict[str, str], metric: str, exact: bool
+    ) -> dict[str, Any]:
+        # Answers come back as JSON, the only format that carries the offsets and the exactness note.
+        request = self._batch_request(batch, pin)
+        request["headers"]["Accept"] = JSON
+        return {**request, "params": {"metric": metric, "exact": "true" if exact else "false"}}
 
     def _drift_request(
         self, vectors: ArrayLike | None, labels: list[str] | None, version: str | None, alias: str | None
@@ -174,6 +184,45 @@ class VeilClient(_Requests):
     ) -> CleanedBatch:
         """Erase, then give every vector the attribute component of class ``target``."""
         return self._clean(f"/v1/erasers/{name}/counterfactual", vectors, version, alias, {"target": target})
+
+    def search_vectors(
+        self,
+        name: str,
+        queries: ArrayLike,
+        *,
+        metric: str = "inner_product",
+        exact: bool = False,
+        version: str | None = None,
+        alias: str | None = None,
+    ) -> SearchVectors:
+        """Vectors that search a raw (uncleaned) index as the index of the cleaned corpus would rank.
+
+        Parameters
+        ----------
+        name : str
+            The eraser.
+        queries : array-like of shape (n_queries, dim)
+            Raw query embeddings.
+        metric : {"inner_product", "cosine", "l2"}, default="inner_product"
+            The raw index's metric; only an inner-product index can be searched exactly.
+        exact : bool, default=False
+            Raise :class:`VeilClientError` (``inexact_search``) rather than accept an inexact answer.
+        version, alias : str, optional
+            The version (id or sequence number) or alias the corpus would be cleaned with; at most one.
+
+        Returns
+        -------
+        SearchVectors
+            ``vectors`` (n_queries, dim), ``offsets`` (n_queries,) or None, ``exact``, ``note``, ``version``.
+        """
+        matrix, pin = as_matrix(queries), pin_headers(version, alias)
+        answers = []
+        for batch in batches(matrix, self.settings.batch_size):
+            request = self._search_request(batch, pin, metric, exact)
+            answer = self._send("POST", f"/v1/erasers/{name}/search-vector", **request)
+            pin = {"X-Veil-Version": answer.headers["x-veil-version"]}
+            answers.append(answer)
+        return search_vectors_of(answers)
 
     def drift(
         self,
@@ -298,6 +347,26 @@ class AsyncVeilClient(_Requests):
         self, name: str, vectors: ArrayLike, target: str, *, version: str | None = None, alias: str | None = None
     ) -> CleanedBatch:
         return await self._clean(f"/v1/erasers/{name}/counterfactual", vectors, version, alias, {"target": target})
+
+    async def search_vectors(
+        self,
+        name: str,
+        queries: ArrayLike,
+        *,
+        metric: str = "inner_product",
+        exact: bool = False,
+        version: str | None = None,
+        alias: str | None = None,
+    ) -> SearchVectors:
+        """As :meth:`VeilClient.search_vectors`."""
+        matrix, pin = as_matrix(queries), pin_headers(version, alias)
+        answers = []
+        for batch in batches(matrix, self.settings.batch_size):
+            request = self._search_request(batch, pin, metric, exact)
+            answer = await self._send("POST", f"/v1/erasers/{name}/search-vector", **request)
+            pin = {"X-Veil-Version": answer.headers["x-veil-version"]}
+            answers.append(answer)
+        return search_vectors_of(answers)
 
     async def drift(
         self,

@@ -9,6 +9,7 @@ from typing import TYPE_CHECKING, Any
 from veil.maps.artifact import MapArtifact
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
+from veil.maps.search import SearchVectors, search_vectors
 
 if TYPE_CHECKING:
     from veil.erasers import INLP, LEACE, RLACE, MeanProjection
@@ -24,7 +25,9 @@ __all__ = [
     "MapArtifact",
     "MeanProjection",
     "MomentState",
+    "SearchVectors",
     "__version__",
+    "search_vectors",
 ]
 
 # The estimators import scikit-learn (about a second): they load on first use, so that `import veil` (and every

@@ -13,6 +13,8 @@ METHOD_NAMES = ("leace", "meanproj", "inlp", "rlace", "transport")
 EMBEDDINGS_KEY = "embedding"
 #: Rows cleaned at a time by ``veil apply``.
 APPLY_CHUNK_ROWS = 8192
+#: The faiss index ``veil apply --out X.faiss`` builds when none is named: exact inner-product search.
+INDEX_FACTORY = "Flat"
 #: Rows read at a time by a streamed fit.
 STREAM_CHUNK_ROWS = 65536
 #: Held-out rows a streamed fit audits (a hash sample).

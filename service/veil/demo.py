@@ -1,13 +1,16 @@
 """``make demo``: the whole path on the committed Harbourline sample, from a labelled sample to a rollback.
 
 Harbourline is an invented community job board whose profile search ranks
-member profiles by embedding similarity; the embeddings carry the member's
-pronoun, which the search must not use.  The demo fits two erasers into a
-fresh registry on the profiles that signed up before March, audits the
-first on the March sign-ups and records that audit, promotes one, starts the service on a free loopback port,
-cleans the corpus through the client, compares search results before and
-after, checks a normal and a shifted traffic sample for drift, rolls back,
-shows the service picking the rollback up, and stops the service.
+member profiles by embedding similarity in a faiss inner-product index; the
+embeddings carry the member's pronoun, which the search must not use.  The
+demo fits two erasers into a fresh registry on the profiles that signed up
+before March, audits the first on the March sign-ups and records that audit,
+promotes one, starts the service on a free loopback port, cleans the corpus
+through the client, searches the raw index before and after (with search
+vectors, no re-index), re-indexes with ``veil apply`` and gets the same
+results, checks a normal and a shifted traffic sample for drift, rolls back
+and keeps searching the raw index with the rolled-back version's search
+vectors while the new index is built, and stops the service.
 """
 
 from __future__ import annotations
@@ -22,12 +25,15 @@ import sys
 import time
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import httpx
 import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import geometry
+from veil.cleaning.corpus import apply_to_file
+from veil.cleaning.index import read_index
 from veil.fitting.fresh_audit import audit_stored_version
 from veil.fitting.job import fit_version
 from veil.registry import Registry
@@ -39,6 +45,7 @@ from veil_client import VeilClient
 
 DEMO_REGISTRY = Path("demo-registry")
 DEMO_DATA = Path("demo-data")
+DEMO_INDEXES = Path("demo-indexes")
 NAME = "profiles-minilm"
 ADMIN_TOKEN = "demo-admin-token"
 NEIGHBOURS = 10
@@ -77,19 +84,38 @@ def _service(port: int) -> Iterator[str]:
         print("service stopped cleanly" if clean else f"service ended with exit code {process.returncode}")
 
 
-def _neighbour_shares(
-    corpus: NDArray[np.floating], queries: NDArray[np.floating], query_rows: NDArray[np.intp],
-    attribute: NDArray[np.str_], field: NDArray[np.str_],
-) -> tuple[float, float]:  # fmt: skip
-    """Among each query's top-10 results (cosine, itself excluded): share with its pronoun, and with its field."""
-    unit_corpus = corpus / np.linalg.norm(corpus, axis=1, keepdims=True)
-    unit_queries = queries / np.linalg.norm(queries, axis=1, keepdims=True)
-    scores = unit_queries @ unit_corpus.T
-    scores[np.arange(query_rows.size), query_rows] = -np.inf
-    top = np.argpartition(-scores, NEIGHBOURS, axis=1)[:, :NEIGHBOURS]
-    same_attribute = attribute[top] == attribute[query_rows][:, None]
-    same_field = field[top] == field[query_rows][:, None]
-    return float(same_attribute.mean()), float(same_field.mean())
+def _raw_index(corpus: NDArray[np.floating]) -> Any:
+    """The index production already has: the raw profile vectors, exact inner-product search."""
+    import faiss
+
+    index = faiss.IndexFlatIP(corpus.shape[1])
+    index.add(np.ascontiguousarray(corpus, dtype=np.float32))
+    return index
+
+
+def _search(index: Any, queries: NDArray[np.floating], query_rows: NDArray[np.intp]) -> NDArray[np.int64]:
+    """Each query's top 10 in ``index`` (inner product, best first), the query's own profile left out."""
+    _, found = index.search(np.ascontiguousarray(queries, dtype=np.float32), NEIGHBOURS + 1)
+    return np.array([[j for j in row if j != own][:NEIGHBOURS] for row, own in zip(found, query_rows, strict=True)])
+
+
+def _same(a: NDArray[np.int64], b: NDArray[np.int64]) -> int:
+    """Queries whose top 10 hold the same profiles (the order of results tied within round-off may differ)."""
+    return sum(set(x.tolist()) == set(y.tolist()) for x, y in zip(a, b, strict=True))
+
+
+def _shares(top: NDArray[np.int64], query_rows: NDArray[np.intp], profiles: Any) -> str:
+    """Among each query's results: share with its pronoun, and with its field."""
+    pronoun = float(np.mean(profiles.pronoun[top] == profiles.pronoun[query_rows][:, None]))
+    field = float(np.mean(profiles.field[top] == profiles.field[query_rows][:, None]))
+    return f"same pronoun {pronoun:.3f}, same field {field:.3f}"
+
+
+def _reindex(registry: Registry, version: str, corpus: Path) -> tuple[Any, dict[str, Any]]:
+    """``veil apply`` the version into a new faiss index; the index and its manifest."""
+    target = DEMO_INDEXES / f"profiles-{version}.faiss"
+    manifest = apply_to_file(registry.read_version(NAME, version), corpus, target, requested=version)
+    return read_index(target), manifest
 
 
 def _signups(profiles: ProfileSample) -> tuple[Path, Path]:
@@ -104,7 +130,9 @@ def _signups(profiles: ProfileSample) -> tuple[Path, Path]:
 
 def main() -> None:
     started = time.perf_counter()
-    shutil.rmtree(DEMO_REGISTRY, ignore_errors=True)  # the demo owns this folder
+    for folder in (DEMO_REGISTRY, DEMO_INDEXES, DEMO_DATA):
+        shutil.rmtree(folder, ignore_errors=True)  # the demo owns these folders
+    DEMO_INDEXES.mkdir()
     registry = Registry(DEMO_REGISTRY)
     profiles = load_harbourline_profiles()
     before_march, march = _signups(profiles)
@@ -145,21 +173,28 @@ def main() -> None:
             f"cleaned {cleaned.vectors.shape[0]} profiles through the client in batches of 512 with {cleaned.version}\n"
         )
 
-        print("3. Profile search before and after: who are each query's top-10 results?")
+        print("3. Profile search through faiss (inner product), before and after, with and without re-indexing")
         query_rows = np.arange(0, profiles.embedding.shape[0], 10)
-        raw = _neighbour_shares(
-            profiles.embedding, profiles.embedding[query_rows], query_rows, profiles.pronoun, profiles.field
-        )
-        erased = _neighbour_shares(
-            cleaned.vectors, cleaned.vectors[query_rows], query_rows, profiles.pronoun, profiles.field
+        queries = profiles.embedding[query_rows]
+        raw_index = _raw_index(profiles.embedding)
+        before = _search(raw_index, queries, query_rows)
+        print(f"   raw index, raw queries:                     {_shares(before, query_rows, profiles)}")
+        searched = veil.search_vectors(NAME, queries, exact=True)
+        through = _search(raw_index, searched.vectors, query_rows)
+        print(f"   raw index, search vectors (no re-index):    {_shares(through, query_rows, profiles)}")
+        np.save(corpus := DEMO_INDEXES / "profiles-raw.npy", profiles.embedding)
+        cleaned_index, manifest = _reindex(registry, searched.version, corpus)
+        pinned = veil.apply(NAME, queries, version=manifest["version"])  # queries on the index's own version
+        reindexed = _search(cleaned_index, pinned.vectors, query_rows)
+        print(f"   re-indexed with veil apply, cleaned queries: {_shares(reindexed, query_rows, profiles)}")
+        print(
+            f"   both with {searched.version}; the same 10 profiles for {_same(reindexed, through)} of "
+            f"{query_rows.size} queries"
         )
         base_rate = geometry.label_base_rate(np.unique(profiles.pronoun, return_inverse=True)[1])
-        print(f"   same pronoun as the query: {raw[0]:.3f} raw -> {erased[0]:.3f} erased (base rate {base_rate:.3f})")
-        print(f"   same field as the query:   {raw[1]:.3f} raw -> {erased[1]:.3f} erased (task relevance kept)")
         print(
-            "   (who the neighbours are depends on more than the linear directions erased: the linear probe\n"
-            "   is down to near the majority baseline, the neighbourhoods much less; see the nonlinear probes'\n"
-            "   and 10-NN rows)\n"
+            f"   (pronoun base rate {base_rate:.3f}: who the neighbours are depends on more than the linear\n"
+            "   directions erased; see the nonlinear probes' and 10-NN rows, and the ranking-fairness rows)\n"
         )
 
         print("4. Drift checks on live traffic samples")
@@ -172,13 +207,23 @@ def main() -> None:
         loud = veil.drift(NAME, shifted, labels=None)
         print(f"   the same sample, shifted:           {loud['status']}  {'; '.join(loud['reasons'])}\n")
 
-        print("5. Roll back, and watch the service pick it up")
+        print("5. Roll back, and keep searching while the new index is built")
         event = registry.rollback(NAME, reason="demo: back to LEACE")
         print(f"   registry: live {event.from_version} -> {event.to_version}")
         deadline = time.monotonic() + 15
         while veil.apply(NAME, profiles.embedding[:1]).version != event.to_version and time.monotonic() < deadline:
             time.sleep(0.25)
         print(f"   the service now answers with {veil.apply(NAME, profiles.embedding[:1]).version}")
+        print(f"   the index holds {manifest['version']} vectors (its manifest says so): live queries must not use it")
+        during = veil.search_vectors(NAME, queries, exact=True)
+        interim = _search(raw_index, during.vectors, query_rows)
+        print(f"   meanwhile, raw index + search vectors ({during.version}): {_shares(interim, query_rows, profiles)}")
+        rebuilt, rebuilt_manifest = _reindex(registry, during.version, corpus)
+        switched = _search(rebuilt, veil.apply(NAME, queries, version=rebuilt_manifest["version"]).vectors, query_rows)
+        print(
+            f"   new index built with veil apply ({rebuilt_manifest['version']}): the same 10 profiles for "
+            f"{_same(switched, interim)} of {query_rows.size} queries; reads switch to it"
+        )
 
     print("\nHistory of the live alias:")
     for entry in registry.history(NAME):

@@ -9,7 +9,16 @@ from __future__ import annotations
 import importlib
 from typing import TYPE_CHECKING, Any
 
-from veil.audit.report import AuditReport, Leakage, ProbeProtocol, ProbeScore, RegressionScore, Retrieval, Utility
+from veil.audit.report import (
+    AuditReport,
+    Leakage,
+    ProbeProtocol,
+    ProbeScore,
+    RankingFairness,
+    RegressionScore,
+    Retrieval,
+    Utility,
+)
 
 if TYPE_CHECKING:
     from veil.audit.run import audit, audit_artifact, fit_and_audit
@@ -19,6 +28,7 @@ __all__ = [
     "Leakage",
     "ProbeProtocol",
     "ProbeScore",
+    "RankingFairness",
     "RegressionScore",
     "Retrieval",
     "Utility",

@@ -9,7 +9,8 @@ Float64Array = NDArray[np.float64]
 _BLOCK = 1024
 
 
-def _unit(x: NDArray[np.floating]) -> Float64Array:
+def unit(x: NDArray[np.floating]) -> Float64Array:
+    """Each row scaled to unit length in float64 (zero rows stay zero)."""
     x64 = np.asarray(x, dtype=np.float64)
     norms = np.linalg.norm(x64, axis=1, keepdims=True)
     return np.asarray(x64 / np.where(norms > 0, norms, 1.0))
@@ -25,19 +26,19 @@ def relative_distortion(raw: NDArray[np.floating], erased: NDArray[np.floating])
 
 def mean_cosine(raw: NDArray[np.floating], erased: NDArray[np.floating]) -> float:
     """Mean cosine similarity between each vector and its erased version."""
-    return float(np.mean(np.sum(_unit(raw) * _unit(erased), axis=1)))
+    return float(np.mean(np.sum(unit(raw) * unit(erased), axis=1)))
 
 
 def nearest_neighbours(x: NDArray[np.floating], k: int) -> NDArray[np.intp]:
     """Indices of each row's ``k`` nearest other rows by cosine, shape (n, k), in blocks of rows."""
-    unit = _unit(x)
-    n = unit.shape[0]
+    rows = unit(x)
+    n = rows.shape[0]
     if n <= k:
         raise ValueError(f"need more than {k} rows for {k}-nearest-neighbour figures, got {n}")
     out = np.empty((n, k), dtype=np.intp)
     for start in range(0, n, _BLOCK):
         stop = min(start + _BLOCK, n)
-        similarity = unit[start:stop] @ unit.T
+        similarity = rows[start:stop] @ rows.T
         similarity[np.arange(stop - start), np.arange(start, stop)] = -np.inf
         out[start:stop] = np.argpartition(-similarity, k, axis=1)[:, :k]
     return out

@@ -149,6 +149,57 @@ class Retrieval:
 
 
 @dataclass(frozen=True)
+class RankingFairness:
+    """Ranking-fairness figures with the held-out rows as queries and as corpus (cosine, each query's own row left out).
+
+    Each figure is a mean over the queries of one query's top ``k``, before
+    and after erasure on the same queries (see :mod:`veil.audit.ranking`):
+    the share of each class among the results against the corpus's base
+    rate, the share of DCG-discounted exposure, MaxSkew@k, the share of
+    queries whose top ``k`` lacks a class (MinSkew@k = −∞), and NDKL.
+    Per-class tuples follow the report's ``classes``.
+    """
+
+    k: int
+    queries: int
+    base_rate: tuple[float, ...]
+    share_before: tuple[float, ...]
+    share_after: tuple[float, ...]
+    exposure_share_before: tuple[float, ...]
+    exposure_share_after: tuple[float, ...]
+    max_skew_before: float
+    max_skew_after: float
+    absent_class_share_before: float
+    absent_class_share_after: float
+    ndkl_before: float
+    ndkl_after: float
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> RankingFairness:
+        values: dict[str, Any] = {key: tuple(v) if isinstance(v, list) else v for key, v in data.items()}
+        return cls(**values)
+
+    def rows(self, classes: tuple[str, ...] | None) -> list[tuple[str, str, str]]:
+        """``(label, before, after)`` rows for a table."""
+        names = " / ".join(classes) if classes else "by class"
+        k = self.k
+        before, after = _shares(self.exposure_share_before), _shares(self.exposure_share_after)
+        return [
+            (f"top-{k} share {names} (base {_shares(self.base_rate)})", _shares(self.share_before),
+             _shares(self.share_after)),
+            (f"top-{k} exposure share {names}", before, after),
+            (f"MaxSkew@{k}", f"{self.max_skew_before:.3f}", f"{self.max_skew_after:.3f}"),
+            (f"queries missing a class in top {k}", f"{self.absent_class_share_before:.3f}",
+             f"{self.absent_class_share_after:.3f}"),
+            (f"NDKL@{k}", f"{self.ndkl_before:.4f}", f"{self.ndkl_after:.4f}"),
+        ]  # fmt: skip
+
+
+def _shares(values: tuple[float, ...]) -> str:
+    return " / ".join(f"{value:.3f}" for value in values)
+
+
+@dataclass(frozen=True)
 class ProbeProtocol:
     """How the probes were trained and tested.
 
@@ -189,8 +240,9 @@ class AuditReport:
     """The audit of one eraser on held-out data.
 
     ``classes`` names the attribute's classes in the order of each probe's
-    ``recall``; ``protocol`` says how the probes were scored.  Both are None
-    in cards written before they were recorded.
+    ``recall``; ``protocol`` says how the probes were scored; ``ranking``
+    holds the ranking-fairness figures.  Each is None in cards written before
+    it was recorded (``ranking`` also for a continuous attribute).
     """
 
     method: str
@@ -203,6 +255,7 @@ class AuditReport:
     notes: list[str] = field(default_factory=list)
     classes: tuple[str, ...] | None = None
     protocol: ProbeProtocol | None = None
+    ranking: RankingFairness | None = None
 
     @property
     def balanced_chance(self) -> float | None:
@@ -220,6 +273,7 @@ class AuditReport:
         retrieval = data.get("retrieval")
         classes = data.get("classes")
         protocol = data.get("protocol")
+        ranking = data.get("ranking")
         return cls(
             method=data["method"],
             rank=data["rank"],
@@ -231,6 +285,7 @@ class AuditReport:
             notes=list(data.get("notes", [])),
             classes=None if classes is None else tuple(classes),
             protocol=None if protocol is None else ProbeProtocol(**protocol),
+            ranking=None if ranking is None else RankingFairness.from_dict(ranking),
         )
 
     @classmethod
@@ -297,6 +352,8 @@ class AuditReport:
                         f"{rt.task_share_after:.3f}",
                     )
                 )
+        if self.ranking is not None:
+            rows += self.ranking.rows(self.classes)
         width = max(len(r[0]) for r in rows)
         column = max(21, *(len(text) for row in rows for text in row[1:]))
         fresh = self.protocol is not None and self.protocol.scheme == FRESH_KFOLD

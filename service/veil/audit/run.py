@@ -11,7 +11,7 @@ from numpy.typing import ArrayLike, NDArray
 from sklearn.model_selection import train_test_split
 from sklearn.utils.validation import check_array, check_is_fitted
 
-from veil.audit import geometry, probes, readers
+from veil.audit import geometry, probes, ranking, readers
 from veil.audit.report import (
     FRESH_KFOLD,
     HELD_OUT_KFOLD,
@@ -277,6 +277,8 @@ def _audit_map(
             task_base_rate=None if task_codes is None else geometry.label_base_rate(task_codes),
         )
 
+    ranking_fairness = None if codes is None else ranking.ranking_before_after(raw, erased, codes, NEIGHBOURS)
+
     dead = probes.count_dead_features(raw)
     if dead:
         notes.append(
@@ -314,6 +316,7 @@ def _audit_map(
         notes=notes,
         classes=None if attribute.labels is None else tuple(str(label) for label in attribute.labels),
         protocol=ProbeProtocol(scheme=audited.scheme, folds=used_folds, seed=random_state, eraser_rows=fitted_rows),
+        ranking=ranking_fairness,
     )
 
 

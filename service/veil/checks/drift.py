@@ -16,6 +16,10 @@ a sample of that size, so a small quiet sample does not raise alarms:
 - ``leakage_gap``: a probe trained by cross-validation on the erased live
   sample to predict the labels (or pseudo-labels), at the edge of its 95%
   interval nearest the majority baseline, as a distance from majority.
+- ``ranking``: the ranking-fairness figures of :mod:`veil.audit.ranking`
+  with (up to 500 of) the sample's rows querying the whole sample by cosine,
+  raw and erased, against the sample's class shares (labels or
+  pseudo-labels).  Figures only: no threshold reads them.
 """
 
 from __future__ import annotations
@@ -27,13 +31,17 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import probes
-from veil.audit.report import ProbeScore
+from veil.audit.ranking import ranking_before_after
+from veil.audit.report import ProbeScore, RankingFairness
 from veil.checks.reference import ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
 from veil.maps.artifact import MapArtifact
 
 MIN_ROWS = 20
 PROBE_FOLDS = 5
+#: Results per query of the ranking figures, and at most how many rows query (each query scans the whole sample).
+RANKING_K = 10
+RANKING_QUERIES = 500
 
 
 @dataclass(frozen=True)
@@ -55,6 +63,7 @@ class DriftReport:
     class_mean_gap: float | None
     status: str
     reasons: list[str] = field(default_factory=list)
+    ranking: RankingFairness | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -145,6 +154,11 @@ def check_drift(
             float(np.linalg.norm(erased_white[compact == c].mean(axis=0) - overall)) for c in np.unique(compact)
         )
 
+    queries = None
+    if n > RANKING_QUERIES:
+        queries = np.sort(np.random.default_rng(random_state).choice(n, RANKING_QUERIES, replace=False))
+    ranking = ranking_before_after(x, np.asarray(erased), codes, RANKING_K, queries=queries)
+
     figures = {
         "mean_shift": max(0.0, mean_raw - mean_noise),
         "covariance_shift": max(0.0, covariance_raw - covariance_noise),
@@ -177,4 +191,5 @@ def check_drift(
         class_mean_gap=class_mean_gap,
         status=worst,
         reasons=reasons,
+        ranking=ranking,
     )

@@ -1,7 +1,8 @@
 """Clean a whole corpus offline with a stored version, for re-indexing a vector store.
 
 The output has the input's format (``.npy`` in, ``.npy`` out; Parquet in,
-Parquet out with every other column kept), is written under a temporary name
+Parquet out with every other column kept), or is a faiss inner-product index
+(``.npy`` in, ``.faiss`` out, with the ``faiss`` extra); it is written under a temporary name
 and renamed into place when complete, and gets a manifest beside it
 (``OUT.manifest.json``) naming the version and the checksums of input and
 output, so an index records exactly which eraser cleaned it.  Memory stays
@@ -20,6 +21,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from veil.cleaning.index import DEFAULT_FACTORY, INDEX_SUFFIX, inner_product_index, write_index
 from veil.defaults import APPLY_CHUNK_ROWS
 from veil.errors import DataError
 from veil.progress import advance
@@ -74,6 +76,21 @@ def _apply_npy(version: StoredVersion, source: Path, temporary: Path, chunk_rows
     return rows, str(out_dtype)
 
 
+def _apply_index(
+    version: StoredVersion, source: Path, temporary: Path, chunk_rows: int, factory: str
+) -> tuple[int, str]:
+    data = NpyFile.open(source)
+    rows, dim = data.shape
+    _check_dim(version, dim, source)
+    index = inner_product_index(dim, factory)
+    for start in range(0, rows, chunk_rows):
+        cleaned = _clean_chunk(version, data.read(start, chunk_rows), first_row=start, source=source)
+        index.add(np.ascontiguousarray(cleaned, dtype=np.float32))
+        advance("indexing (rows)", min(start + chunk_rows, rows), rows)
+    write_index(index, temporary)
+    return rows, f"faiss {factory} index, inner product, float32"
+
+
 def _apply_parquet(
     version: StoredVersion, source: Path, temporary: Path, chunk_rows: int, column: str
 ) -> tuple[int, str]:
@@ -121,6 +138,7 @@ def apply_to_file(
     requested: str,
     embeddings_key: str = DEFAULT_EMBEDDINGS_KEY,
     chunk_rows: int = DEFAULT_CHUNK_ROWS,
+    index_factory: str = DEFAULT_FACTORY,
 ) -> dict[str, Any]:
     """Clean every embedding in ``source`` with ``version`` into ``target``; returns the manifest written beside it.
 
@@ -129,13 +147,18 @@ def apply_to_file(
     version : StoredVersion
         A verified version (from :meth:`Registry.read_version`).
     source, target : path
-        ``.npy`` (a 2-D array) or Parquet (``embeddings_key`` names the list column).
+        ``.npy`` (a 2-D array) or Parquet (``embeddings_key`` names the list column); a ``.npy``
+        source may also go into a faiss index (``target`` ending in ``.faiss``).
     requested : str
         The version or alias the caller asked for, recorded in the manifest.
     embeddings_key : str, default="embedding"
         The Parquet embedding column.
     chunk_rows : int, default=8192
-        Rows cleaned at a time; memory is bounded by this, not the corpus size.
+        Rows cleaned at a time; memory is bounded by this, not the corpus size
+        (an index holds every row it is given, in memory, until it is written).
+    index_factory : str, default="Flat"
+        The faiss factory string of a ``.faiss`` target, e.g. ``"HNSW32"``;
+        its metric is inner product.
 
     Raises
     ------
@@ -149,18 +172,26 @@ def apply_to_file(
         raise DataError(f"{source} does not exist or is not a file")
     if chunk_rows < 1:
         raise DataError(f"the chunk size must be at least 1 row, got {chunk_rows}")
-    suffix = source.suffix.lower()
-    if suffix != target.suffix.lower() and not (
-        suffix in PARQUET_SUFFIXES and target.suffix.lower() in PARQUET_SUFFIXES
+    suffix, target_suffix = source.suffix.lower(), target.suffix.lower()
+    into_index = suffix == ".npy" and target_suffix == INDEX_SUFFIX
+    if (
+        suffix != target_suffix
+        and not into_index
+        and not (suffix in PARQUET_SUFFIXES and target_suffix in PARQUET_SUFFIXES)
     ):
-        raise DataError(f"the output keeps the input's format: {source.name} in, so a {suffix} file out")
+        raise DataError(
+            f"the output keeps the input's format: {source.name} in, so a {suffix} file out"
+            + (f" (or a {INDEX_SUFFIX} index)" if suffix == ".npy" else "")
+        )
     if target.exists() and target.resolve() == source.resolve():
         raise DataError("the output would overwrite the input; write the cleaned corpus to a new file")
     if not target.parent.is_dir():
         raise DataError(f"the output folder {target.parent} does not exist")
     temporary = _temporary_beside(target)
     try:
-        if suffix == ".npy":
+        if into_index:
+            rows, dtype = _apply_index(version, source, temporary, chunk_rows, index_factory)
+        elif suffix == ".npy":
             rows, dtype = _apply_npy(version, source, temporary, chunk_rows)
         elif suffix in PARQUET_SUFFIXES:
             rows, dtype = _apply_parquet(version, source, temporary, chunk_rows, embeddings_key)

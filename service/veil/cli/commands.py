@@ -271,6 +271,7 @@ def apply(args: argparse.Namespace) -> int:
         requested=requested,
         embeddings_key=args.embeddings,
         chunk_rows=args.chunk_rows,
+        index_factory=args.index_factory,
     )
     print(f"cleaned {manifest['input']['rows']} rows with {stored.name} {stored.id} into {args.target}")
     print(manifest_path(Path(args.target)))

@@ -13,6 +13,7 @@ from veil.defaults import (
     EMBEDDINGS_KEY,
     ENGINES,
     FIT_SAMPLE_ROWS,
+    INDEX_FACTORY,
     METHOD_NAMES,
     STREAM_CHUNK_ROWS,
 )
@@ -299,7 +300,13 @@ def build_parser() -> VeilParser:
     target.add_argument("--version", help="a version id or sequence number")
     target.add_argument("--alias", help=f"an alias (default {DEFAULT_ALIAS})")
     apply.add_argument("--in", dest="source", required=True, help="the corpus: .npy or .parquet")
-    apply.add_argument("--out", dest="target", required=True, help="the cleaned corpus, same format")
+    apply.add_argument(
+        "--out", dest="target", required=True, help="the cleaned corpus, same format; or a .faiss index of a .npy"
+    )
+    apply.add_argument(
+        "--index", dest="index_factory", default=INDEX_FACTORY,
+        help="the faiss factory string of a .faiss output, e.g. HNSW32 (inner product)",
+    )  # fmt: skip
     apply.add_argument("--embeddings", default=EMBEDDINGS_KEY, help="the Parquet embedding column")
     apply.add_argument("--chunk-rows", type=int, default=APPLY_CHUNK_ROWS, help="rows cleaned at a time")
     apply.set_defaults(handler="apply")

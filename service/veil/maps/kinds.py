@@ -26,6 +26,8 @@ class EmbeddingMap(Protocol):
     """A fitted map from embeddings to cleaned embeddings of the same dimension."""
 
     kind: ClassVar[str]
+    #: Whether ``apply`` is one affine map ``A x + b`` for every row.
+    affine: ClassVar[bool]
 
     @property
     def dim(self) -> int: ...
@@ -36,6 +38,15 @@ class EmbeddingMap(Protocol):
 
     def component(self, x: FloatArray) -> FloatArray:
         """What cleaning takes out of each row, ``x - apply(x)``, shape (n, d)."""
+        ...
+
+    def search_vector(self, cleaned: FloatArray) -> FloatArray:
+        """Query-side vectors, shape (n, d), for a raw inner-product index, from cleaned queries ``r(q)``.
+
+        For an affine map ``A x + b``, ``Aᵀ r(q)``: the raw index then ranks
+        exactly as the cleaned one (:mod:`veil.maps.search`).  Other kinds say
+        what they give instead.
+        """
         ...
 
     def counterfactual(self, x: FloatArray, class_means: NDArray[np.float64], target: int) -> FloatArray:

@@ -41,6 +41,7 @@ class AffineLowRankMap:
     """
 
     kind: ClassVar[str] = "affine-lowrank"
+    affine: ClassVar[bool] = True
 
     mean: Float64Array
     u: Float64Array
@@ -96,6 +97,19 @@ class AffineLowRankMap:
         out = self.component(x)
         np.subtract(x, out, out=out)
         return out
+
+    def adjoint(self, y: FloatArray) -> FloatArray:
+        """``Aᵀ y = y - V Uᵀ y`` for each row of ``y`` (n, d), ``A = I - U Vᵀ``: O(n·d·k), in ``y``'s dtype."""
+        if y.ndim != 2 or y.shape[1] != self.dim:
+            raise ValueError(f"expected a batch of shape (n, {self.dim}), got {y.shape}")
+        v, _, u_t = self._factors(y.dtype)
+        out: FloatArray = (y @ u_t.T) @ v.T
+        np.subtract(y, out, out=out)
+        return out
+
+    def search_vector(self, cleaned: FloatArray) -> FloatArray:
+        """:meth:`adjoint`: ``Aᵀ r(q)`` ranks raw rows ``x`` as ``r(q)`` ranks cleaned rows ``r(x)`` (inner product)."""
+        return self.adjoint(cleaned)
 
     def shift_towards(self, target_mean: Float64Array) -> Float64Array:
         """``U Vᵀ (m - μ)``: the component a row at mean ``m`` carries, shape (d,)."""

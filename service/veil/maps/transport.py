@@ -77,6 +77,7 @@ class ClassTransportMap:
     """
 
     kind: ClassVar[str] = "class-transport"
+    affine: ClassVar[bool] = False
 
     mean: Float64Array
     class_means: Float64Array
@@ -222,6 +223,18 @@ class ClassTransportMap:
     def component(self, x: FloatArray) -> FloatArray:
         """What cleaning takes out of each row, ``x - apply(x)``, shape (n, d)."""
         return x - self.apply(x)
+
+    def search_vector(self, cleaned: FloatArray) -> FloatArray:
+        """The cleaned queries themselves, shape (n, d): no linear part serves every row of a class-transport map.
+
+        Each inferred class has its own affine map, so no query-side vector
+        ranks a raw index exactly.  On the committed sample (docs/retrieval.md)
+        the cleaned query kept more of the cleaned index's top 10 than the
+        class maps' linear parts averaged by the class shares, or the query's
+        own class's linear part.
+        """
+        self._check(cleaned)
+        return cleaned.copy()
 
     def towards(self, x: FloatArray, target: int) -> FloatArray:
         """Carry each row from its inferred class onto class ``target``'s Gaussian, shape (n, d).

@@ -220,6 +220,10 @@ def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
                 f"{rt.attribute_share_before:.3f} → {rt.attribute_share_after:.3f} (base {rt.attribute_base_rate:.3f})",
             )
         )
+    if audit.ranking is not None:
+        rk = audit.ranking
+        rows.append((f"NDKL@{rk.k}", f"{rk.ndkl_before:.4f} → {rk.ndkl_after:.4f} (0: every prefix at the base rates)"))
+        rows.append((f"MaxSkew@{rk.k}", f"{rk.max_skew_before:.3f} → {rk.max_skew_after:.3f}"))
     return rows
 
 

@@ -40,4 +40,3 @@ def version_evidence(registry: Registry, name: str, reference: str) -> dict[str,
         "fresh_audits": _listed(registry.records(name, stored.id, FRESH_AUDITS)),
         "live_checks": _listed(registry.records(name, stored.id, LIVE_CHECKS)),
     }
-

@@ -274,6 +274,24 @@ def _audit_thresholds_table(card: dict[str, Any]) -> str:
     return f"<table>{head}{''.join(rows)}</table>"
 
 
+def _ranking_table(audit: AuditReport) -> str:
+    """The ranking-fairness figures before and after erasure, on the same queries."""
+    if audit.ranking is None:
+        return '<h2>Ranking fairness</h2><p class="muted">Not recorded (an older card, or a continuous attribute).</p>'
+    rk = audit.ranking
+    text = (
+        f"Each of the {rk.queries} held-out rows queries the others by cosine; figures are means over the queries "
+        f"of one query's top {rk.k}, before and after erasure. Skew@k is ln(share / base rate); NDKL is the "
+        "DCG-discounted mean KL divergence of each top-i prefix's class shares from the base rates (0 is ideal); "
+        "exposure weighs position i by 1 / log2(i + 1)."
+    )
+    head = "<tr><th>figure</th><th>before</th><th>after</th></tr>"
+    body = "".join(
+        "<tr>" + "".join(f"<td>{html.escape(cell)}</td>" for cell in row) + "</tr>" for row in rk.rows(audit.classes)
+    )
+    return f'<h2>Ranking fairness</h2><p class="muted">{html.escape(text)}</p><table>{head}{body}</table>'
+
+
 def _table(rows: Sequence[tuple[str, str]]) -> str:
     cells = "".join(f"<tr><th>{html.escape(a)}</th><td>{html.escape(b)}</td></tr>" for a, b in rows)
     return f"<table>{cells}</table>"
@@ -363,6 +381,7 @@ def render_report(
         _figure("Held-out embeddings, coloured by attribute", _scatter_plot(plots, classes), (11, 4.4), ""),
         _figure("Per-vector distortion", _distortion_plot(plots), (7, 3.2), ""),
         _figure("Retrieval: who the nearest neighbours are", _retrieval_plot(audit), (7, 3.4), "No retrieval figures."),
+        _ranking_table(audit),
         _figure(
             "Operating points",
             _operating_points_plot(card.get("operating_points")),

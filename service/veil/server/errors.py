@@ -35,6 +35,7 @@ ERROR_CODES: dict[str, tuple[int, str]] = {
     "wrong_dimension": (422, "the vectors' dimension differs from the eraser's"),
     "invalid_request": (422, "a parameter or field is missing or invalid"),
     "unknown_class": (422, "the target is not a class of the attribute"),
+    "inexact_search": (422, "an exact answer was asked for, and this version and index metric cannot give one"),
     "internal_error": (500, "a fault inside the service (logged); not caused by the request"),
     "version_unavailable": (503, "the version could not be loaded or failed verification"),
     "not_ready": (503, "not every configured eraser is loaded"),

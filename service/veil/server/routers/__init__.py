@@ -1,1 +1,1 @@
-"""One router per area: erasers (apply, counterfactual, listing), drift, health, admin."""
+"""One router per area: erasers (apply, counterfactual, listing), search vectors, drift, health, admin."""
