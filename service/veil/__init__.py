@@ -7,6 +7,7 @@ from importlib import metadata
 from typing import TYPE_CHECKING, Any
 
 from veil.maps.artifact import MapArtifact
+from veil.maps.attribute import attribute_table
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
 from veil.maps.search import SearchVectors, search_vectors
@@ -27,6 +28,7 @@ __all__ = [
     "MomentState",
     "SearchVectors",
     "__version__",
+    "attribute_table",
     "search_vectors",
 ]
 

@@ -11,7 +11,7 @@ from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import check_is_fitted, validate_data
 
 from veil.maps.artifact import MapArtifact
-from veil.maps.attribute import EncodedAttribute, check_enough_rows, encode_attribute
+from veil.maps.attribute import EncodedAttribute, encode_attribute
 from veil.maps.kinds import EmbeddingMap
 from veil.maps.linalg import dead_coordinates
 from veil.maps.lowrank import AffineLowRankMap
@@ -113,6 +113,8 @@ class LinearErasure(Erasure):
 
     def _target_mean(self, target: object) -> NDArray[np.float64]:
         moments: MomentState = self.moments_
+        if moments.blocks:
+            return moments.conditional_mean(target)  # type: ignore[arg-type]
         if moments.labels is not None:
             matches = np.flatnonzero(moments.labels == np.asarray(target))
             if matches.size != 1:
@@ -136,10 +138,11 @@ class LinearErasure(Erasure):
         Parameters
         ----------
         X : array-like of shape (n_samples, n_features)
-        target : label or array-like of shape (m,)
+        target : label, array-like of shape (m,), or mapping
             A class label for a categorical attribute; an attribute vector for
             a numeric one (its conditional mean comes from the linear
-            regression of ``x`` on ``z``).
+            regression of ``x`` on ``z``); for several attributes, a mapping
+            of every attribute's name to its class or value.
 
         Returns
         -------
@@ -202,7 +205,7 @@ class MomentErasure(LinearErasure):
         merged = chunk if first else self.moments_.merge(chunk)
         self.moments_ = merged
         try:
-            check_enough_rows(merged.count, merged.labels)
+            merged.check_fittable()
         except ValueError:
             # Not enough seen yet: keep accumulating, but do not serve a map.
             if hasattr(self, "map_"):
@@ -233,6 +236,6 @@ class MomentErasure(LinearErasure):
         return self._fit_state(moments)
 
     def _fit_state(self, moments: MomentState) -> MomentErasure:
-        check_enough_rows(moments.count, moments.labels)
+        moments.check_fittable()
         self._set_fitted(self._map_from_moments(moments), moments)
         return self

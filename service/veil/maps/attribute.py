@@ -1,11 +1,67 @@
-"""Checks and encodings of the attribute ``z`` shared by every eraser and the audit."""
+"""Checks and encodings of the attribute ``z`` shared by every eraser and the audit.
+
+Several attributes of the same rows (gender, an age bracket, age in years)
+travel together as one structured array made by :func:`attribute_table`,
+which records which of them are continuous (never guessed from a dtype) and
+whether their intersection is guarded too.  Encoded, they are one stacked
+matrix: an indicator block per categorical attribute, one column per
+continuous one, and, on request, an indicator block of the joint classes.
+"""
 
 from __future__ import annotations
 
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
-from numpy.typing import NDArray
+from numpy.typing import ArrayLike, NDArray
+
+#: Key of the structured dtype's metadata under which :func:`attribute_table` marks its columns.
+TABLE_METADATA = "veil.attributes"
+#: Joins the attributes' names in the joint attribute's name, and their classes in its class labels.
+JOINT_NAME_SEPARATOR = "&"
+JOINT_LABEL_SEPARATOR = "|"
+
+
+@dataclass(frozen=True, eq=False)
+class AttributeBlock:
+    """One attribute's columns in a stacked attribute matrix.
+
+    Attributes
+    ----------
+    name : str
+    labels : ndarray of shape (c,) or None
+        The sorted classes of a categorical attribute (column ``start + j`` is
+        the indicator of ``labels[j]``); None for a continuous one (one column).
+    start, stop : int
+        Its columns are ``start:stop`` of the stacked matrix.
+    joint : bool
+        The block holds the joint classes of the categorical attributes.
+    """
+
+    name: str
+    labels: NDArray[np.generic] | None
+    start: int
+    stop: int
+    joint: bool = False
+
+    @property
+    def is_categorical(self) -> bool:
+        return self.labels is not None
+
+    @property
+    def kind(self) -> str:
+        return "joint" if self.joint else "categorical" if self.labels is not None else "continuous"
+
+    def same_as(self, other: AttributeBlock) -> bool:
+        return (
+            self.name == other.name
+            and self.kind == other.kind
+            and self.start == other.start
+            and self.stop == other.stop
+            and (self.labels is None or other.labels is None or np.array_equal(self.labels, other.labels))
+        )
 
 
 @dataclass(frozen=True)
@@ -17,12 +73,16 @@ class EncodedAttribute:
     labels : ndarray of shape (m,) or None
         The sorted class labels when the attribute is categorical (1-D input);
         column ``j`` of ``matrix`` is then the indicator of ``labels[j]``.
-        ``None`` for a numeric 2-D attribute (one-hot blocks, or continuous).
+        ``None`` for a numeric 2-D attribute (one-hot blocks, or continuous)
+        and for several attributes.
     matrix : ndarray of shape (n, m), float64
+    blocks : tuple of AttributeBlock
+        Each attribute's columns when ``z`` held several (an :func:`attribute_table`); empty otherwise.
     """
 
     labels: NDArray[np.generic] | None
     matrix: NDArray[np.float64]
+    blocks: tuple[AttributeBlock, ...] = ()
 
     @property
     def is_categorical(self) -> bool:
@@ -68,6 +128,14 @@ def encode_attribute(z: object, n_rows: int, *, require_categorical: bool = Fals
     -------
     EncodedAttribute
     """
+    if isinstance(z, np.ndarray) and z.dtype.names is not None:
+        if require_categorical:
+            raise ValueError(
+                "this method erases one categorical attribute; several attributes need LEACE or mean projection"
+            )
+        if z.ndim != 1 or z.shape[0] != n_rows:
+            raise ValueError(f"X has {n_rows} rows but the attribute table has shape {z.shape}; they must match")
+        return _encode_table(z)
     if z is None:
         # The parenthesis is scikit-learn's wording, which its tooling looks for.
         raise ValueError("this eraser needs the attribute z (requires y to be passed, but the target y is None)")
@@ -95,6 +163,129 @@ def encode_attribute(z: object, n_rows: int, *, require_categorical: bool = Fals
     return EncodedAttribute(labels=None, matrix=matrix)
 
 
+def attribute_table(
+    columns: Mapping[str, ArrayLike], *, continuous: Iterable[str] = (), joint: bool = False
+) -> NDArray[np.void]:
+    """Several attributes of the same rows, as one ``z`` for every veil eraser that can guard them together.
+
+    Parameters
+    ----------
+    columns : mapping of str to array-like of shape (n,)
+        Each attribute's values by name, in the order they are stacked.
+    continuous : iterable of str
+        The attributes to treat as continuous (age in years, a score); every
+        other one is categorical, whatever its dtype.
+    joint : bool, default=False
+        Also guard the intersection: the joint classes of the categorical
+        attributes (guarding each one alone leaves their combination readable).
+
+    Returns
+    -------
+    z : structured ndarray of shape (n,)
+        One field per attribute (continuous ones as float64), its dtype marked
+        so that encoding knows which are continuous.
+    """
+    names = list(columns)
+    marked = list(continuous)
+    if not names:
+        raise ValueError("the attribute table needs at least one attribute")
+    for name in names:
+        if not isinstance(name, str) or not name or JOINT_NAME_SEPARATOR in name:
+            raise ValueError(f"attribute names must be non-empty text without {JOINT_NAME_SEPARATOR!r}; got {name!r}")
+    unknown = [name for name in marked if name not in columns]
+    if unknown:
+        raise ValueError(f"{unknown[0]!r} is marked continuous but is not one of the attributes {names}")
+    arrays: dict[str, NDArray[np.generic]] = {}
+    for name in names:
+        values = np.asarray(columns[name])
+        if values.ndim != 1:
+            raise ValueError(f"attribute {name!r} must hold one value per row, got shape {values.shape}")
+        if name in marked:
+            if values.dtype.kind not in "biuf":
+                raise ValueError(f"attribute {name!r} is marked continuous but holds {values.dtype} values")
+            arrays[name] = values.astype(np.float64)
+        else:
+            try:
+                arrays[name] = _as_label_array(values)
+            except ValueError as error:
+                raise ValueError(f"attribute {name!r}: {error}") from None
+    lengths = {name: array.shape[0] for name, array in arrays.items()}
+    if len(set(lengths.values())) > 1:
+        raise ValueError(f"the attributes have different numbers of rows: {lengths}")
+    if joint and len(names) - len(set(marked)) < 2:
+        raise ValueError("the intersection (joint classes) needs at least two categorical attributes")
+    spec = {"continuous": tuple(name for name in names if name in marked), "joint": bool(joint)}
+    dtype = np.dtype([(name, arrays[name].dtype) for name in names], metadata={TABLE_METADATA: spec})
+    table = np.empty(lengths[names[0]], dtype=dtype)
+    for name in names:
+        table[name] = arrays[name]
+    return table
+
+
+def table_spec(z: NDArray[np.void]) -> tuple[tuple[str, ...], frozenset[str], bool]:
+    """The attributes of a table made by :func:`attribute_table`: names, the continuous ones, and the joint flag."""
+    metadata: Mapping[str, Any] = z.dtype.metadata or {}
+    spec = metadata.get(TABLE_METADATA)
+    if spec is None or z.dtype.names is None:
+        raise ValueError(
+            "several attributes must come as veil.attribute_table(...), which marks the continuous ones; "
+            "a plain structured array does not say which are continuous"
+        )
+    return tuple(z.dtype.names), frozenset(spec["continuous"]), bool(spec["joint"])
+
+
+def joint_name(names: Iterable[str]) -> str:
+    """The name of the intersection of these categorical attributes, e.g. ``gender&age_bracket``."""
+    return JOINT_NAME_SEPARATOR.join(names)
+
+
+def joint_labels(z: NDArray[np.void]) -> NDArray[np.str_]:
+    """Each row's joint class (its categorical attributes' classes joined), shape (n,)."""
+    names, continuous, _ = table_spec(z)
+    parts = [np.asarray(z[name]).astype(str) for name in names if name not in continuous]
+    out = parts[0]
+    for part in parts[1:]:
+        out = np.char.add(np.char.add(out, JOINT_LABEL_SEPARATOR), part)
+    return np.asarray(out)
+
+
+def attribute_columns(z: NDArray[np.void]) -> list[tuple[str, bool, NDArray[np.generic]]]:
+    """``(name, is_continuous, values)`` of each attribute in a table, the joint classes last when guarded."""
+    names, continuous, joint = table_spec(z)
+    out: list[tuple[str, bool, NDArray[np.generic]]] = [
+        (name, name in continuous, np.asarray(z[name])) for name in names
+    ]
+    if joint:
+        out.append((joint_name(name for name in names if name not in continuous), False, joint_labels(z)))
+    return out
+
+
+def _encode_table(z: NDArray[np.void]) -> EncodedAttribute:
+    n_rows = z.shape[0]
+    blocks: list[AttributeBlock] = []
+    matrices: list[NDArray[np.float64]] = []
+    start = 0
+    _, _, joint = table_spec(z)
+    columns = attribute_columns(z)
+    for position, (name, is_continuous, values) in enumerate(columns):
+        if is_continuous:
+            column = np.asarray(values, dtype=np.float64)
+            if not np.all(np.isfinite(column)):
+                raise ValueError(f"continuous attribute {name!r} holds NaN or infinity")
+            matrices.append(column[:, None])
+            blocks.append(AttributeBlock(name=name, labels=None, start=start, stop=start + 1))
+            start += 1
+            continue
+        labels, inverse = np.unique(values, return_inverse=True)
+        matrix = np.zeros((n_rows, labels.size))
+        matrix[np.arange(n_rows), inverse] = 1.0
+        matrices.append(matrix)
+        is_joint = joint and position == len(columns) - 1
+        blocks.append(AttributeBlock(name=name, labels=labels, start=start, stop=start + labels.size, joint=is_joint))
+        start += labels.size
+    return EncodedAttribute(labels=None, matrix=np.hstack(matrices), blocks=tuple(blocks))
+
+
 def check_enough_rows(n_rows: int, labels: NDArray[np.generic] | None) -> None:
     """Refuse fits that cannot estimate what the erasers need.
 
@@ -118,3 +309,22 @@ def check_positive_int(name: str, value: object) -> None:
     """Refuse an estimator parameter that must be a positive integer."""
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
         raise ValueError(f"{name} must be a positive integer, got {value!r}")
+
+
+def check_blocks(n_rows: int, blocks: tuple[AttributeBlock, ...], spread: NDArray[np.float64]) -> None:
+    """Refuse several attributes a fit cannot use, naming the attribute.
+
+    ``spread`` is each stacked column's variance on the fitting rows: a
+    categorical attribute needs two classes or more, a continuous one two
+    distinct values, and the fit more rows than the stacked columns.
+    """
+    width = blocks[-1].stop if blocks else 0
+    for block in blocks:
+        if block.labels is not None:
+            seen = int(np.count_nonzero(spread[block.start : block.stop] > 0))
+            if seen < 2:
+                raise ValueError(f"attribute {block.name!r} has only one class; erasure needs two classes or more")
+        elif not spread[block.start] > 0:
+            raise ValueError(f"continuous attribute {block.name!r} takes a single value; there is nothing to erase")
+    if n_rows <= width:
+        raise ValueError(f"need more rows than attribute columns: got {n_rows} rows for {width} columns")

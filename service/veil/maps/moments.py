@@ -14,12 +14,20 @@ they take 57 MB that a streamed fit of the pooled moments never holds.
 
 from __future__ import annotations
 
+import dataclasses
+from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.maps.attribute import EncodedAttribute
+from veil.maps.attribute import (
+    JOINT_LABEL_SEPARATOR,
+    AttributeBlock,
+    EncodedAttribute,
+    check_blocks,
+    check_enough_rows,
+)
 from veil.maps.linalg import whitening_factors
 
 # Rows converted to float64 at a time by MomentState.from_batch (64k × 768 × 8 bytes ≈ 400 MB at most).
@@ -27,7 +35,7 @@ BLOCK_ROWS = 65536
 
 
 def _rows_of(attribute: EncodedAttribute, start: int, stop: int) -> EncodedAttribute:
-    return EncodedAttribute(labels=attribute.labels, matrix=attribute.matrix[start:stop])
+    return EncodedAttribute(labels=attribute.labels, matrix=attribute.matrix[start:stop], blocks=attribute.blocks)
 
 
 Float64Array = NDArray[np.float64]
@@ -54,6 +62,9 @@ class MomentState:
     class_comoments : ndarray of shape (m, d, d) or None
         ``Σ_{i in c} (x_i - x̄_c)(x_i - x̄_c)ᵀ`` for each class ``c`` (zero for a
         class with no rows), when accumulated (``by_class=True``); None otherwise.
+    blocks : tuple of AttributeBlock
+        Each attribute's columns of ``z`` when the state holds several (``labels`` is then None);
+        :meth:`block` gives one attribute's own state.
     """
 
     count: int
@@ -64,6 +75,7 @@ class MomentState:
     comoment_zz: Float64Array
     labels: NDArray[np.generic] | None
     class_comoments: Float64Array | None = None
+    blocks: tuple[AttributeBlock, ...] = ()
 
     @classmethod
     def from_batch(cls, x: NDArray[np.floating], attribute: EncodedAttribute, *, by_class: bool = False) -> MomentState:
@@ -96,7 +108,8 @@ class MomentState:
         z64 = attribute.matrix
         count = x64.shape[0]
         if count == 0:
-            return cls.empty(x64.shape[1], z64.shape[1], attribute.labels, by_class=by_class)
+            empty = cls.empty(x64.shape[1], z64.shape[1], attribute.labels, by_class=by_class)
+            return dataclasses.replace(empty, blocks=attribute.blocks)
         mean_x = x64.mean(axis=0)
         mean_z = z64.mean(axis=0)
         xc = x64 - mean_x
@@ -110,6 +123,7 @@ class MomentState:
             comoment_zz=zc.T @ zc,
             labels=attribute.labels,
             class_comoments=_class_comoments(x64, attribute.codes, z64.shape[1]) if by_class else None,
+            blocks=attribute.blocks,
         )
 
     @classmethod
@@ -147,9 +161,68 @@ class MomentState:
             by_class[position] = self.class_comoments
         return MomentState(self.count, self.mean_x, mean_z, self.comoment_xx, xz, zz, labels, by_class)
 
+    def _with_blocks(self, blocks: tuple[AttributeBlock, ...]) -> MomentState:
+        """Re-index the stacked columns onto ``blocks`` (the same attributes, each with a superset of classes)."""
+        position = np.concatenate(
+            [
+                np.arange(new.start, new.stop)
+                if old.labels is None or new.labels is None
+                else new.start + np.searchsorted(new.labels, old.labels)
+                for old, new in zip(self.blocks, blocks, strict=True)
+            ]
+        ).astype(np.intp)
+        m = blocks[-1].stop
+        mean_z = np.zeros(m)
+        mean_z[position] = self.mean_z
+        xz = np.zeros((self.n_features, m))
+        xz[:, position] = self.comoment_xz
+        zz = np.zeros((m, m))
+        zz[np.ix_(position, position)] = self.comoment_zz
+        return MomentState(self.count, self.mean_x, mean_z, self.comoment_xx, xz, zz, None, None, blocks)
+
+    def _aligned_blocks(self, other: MomentState) -> tuple[MomentState, MomentState]:
+        names = [(block.name, block.kind) for block in self.blocks]
+        if names != [(block.name, block.kind) for block in other.blocks]:
+            raise ValueError(f"cannot merge moments of different attributes: {names} and {other.block_names}")
+        if all(a.same_as(b) for a, b in zip(self.blocks, other.blocks, strict=True)):
+            return self, other
+        union: list[AttributeBlock] = []
+        start = 0
+        for a, b in zip(self.blocks, other.blocks, strict=True):
+            labels = None if a.labels is None or b.labels is None else np.union1d(a.labels, b.labels)
+            width = 1 if labels is None else labels.size
+            union.append(AttributeBlock(a.name, labels, start, start + width, a.joint))
+            start += width
+        blocks = tuple(union)
+        return self._with_blocks(blocks), other._with_blocks(blocks)
+
+    @property
+    def block_names(self) -> list[str]:
+        """The attributes' names when the state holds several (empty otherwise)."""
+        return [block.name for block in self.blocks]
+
+    def block(self, name: str) -> MomentState:
+        """The state of one attribute of several (its own columns of ``z``), with the same rows and ``x``."""
+        matches = [block for block in self.blocks if block.name == name]
+        if not matches:
+            raise ValueError(f"unknown attribute {name!r}; the attributes are {self.block_names}")
+        block = matches[0]
+        cols = slice(block.start, block.stop)
+        return MomentState(
+            self.count,
+            self.mean_x,
+            self.mean_z[cols],
+            self.comoment_xx,
+            self.comoment_xz[:, cols],
+            self.comoment_zz[cols, cols],
+            block.labels,
+        )
+
     def _aligned(self, other: MomentState) -> tuple[MomentState, MomentState]:
         if self.n_features != other.n_features:
             raise ValueError(f"cannot merge moments of {self.n_features} and {other.n_features} features")
+        if self.blocks or other.blocks:
+            return self._aligned_blocks(other)
         if (self.labels is None) != (other.labels is None):
             raise ValueError("cannot merge moments of a categorical and a numeric attribute")
         if (self.class_comoments is None) != (other.class_comoments is None):
@@ -193,7 +266,16 @@ class MomentState:
             comoment_zz=a.comoment_zz + b.comoment_zz + weight * np.outer(delta_z, delta_z),
             labels=a.labels,
             class_comoments=_merged_class_comoments(a, b),
+            blocks=a.blocks,
         )
+
+    def check_fittable(self) -> None:
+        """Refuse statistics no eraser can be fitted from (``ValueError`` naming the attribute at fault)."""
+        if not self.blocks:
+            check_enough_rows(self.count, self.labels)
+            return
+        spread = np.diag(self.comoment_zz) / max(self.count, 1)
+        check_blocks(self.count, self.blocks, spread)
 
     def _require_rows(self) -> None:
         if self.count == 0:
@@ -245,9 +327,82 @@ class MomentState:
         support of ``Cov(z)``), but has exactly as many columns as the
         attribute has independent directions, and units that do not depend
         on how the attribute is scaled.
+
+        With several attributes, each is whitened on its own (a categorical
+        one to its exact rank ``C - 1``) and the blocks are stacked, shape
+        (d, Σ r_a): the columns span ``Cov(x, z)`` of the stacked encoding,
+        each block's singular values are canonical correlations (at most 1),
+        and no joint whitening of attributes that may depend on each other
+        (the intersection on its parts) has a rank to decide.
         """
+        if self.blocks:
+            return np.hstack([self.block(block.name).standardized_cross_covariance() for block in self.blocks])
         eigenvectors, scale = self.attribute_whitening()
         return np.asarray(self.cross_covariance @ (eigenvectors * scale))
+
+    def conditional_mean(self, targets: Mapping[str, object]) -> Float64Array:
+        """``E[x | z = t]`` under the linear model of ``x`` on the stacked attributes, shape (d,).
+
+        ``targets`` names a class (categorical) or a value (continuous) for
+        every attribute; the joint class follows from the categorical ones.
+        The regression runs on each attribute whitened on its own, so a
+        categorical one enters at its exact rank; what the attributes share
+        (the intersection holds its parts) is resolved by the pseudo-inverse
+        of their whitened covariance, whose zero eigenvalues are exact.
+        """
+        if not self.blocks:
+            raise ValueError("targets by attribute need moments of several attributes")
+        if not isinstance(targets, Mapping):
+            raise ValueError(f"the target must name a value for each attribute {self.block_names}, e.g. a dict")
+        named = [block.name for block in self.blocks if not block.joint]
+        missing = [name for name in named if name not in targets]
+        extra = [str(name) for name in targets if name not in named]
+        if missing or extra:
+            raise ValueError(
+                f"the target must name every attribute ({', '.join(named)}): "
+                + (f"{missing[0]!r} is missing" if missing else f"{extra[0]!r} is not one of them")
+            )
+        whitened: list[Float64Array] = []
+        factors: list[Float64Array] = []
+        classes: list[str] = []
+        for block in self.blocks:
+            state = self.block(block.name)
+            if block.joint:
+                wanted: object = JOINT_LABEL_SEPARATOR.join(classes)
+            else:
+                wanted = targets[block.name]
+            if block.labels is None:
+                try:
+                    value = float(wanted)  # type: ignore[arg-type]
+                except (TypeError, ValueError):
+                    raise ValueError(f"the target of continuous attribute {block.name!r} must be a number") from None
+                if not np.isfinite(value):
+                    raise ValueError(f"the target of continuous attribute {block.name!r} must be finite")
+                vector = np.array([value])
+            else:
+                matches = np.flatnonzero(block.labels.astype(str) == str(wanted))
+                if matches.size != 1:
+                    raise ValueError(
+                        f"unknown class {wanted!r} of attribute {block.name!r}; its classes are {block.labels.tolist()}"
+                    )
+                vector = np.zeros(block.labels.size)
+                vector[matches[0]] = 1.0
+                classes.append(str(block.labels[matches[0]]))
+            eigenvectors, scale = state.attribute_whitening()
+            factor = eigenvectors * scale
+            factors.append(factor)
+            whitened.append((vector - state.mean_z) @ factor)
+        # Cov(z̃) of the blockwise-whitened attributes: identity blocks on the diagonal, correlations off it.
+        widths = [f.shape[1] for f in factors]
+        offsets = np.concatenate([[0], np.cumsum(widths)])
+        joint_cov = np.zeros((offsets[-1], offsets[-1]))
+        for i, (bi, fi) in enumerate(zip(self.blocks, factors, strict=True)):
+            for j, (bj, fj) in enumerate(zip(self.blocks, factors, strict=True)):
+                block_cov = self.covariance_zz[bi.start : bi.stop, bj.start : bj.stop]
+                joint_cov[offsets[i] : offsets[i + 1], offsets[j] : offsets[j + 1]] = fi.T @ block_cov @ fj
+        eigenvectors, scale = whitening_factors(joint_cov)
+        coefficients = (np.concatenate(whitened) @ eigenvectors) * scale**2 @ eigenvectors.T
+        return np.asarray(self.mean_x + self.standardized_cross_covariance() @ coefficients)
 
     @property
     def class_priors(self) -> Float64Array:

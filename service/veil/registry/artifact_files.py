@@ -24,6 +24,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.maps.artifact import MapArtifact
+from veil.maps.attribute import AttributeBlock
 from veil.maps.kinds import EmbeddingMap, map_from_arrays
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
@@ -33,6 +34,8 @@ DESCRIPTION_FILE = "artifact.json"
 FORMAT_VERSION = 2
 READABLE_FORMATS = (1, 2)
 _MAP_PREFIX = "map."
+# The classes of the categorical attributes of an artifact of several, by position.
+_BLOCK_LABELS = "attribute_labels."
 
 _MOMENT_ARRAYS = ("mean_x", "mean_z", "comoment_xx", "comoment_xz", "comoment_zz")
 
@@ -59,7 +62,30 @@ def artifact_arrays(artifact: MapArtifact) -> dict[str, NDArray[Any]]:
     arrays.update({name: getattr(moments, name) for name in _MOMENT_ARRAYS})
     if moments.labels is not None:
         arrays["labels"] = moments.labels
+    for position, block in enumerate(moments.blocks):
+        if block.labels is not None:
+            arrays[f"{_BLOCK_LABELS}{position}"] = block.labels
     return arrays
+
+
+def _blocks_description(moments: MomentState) -> dict[str, Any]:
+    """Several attributes' names, kinds and columns (nothing for one attribute, as artifacts always were)."""
+    if not moments.blocks:
+        return {}
+    return {
+        "attributes": [
+            {"name": block.name, "kind": block.kind, "columns": [block.start, block.stop]} for block in moments.blocks
+        ]
+    }
+
+
+def _stored_blocks(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> tuple[AttributeBlock, ...]:
+    blocks = []
+    for position, entry in enumerate(description.get("attributes", [])):
+        start, stop = (int(column) for column in entry["columns"])
+        labels = None if entry["kind"] == "continuous" else arrays[f"{_BLOCK_LABELS}{position}"]
+        blocks.append(AttributeBlock(str(entry["name"]), labels, start, stop, joint=entry["kind"] == "joint"))
+    return tuple(blocks)
 
 
 def artifact_description(artifact: MapArtifact) -> dict[str, Any]:
@@ -72,6 +98,7 @@ def artifact_description(artifact: MapArtifact) -> dict[str, Any]:
         "normalize": artifact.normalize,
         **artifact.map.describe(),
         "categorical": artifact.moments.labels is not None,
+        **_blocks_description(artifact.moments),
         "history": _json_safe(artifact.history),
     }
 
@@ -151,6 +178,7 @@ def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> 
             moments=MomentState(
                 count=int(arrays["count"]),
                 labels=arrays.get("labels"),
+                blocks=_stored_blocks(description, arrays),
                 **{name: arrays[name] for name in _MOMENT_ARRAYS},
             ),
             history=list(description["history"]),
