@@ -17,8 +17,9 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import train_test_split
 
 from veil import INLP, LEACE, RLACE, MeanProjection, attribute_table
-from veil.maps.attribute import encode_attribute, joint_labels
+from veil.maps.attribute import encode_attribute
 from veil.registry.artifact_files import decode_artifact, encode_artifact
+from veil.samples.attributes import joint_labels
 
 
 def _people(n: int = 3000, d: int = 10, seed: int = 0) -> tuple[NDArray[np.float64], dict[str, NDArray[np.generic]]]:

@@ -363,11 +363,24 @@ BAD_FIT = [
     (["--data", "{sample}", "--holdout", "1.5"], "between 0 and 1"),
     (["--data", "{sample}", "--alias", "Live!"], "invalid alias"),
     (["--data", "{sample}", "--method", "magic"], "invalid choice"),
-    (
-        ["--data", "{sample}", "--attribute", "pronoun", "--attribute", "age_bracket"],
-        "--attribute was given twice ('pronoun', then 'age_bracket'); it takes one value",
-    ),
     (["--data", "{sample}", "--task", "field", "--task", "age_bracket"], "--task was given twice"),
+    # Several attributes: --attribute is repeatable, and what cannot be fitted is refused by name.
+    (["--data", "{sample}", "--attribute", "pronoun", "--attribute", "pronoun"], "attribute 'pronoun' is named twice"),
+    (["--data", "{sample}", "--continuous", "age"], "--continuous age names no attribute"),
+    (["--data", "{sample}", "--joint"], "the intersection (--joint) needs at least two categorical attributes"),
+    (
+        ["--data", "{sample}", "--attribute", "pronoun", "--attribute", "age_bracket", "--method", "inlp"],
+        "inlp erases one categorical attribute; several or continuous attributes need leace or meanproj",
+    ),
+    (
+        ["--data", "{sample}", "--attribute", "pronoun", "--attribute", "age_bracket", "--sweep", "0,1"],
+        "a sweep measures one categorical attribute",
+    ),
+    (
+        ["--data", "{sample}", "--attribute", "pronoun", "--attribute", "age_bracket", "--stream"],
+        "several or continuous attributes are fitted from a sample in memory",
+    ),
+    (["--data", "{sample}", "--attribute", "field", "--continuous", "field"], "'field' holds text that is not a"),
 ]
 
 

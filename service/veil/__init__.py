@@ -7,10 +7,10 @@ from importlib import metadata
 from typing import TYPE_CHECKING, Any
 
 from veil.maps.artifact import MapArtifact
-from veil.maps.attribute import attribute_table
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
 from veil.maps.search import SearchVectors, search_vectors
+from veil.samples.attributes import attribute_table
 
 if TYPE_CHECKING:
     from veil.erasers import INLP, LEACE, RLACE, MeanProjection

@@ -23,6 +23,66 @@ REFERENCE_FILE = "reference.npz"
 LEADING_COMPONENTS = 128
 
 Float64Array = NDArray[np.float64]
+_ATTRIBUTE_FIELDS = ("classes", "class_priors", "class_means", "probe_weights", "probe_bias")
+
+
+def _folded_probe(
+    X: NDArray[np.floating], codes: NDArray[np.intp], random_state: int
+) -> tuple[Float64Array, Float64Array]:
+    """A pre-erasure logistic probe of ``codes`` folded into raw coordinates: ``(weights, bias)``."""
+    from veil.audit.probes import linear_probe  # scikit-learn: only when fitting, never to read a card
+
+    probe = linear_probe(random_state).fit(X, codes)
+    scaler, logistic = probe[0], probe[-1]
+    # (x - m) / s · wᵀ + b  ==  x · (w / s)ᵀ + (b - (m / s) · wᵀ)
+    weights = logistic.coef_ / scaler.scale_
+    bias = logistic.intercept_ - weights @ scaler.mean_
+    return np.asarray(weights, dtype=np.float64), np.asarray(bias, dtype=np.float64)
+
+
+def _probe_codes(weights: Float64Array, bias: Float64Array, X: NDArray[np.floating]) -> NDArray[np.intp]:
+    scores = np.asarray(X, dtype=np.float64) @ weights.T + bias
+    if scores.shape[1] == 1:
+        return np.asarray(scores[:, 0] > 0, dtype=np.intp)
+    return np.asarray(np.argmax(scores, axis=1), dtype=np.intp)
+
+
+@dataclass(frozen=True, eq=False)
+class AttributeReference:
+    """One categorical attribute of several (or their intersection): what its live checks compare against.
+
+    Attributes
+    ----------
+    name : str
+    classes : ndarray of shape (c,), str
+    class_priors : ndarray of shape (c,)
+    class_means : ndarray of shape (c, d)
+    probe_weights : ndarray of shape (c', d)
+        Its pre-erasure probe, as :class:`ReferenceStatistics` holds the first attribute's.
+    probe_bias : ndarray of shape (c',)
+    """
+
+    name: str
+    classes: NDArray[np.str_]
+    class_priors: Float64Array
+    class_means: Float64Array
+    probe_weights: Float64Array
+    probe_bias: Float64Array
+
+    @classmethod
+    def from_fit(
+        cls, artifact: MapArtifact, name: str, X: NDArray[np.floating], codes: NDArray[np.intp], *, random_state: int
+    ) -> AttributeReference:
+        """The reference of attribute ``name`` of the fitting rows ``X`` (``codes`` index its classes)."""
+        state = artifact.moments.block(name)
+        if state.labels is None:
+            raise ValueError(f"attribute {name!r} is continuous; its reference holds classes")
+        weights, bias = _folded_probe(X, codes, random_state)
+        return cls(name, state.labels.astype(str), state.class_priors, state.class_means, weights, bias)
+
+    def probe_codes(self, X: NDArray[np.floating]) -> NDArray[np.intp]:
+        """Class codes this attribute's pre-erasure probe predicts for raw rows (pseudo-labels)."""
+        return _probe_codes(self.probe_weights, self.probe_bias, X)
 
 
 @dataclass(frozen=True, eq=False)
@@ -44,6 +104,9 @@ class ReferenceStatistics:
         Pre-erasure logistic probe folded into raw coordinates:
         ``scores = x @ probe_weights.T + probe_bias`` (``c' = 1`` for two classes).
     probe_bias : ndarray of shape (c',)
+    attributes : tuple of AttributeReference
+        For a version of several attributes: each categorical one's reference
+        (the fields above are then the first one's); empty otherwise.
     """
 
     mean: Float64Array
@@ -54,44 +117,50 @@ class ReferenceStatistics:
     class_means: Float64Array
     probe_weights: Float64Array
     probe_bias: Float64Array
+    attributes: tuple[AttributeReference, ...] = ()
 
     @classmethod
     def from_fit(
-        cls, artifact: MapArtifact, X: NDArray[np.floating], codes: NDArray[np.intp], *, random_state: int
+        cls,
+        artifact: MapArtifact,
+        X: NDArray[np.floating],
+        codes: NDArray[np.intp],
+        *,
+        random_state: int,
+        attributes: tuple[AttributeReference, ...] = (),
     ) -> ReferenceStatistics:
-        """Statistics of the rows the eraser was fitted on (``codes`` index ``artifact.classes``)."""
-        from veil.audit.probes import linear_probe  # scikit-learn: only when fitting, never to read a card
+        """Statistics of the rows the eraser was fitted on (``codes`` index ``artifact.classes``).
 
+        For several attributes, ``attributes`` holds each categorical one's
+        reference, and the class figures here are the first one's.
+        """
         covariance = artifact.covariance
         eigenvalues, eigenvectors = np.linalg.eigh(covariance)
         order = np.argsort(eigenvalues)[::-1]
         keep = order[: min(LEADING_COMPONENTS, order.size)]
-        probe = linear_probe(random_state).fit(X, codes)
-        scaler, logistic = probe[0], probe[-1]
-        # (x - m) / s · wᵀ + b  ==  x · (w / s)ᵀ + (b - (m / s) · wᵀ)
-        weights = logistic.coef_ / scaler.scale_
-        bias = logistic.intercept_ - weights @ scaler.mean_
-        if artifact.class_priors is None or artifact.class_means is None:
-            raise ValueError("reference statistics need a categorical attribute")
+        if attributes:
+            first = attributes[0]
+            priors, means, weights, bias = first.class_priors, first.class_means, first.probe_weights, first.probe_bias
+        else:
+            if artifact.class_priors is None or artifact.class_means is None:
+                raise ValueError("reference statistics need a categorical attribute")
+            priors, means = artifact.class_priors, artifact.class_means
+            weights, bias = _folded_probe(X, codes, random_state)
         return cls(
             mean=artifact.moments.mean_x.astype(np.float64),
             eigenvalues=np.maximum(eigenvalues[order], 0.0),
             eigenvectors=eigenvectors[:, keep],
             erased_variance_share=artifact.map.removed_variance_share(covariance),
-            class_priors=artifact.class_priors,
-            class_means=artifact.class_means,
-            probe_weights=np.asarray(weights, dtype=np.float64),
-            probe_bias=np.asarray(bias, dtype=np.float64),
+            class_priors=priors,
+            class_means=means,
+            probe_weights=weights,
+            probe_bias=bias,
+            attributes=attributes,
         )
 
     def probe_codes(self, X: NDArray[np.floating]) -> NDArray[np.intp]:
         """Class codes the pre-erasure probe predicts for raw rows (pseudo-labels)."""
-        scores = np.asarray(X, dtype=np.float64) @ self.probe_weights.T + self.probe_bias
-        if scores.shape[1] == 1:
-            codes: NDArray[np.intp] = (scores[:, 0] > 0).astype(np.intp)
-        else:
-            codes = np.argmax(scores, axis=1).astype(np.intp)
-        return codes
+        return _probe_codes(self.probe_weights, self.probe_bias, X)
 
     def to_bytes(self) -> bytes:
         buffer = io.BytesIO()
@@ -105,6 +174,10 @@ class ReferenceStatistics:
             "probe_weights": self.probe_weights,
             "probe_bias": self.probe_bias,
         }
+        if self.attributes:
+            arrays["attributes.names"] = np.array([attribute.name for attribute in self.attributes], dtype=str)
+        for position, attribute in enumerate(self.attributes):
+            arrays.update({f"attributes.{position}.{key}": getattr(attribute, key) for key in _ATTRIBUTE_FIELDS})
         np.savez(buffer, allow_pickle=False, **arrays)
         return buffer.getvalue()
 
@@ -122,4 +195,8 @@ class ReferenceStatistics:
             class_means=arrays["class_means"],
             probe_weights=arrays["probe_weights"],
             probe_bias=arrays["probe_bias"],
+            attributes=tuple(
+                AttributeReference(str(name), *(arrays[f"attributes.{position}.{key}"] for key in _ATTRIBUTE_FIELDS))
+                for position, name in enumerate(arrays.get("attributes.names", np.array([], dtype=str)))
+            ),
         )

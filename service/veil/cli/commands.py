@@ -12,7 +12,7 @@ from typing import Any
 
 from veil.errors import DataError
 from veil.registry import DEFAULT_ALIAS, Registry
-from veil.registry.card import compare_cards, format_card, fresh_audits_text
+from veil.registry.card import attributes_text, compare_cards, format_card, fresh_audits_text
 from veil.registry.evidence import version_evidence
 
 # The commands that fit, render or clean import their modules when they run: scikit-learn, matplotlib and pyarrow
@@ -50,6 +50,8 @@ def _open_sample(args: argparse.Namespace, *, streamed: bool) -> Any:
         "embeddings_key": args.embeddings,
         "labels": args.labels,
         "drop_missing": args.drop_missing,
+        "continuous": args.continuous,
+        "joint": args.joint,
     }
     return open_stream(args.data, **source) if streamed else load_labelled_sample(args.data, **source)
 
@@ -110,6 +112,8 @@ def fit(args: argparse.Namespace) -> int:
     if "operating_points" in outcome.card:
         print(Sweep.from_dict(outcome.card["operating_points"]).format_table())
     print(outcome.audit.format_table())
+    for line in attributes_text(outcome.card):
+        print(line)
     for note in outcome.card["notes"]:
         if note not in outcome.audit.notes:
             print(f"note: {note}")

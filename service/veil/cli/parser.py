@@ -107,7 +107,25 @@ def _sample_options(command: argparse.ArgumentParser) -> None:
         required=True,
         help="labelled sample: .npz, .npy (with --labels), .parquet, or a folder of .npy shards",
     )
-    command.add_argument("--attribute", required=True, help="key or column of the protected attribute")
+    command.add_argument(
+        "--attribute",
+        required=True,
+        action="append",
+        help="key or column of a protected attribute (repeatable: one eraser guards them all)",
+    )
+    command.add_argument(
+        "--continuous",
+        action="append",
+        default=[],
+        metavar="NAME",
+        help="treat attribute NAME as continuous (age in years, a score; repeatable); every other is categorical",
+    )
+    command.add_argument(
+        "--joint",
+        action="store_true",
+        help="also guard the intersection of the categorical attributes (their joint classes): guarding each "
+        "one alone leaves their combination readable",
+    )
     command.add_argument("--task", help="key or column of a task label, for utility figures")
     command.add_argument("--labels", help="labels for .npy input: a .npy (the attribute) or a .csv with a header")
     command.add_argument(

@@ -39,6 +39,7 @@ from veil.fitting.sweep import sweep_values as strengths
 from veil.maps.moments import MomentState
 from veil.progress import advance, phase
 from veil.registry import Registry
+from veil.samples.attributes import attribute_columns, is_table
 from veil.samples.chunks import Partition, Sample
 
 MOMENT_METHODS = ("leace", "meanproj")
@@ -143,6 +144,10 @@ def fit_version(
     partitions = sample.partitions(chunk_rows)
     streamed = len(partitions) > 1
     exact_moments = method in MOMENT_METHODS
+    # Several attributes (or a continuous one) come as a table, read in memory: one partition, loaded already.
+    table = not streamed and bool(partitions) and is_table(partitions[0].load().attribute)
+    if table:
+        _check_table_options(method, eraser, sweep, partitions[0].load().attribute)
     # A sweep's points are configured (and checked) before the pass too: the pass accumulates what any needs.
     candidates = [eraser]
     if sweep:
@@ -192,13 +197,16 @@ def fit_version(
 
     x_sample, z_sample, _ = concatenated(total.fit_sample, "fit")
     x_held, z_held, task_held = concatenated(total.held_sample, "audit")
-    if exact_moments:
-        fitted = _classes_of(total.moments)
-    elif streams_inlp:
-        fitted = _classes_of(getattr(eraser, "moments_", None))
+    if table:
+        _check_table_split(sample, total.fit_rows, total.moments, z_held)
     else:
-        fitted = np.unique(z_sample)
-    _check_split(sample, total.fit_rows, fitted, z_held, audit_sampled=audit_rows is not None)
+        if exact_moments:
+            fitted = _classes_of(total.moments)
+        elif streams_inlp:
+            fitted = _classes_of(getattr(eraser, "moments_", None))
+        else:
+            fitted = np.unique(z_sample)
+        _check_split(sample, total.fit_rows, fitted, z_held, audit_sampled=audit_rows is not None)
 
     def fit(candidate: Erasure) -> list[str]:
         if exact_moments:
@@ -238,14 +246,13 @@ def fit_version(
         )
     if audit_rows is not None:
         notes.append(f"audited on a hash-drawn sample of {x_held.shape[0]} of about {expected_held} held-out rows")
-    classes = np.asarray(eraser.classes_)
     return audit_and_store(
         eraser,
         sample,
         registry=registry,
         name=name,
         fit_rows=total.fit_rows,
-        fit_sample=(x_sample, np.searchsorted(classes, z_sample).astype(np.intp)),
+        fit_sample=(x_sample, z_sample if table else np.searchsorted(eraser.classes_, z_sample).astype(np.intp)),
         held_out=(x_held, z_held, task_held),
         holdout=holdout,
         seed=seed,
@@ -282,6 +289,44 @@ def _local_pass(
     return total
 
 
+def _check_table_options(method: str, eraser: Erasure, sweep: bool, z: NDArray[Any]) -> None:
+    """Refuse, before the pass, what several attributes (or a continuous one) cannot be fitted with."""
+    if all(continuous for _, continuous, _ in attribute_columns(z)):
+        raise DataError(
+            "a version needs a categorical attribute among those it guards (its live checks and report are "
+            "read by class); add one with --attribute"
+        )
+    if method not in MOMENT_METHODS:
+        raise DataError(
+            f"{method} erases one categorical attribute; several or continuous attributes need leace or meanproj"
+        )
+    if isinstance(eraser, MomentErasure) and eraser.needs_class_moments:
+        raise DataError(f"{method}: covariance directions need one categorical attribute, not several")
+    if sweep:
+        raise DataError("a sweep measures one categorical attribute; fit several attributes without --sweep/--target")
+
+
+def _check_table_split(sample: Sample, fit_rows: int, moments: MomentState | None, z_held: NDArray[Any]) -> None:
+    """Refuse a split of several attributes that the eraser or the audit cannot use, naming the attribute."""
+    if moments is None:
+        raise DataError("no rows are left to fit on; lower the held-out share")
+    try:
+        moments.check_fittable()
+    except ValueError as error:
+        raise DataError(str(error)) from None
+    fitted = {block.name: block.labels for block in moments.blocks}
+    for attribute, continuous, values in attribute_columns(z_held):
+        if continuous:
+            if np.ptp(values) == 0:
+                raise DataError(f"continuous attribute {attribute!r} takes a single value in the held-out rows")
+            continue
+        classes = fitted[attribute]
+        assert classes is not None
+        _check_split_classes(attribute, classes, values, audit_sampled=False)
+    if fit_rows <= sample.dim // 10:
+        raise DataError(f"only {fit_rows} rows are left to fit on; lower the held-out share")
+
+
 def _classes_of(moments: MomentState | None) -> NDArray[Any]:
     return np.array([]) if moments is None or moments.labels is None else moments.labels
 
@@ -290,11 +335,18 @@ def _check_split(
     sample: Sample, fit_rows: int, fitted: NDArray[Any], z_held: NDArray[Any], *, audit_sampled: bool
 ) -> None:
     """Refuse a split the eraser or the audit cannot use: before anything is fitted, where the fit needs rows."""
+    _check_split_classes(sample.attribute_key, fitted, z_held, audit_sampled=audit_sampled)
+    if fit_rows <= sample.dim // 10:
+        raise DataError(f"only {fit_rows} rows are left to fit on; lower the held-out share")
+
+
+def _check_split_classes(attribute: str, fitted: NDArray[Any], z_held: NDArray[Any], *, audit_sampled: bool) -> None:
+    """Refuse a categorical attribute whose fitted classes the eraser or the audit cannot use."""
     if fitted.size < 2:
-        raise DataError(f"attribute {sample.attribute_key!r} has a single class; erasure needs at least two")
+        raise DataError(f"attribute {attribute!r} has a single class; erasure needs at least two")
     unseen = sorted(set(np.unique(z_held).tolist()) - set(fitted.tolist()))
     if unseen:
-        raise DataError(f"class {unseen[0]!r} appears only in held-out rows; the eraser never saw it")
+        raise DataError(f"class {unseen[0]!r} of {attribute!r} appears only in held-out rows; the eraser never saw it")
     counts = np.array([np.count_nonzero(z_held == c) for c in fitted])
     smallest = int(np.argmin(counts))
     if counts[smallest] < 2:
@@ -304,8 +356,6 @@ def _check_split(
             else ("", "add rows or raise the held-out share")
         )
         raise DataError(
-            f"class {fitted[smallest]!r} of {sample.attribute_key!r} has {int(counts[smallest])} held-out row(s)"
+            f"class {fitted[smallest]!r} of {attribute!r} has {int(counts[smallest])} held-out row(s)"
             f"{where}; the audit needs at least 2 per class: {remedy}"
         )
-    if fit_rows <= sample.dim // 10:
-        raise DataError(f"only {fit_rows} rows are left to fit on; lower the held-out share")

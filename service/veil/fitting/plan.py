@@ -20,6 +20,7 @@ from numpy.typing import NDArray
 from veil.errors import DataError
 from veil.maps.attribute import encode_attribute
 from veil.maps.moments import MomentState
+from veil.samples.attributes import is_table, split_strata
 from veil.samples.chunks import Chunk, Partition
 from veil.samples.splitting import give_every_class_both_parts, held_out_rows
 
@@ -89,7 +90,7 @@ class PassPlan:
         """The held-out rows of ``chunk``."""
         held = held_out_rows(chunk.index, fraction=self.holdout, seed=self.seed)
         if self.whole:
-            held = give_every_class_both_parts(held, np.unique(chunk.attribute, return_inverse=True)[1])
+            held = give_every_class_both_parts(held, split_strata(chunk.attribute))
         return held
 
     def process(self, chunk: Chunk, held: NDArray[np.bool_]) -> PartResult:
@@ -99,7 +100,9 @@ class PassPlan:
         if self.exact_moments and fit.any():
             x_fit, z_fit = chunk.embeddings[fit], chunk.attribute[fit]
             moments = MomentState.from_batch(
-                x_fit, encode_attribute(z_fit, x_fit.shape[0], require_categorical=True), by_class=self.by_class
+                x_fit,
+                encode_attribute(z_fit, x_fit.shape[0], require_categorical=not is_table(z_fit)),
+                by_class=self.by_class,
             )
         held_rows = _select(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
         fit_rows = _select(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT)

@@ -13,14 +13,17 @@ from veil.audit import audit
 from veil.audit.points import Sweep
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
-from veil.checks.reference import REFERENCE_FILE, ReferenceStatistics
+from veil.checks.reference import REFERENCE_FILE, AttributeReference, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
 from veil.erasers import Erasure
+from veil.errors import DataError
+from veil.maps.artifact import MapArtifact
 from veil.progress import phase
 from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
 from veil.registry.artifact_files import encode_artifact
 from veil.registry.card import build_card
 from veil.reporting import PLOT_DATA_FILE, REPORT_FILE, PlotData, render_report
+from veil.samples.attributes import attribute_columns, is_table
 from veil.samples.chunks import Sample
 
 # The probes score by cross-validation inside the held-out rows.
@@ -49,7 +52,7 @@ def audit_and_store(
     registry: Registry,
     name: str,
     fit_rows: int,
-    fit_sample: tuple[NDArray[np.floating], NDArray[np.intp]],
+    fit_sample: tuple[NDArray[np.floating], NDArray[Any]],
     held_out: tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None],
     holdout: float,
     seed: int,
@@ -61,15 +64,41 @@ def audit_and_store(
     operating_points: Sweep | None = None,
     audit_thresholds: AuditThresholds | None = None,
 ) -> FitOutcome:
-    """Audit a fitted eraser on held-out rows, build its card, reference and report, and store the version."""
+    """Audit a fitted eraser on held-out rows, build its card, reference and report, and store the version.
+
+    ``fit_sample`` holds fitting rows with their attribute's class codes, or, for several attributes, their
+    attribute table; each attribute is then audited on its own (the first categorical one's audit, reference
+    and plots are the version's headline figures).
+    """
     x_held, z_held, task_held = held_out
-    codes_held = np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp)
-    folds = audit_folds(codes_held)
-    # The audit reports each probe's folds as a stage of its own.
-    report = audit(eraser, x_held, z_held, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed)
     artifact = eraser.export()
+    attribute_audits: list[tuple[str, AuditReport]] = []
+    attributes: tuple[AttributeReference, ...] = ()
+    if is_table(z_held):
+        attribute_audits = _audit_each_attribute(eraser, x_held, z_held, task_held, nonlinear=nonlinear, seed=seed)
+        first = _first_categorical(z_held)
+        classes = artifact.moments.block(first).labels
+        report = dict(attribute_audits)[first]
+        codes_held = np.searchsorted(np.asarray(classes), z_held[first]).astype(np.intp)
+        with phase("reference statistics"):
+            attributes = tuple(
+                AttributeReference.from_fit(
+                    artifact, attribute, fit_sample[0], _codes_of(artifact, attribute, values), random_state=seed
+                )
+                for attribute, continuous, values in attribute_columns(fit_sample[1])
+                if not continuous
+            )
+        fit_codes = _codes_of(artifact, first, fit_sample[1][first])
+    else:
+        codes_held = np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp)
+        folds = audit_folds(codes_held)
+        # The audit reports each probe's folds as a stage of its own.
+        report = audit(eraser, x_held, z_held, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed)
+        fit_codes = fit_sample[1]
     with phase("reference statistics"):
-        reference = ReferenceStatistics.from_fit(artifact, fit_sample[0], fit_sample[1], random_state=seed)
+        reference = ReferenceStatistics.from_fit(
+            artifact, fit_sample[0], fit_codes, random_state=seed, attributes=attributes
+        )
     with phase("report plots"):
         plots = PlotData.from_heldout(x_held, eraser.transform(x_held), codes_held, seed=seed)
     card = build_card(
@@ -86,6 +115,7 @@ def audit_and_store(
         notes=notes + list(report.notes),
         operating_points=None if operating_points is None else operating_points.to_dict(),
         audit_thresholds=audit_thresholds,
+        attribute_audits=attribute_audits,
     )
     files = encode_artifact(artifact)
     files[CARD_FILE] = json.dumps(card, indent=2, sort_keys=True, allow_nan=False).encode()
@@ -101,3 +131,42 @@ def audit_and_store(
         if alias is not None:
             promotion = registry.promote(name, version_id, alias=alias, reason=reason)
     return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion)
+
+
+def _first_categorical(z: NDArray[Any]) -> str:
+    """The attribute whose figures head a version of several: the first categorical one."""
+    for attribute, continuous, _ in attribute_columns(z):
+        if not continuous:
+            return attribute
+    raise DataError("a version needs a categorical attribute among those it guards, for its live checks")
+
+
+def _codes_of(artifact: MapArtifact, attribute: str, values: NDArray[Any]) -> NDArray[np.intp]:
+    classes = artifact.moments.block(attribute).labels
+    assert classes is not None
+    return np.searchsorted(classes, values).astype(np.intp)
+
+
+def _audit_each_attribute(
+    eraser: Erasure,
+    x_held: NDArray[np.floating],
+    z_held: NDArray[Any],
+    task_held: NDArray[Any] | None,
+    *,
+    nonlinear: bool,
+    seed: int,
+) -> list[tuple[str, AuditReport]]:
+    """The audit of each attribute of a table (and of their intersection when it is guarded), on the held-out rows."""
+    reports = []
+    for attribute, continuous, values in attribute_columns(z_held):
+        with phase(f"auditing {attribute}"):
+            if continuous:
+                # A 2-D attribute is audited by regression probes.
+                target: NDArray[Any] = np.asarray(values, dtype=np.float64)[:, None]
+                folds = AUDIT_FOLDS
+            else:
+                target = values
+                folds = audit_folds(np.unique(values, return_inverse=True)[1].astype(np.intp))
+            report = audit(eraser, x_held, target, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed)
+        reports.append((attribute, report))
+    return reports

@@ -1,27 +1,19 @@
 """Checks and encodings of the attribute ``z`` shared by every eraser and the audit.
 
-Several attributes of the same rows (gender, an age bracket, age in years)
-travel together as one structured array made by :func:`attribute_table`,
-which records which of them are continuous (never guessed from a dtype) and
-whether their intersection is guarded too.  Encoded, they are one stacked
-matrix: an indicator block per categorical attribute, one column per
+Several attributes of the same rows travel together as one table made by
+:func:`veil.samples.attributes.attribute_table`.  Encoded, they are one
+stacked matrix: an indicator block per categorical attribute, one column per
 continuous one, and, on request, an indicator block of the joint classes.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
-from numpy.typing import ArrayLike, NDArray
+from numpy.typing import NDArray
 
-#: Key of the structured dtype's metadata under which :func:`attribute_table` marks its columns.
-TABLE_METADATA = "veil.attributes"
-#: Joins the attributes' names in the joint attribute's name, and their classes in its class labels.
-JOINT_NAME_SEPARATOR = "&"
-JOINT_LABEL_SEPARATOR = "|"
+from veil.samples.attributes import attribute_columns, table_spec
 
 
 @dataclass(frozen=True, eq=False)
@@ -161,103 +153,6 @@ def encode_attribute(z: object, n_rows: int, *, require_categorical: bool = Fals
     if matrix.shape[1] == 0:
         raise ValueError("the attribute matrix z has no columns")
     return EncodedAttribute(labels=None, matrix=matrix)
-
-
-def attribute_table(
-    columns: Mapping[str, ArrayLike], *, continuous: Iterable[str] = (), joint: bool = False
-) -> NDArray[np.void]:
-    """Several attributes of the same rows, as one ``z`` for every veil eraser that can guard them together.
-
-    Parameters
-    ----------
-    columns : mapping of str to array-like of shape (n,)
-        Each attribute's values by name, in the order they are stacked.
-    continuous : iterable of str
-        The attributes to treat as continuous (age in years, a score); every
-        other one is categorical, whatever its dtype.
-    joint : bool, default=False
-        Also guard the intersection: the joint classes of the categorical
-        attributes (guarding each one alone leaves their combination readable).
-
-    Returns
-    -------
-    z : structured ndarray of shape (n,)
-        One field per attribute (continuous ones as float64), its dtype marked
-        so that encoding knows which are continuous.
-    """
-    names = list(columns)
-    marked = list(continuous)
-    if not names:
-        raise ValueError("the attribute table needs at least one attribute")
-    for name in names:
-        if not isinstance(name, str) or not name or JOINT_NAME_SEPARATOR in name:
-            raise ValueError(f"attribute names must be non-empty text without {JOINT_NAME_SEPARATOR!r}; got {name!r}")
-    unknown = [name for name in marked if name not in columns]
-    if unknown:
-        raise ValueError(f"{unknown[0]!r} is marked continuous but is not one of the attributes {names}")
-    arrays: dict[str, NDArray[np.generic]] = {}
-    for name in names:
-        values = np.asarray(columns[name])
-        if values.ndim != 1:
-            raise ValueError(f"attribute {name!r} must hold one value per row, got shape {values.shape}")
-        if name in marked:
-            if values.dtype.kind not in "biuf":
-                raise ValueError(f"attribute {name!r} is marked continuous but holds {values.dtype} values")
-            arrays[name] = values.astype(np.float64)
-        else:
-            try:
-                arrays[name] = _as_label_array(values)
-            except ValueError as error:
-                raise ValueError(f"attribute {name!r}: {error}") from None
-    lengths = {name: array.shape[0] for name, array in arrays.items()}
-    if len(set(lengths.values())) > 1:
-        raise ValueError(f"the attributes have different numbers of rows: {lengths}")
-    if joint and len(names) - len(set(marked)) < 2:
-        raise ValueError("the intersection (joint classes) needs at least two categorical attributes")
-    spec = {"continuous": tuple(name for name in names if name in marked), "joint": bool(joint)}
-    dtype = np.dtype([(name, arrays[name].dtype) for name in names], metadata={TABLE_METADATA: spec})
-    table = np.empty(lengths[names[0]], dtype=dtype)
-    for name in names:
-        table[name] = arrays[name]
-    return table
-
-
-def table_spec(z: NDArray[np.void]) -> tuple[tuple[str, ...], frozenset[str], bool]:
-    """The attributes of a table made by :func:`attribute_table`: names, the continuous ones, and the joint flag."""
-    metadata: Mapping[str, Any] = z.dtype.metadata or {}
-    spec = metadata.get(TABLE_METADATA)
-    if spec is None or z.dtype.names is None:
-        raise ValueError(
-            "several attributes must come as veil.attribute_table(...), which marks the continuous ones; "
-            "a plain structured array does not say which are continuous"
-        )
-    return tuple(z.dtype.names), frozenset(spec["continuous"]), bool(spec["joint"])
-
-
-def joint_name(names: Iterable[str]) -> str:
-    """The name of the intersection of these categorical attributes, e.g. ``gender&age_bracket``."""
-    return JOINT_NAME_SEPARATOR.join(names)
-
-
-def joint_labels(z: NDArray[np.void]) -> NDArray[np.str_]:
-    """Each row's joint class (its categorical attributes' classes joined), shape (n,)."""
-    names, continuous, _ = table_spec(z)
-    parts = [np.asarray(z[name]).astype(str) for name in names if name not in continuous]
-    out = parts[0]
-    for part in parts[1:]:
-        out = np.char.add(np.char.add(out, JOINT_LABEL_SEPARATOR), part)
-    return np.asarray(out)
-
-
-def attribute_columns(z: NDArray[np.void]) -> list[tuple[str, bool, NDArray[np.generic]]]:
-    """``(name, is_continuous, values)`` of each attribute in a table, the joint classes last when guarded."""
-    names, continuous, joint = table_spec(z)
-    out: list[tuple[str, bool, NDArray[np.generic]]] = [
-        (name, name in continuous, np.asarray(z[name])) for name in names
-    ]
-    if joint:
-        out.append((joint_name(name for name in names if name not in continuous), False, joint_labels(z)))
-    return out
 
 
 def _encode_table(z: NDArray[np.void]) -> EncodedAttribute:

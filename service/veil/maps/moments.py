@@ -21,14 +21,9 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.maps.attribute import (
-    JOINT_LABEL_SEPARATOR,
-    AttributeBlock,
-    EncodedAttribute,
-    check_blocks,
-    check_enough_rows,
-)
+from veil.maps.attribute import AttributeBlock, EncodedAttribute, check_blocks, check_enough_rows
 from veil.maps.linalg import whitening_factors
+from veil.samples.attributes import JOINT_LABEL_SEPARATOR
 
 # Rows converted to float64 at a time by MomentState.from_batch (64k × 768 × 8 bytes ≈ 400 MB at most).
 BLOCK_ROWS = 65536

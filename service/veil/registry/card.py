@@ -11,7 +11,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import platform
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
 from importlib import metadata
 from typing import Any
@@ -20,7 +20,7 @@ from veil.audit.points import Sweep, value_text
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
-from veil.checks.verdict import Verdict, judge_audit
+from veil.checks.verdict import LEVELS, Verdict, judge_audit
 from veil.maps.artifact import MapArtifact
 from veil.samples.chunks import Sample
 from veil.samples.labels import dropped_note
@@ -79,14 +79,21 @@ def build_card(
     notes: list[str],
     operating_points: dict[str, Any] | None = None,
     audit_thresholds: AuditThresholds | None = None,
+    attribute_audits: Sequence[tuple[str, AuditReport]] = (),
 ) -> dict[str, Any]:
-    """The card of a freshly fitted version (a JSON-safe dict)."""
+    """The card of a freshly fitted version (a JSON-safe dict).
+
+    For several attributes, ``attribute_audits`` holds each one's audit (``audit`` is the first categorical
+    one's, which heads the card); the card then lists them under ``attributes`` (see :func:`attributes_record`).
+    """
     classes = [] if artifact.classes is None else [str(c) for c in artifact.classes]
+    if reference.attributes:
+        classes = [str(c) for c in reference.attributes[0].classes]
     if sample.dropped_rows:
         notes = [*notes, dropped_note(sample.dropped_rows, sample.labelled_rows + sample.dropped_rows)]
     if artifact.kind in KIND_CAUTIONS:
         notes = [KIND_CAUTIONS[artifact.kind], *notes]
-    card = {
+    card: dict[str, Any] = {
         "card_format": CARD_FORMAT,
         "name": name,
         "method": artifact.method,
@@ -122,7 +129,64 @@ def build_card(
     }
     if operating_points is not None:
         card["operating_points"] = operating_points
+    if attribute_audits:
+        entries = attributes_record(artifact, attribute_audits, audit_thresholds or AuditThresholds())
+        card["attributes"] = entries
+        card["verdict"] = worst_verdict(verdict_record(audit, audit_thresholds or AuditThresholds()), entries)
     return dict(json_safe(card))
+
+
+def attributes_record(
+    artifact: MapArtifact, audits: Sequence[tuple[str, AuditReport]], thresholds: AuditThresholds
+) -> list[dict[str, Any]]:
+    """Each attribute of a version of several: its kind, classes and shares, fitting rows, audit and verdict."""
+    kinds = {block.name: block.kind for block in artifact.moments.blocks}
+    entries = []
+    for name, report in audits:
+        state = artifact.moments.block(name)
+        entries.append(
+            {
+                "name": name,
+                "kind": kinds[name],
+                "classes": [] if state.labels is None else [str(c) for c in state.labels],
+                "priors": None if state.labels is None else state.class_priors.tolist(),
+                "fit_rows": int(state.count),
+                "audit": report.to_dict(),
+                "verdict": verdict_record(report, thresholds),
+            }
+        )
+    return entries
+
+
+def worst_verdict(headline: dict[str, Any], attributes: list[dict[str, Any]]) -> dict[str, Any]:
+    """The card's verdict over several attributes: the worst status any reaches, with every reason named."""
+    status = max((entry["verdict"]["status"] for entry in attributes), key=LEVELS.index)
+    reasons = [f"{entry['name']}: {reason}" for entry in attributes for reason in entry["verdict"].get("reasons", [])]
+    return {**headline, "status": status, "reasons": reasons}
+
+
+def attributes_text(card: Mapping[str, Any]) -> list[str]:
+    """One line per attribute of a version of several: the linear probe before and after, and the strongest probe.
+
+    Empty for a version of one attribute (its figures are the card's headline).
+    """
+    lines = []
+    for entry in card.get("attributes", []):
+        report = AuditReport.from_dict(entry["audit"])
+        before, after = report.leakage.linear_before, report.leakage.linear_after
+        head = f"  {entry['name']} ({entry['kind']}, {entry['fit_rows']} fitting rows): "
+        if isinstance(before, RegressionScore) and isinstance(after, RegressionScore):
+            lines.append(head + f"ridge R² {before.r2:.3f} → {after.r2:.3f} (0: no linear trace)")
+            continue
+        if isinstance(before, ProbeScore) and isinstance(after, ProbeScore):
+            text = (
+                f"linear probe {before.accuracy:.3f} → {after.accuracy:.3f} [{after.interval_low:.3f}, "
+                f"{after.interval_high:.3f}] (majority {after.majority:.3f})"
+            )
+            strongest = report.strongest_after()
+            lines.append(head + text + ("" if strongest is None else f"; strongest after: {strongest}"))
+        lines.append(f"    verdict: {Verdict.from_dict(entry['verdict']).sentence()}")
+    return ["attributes (each audited on the held-out rows):", *lines] if lines else []
 
 
 def card_audit(card: Mapping[str, Any]) -> AuditReport:
@@ -255,6 +319,8 @@ def format_card(version_id: str, card: dict[str, Any]) -> str:
         lines.append(f"  {'task':{width}}  {card['task']['key']}")
     lines.append(f"  {'parameters':{width}}  " + ", ".join(f"{k}={v}" for k, v in sorted(card["params"].items())))
     lines += ["", card_audit(card).format_table()]
+    if "attributes" in card:
+        lines += ["", *attributes_text(card)]
     if "operating_points" in card:
         lines += ["", *operating_points_text(card["operating_points"])]
     lines += ["", "audit thresholds (warn / alert):"]

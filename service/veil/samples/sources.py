@@ -18,6 +18,7 @@ import csv
 import hashlib
 import io
 import zipfile
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -28,6 +29,7 @@ from numpy.typing import NDArray
 from veil.defaults import EMBEDDINGS_KEY, STREAM_CHUNK_ROWS
 from veil.errors import DataError
 from veil.progress import advance, phase
+from veil.samples.attributes import attribute_table
 from veil.samples.chunks import Chunk, InMemoryPartition
 from veil.samples.labels import arrow_labels, missing_labels, rows_to_keep
 from veil.samples.tables import embedding_matrix
@@ -45,7 +47,10 @@ class LabelledSample:
     ----------
     embeddings : ndarray of shape (n, d), float32 or float64
     attribute : ndarray of shape (n,)
+        The labels of one categorical attribute, or, for several attributes
+        (or a continuous one), a table made by :func:`veil.maps.attribute.attribute_table`.
     attribute_key : str
+        The attribute's key (several: their keys, joined by ", ").
     task : ndarray of shape (n,) or None
     task_key : str or None
     files : dict of str to str
@@ -241,11 +246,13 @@ def _parquet_arrays(
 def load_labelled_sample(
     path: str | Path,
     *,
-    attribute: str,
+    attribute: str | Sequence[str],
     task: str | None = None,
     embeddings_key: str = DEFAULT_EMBEDDINGS_KEY,
     labels: str | Path | None = None,
     drop_missing: bool = False,
+    continuous: Sequence[str] = (),
+    joint: bool = False,
 ) -> LabelledSample:
     """Read embeddings and labels for a fit.
 
@@ -253,8 +260,8 @@ def load_labelled_sample(
     ----------
     path : path
         ``.npz``, ``.npy`` or Parquet (``.parquet``/``.pq``).
-    attribute : str
-        Key or column of the protected attribute.
+    attribute : str or sequence of str
+        Key or column of the protected attribute, or of each of several.
     task : str, optional
         Key or column of a task label, for utility figures.
     embeddings_key : str, default="embedding"
@@ -265,6 +272,10 @@ def load_labelled_sample(
     drop_missing : bool, default=False
         Drop the rows whose attribute or task label is missing (see
         :mod:`veil.samples.labels`) instead of refusing the sample.
+    continuous : sequence of str
+        The attributes that are continuous (age in years, a score); the others are categorical.
+    joint : bool, default=False
+        Also guard the intersection of the categorical attributes (their joint classes).
 
     Raises
     ------
@@ -272,20 +283,72 @@ def load_labelled_sample(
         With a message naming the file and the problem (a missing label:
         its column, how many, and the first row).
     """
+    names = [attribute] if isinstance(attribute, str) else list(attribute)
+    spec = AttributeSpec(names=tuple(names), continuous=tuple(continuous), joint=joint)
     with phase(f"reading {Path(path).name}"):
-        return _read_sample(Path(path), attribute, task, embeddings_key, labels, drop_missing)
+        return _read_sample(Path(path), spec, task, embeddings_key, labels, drop_missing)
+
+
+@dataclass(frozen=True)
+class AttributeSpec:
+    """The attributes a fit guards: their keys, which are continuous, and whether their intersection is guarded."""
+
+    names: tuple[str, ...]
+    continuous: tuple[str, ...] = ()
+    joint: bool = False
+
+    def __post_init__(self) -> None:
+        if not self.names:
+            raise DataError("name at least one attribute")
+        repeated = sorted({name for name in self.names if self.names.count(name) > 1})
+        if repeated:
+            raise DataError(f"attribute {repeated[0]!r} is named twice")
+        unknown = [name for name in self.continuous if name not in self.names]
+        if unknown:
+            raise DataError(f"--continuous {unknown[0]} names no attribute; the attributes are {', '.join(self.names)}")
+        if self.joint and len(self.names) - len(set(self.continuous)) < 2:
+            raise DataError("the intersection (--joint) needs at least two categorical attributes")
+
+    @property
+    def is_table(self) -> bool:
+        """Anything but one categorical attribute travels as an attribute table."""
+        return len(self.names) > 1 or bool(self.continuous)
+
+    @property
+    def key(self) -> str:
+        return ", ".join(self.names)
+
+    def table(self, columns: dict[str, NDArray[Any]], *, source: str) -> NDArray[Any]:
+        """The attribute column (one categorical attribute) or table (any other case) of the labels read."""
+        if not self.is_table:
+            return columns[self.names[0]]
+        values: dict[str, NDArray[Any]] = {}
+        for name in self.names:
+            column = columns[name]
+            if name in self.continuous and column.dtype.kind in "US":
+                try:
+                    column = column.astype(np.float64)
+                except ValueError:
+                    raise DataError(
+                        f"{source}: continuous attribute {name!r} holds text that is not a number"
+                    ) from None
+            values[name] = column
+        try:
+            return attribute_table(values, continuous=self.continuous, joint=self.joint)
+        except ValueError as error:
+            raise DataError(f"{source}: {error}") from None
 
 
 def _read_sample(
     data_path: Path,
-    attribute: str,
+    spec: AttributeSpec,
     task: str | None,
     embeddings_key: str,
     labels: str | Path | None,
     drop_missing: bool,
 ) -> LabelledSample:
     _check_file(data_path)
-    keys = [attribute] if task is None else [attribute, task]
+    keys = [*spec.names] if task is None else [*spec.names, task]
     files = {str(data_path): file_sha256(data_path)}
     suffix = data_path.suffix.lower()
     absent: dict[str, NDArray[np.bool_]] | None = None
@@ -305,9 +368,9 @@ def _read_sample(
         if labels_path.suffix.lower() == ".csv":
             columns = csv_columns(labels_path, keys)
         elif labels_path.suffix.lower() == ".npy":
-            if task is not None:
-                raise DataError(f"{labels_path} holds one label array; put attribute and task in a .csv to use both")
-            columns = {attribute: np.asarray(_npy_array(labels_path))}
+            if task is not None or len(spec.names) > 1:
+                raise DataError(f"{labels_path} holds one label array; put several labels in a .csv to use them")
+            columns = {spec.names[0]: np.asarray(_npy_array(labels_path))}
         else:
             raise DataError(f"labels must be a .npy or .csv file, not {labels_path.name}")
     elif suffix in PARQUET_SUFFIXES:
@@ -319,15 +382,15 @@ def _read_sample(
     found = {key: _labels(np.asarray(columns[key]), key=key, rows=rows, source=str(data_path)) for key in keys}
     if absent is None:
         absent = {key: missing_labels(values) for key, values in found.items()}
-    roles = [("attribute", attribute)] + ([] if task is None else [("task", task)])
+    roles = [("attribute", name) for name in spec.names] + ([] if task is None else [("task", task)])
     kept = rows_to_keep([(role, key, absent[key]) for role, key in roles], source=str(label_source), drop=drop_missing)
     if kept is not None:
         embeddings = embeddings[kept]
         found = {key: values[kept] for key, values in found.items()}
     return LabelledSample(
         embeddings=embeddings,
-        attribute=found[attribute],
-        attribute_key=attribute,
+        attribute=spec.table(found, source=str(label_source)),
+        attribute_key=spec.key,
         task=None if task is None else found[task],
         task_key=task,
         files=files,

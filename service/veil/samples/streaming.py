@@ -14,6 +14,7 @@ are read whole (a few bytes a row); ``.npy`` labels are memory-mapped.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -253,11 +254,13 @@ def _dropped(kept: NDArray[np.bool_] | None) -> int:
 def open_stream(
     path: str | Path,
     *,
-    attribute: str,
+    attribute: str | Sequence[str],
     task: str | None = None,
     embeddings_key: str = "embedding",
     labels: str | Path | None = None,
     drop_missing: bool = False,
+    continuous: Sequence[str] = (),
+    joint: bool = False,
 ) -> StreamedSample:
     """Describe a large labelled sample without reading its embeddings (every file is hashed, in one pass each).
 
@@ -270,6 +273,12 @@ def open_stream(
         A missing or unreadable file, shards of different dimensions, labels
         of the wrong length, a missing label (unless ``drop_missing``).
     """
+    names = [attribute] if isinstance(attribute, str) else list(attribute)
+    if len(names) > 1 or continuous or joint:
+        raise DataError(
+            "several or continuous attributes are fitted from a sample in memory; drop --stream (and --engine dask)"
+        )
+    attribute = names[0]
     source = Path(path)
     if not source.exists():
         raise DataError(f"{source} does not exist")
