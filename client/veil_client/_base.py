@@ -5,7 +5,7 @@ from __future__ import annotations
 import io
 import json
 import random
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -74,6 +74,21 @@ def as_matrix(vectors: ArrayLike) -> NDArray[np.floating]:
 def batches(matrix: NDArray[np.floating], size: int) -> Iterator[NDArray[np.floating]]:
     for start in range(0, matrix.shape[0], size):
         yield matrix[start : start + size]
+
+
+#: A counterfactual's target: a class, or for a version of several attributes each one's class or value.
+Target = str | Mapping[str, str | float]
+#: Live-check labels: one attribute's, or several attributes' by name.
+Labels = list[str] | Mapping[str, list[str]]
+
+
+def target_params(target: Target) -> dict[str, str]:
+    """The query of a counterfactual: the class itself, or the targets by attribute as a JSON object."""
+    if isinstance(target, str):
+        return {"target": target}
+    if not isinstance(target, Mapping) or not target:
+        raise VeilValidationError("the target is a class (text) or a mapping of each attribute to its target")
+    return {"target": json.dumps({str(k): v if isinstance(v, (int, float)) else str(v) for k, v in target.items()})}
 
 
 def encode(matrix: NDArray[np.floating], wire: str, extra: dict[str, Any] | None = None) -> tuple[bytes, str]:

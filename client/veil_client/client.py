@@ -5,6 +5,7 @@ from __future__ import annotations
 import asyncio
 import itertools
 import time
+from collections.abc import Mapping
 from types import TracebackType
 from typing import Any, Self
 
@@ -19,8 +20,10 @@ from veil_client._base import (
     RETRY_STATUSES,
     CleanedBatch,
     ClientSettings,
+    Labels,
     RetryPolicy,
     SearchVectors,
+    Target,
     as_matrix,
     batches,
     decode,
@@ -28,6 +31,7 @@ from veil_client._base import (
     pin_headers,
     raise_for_error,
     search_vectors_of,
+    target_params,
 )
 from veil_client.errors import VeilTransportError, VeilValidationError
 
@@ -77,7 +81,7 @@ class _Requests:
         return {**request, "params": {"metric": metric, "exact": "true" if exact else "false"}}
 
     def _drift_request(
-        self, vectors: ArrayLike | None, labels: list[str] | None, version: str | None, alias: str | None
+        self, vectors: ArrayLike | None, labels: Labels | None, version: str | None, alias: str | None
     ) -> dict[str, Any]:
         pin = pin_headers(version, alias)
         if vectors is None:
@@ -86,10 +90,14 @@ class _Requests:
             return {"method": "GET", "headers": pin}
         matrix = as_matrix(vectors)
         if labels is not None:
-            labels = [str(label) for label in labels]
-            if len(labels) != matrix.shape[0]:
-                raise VeilValidationError(f"got {len(labels)} labels for {matrix.shape[0]} vectors")
-            body, media = encode(matrix, JSON, {"labels": labels})
+            given = labels if isinstance(labels, Mapping) else {"": labels}
+            texts = {attribute: [str(label) for label in column] for attribute, column in given.items()}
+            for attribute, column in texts.items():
+                if len(column) != matrix.shape[0]:
+                    of = f" of {attribute!r}" if attribute else ""
+                    raise VeilValidationError(f"got {len(column)} labels{of} for {matrix.shape[0]} vectors")
+            sent: Any = texts if isinstance(labels, Mapping) else texts[""]
+            body, media = encode(matrix, JSON, {"labels": sent})
         else:
             body, media = encode(matrix, self.settings.wire)
         return {"method": "POST", "content": body, "headers": {**pin, "Content-Type": media}}
@@ -180,10 +188,15 @@ class VeilClient(_Requests):
         return self._clean(f"/v1/erasers/{name}/apply", vectors, version, alias, {})
 
     def counterfactual(
-        self, name: str, vectors: ArrayLike, target: str, *, version: str | None = None, alias: str | None = None
+        self, name: str, vectors: ArrayLike, target: Target, *, version: str | None = None, alias: str | None = None
     ) -> CleanedBatch:
-        """Erase, then give every vector the attribute component of class ``target``."""
-        return self._clean(f"/v1/erasers/{name}/counterfactual", vectors, version, alias, {"target": target})
+        """Erase, then give every vector the attribute component of class ``target``.
+
+        For a version of several attributes, ``target`` names each one's
+        class (or, for a continuous one, its value), e.g.
+        ``{"pronoun": "she", "age_bracket": "over 50"}``.
+        """
+        return self._clean(f"/v1/erasers/{name}/counterfactual", vectors, version, alias, target_params(target))
 
     def search_vectors(
         self,
@@ -228,7 +241,7 @@ class VeilClient(_Requests):
         self,
         name: str,
         vectors: ArrayLike | None = None,
-        labels: list[str] | None = None,
+        labels: Labels | None = None,
         *,
         version: str | None = None,
         alias: str | None = None,
@@ -242,8 +255,10 @@ class VeilClient(_Requests):
         vectors : array-like of shape (n_vectors, dim), optional
             Raw live embeddings (what callers send to :meth:`apply`), at least 20 rows; without them the
             service checks the distinct vectors it has recently cleaned for ``name``.
-        labels : list of str of length n_vectors, optional
-            The attribute's class of each vector; without them the probe predicts pseudo-labels.
+        labels : list of str of length n_vectors, or mapping of str to such lists, optional
+            The attribute's class of each vector; without them the probe predicts pseudo-labels.  For a
+            version of several attributes, a mapping gives each attribute's labels (the others get
+            pseudo-labels); a list is the first attribute's.
         version, alias : str, optional
             Check against this version (id or sequence number) or the version this alias names, instead of
             the one served; at most one of the two.
@@ -344,9 +359,9 @@ class AsyncVeilClient(_Requests):
         return await self._clean(f"/v1/erasers/{name}/apply", vectors, version, alias, {})
 
     async def counterfactual(
-        self, name: str, vectors: ArrayLike, target: str, *, version: str | None = None, alias: str | None = None
+        self, name: str, vectors: ArrayLike, target: Target, *, version: str | None = None, alias: str | None = None
     ) -> CleanedBatch:
-        return await self._clean(f"/v1/erasers/{name}/counterfactual", vectors, version, alias, {"target": target})
+        return await self._clean(f"/v1/erasers/{name}/counterfactual", vectors, version, alias, target_params(target))
 
     async def search_vectors(
         self,
@@ -372,7 +387,7 @@ class AsyncVeilClient(_Requests):
         self,
         name: str,
         vectors: ArrayLike | None = None,
-        labels: list[str] | None = None,
+        labels: Labels | None = None,
         *,
         version: str | None = None,
         alias: str | None = None,

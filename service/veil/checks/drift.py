@@ -24,6 +24,7 @@ a sample of that size, so a small quiet sample does not raise alarms:
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
@@ -64,6 +65,8 @@ class DriftReport:
     status: str
     reasons: list[str] = field(default_factory=list)
     ranking: RankingFairness | None = None
+    #: For a version of several attributes: each categorical one's labels source and figures, by name.
+    attributes: dict[str, dict[str, Any]] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -83,10 +86,14 @@ def check_drift(
     raw: NDArray[np.floating],
     *,
     classes: list[str],
-    labels: list[str] | None = None,
+    labels: list[str] | dict[str, list[str]] | None = None,
     random_state: int = 0,
 ) -> DriftReport:
     """Drift and leakage figures of a sample of raw live vectors (shape (n, d)), optionally with attribute labels.
+
+    For a version of several attributes, ``labels`` may name each attribute's
+    labels (a dict; a list is the first attribute's); every attribute without
+    labels is checked with its pre-erasure probe's pseudo-labels.
 
     Raises
     ------
@@ -115,44 +122,38 @@ def check_drift(
     share = float(np.sum(removed_centred**2) / spread) if spread > 0 else 0.0
     ratio = share / reference.erased_variance_share if reference.erased_variance_share > 0 else 0.0
 
-    if labels is not None:
-        if len(labels) != n:
-            raise ValueError(f"got {len(labels)} labels for {n} vectors")
-        unknown = sorted(set(labels) - set(classes))
-        if unknown:
-            raise ValueError(f"label {unknown[0]!r} is not a class of this eraser; classes: {classes}")
-        codes = np.array([classes.index(label) for label in labels], dtype=np.intp)
-        source = "labels"
+    by_attribute = labels if isinstance(labels, dict) else {}
+    if by_attribute and not reference.attributes:
+        raise ValueError("this version guards one attribute: give its labels as a list, not by attribute")
+    known = [attribute.name for attribute in reference.attributes]
+    unknown_attributes = sorted(set(by_attribute) - set(known))
+    if unknown_attributes:
+        raise ValueError(f"{unknown_attributes[0]!r} is not an attribute of this version; attributes: {known}")
+    if reference.attributes:
+        headline_labels = by_attribute.get(known[0], labels if isinstance(labels, list) else None)
     else:
-        codes = reference.probe_codes(x)
-        source = "pseudo-labels"
-    counts = np.bincount(codes, minlength=len(classes))
-    shares = counts / n
-    prior_shift = float(0.5 * np.abs(shares - reference.class_priors).sum())
-
-    leakage: dict[str, float] | None = None
-    leakage_gap: float | None = None
-    class_mean_gap: float | None = None
-    present = counts[counts > 0]
-    if present.size >= 2 and present.min() >= 2:
-        folds = min(PROBE_FOLDS, int(present.min()))
-        _, compact = np.unique(codes, return_inverse=True)
-        score: ProbeScore = probes.classification_score(
-            probes.linear_probe(random_state), np.asarray(erased), compact, folds=folds, random_state=random_state
-        )
-        leakage = {
-            "accuracy": score.accuracy,
-            "majority": score.majority,
-            "interval_low": score.interval_low,
-            "interval_high": score.interval_high,
-            "n": float(score.n),
+        headline_labels = labels if isinstance(labels, list) else None
+    headline = _class_figures(
+        x, erased, whitening, reference.mean, classes, reference.class_priors,
+        _codes(headline_labels, classes, n, reference.probe_codes, what="label"), random_state,
+    )  # fmt: skip
+    source = "labels" if headline_labels is not None else "pseudo-labels"
+    codes = headline.codes
+    attribute_figures: dict[str, dict[str, Any]] = {}
+    for attribute in reference.attributes:
+        attribute_classes = attribute.classes.tolist()
+        given = by_attribute.get(attribute.name, headline_labels if attribute.name == known[0] else None)
+        # The first attribute's figures are the headline's (its reference is the top-level one).
+        figures_of = headline if attribute.name == known[0] else _class_figures(
+            x, erased, whitening, reference.mean, attribute_classes, attribute.class_priors,
+            _codes(given, attribute_classes, n, attribute.probe_codes, what=f"{attribute.name} label"), random_state,
+        )  # fmt: skip
+        attribute_figures[attribute.name] = {
+            "labels": "labels" if given is not None else "pseudo-labels",
+            **figures_of.to_dict(),
         }
-        leakage_gap = max(0.0, score.interval_low - score.majority, score.majority - score.interval_high)
-        erased_white = (np.asarray(erased, dtype=np.float64) - reference.mean) @ whitening
-        overall = erased_white.mean(axis=0)
-        class_mean_gap = max(
-            float(np.linalg.norm(erased_white[compact == c].mean(axis=0) - overall)) for c in np.unique(compact)
-        )
+    prior_shift, leakage, leakage_gap = headline.prior_shift, headline.leakage, headline.leakage_gap
+    class_mean_gap, shares = headline.class_mean_gap, headline.shares
 
     queries = None
     if n > RANKING_QUERIES:
@@ -166,13 +167,22 @@ def check_drift(
         "prior_shift": prior_shift,
         "leakage_gap": leakage_gap,
     }
+    judged = [("", figure, value) for figure, value in figures.items()]
+    # Every attribute of several is judged by the same bands (the first one's figures are the headline's).
+    judged += [
+        (f"{name}: ", figure, entry[figure])
+        for name, entry in list(attribute_figures.items())[1:]
+        for figure in ("prior_shift", "leakage_gap")
+    ]
     reasons = []
     worst = "ok"
-    for figure, value in figures.items():
+    for prefix, figure, value in judged:
         band = getattr(thresholds, figure)
         level = _level(value, band.warn, band.alert)
         if level != "ok":
-            reasons.append(f"{figure} {value:.3f} reaches {level} ({band.warn if level == 'warn' else band.alert})")
+            reasons.append(
+                f"{prefix}{figure} {value:.3f} reaches {level} ({band.warn if level == 'warn' else band.alert})"
+            )
             if level == "alert" or worst == "ok":
                 worst = level
     return DriftReport(
@@ -192,4 +202,88 @@ def check_drift(
         status=worst,
         reasons=reasons,
         ranking=ranking,
+        attributes=attribute_figures or None,
     )
+
+
+def _codes(
+    labels: list[str] | None,
+    classes: list[str],
+    n: int,
+    pseudo: Callable[[NDArray[np.floating]], NDArray[np.intp]],
+    *,
+    what: str,
+) -> Callable[[NDArray[np.floating]], NDArray[np.intp]]:
+    """How each row's class code is found: from the labels given (checked), or from the pre-erasure probe."""
+    if labels is None:
+        return pseudo
+    if not isinstance(labels, list) or len(labels) != n:
+        raise ValueError(f"got {len(labels) if isinstance(labels, list) else 'no list of'} {what}s for {n} vectors")
+    unknown = sorted(set(labels) - set(classes))
+    if unknown:
+        raise ValueError(f"{what} {unknown[0]!r} is not a class of this eraser; classes: {classes}")
+    codes = np.array([classes.index(label) for label in labels], dtype=np.intp)
+    return lambda _: codes
+
+
+@dataclass(frozen=True)
+class _ClassFigures:
+    """One attribute's figures on a live sample: class shares, prior shift, probe leakage, class-mean gap."""
+
+    codes: NDArray[np.intp]
+    shares: NDArray[np.float64]
+    classes: list[str]
+    prior_shift: float
+    leakage: dict[str, float] | None
+    leakage_gap: float | None
+    class_mean_gap: float | None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "prior_shift": self.prior_shift,
+            "class_shares": {c: float(share) for c, share in zip(self.classes, self.shares, strict=True)},
+            "leakage": self.leakage,
+            "leakage_gap": self.leakage_gap,
+            "class_mean_gap": self.class_mean_gap,
+        }
+
+
+def _class_figures(
+    x: NDArray[np.float64],
+    erased: NDArray[np.floating],
+    whitening: NDArray[np.float64],
+    mean: NDArray[np.float64],
+    classes: list[str],
+    priors: NDArray[np.float64],
+    find_codes: Callable[[NDArray[np.floating]], NDArray[np.intp]],
+    random_state: int,
+) -> _ClassFigures:
+    n = x.shape[0]
+    codes = find_codes(x)
+    counts = np.bincount(codes, minlength=len(classes))
+    shares = counts / n
+    prior_shift = float(0.5 * np.abs(shares - priors).sum())
+    leakage: dict[str, float] | None = None
+    leakage_gap: float | None = None
+    class_mean_gap: float | None = None
+    present = counts[counts > 0]
+    if present.size >= 2 and present.min() >= 2:
+        folds = min(PROBE_FOLDS, int(present.min()))
+        _, compact = np.unique(codes, return_inverse=True)
+        score: ProbeScore = probes.classification_score(
+            probes.linear_probe(random_state), np.asarray(erased), compact, folds=folds, random_state=random_state
+        )
+        leakage = {
+            "accuracy": score.accuracy,
+            "majority": score.majority,
+            "interval_low": score.interval_low,
+            "interval_high": score.interval_high,
+            "n": float(score.n),
+        }
+        leakage_gap = max(0.0, score.interval_low - score.majority, score.majority - score.interval_high)
+        erased_white = (np.asarray(erased, dtype=np.float64) - mean) @ whitening
+        overall = erased_white.mean(axis=0)
+        class_mean_gap = max(
+            float(np.linalg.norm(erased_white[compact == c].mean(axis=0) - overall)) for c in np.unique(compact)
+        )
+    return _ClassFigures(codes, shares, classes, prior_shift, leakage, leakage_gap, class_mean_gap)

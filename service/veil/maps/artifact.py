@@ -80,6 +80,15 @@ class MapArtifact:
         out = self.map.counterfactual(x, class_means, target)
         return unit_normalize(out) if self.normalize else out
 
+    def counterfactual_towards(self, x: NDArray[np.floating], target_mean: Float64Array) -> NDArray[np.floating]:
+        """Clean a batch and give every row the component of a target mean ``E[x | z = t]`` (shape (d,)).
+
+        For a version of several attributes, whose target names each one
+        (:meth:`veil.maps.moments.MomentState.conditional_mean`).
+        """
+        out = self.map.counterfactual(x, np.asarray(target_mean, dtype=np.float64)[None, :], 0)
+        return unit_normalize(out) if self.normalize else out
+
     def apply(self, x: NDArray[np.floating]) -> NDArray[np.floating]:
         """Erase a batch exactly as it is served (re-normalised if the artifact says so)."""
         out = self.map.apply(x)

@@ -75,11 +75,43 @@ class ServedVersion:
         self.check_dim(x)
         return self.artifact.apply(x)
 
-    def counterfactual(self, x: NDArray[np.floating], target: str) -> NDArray[np.floating]:
+    @property
+    def attributes(self) -> list[str]:
+        """The attributes a version of several guards (the intersection, derived, is not named); empty otherwise."""
+        return [block.name for block in self.artifact.moments.blocks if not block.joint]
+
+    def counterfactual(self, x: NDArray[np.floating], target: str | dict[str, Any]) -> NDArray[np.floating]:
         self.check_dim(x)
+        if self.attributes or isinstance(target, dict):
+            return self._counterfactual_by_attribute(x, target)
         if target not in self.classes:
             raise ServiceError("unknown_class", f"{target!r} is not a class of {self.name}; classes: {self.classes}")
         return self.artifact.counterfactual(x, self.classes.index(target))
+
+    def _counterfactual_by_attribute(
+        self, x: NDArray[np.floating], target: str | dict[str, Any]
+    ) -> NDArray[np.floating]:
+        """A target per attribute: a class of each categorical one, a number for each continuous one."""
+        if not self.attributes:
+            raise ServiceError("invalid_request", f"{self.name} guards one attribute: give its target class as text")
+        if not isinstance(target, dict) or sorted(target) != sorted(self.attributes):
+            raise ServiceError(
+                "invalid_request",
+                f"{self.name} guards {', '.join(self.attributes)}: give a target for each, as a JSON object",
+            )
+        for block in self.artifact.moments.blocks:
+            if block.joint:
+                continue
+            wanted = target[block.name]
+            if block.labels is None:
+                if isinstance(wanted, bool) or not isinstance(wanted, (int, float)) or not np.isfinite(wanted):
+                    raise ServiceError(
+                        "invalid_request", f"the target of continuous attribute {block.name!r} must be a finite number"
+                    )
+            elif str(wanted) not in block.labels.astype(str).tolist():
+                classes = block.labels.astype(str).tolist()
+                raise ServiceError("unknown_class", f"{wanted!r} is not a class of {block.name!r}; classes: {classes}")
+        return self.artifact.counterfactual_towards(x, self.artifact.moments.conditional_mean(target))
 
     def check_dim(self, x: NDArray[np.floating]) -> None:
         if x.shape[1] != self.dim:

@@ -38,7 +38,17 @@ _DRIFT_BODY = {
                 "required": ["vectors"],
                 "properties": {
                     "vectors": {"type": "array", "items": {"type": "array", "items": {"type": "number"}}},
-                    "labels": {"type": "array", "items": {"type": "string"}, "description": "attribute labels"},
+                    "labels": {
+                        "oneOf": [
+                            {"type": "array", "items": {"type": "string"}},
+                            {
+                                "type": "object",
+                                "additionalProperties": {"type": "array", "items": {"type": "string"}},
+                            },
+                        ],
+                        "description": "attribute labels; for a version of several attributes, an object of "
+                        "labels by attribute (attributes left out are checked with pseudo-labels)",
+                    },
                 },
             }
         },
@@ -48,10 +58,18 @@ _DRIFT_BODY = {
 }
 
 
+def _class_names(value: object) -> bool:
+    return isinstance(value, list) and all(isinstance(v, str) for v in value)
+
+
+def _labels_by_attribute(value: object) -> bool:
+    return isinstance(value, dict) and all(_class_names(v) for v in value.values())
+
+
 async def _run(
     served: ServedVersion,
     raw: NDArray[np.floating],
-    labels: list[str] | None,
+    labels: list[str] | dict[str, list[str]] | None,
     catalog: Catalog,
     metrics: ServiceMetrics,
 ) -> dict[str, Any]:
@@ -88,8 +106,10 @@ async def drift_of_sample(name: EraserName, request: Request) -> dict[str, Any]:
     served = await pick_version(catalog, name, call.pin)
     vectors, fields = decode_batch(call.body, call.media)
     labels = fields.get("labels") if call.media == JSON_MEDIA_TYPE else None
-    if labels is not None and not (isinstance(labels, list) and all(isinstance(v, str) for v in labels)):
-        raise ServiceError("invalid_request", '"labels" must be a list of class names (strings)')
+    if labels is not None and not (_class_names(labels) or _labels_by_attribute(labels)):
+        raise ServiceError(
+            "invalid_request", '"labels" must be a list of class names (strings), or an object of such lists'
+        )
     return await _run(served, vectors, labels, catalog, request.app.state.metrics)
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from typing import Annotated, Any
 
 import numpy as np
@@ -24,7 +25,14 @@ def _batch_body(*, with_target: bool) -> dict[str, Any]:
         "vectors": {"type": "array", "items": {"type": "array", "items": {"type": "number"}}},
     }
     if with_target:
-        properties["target"] = {"type": "string", "description": "the target class (or ?target=)"}
+        properties["target"] = {
+            "oneOf": [
+                {"type": "string"},
+                {"type": "object", "additionalProperties": {"oneOf": [{"type": "string"}, {"type": "number"}]}},
+            ],
+            "description": "the target class (or ?target=); for a version of several attributes, an object naming "
+            "each attribute's class (or, for a continuous one, its value)",
+        }
     return {
         "content": {
             "application/json": {"schema": {"type": "object", "required": ["vectors"], "properties": properties}},
@@ -152,12 +160,23 @@ async def apply(name: EraserName, request: Request) -> Response:
 async def counterfactual(
     name: EraserName,
     request: Request,
-    target: Annotated[str | None, Query(description="the target class (or the JSON body's target)")] = None,
+    target: Annotated[
+        str | None,
+        Query(
+            description="the target class (or the JSON body's target); for a version of several attributes, a JSON "
+            'object naming each one\'s target, e.g. {"pronoun": "she", "age_bracket": "over 50"}'
+        ),
+    ] = None,
 ) -> Response:
     call = await batch_call(request)
     served = await pick_version(request.app.state.catalog, name, call.pin)
     vectors, fields = decode_batch(call.body, call.media)
     chosen = fields.get("target", target)
-    if not isinstance(chosen, str):
+    if isinstance(chosen, str) and served.attributes and chosen.lstrip().startswith("{"):
+        try:
+            chosen = json.loads(chosen)
+        except json.JSONDecodeError:
+            raise ServiceError("invalid_request", "?target= does not read as a JSON object") from None
+    if not isinstance(chosen, (str, dict)):
         raise ServiceError("invalid_request", 'give the target class as ?target= or a JSON "target" string')
     return encode_batch(served.counterfactual(vectors, chosen), call.answer, served)
