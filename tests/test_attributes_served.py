@@ -9,19 +9,25 @@ scikit-learn's ``LogisticRegression``.
 
 from __future__ import annotations
 
+import json
 from dataclasses import dataclass
 from pathlib import Path
 
+import jsonschema
 import numpy as np
 import pytest
 from fastapi.testclient import TestClient
 from numpy.typing import NDArray
+from sklearn.linear_model import LogisticRegression
+from sklearn.model_selection import train_test_split
 
 from veil import LEACE, attribute_table
 from veil.checks.reference import ReferenceStatistics
+from veil.fitting.fresh_audit import audit_stored_version
 from veil.fitting.job import fit_version
 from veil.registry import Registry
 from veil.registry.card import format_card
+from veil.registry.evidence import version_evidence
 from veil.samples.attributes import split_strata
 from veil.samples.sources import load_labelled_sample
 from veil.samples.splitting import give_every_class_both_parts, holdout_mask
@@ -30,6 +36,20 @@ from veil_client import VeilClient
 from .service_fixtures import app_for
 
 NAME = "people"
+
+
+def _people(folder: Path, seed: int, n: int = 1500) -> tuple[NDArray[np.float32], NDArray[np.str_], NDArray[np.str_]]:
+    """Embeddings with a gender (one class of 8%), an age bracket, and a signal only their combination carries."""
+    rng = np.random.default_rng(seed)
+    gender = rng.choice(np.array(["f", "m", "x"]), size=n, p=[0.5, 0.42, 0.08])
+    bracket = rng.choice(np.array(["under 30", "30 to 50", "over 50"]), size=n)
+    x = rng.normal(size=(n, 12))
+    x[:, 0] += 2.0 * (gender == "m") - 1.5 * (gender == "x")
+    x[:, 1] += 1.5 * (bracket == "over 50")
+    x[:, 2] += 2.0 * ((gender == "m") ^ (bracket == "over 50"))
+    x = x.astype(np.float32)
+    np.savez(folder / f"people-{seed}.npz", embedding=x, gender=gender, age_bracket=bracket)
+    return x, gender, bracket
 
 
 @dataclass(frozen=True)
@@ -45,20 +65,11 @@ class Stored:
 @pytest.fixture(scope="module")
 def stored(tmp_path_factory: pytest.TempPathFactory) -> Stored:
     folder = tmp_path_factory.mktemp("attributes")
-    rng = np.random.default_rng(3)
-    n, d = 1500, 12
-    gender = rng.choice(np.array(["f", "m", "x"]), size=n, p=[0.5, 0.42, 0.08])
-    bracket = rng.choice(np.array(["under 30", "30 to 50", "over 50"]), size=n)
-    x = rng.normal(size=(n, d))
-    x[:, 0] += 2.0 * (gender == "m") - 1.5 * (gender == "x")
-    x[:, 1] += 1.5 * (bracket == "over 50")
-    x[:, 2] += 2.0 * ((gender == "m") ^ (bracket == "over 50"))
-    x = x.astype(np.float32)
-    np.savez(folder / "people.npz", embedding=x, gender=gender, age_bracket=bracket)
-    sample = load_labelled_sample(folder / "people.npz", attribute=["gender", "age_bracket"], joint=True)
+    x, gender, bracket = _people(folder, seed=3)
+    sample = load_labelled_sample(folder / "people-3.npz", attribute=["gender", "age_bracket"], joint=True)
     registry = Registry(folder / "registry")
     outcome = fit_version(sample, registry=registry, name=NAME, method="leace", nonlinear=False, alias="live")
-    held = give_every_class_both_parts(holdout_mask(n, fraction=0.2, seed=0), split_strata(sample.attribute))
+    held = give_every_class_both_parts(holdout_mask(len(x), fraction=0.2, seed=0), split_strata(sample.attribute))
     return Stored(folder / "registry", outcome.version_id, x, gender, bracket, held)
 
 
@@ -97,6 +108,16 @@ def test_the_stored_version_guards_every_attribute_and_the_intersection(stored: 
     assert "age_bracket (categorical" in shown
     reference = ReferenceStatistics.from_bytes(version.files["reference.npz"])
     assert [attribute.name for attribute in reference.attributes] == list(entries)
+    # The report's table names each attribute and the smallest class's share (counted with NumPy).
+    page = version.files["report.html"].decode()
+    assert "<h2>Attributes</h2>" in page
+    share = np.mean(stored.gender[fit] == "x")
+    assert f"x: {share:.1%} of rows" in page
+    # The evidence document of such a version validates against its schema (the jsonschema library).
+    schema = json.loads((Path(__file__).resolve().parents[1] / "docs" / "version-evidence.schema.json").read_text())
+    document = json.loads(json.dumps(version_evidence(Registry(stored.registry), NAME, stored.version)))
+    jsonschema.Draft202012Validator(schema).validate(document)
+    assert [entry["kind"] for entry in document["attributes"]] == ["categorical", "categorical", "joint"]
 
 
 def test_the_service_takes_a_target_per_attribute(stored: Stored) -> None:
@@ -147,3 +168,21 @@ def test_live_checks_give_figures_per_attribute(stored: Stored) -> None:
     assert all(entry["labels"] == "pseudo-labels" for entry in pseudo["attributes"].values())
     assert refused.status_code == 422
     assert "'region' is not an attribute" in refused.json()["error"]["message"]
+
+
+def test_a_fresh_audit_audits_each_attribute(stored: Stored, tmp_path: Path) -> None:
+    _people(tmp_path, seed=4, n=600)
+    fresh = load_labelled_sample(tmp_path / "people-4.npz", attribute=["gender", "age_bracket"], joint=True)
+    result = audit_stored_version(Registry(stored.registry), NAME, "live", fresh, nonlinear=False)
+    entries = result.record.body["attributes"]
+    assert [entry["name"] for entry in entries] == ["gender", "age_bracket", "gender&age_bracket"]
+    # The joint classes' linear probe, as scikit-learn fits it on the cleaned fresh rows, agrees with the record.
+    version = Registry(stored.registry).read_version(NAME, "live")
+    x, gender, bracket = _people(tmp_path, seed=4, n=600)
+    joint = np.char.add(np.char.add(gender, "|"), bracket)
+    cleaned = version.artifact.apply(x)
+    x_fit, x_held, j_fit, j_held = train_test_split(cleaned, joint, test_size=0.5, random_state=0, stratify=joint)
+    accuracy = LogisticRegression(max_iter=2000).fit(x_fit, j_fit).score(x_held, j_held)
+    recorded = entries[2]["audit"]["leakage"]["linear_after"]
+    assert abs(accuracy - recorded["accuracy"]) < 0.08
+    assert accuracy < recorded["majority"] + 0.05

@@ -28,11 +28,13 @@ from veil.audit.report import AuditReport
 from veil.checks.verdict import Verdict
 from veil.defaults import STREAM_CHUNK_ROWS
 from veil.errors import DataError
-from veil.fitting.store import audit_folds
+from veil.fitting.store import audit_each_attribute, audit_folds
+from veil.maps.artifact import MapArtifact
 from veil.progress import phase
 from veil.registry import Registry, current_user
-from veil.registry.card import card_thresholds, json_safe, verdict_record
+from veil.registry.card import card_thresholds, json_safe, verdict_record, worst_verdict
 from veil.registry.records import Record
+from veil.samples.attributes import attribute_columns, is_table
 from veil.samples.chunks import Sample
 from veil.samples.splitting import held_out_rows
 
@@ -125,26 +127,37 @@ def audit_stored_version(
         return FreshAudit(earlier, report, Verdict.from_dict(earlier.body["verdict"]), already_stored=True)
     with phase("reading the fresh sample"):
         x, z, task = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows)
-    labels, codes = np.unique(z, return_inverse=True)
-    if labels.size < 2:
-        raise DataError(f"the fresh sample holds one class of {sample.attribute_key!r}; an audit needs two or more")
-    report = audit_artifact(
-        stored.artifact,
-        x,
-        z,
-        task=task,
-        folds=audit_folds(codes.astype(np.intp)),
-        nonlinear=nonlinear,
-        random_state=seed,
-    )
+    attributes: list[tuple[str, AuditReport]] = []
     notes = []
-    fitted = {str(label) for label in card["attribute"]["classes"]}
-    unseen = sorted({str(label) for label in labels} - fitted)
-    if unseen:
-        notes.append(f"classes the version was not fitted on: {', '.join(unseen)}")
+    if is_table(z):
+        attributes = _audit_each(stored.artifact, x, z, task, nonlinear=nonlinear, seed=seed)
+        report = attributes[0][1]
+    else:
+        labels, codes = np.unique(z, return_inverse=True)
+        if labels.size < 2:
+            raise DataError(f"the fresh sample holds one class of {sample.attribute_key!r}; an audit needs two or more")
+        report = audit_artifact(
+            stored.artifact,
+            x,
+            z,
+            task=task,
+            folds=audit_folds(codes.astype(np.intp)),
+            nonlinear=nonlinear,
+            random_state=seed,
+        )
+        fitted = {str(label) for label in card["attribute"]["classes"]}
+        unseen = sorted({str(label) for label in labels} - fitted)
+        if unseen:
+            notes.append(f"classes the version was not fitted on: {', '.join(unseen)}")
     if sample.attribute_key != card["attribute"]["key"]:
         notes.append(f"the attribute is {sample.attribute_key!r} here and {card['attribute']['key']!r} in the card")
     judged = verdict_record(report, thresholds)
+    entries = [
+        {"name": attribute, "audit": one.to_dict(), "verdict": verdict_record(one, thresholds)}
+        for attribute, one in attributes
+    ]
+    if entries:
+        judged = worst_verdict(judged, entries)
     body: dict[str, Any] = json_safe(
         {
             "audited_at": datetime.now(UTC).isoformat(timespec="seconds"),
@@ -162,8 +175,32 @@ def audit_stored_version(
             "audit": report.to_dict(),
             "verdict": judged,
             "notes": notes,
+            **({"attributes": entries} if entries else {}),
         }
     )
     with phase("storing the audit"):
         record = registry.add_record(name, stored.id, AUDITS, body, key=key)
     return FreshAudit(record, report, Verdict.from_dict(judged), already_stored=False)
+
+
+def _audit_each(
+    artifact: MapArtifact,
+    x: NDArray[np.floating],
+    z: NDArray[Any],
+    task: NDArray[Any] | None,
+    *,
+    nonlinear: bool,
+    seed: int,
+) -> list[tuple[str, AuditReport]]:
+    """Each attribute of a fresh sample of several audited on its own (the first categorical one first)."""
+    for attribute, continuous, values in attribute_columns(z):
+        if not continuous and np.unique(values).size < 2:
+            raise DataError(f"the fresh sample holds one class of {attribute!r}; an audit needs two or more")
+    reports = audit_each_attribute(
+        z,
+        lambda target, folds: audit_artifact(
+            artifact, x, target, task=task, folds=folds, nonlinear=nonlinear, random_state=seed
+        ),
+    )
+    continuous_ones = {attribute for attribute, is_continuous, _ in attribute_columns(z) if is_continuous}
+    return sorted(reports, key=lambda item: item[0] in continuous_ones)

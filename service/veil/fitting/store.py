@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -75,7 +76,12 @@ def audit_and_store(
     attribute_audits: list[tuple[str, AuditReport]] = []
     attributes: tuple[AttributeReference, ...] = ()
     if is_table(z_held):
-        attribute_audits = _audit_each_attribute(eraser, x_held, z_held, task_held, nonlinear=nonlinear, seed=seed)
+        attribute_audits = audit_each_attribute(
+            z_held,
+            lambda target, folds: audit(
+                eraser, x_held, target, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed
+            ),
+        )
         first = _first_categorical(z_held)
         classes = artifact.moments.block(first).labels
         report = dict(attribute_audits)[first]
@@ -147,26 +153,20 @@ def _codes_of(artifact: MapArtifact, attribute: str, values: NDArray[Any]) -> ND
     return np.searchsorted(classes, values).astype(np.intp)
 
 
-def _audit_each_attribute(
-    eraser: Erasure,
-    x_held: NDArray[np.floating],
-    z_held: NDArray[Any],
-    task_held: NDArray[Any] | None,
-    *,
-    nonlinear: bool,
-    seed: int,
+def audit_each_attribute(
+    z: NDArray[Any], run: Callable[[NDArray[Any], int], AuditReport]
 ) -> list[tuple[str, AuditReport]]:
-    """The audit of each attribute of a table (and of their intersection when it is guarded), on the held-out rows."""
+    """The audit of each attribute of a table (and of their intersection when it is guarded).
+
+    ``run(target, folds)`` audits one attribute: class labels, or a continuous
+    attribute as one column (audited by regression probes).
+    """
     reports = []
-    for attribute, continuous, values in attribute_columns(z_held):
+    for attribute, continuous, values in attribute_columns(z):
         with phase(f"auditing {attribute}"):
             if continuous:
-                # A 2-D attribute is audited by regression probes.
-                target: NDArray[Any] = np.asarray(values, dtype=np.float64)[:, None]
-                folds = AUDIT_FOLDS
+                report = run(np.asarray(values, dtype=np.float64)[:, None], AUDIT_FOLDS)
             else:
-                target = values
-                folds = audit_folds(np.unique(values, return_inverse=True)[1].astype(np.intp))
-            report = audit(eraser, x_held, target, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed)
+                report = run(values, audit_folds(np.unique(values, return_inverse=True)[1].astype(np.intp)))
         reports.append((attribute, report))
     return reports

@@ -25,6 +25,7 @@ from veil.registry.card import (
     operating_points_text,
     protocol_text,
 )
+from veil.reporting.attributes import attributes_section
 from veil.reporting.plotdata import PlotData
 
 REPORT_FILE = "report.html"
@@ -377,6 +378,7 @@ def render_report(
         "<h2>Version</h2>" + _table(summary),
         _figure("Leakage before and after erasure", _leakage_plot(audit), (8, 3.6), ""),
         _probe_table(audit),
+        attributes_section(card),
         _figure("Fitting iterations", _history_plot(card["method"], history), (7, 3.2), iterations_missing),
         _figure("Held-out embeddings, coloured by attribute", _scatter_plot(plots, classes), (11, 4.4), ""),
         _figure("Per-vector distortion", _distortion_plot(plots), (7, 3.2), ""),
