@@ -11,9 +11,10 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 from sklearn.base import BaseEstimator, TransformerMixin, clone
+from sklearn.dummy import DummyRegressor
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.linear_model import LogisticRegression, RidgeCV
-from sklearn.metrics import r2_score
+from sklearn.metrics import mean_absolute_error, r2_score
 from sklearn.model_selection import BaseCrossValidator, KFold, StratifiedKFold
 from sklearn.neural_network import MLPClassifier
 from sklearn.pipeline import Pipeline, make_pipeline
@@ -23,6 +24,10 @@ from veil.audit.report import ProbeScore, RegressionScore
 from veil.audit.stats import wilson_interval
 from veil.erasers.scaling import DEAD_SPREAD, FlooredScaler
 from veil.progress import advance
+
+# Resamples of the held-out rows behind a regression probe's intervals, drawn this many at a time.
+BOOTSTRAP_ROUNDS = 1000
+BOOTSTRAP_BLOCK = 100
 
 
 class LiveFeatures(TransformerMixin, BaseEstimator):  # type: ignore[misc]
@@ -161,10 +166,76 @@ def cross_val_labels(
 
 
 def regression_score(
-    x: NDArray[np.floating], target: NDArray[np.float64], *, folds: int, random_state: int
+    x: NDArray[np.floating],
+    target: NDArray[np.float64],
+    *,
+    folds: int,
+    random_state: int,
+    model: Any = None,
+    stage: str | None = None,
 ) -> RegressionScore:
-    """Cross-validated held-out R² of a ridge probe (mean over attribute columns)."""
+    """Cross-validated held-out R² and mean absolute error of a regression probe, with bootstrap intervals.
+
+    Parameters
+    ----------
+    x : ndarray of shape (n, d)
+    target : ndarray of shape (n, m)
+        The continuous attribute (R² and MAE are averaged over its columns, as scikit-learn's ``r2_score``).
+    model : regressor, optional
+        The probe; a ridge regression on standardised features (:func:`ridge_probe`) by default.
+
+    Returns
+    -------
+    RegressionScore
+        With the mean predictor's MAE on the same folds (each fold's training mean).
+    """
     splitter = KFold(n_splits=min(folds, target.shape[0]), shuffle=True, random_state=random_state)
-    model = make_pipeline(FlooredScaler(), RidgeCV(alphas=np.logspace(-3, 3, 13)))
-    predicted = held_out_predictions(model, x, target, splitter)
-    return RegressionScore(r2=float(r2_score(target, predicted)), n=int(target.shape[0]))
+    probe = ridge_probe() if model is None else model
+    predicted = held_out_predictions(probe, x, target, splitter, stage=stage).reshape(target.shape)
+    baseline = held_out_predictions(DummyRegressor(), x, target, splitter).reshape(target.shape)
+    r2_low, r2_high, mae_low, mae_high = bootstrap_intervals(target, predicted, random_state=random_state)
+    return RegressionScore(
+        r2=float(r2_score(target, predicted)),
+        n=int(target.shape[0]),
+        r2_low=r2_low,
+        r2_high=r2_high,
+        mae=float(mean_absolute_error(target, predicted)),
+        mae_low=mae_low,
+        mae_high=mae_high,
+        mae_baseline=float(mean_absolute_error(target, baseline)),
+    )
+
+
+def ridge_probe() -> Pipeline:
+    """Ridge regression on standardised features, its strength chosen by efficient leave-one-out."""
+    return make_pipeline(FlooredScaler(), RidgeCV(alphas=np.logspace(-3, 3, 13)))
+
+
+def bootstrap_intervals(
+    target: NDArray[np.float64], predicted: NDArray[np.float64], *, random_state: int
+) -> tuple[float, float, float, float]:
+    """95% percentile intervals of R² and MAE over :data:`BOOTSTRAP_ROUNDS` resamples of the rows.
+
+    Returns ``(r2_low, r2_high, mae_low, mae_high)``; both figures are averaged
+    over the target's columns, as :func:`sklearn.metrics.r2_score` does.
+    """
+    rng = np.random.default_rng(random_state)
+    n = target.shape[0]
+    t = target.reshape(n, -1)
+    p = predicted.reshape(n, -1)
+    r2s, maes = [], []
+    for start in range(0, BOOTSTRAP_ROUNDS, BOOTSTRAP_BLOCK):
+        rows = rng.integers(0, n, size=(min(BOOTSTRAP_BLOCK, BOOTSTRAP_ROUNDS - start), n))
+        drawn, guessed = t[rows], p[rows]
+        residual = np.sum((drawn - guessed) ** 2, axis=1)
+        spread = np.sum((drawn - drawn.mean(axis=1, keepdims=True)) ** 2, axis=1)
+        # A resample whose column is constant has no R² (scikit-learn's convention there is 0 or 1); it is skipped.
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r2 = np.where(spread > 0, 1.0 - residual / spread, np.nan).mean(axis=1)
+        r2s.append(r2)
+        maes.append(np.abs(drawn - guessed).mean(axis=(1, 2)))
+    r2_all, mae_all = np.concatenate(r2s), np.concatenate(maes)
+    r2_all = r2_all[np.isfinite(r2_all)]
+    r2_low, r2_high = np.percentile(r2_all, [2.5, 97.5]) if r2_all.size else (np.nan, np.nan)
+    mae_low, mae_high = np.percentile(mae_all, [2.5, 97.5])
+    return float(r2_low), float(r2_high), float(mae_low), float(mae_high)

@@ -14,9 +14,9 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from sklearn.base import BaseEstimator, ClassifierMixin, clone
+from sklearn.base import BaseEstimator, ClassifierMixin, RegressorMixin, clone
 from sklearn.decomposition import PCA
-from sklearn.ensemble import HistGradientBoostingClassifier
+from sklearn.ensemble import HistGradientBoostingClassifier, HistGradientBoostingRegressor
 from sklearn.kernel_approximation import Nystroem
 from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import train_test_split
@@ -142,6 +142,44 @@ def trees_probe(random_state: int, *, sizes: FoldSizes) -> Pipeline:
         random_state=random_state,
     )
     return make_pipeline(LiveFeatures(), CappedFit(trees, max_rows=TREE_TRAINING_ROWS, random_state=random_state))
+
+
+class CappedRegression(RegressorMixin, BaseEstimator):  # type: ignore[misc]
+    """Fit ``estimator`` on at most ``max_rows`` of the rows it is given (a seeded draw), one per target column.
+
+    Parameters
+    ----------
+    estimator : regressor of one target
+    max_rows : int
+    random_state : int
+    """
+
+    def __init__(self, estimator: Any, *, max_rows: int, random_state: int) -> None:
+        self.estimator = estimator
+        self.max_rows = max_rows
+        self.random_state = random_state
+
+    def fit(self, X: NDArray[np.floating], y: NDArray[np.floating]) -> CappedRegression:
+        rows = np.arange(y.shape[0])
+        if rows.size > self.max_rows:
+            rows = np.sort(np.random.default_rng(self.random_state).choice(rows, self.max_rows, replace=False))
+        columns = np.asarray(y, dtype=np.float64).reshape(y.shape[0], -1)[rows]
+        self.estimators_ = [clone(self.estimator).fit(X[rows], column) for column in columns.T]
+        return self
+
+    def predict(self, X: NDArray[np.floating]) -> NDArray[np.float64]:
+        return np.column_stack([estimator.predict(X) for estimator in self.estimators_])
+
+
+def trees_regression_probe(random_state: int) -> Pipeline:
+    """Gradient-boosted regression trees for a continuous attribute, sized as :func:`trees_probe`."""
+    trees = HistGradientBoostingRegressor(
+        learning_rate=TREE_STEP, max_iter=TREE_ROUNDS, max_bins=TREE_BINS, early_stopping=False,
+        random_state=random_state,
+    )  # fmt: skip
+    return make_pipeline(
+        LiveFeatures(), CappedRegression(trees, max_rows=TREE_TRAINING_ROWS, random_state=random_state)
+    )
 
 
 def build_probe(name: str, random_state: int, *, sizes: FoldSizes, features: int) -> Pipeline:

@@ -62,10 +62,29 @@ class ProbeScore:
 
 @dataclass(frozen=True)
 class RegressionScore:
-    """Held-out R² of a ridge probe predicting a numeric attribute (0 means no linear leakage)."""
+    """Held-out figures of a regression probe predicting a continuous attribute (R² 0: no trace it can read).
+
+    Every row is predicted by a probe fitted on the other folds.  ``mae`` is
+    the mean absolute error and ``mae_baseline`` that of the mean predictor
+    (each fold's training mean) on the same folds; the intervals are 95%
+    percentile intervals of a bootstrap over the held-out rows.  Cards
+    written before these figures hold ``r2`` and ``n`` only.
+    """
 
     r2: float
     n: int
+    r2_low: float | None = None
+    r2_high: float | None = None
+    mae: float | None = None
+    mae_low: float | None = None
+    mae_high: float | None = None
+    mae_baseline: float | None = None
+
+    def with_interval(self) -> str:
+        """``R² [low, high]`` to three decimals (without an interval for an older card)."""
+        if self.r2_low is None or self.r2_high is None:
+            return f"{self.r2:.3f}"
+        return f"{self.r2:.3f} [{self.r2_low:.3f}, {self.r2_high:.3f}]"
 
 
 @dataclass(frozen=True)
@@ -90,8 +109,9 @@ class Leakage:
     quadratic_after: ProbeScore | None = None
     kernel_before: ProbeScore | None = None
     kernel_after: ProbeScore | None = None
-    trees_before: ProbeScore | None = None
-    trees_after: ProbeScore | None = None
+    # For a continuous attribute, boosted regression trees.
+    trees_before: ProbeScore | RegressionScore | None = None
+    trees_after: ProbeScore | RegressionScore | None = None
     strongest: str | None = field(init=False)
 
     def __post_init__(self) -> None:
@@ -193,6 +213,11 @@ class RankingFairness:
              f"{self.absent_class_share_after:.3f}"),
             (f"NDKL@{k}", f"{self.ndkl_before:.4f}", f"{self.ndkl_after:.4f}"),
         ]  # fmt: skip
+
+
+def _mae(score: RegressionScore) -> str:
+    """The mean absolute error with its interval, against the mean predictor's."""
+    return f"{score.mae:.3f} [{score.mae_low:.3f}, {score.mae_high:.3f}] (mean predictor {score.mae_baseline:.3f})"
 
 
 def _shares(values: tuple[float, ...]) -> str:
@@ -309,7 +334,9 @@ class AuditReport:
                     rows.append((f"{label} recall {' / '.join(self.classes)}", _recall(before), _recall(after)))
                 rows.append((f"{label} |accuracy - majority|", f"{before.gap:.3f}", f"{after.gap:.3f}"))
             elif isinstance(before, RegressionScore) and isinstance(after, RegressionScore):
-                rows.append((f"{label} R²", f"{before.r2:.3f}", f"{after.r2:.3f}"))
+                rows.append((f"{label} R²", before.with_interval(), after.with_interval()))
+                if before.mae is not None and after.mae is not None:
+                    rows.append((f"{label} mean absolute error", _mae(before), _mae(after)))
 
         lk = self.leakage
         majority = lk.linear_before.majority if isinstance(lk.linear_before, ProbeScore) else None

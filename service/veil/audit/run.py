@@ -175,6 +175,7 @@ def _audit_map(
     gap_before: float | None
     gap_after: float | None
     noise_floor: float | None
+    regression_trees: tuple[RegressionScore, RegressionScore] | None = None
 
     if attribute.labels is not None:
         codes = attribute.codes
@@ -216,9 +217,23 @@ def _audit_map(
         scores = {}
         linear_before = probes.regression_score(raw, attribute.matrix, folds=folds, random_state=random_state)
         linear_after = probes.regression_score(erased, attribute.matrix, folds=folds, random_state=random_state)
+        if nonlinear:
+            # Boosted regression trees read what the ridge cannot (thresholds, interactions).
+            trees = readers.trees_regression_probe(random_state)
+            trees_before, trees_after = (
+                probes.regression_score(
+                    x, attribute.matrix, folds=folds, random_state=random_state, model=trees,
+                    stage=f"{PROBE_LABELS['trees']}, {side} (folds)",
+                )
+                for x, side in ((raw, "raw"), (erased, "erased"))
+            )  # fmt: skip
+            regression_trees = (trees_before, trees_after)
         gap_before = gap_after = noise_floor = None
     absent: tuple[None, None] = (None, None)
     mlp, quadratic, kernel, trees = (scores.get(name, absent) for name in ("mlp", "quadratic", "kernel", "trees"))
+    tree_scores: tuple[ProbeScore | RegressionScore | None, ProbeScore | RegressionScore | None] = (
+        trees if regression_trees is None else regression_trees
+    )
     leakage = Leakage(
         linear_before=linear_before,
         linear_after=linear_after,
@@ -231,8 +246,8 @@ def _audit_map(
         quadratic_after=quadratic[1],
         kernel_before=kernel[0],
         kernel_after=kernel[1],
-        trees_before=trees[0],
-        trees_after=trees[1],
+        trees_before=tree_scores[0],
+        trees_after=tree_scores[1],
     )
 
     neighbours_raw = geometry.nearest_neighbours(raw, NEIGHBOURS)

@@ -14,7 +14,7 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
-from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore
+from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.thresholds import AuditThresholds, Band
 
 LEVELS = ("ok", "warn", "alert")
@@ -59,8 +59,13 @@ class Verdict:
         return f"{self.status}: " + "; ".join(self.reasons)
 
 
-def _edge_gap(score: ProbeScore) -> float:
-    """Distance from majority of the probe's 95% interval edge nearest it (0 when the interval holds majority)."""
+def _edge_gap(score: ProbeScore | RegressionScore) -> float:
+    """Distance from majority of the probe's 95% interval edge nearest it (0 when the interval holds majority).
+
+    For a continuous attribute, the lower edge of the probe's R² interval above 0 (the mean predictor's R²).
+    """
+    if isinstance(score, RegressionScore):
+        return max(0.0, score.r2_low if score.r2_low is not None else score.r2)
     return max(0.0, score.interval_low - score.majority, score.majority - score.interval_high)
 
 
@@ -75,7 +80,7 @@ def _widest(report: AuditReport) -> tuple[str, float] | None:
 
     Farthest, not most accurate: a probe reliably *below* majority has learned the attribute too.
     """
-    gaps = [(name, _edge_gap(after)) for name, _, after in report.leakage.probes() if isinstance(after, ProbeScore)]
+    gaps = [(name, _edge_gap(after)) for name, _, after in report.leakage.probes()]
     # Ties go to the probe listed first, so round-off in a tie cannot change the name reported.
     return max(gaps, key=lambda item: item[1], default=None)
 
@@ -83,7 +88,7 @@ def _widest(report: AuditReport) -> tuple[str, float] | None:
 def audit_figures(report: AuditReport) -> dict[str, float | None]:
     """The figures a verdict judges, from an audit (None where the audit has no data for one)."""
     leakage = report.leakage
-    linear = leakage.linear_after if isinstance(leakage.linear_after, ProbeScore) else None
+    linear = leakage.linear_after
     widest = _widest(report)
     retrieval = report.retrieval
     utility = report.utility
@@ -91,7 +96,7 @@ def audit_figures(report: AuditReport) -> dict[str, float | None]:
     if utility.task_accuracy_before is not None and utility.task_accuracy_after is not None:
         task_loss = utility.task_accuracy_before - utility.task_accuracy_after
     return {
-        "linear_gap": None if linear is None else _edge_gap(linear),
+        "linear_gap": _edge_gap(linear),
         "strongest_gap": None if widest is None else widest[1],
         "neighbour_excess": None
         if retrieval is None
@@ -111,9 +116,14 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds) -> Verdict:
         "neighbour_excess": "the 10-NN attribute share",
         "task_loss": "the task probe",
     }
+    reads = (
+        "explains at least {value:.3f} of the attribute's variance (R²)"
+        if isinstance(report.leakage.linear_after, RegressionScore)
+        else "reads the attribute {value:.3f} beyond majority"
+    )
     what = {
-        "linear_gap": "reads the attribute {value:.3f} beyond majority",
-        "strongest_gap": "reads the attribute {value:.3f} beyond majority",
+        "linear_gap": reads,
+        "strongest_gap": reads,
         "neighbour_excess": "lies {value:.3f} above its base rate",
         "task_loss": "lost {value:.3f} of accuracy",
     }
