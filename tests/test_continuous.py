@@ -13,6 +13,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from fastapi.testclient import TestClient
 from numpy.typing import NDArray
 from sklearn.linear_model import RidgeCV
 from sklearn.metrics import mean_absolute_error, r2_score
@@ -29,6 +30,9 @@ from veil.errors import DataError
 from veil.fitting.job import fit_version
 from veil.registry import Registry
 from veil.samples.sources import load_labelled_sample
+from veil_client import VeilClient
+
+from .service_fixtures import app_for
 
 
 def _ages(n: int, seed: int = 0) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.str_]]:
@@ -113,7 +117,7 @@ def test_fit_guards_a_continuous_attribute_beside_a_categorical_one(tmp_path: Pa
     path = _write(tmp_path, 1200)
     sample = load_labelled_sample(path, attribute=["gender", "age_years"], continuous=["age_years"])
     registry = Registry(tmp_path / "registry")
-    outcome = fit_version(sample, registry=registry, name="ages", method="leace", nonlinear=False)
+    outcome = fit_version(sample, registry=registry, name="ages", method="leace", nonlinear=False, alias="live")
     entries = {entry["name"]: entry for entry in outcome.card["attributes"]}
     assert entries["age_years"]["kind"] == "continuous"
     ridge = entries["age_years"]["audit"]["leakage"]
@@ -122,6 +126,25 @@ def test_fit_guards_a_continuous_attribute_beside_a_categorical_one(tmp_path: Pa
     assert ridge["linear_after"]["mae"] == pytest.approx(ridge["linear_after"]["mae_baseline"], rel=0.05)
     stored = registry.read_version("ages", outcome.version_id).artifact
     assert [block.kind for block in stored.moments.blocks] == ["categorical", "continuous"]
+    # Live checks take the continuous attribute's values (or predict pseudo-values without them).
+    x, ages, _ = _ages(1200, seed=3)
+    live = slice(0, 400)
+    with TestClient(app_for(tmp_path / "registry")) as http, VeilClient(http_client=http) as client:
+        labelled = client.drift("ages", x[live], {"age_years": (ages[live] + 20).tolist()})
+        pseudo = client.drift("ages", x[live])
+        refused = http.post(
+            "/v1/erasers/ages/drift",
+            json={"vectors": x[live].tolist(), "labels": {"age_years": ["old"] * 400}},
+        )
+    figures = labelled["attributes"]["age_years"]
+    assert figures["labels"] == "labels"
+    assert figures["value_mean"] == pytest.approx(np.mean(ages[live] + 20))
+    # Twenty years in the fitted standard deviations (NumPy's, over every row: the fitting rows are 80% of them).
+    assert figures["value_shift"] == pytest.approx(20 / np.std(ages), rel=0.05)
+    assert figures["leakage"]["r2"] < 0.05
+    assert pseudo["attributes"]["age_years"]["labels"] == "pseudo-values"
+    assert pseudo["attributes"]["age_years"]["value_shift"] < 0.2
+    assert refused.status_code == 422
 
 
 @pytest.mark.parametrize(

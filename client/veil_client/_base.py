@@ -78,8 +78,8 @@ def batches(matrix: NDArray[np.floating], size: int) -> Iterator[NDArray[np.floa
 
 #: A counterfactual's target: a class, or for a version of several attributes each one's class or value.
 Target = str | Mapping[str, str | float]
-#: Live-check labels: one attribute's, or several attributes' by name.
-Labels = list[str] | Mapping[str, list[str]]
+#: Live-check labels: one attribute's, or several attributes' by name (numbers for a continuous one).
+Labels = list[str] | Mapping[str, list[str] | list[float]]
 
 
 def target_params(target: Target) -> dict[str, str]:

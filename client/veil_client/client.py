@@ -91,7 +91,11 @@ class _Requests:
         matrix = as_matrix(vectors)
         if labels is not None:
             given = labels if isinstance(labels, Mapping) else {"": labels}
-            texts = {attribute: [str(label) for label in column] for attribute, column in given.items()}
+            # By attribute, a continuous attribute's values travel as numbers; class labels always as text.
+            texts = {
+                attribute: [_as_number(label) if attribute and _is_number(label) else str(label) for label in column]
+                for attribute, column in given.items()
+            }
             for attribute, column in texts.items():
                 if len(column) != matrix.shape[0]:
                     of = f" of {attribute!r}" if attribute else ""
@@ -101,6 +105,14 @@ class _Requests:
         else:
             body, media = encode(matrix, self.settings.wire)
         return {"method": "POST", "content": body, "headers": {**pin, "Content-Type": media}}
+
+
+def _is_number(value: object) -> bool:
+    return isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, (bool, np.bool_))
+
+
+def _as_number(value: Any) -> int | float:
+    return int(value) if isinstance(value, (int, np.integer)) else float(value)
 
 
 def _combine(parts: list[NDArray[np.floating]], responses: list[httpx.Response]) -> CleanedBatch:

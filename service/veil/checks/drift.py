@@ -34,7 +34,7 @@ from numpy.typing import NDArray
 from veil.audit import probes
 from veil.audit.ranking import ranking_before_after
 from veil.audit.report import ProbeScore, RankingFairness
-from veil.checks.reference import ReferenceStatistics
+from veil.checks.reference import ContinuousReference, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
 from veil.maps.artifact import MapArtifact
 
@@ -86,14 +86,15 @@ def check_drift(
     raw: NDArray[np.floating],
     *,
     classes: list[str],
-    labels: list[str] | dict[str, list[str]] | None = None,
+    labels: list[str] | dict[str, list[Any]] | None = None,
     random_state: int = 0,
 ) -> DriftReport:
     """Drift and leakage figures of a sample of raw live vectors (shape (n, d)), optionally with attribute labels.
 
     For a version of several attributes, ``labels`` may name each attribute's
-    labels (a dict; a list is the first attribute's); every attribute without
-    labels is checked with its pre-erasure probe's pseudo-labels.
+    labels (a dict; a list is the first attribute's; numbers for a continuous
+    one); every attribute without them is checked with its pre-erasure
+    probe's pseudo-labels (pseudo-values for a continuous one).
 
     Raises
     ------
@@ -126,9 +127,14 @@ def check_drift(
     if by_attribute and not reference.attributes:
         raise ValueError("this version guards one attribute: give its labels as a list, not by attribute")
     known = [attribute.name for attribute in reference.attributes]
-    unknown_attributes = sorted(set(by_attribute) - set(known))
+    every = known + [attribute.name for attribute in reference.continuous]
+    unknown_attributes = sorted(set(by_attribute) - set(every))
     if unknown_attributes:
-        raise ValueError(f"{unknown_attributes[0]!r} is not an attribute of this version; attributes: {known}")
+        raise ValueError(f"{unknown_attributes[0]!r} is not an attribute of this version; attributes: {every}")
+    # Class labels are compared as text, however the caller wrote them (age brackets numbered 0..3, say).
+    by_attribute = {
+        name: values if name not in known else [str(value) for value in values] for name, values in by_attribute.items()
+    }
     if reference.attributes:
         headline_labels = by_attribute.get(known[0], labels if isinstance(labels, list) else None)
     else:
@@ -152,6 +158,10 @@ def check_drift(
             "labels": "labels" if given is not None else "pseudo-labels",
             **figures_of.to_dict(),
         }
+    for continuous in reference.continuous:
+        attribute_figures[continuous.name] = _continuous_figures(
+            x, erased, continuous, by_attribute.get(continuous.name), random_state
+        )
     prior_shift, leakage, leakage_gap = headline.prior_shift, headline.leakage, headline.leakage_gap
     class_mean_gap, shares = headline.class_mean_gap, headline.shares
 
@@ -173,6 +183,7 @@ def check_drift(
         (f"{name}: ", figure, entry[figure])
         for name, entry in list(attribute_figures.items())[1:]
         for figure in ("prior_shift", "leakage_gap")
+        if figure in entry
     ]
     reasons = []
     worst = "ok"
@@ -204,6 +215,46 @@ def check_drift(
         ranking=ranking,
         attributes=attribute_figures or None,
     )
+
+
+def _continuous_figures(
+    x: NDArray[np.float64],
+    erased: NDArray[np.floating],
+    reference: ContinuousReference,
+    given: list[Any] | None,
+    random_state: int,
+) -> dict[str, Any]:
+    """One continuous attribute's figures on a live sample: its shift, and what a ridge probe reads after erasure.
+
+    ``value_shift`` is the live mean's distance from the fitted mean in fitted
+    standard deviations (a figure only); ``leakage_gap`` is the lower edge of
+    the erased rows' held-out R² interval above 0, judged like a categorical
+    attribute's leakage gap.
+    """
+    n = x.shape[0]
+    if given is None:
+        values = reference.probe_values(x)
+    else:
+        if len(given) != n or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in given):
+            raise ValueError(f"the values of continuous attribute {reference.name!r} must be {n} numbers")
+        values = np.asarray(given, dtype=np.float64)
+        if not np.all(np.isfinite(values)):
+            raise ValueError(f"the values of continuous attribute {reference.name!r} must be finite")
+    score = probes.regression_score(np.asarray(erased), values[:, None], folds=PROBE_FOLDS, random_state=random_state)
+    spread = reference.value_std
+    return {
+        "labels": "labels" if given is not None else "pseudo-values",
+        "value_mean": float(values.mean()),
+        "value_shift": abs(float(values.mean()) - reference.value_mean) / spread if spread > 0 else 0.0,
+        "leakage": {
+            "r2": score.r2,
+            "r2_low": score.r2_low,
+            "r2_high": score.r2_high,
+            "mae": score.mae,
+            "mae_baseline": score.mae_baseline,
+        },
+        "leakage_gap": max(0.0, score.r2_low if score.r2_low is not None else score.r2),
+    }
 
 
 def _codes(

@@ -86,6 +86,46 @@ class AttributeReference:
 
 
 @dataclass(frozen=True, eq=False)
+class ContinuousReference:
+    """One continuous attribute of several: its spread on the fitting rows and a pre-erasure ridge probe.
+
+    The probe's predictions serve as pseudo-values when live traffic carries no values.
+
+    Attributes
+    ----------
+    name : str
+    value_mean, value_std : float
+        Of the attribute on the fitting rows.
+    probe_weights : ndarray of shape (d,)
+        ``value = x @ probe_weights + probe_bias`` on raw rows.
+    probe_bias : float
+    """
+
+    name: str
+    value_mean: float
+    value_std: float
+    probe_weights: Float64Array
+    probe_bias: float
+
+    @classmethod
+    def from_fit(cls, name: str, X: NDArray[np.floating], values: NDArray[Any]) -> ContinuousReference:
+        """The reference of continuous attribute ``name`` from the fitting rows ``X`` and their ``values``."""
+        from veil.audit.probes import ridge_probe  # scikit-learn: only when fitting, never to read a card
+
+        target = np.asarray(values, dtype=np.float64)
+        probe = ridge_probe().fit(X, target)
+        scaler, ridge = probe[0], probe[-1]
+        # (x - m) / s · w + b  ==  x · (w / s) + (b - (m / s) · w)
+        weights = np.asarray(ridge.coef_, dtype=np.float64) / scaler.scale_
+        bias = float(ridge.intercept_ - weights @ scaler.mean_)
+        return cls(name, float(target.mean()), float(target.std()), weights, bias)
+
+    def probe_values(self, X: NDArray[np.floating]) -> Float64Array:
+        """The values the pre-erasure probe predicts for raw rows (pseudo-values)."""
+        return np.asarray(np.asarray(X, dtype=np.float64) @ self.probe_weights + self.probe_bias)
+
+
+@dataclass(frozen=True, eq=False)
 class ReferenceStatistics:
     """What live traffic is compared against.
 
@@ -107,6 +147,8 @@ class ReferenceStatistics:
     attributes : tuple of AttributeReference
         For a version of several attributes: each categorical one's reference
         (the fields above are then the first one's); empty otherwise.
+    continuous : tuple of ContinuousReference
+        For a version of several attributes: each continuous one's reference.
     """
 
     mean: Float64Array
@@ -118,6 +160,7 @@ class ReferenceStatistics:
     probe_weights: Float64Array
     probe_bias: Float64Array
     attributes: tuple[AttributeReference, ...] = ()
+    continuous: tuple[ContinuousReference, ...] = ()
 
     @classmethod
     def from_fit(
@@ -128,6 +171,7 @@ class ReferenceStatistics:
         *,
         random_state: int,
         attributes: tuple[AttributeReference, ...] = (),
+        continuous: tuple[ContinuousReference, ...] = (),
     ) -> ReferenceStatistics:
         """Statistics of the rows the eraser was fitted on (``codes`` index ``artifact.classes``).
 
@@ -156,6 +200,7 @@ class ReferenceStatistics:
             probe_weights=weights,
             probe_bias=bias,
             attributes=attributes,
+            continuous=continuous,
         )
 
     def probe_codes(self, X: NDArray[np.floating]) -> NDArray[np.intp]:
@@ -178,6 +223,12 @@ class ReferenceStatistics:
             arrays["attributes.names"] = np.array([attribute.name for attribute in self.attributes], dtype=str)
         for position, attribute in enumerate(self.attributes):
             arrays.update({f"attributes.{position}.{key}": getattr(attribute, key) for key in _ATTRIBUTE_FIELDS})
+        if self.continuous:
+            arrays["continuous.names"] = np.array([one.name for one in self.continuous], dtype=str)
+        for position, one in enumerate(self.continuous):
+            arrays[f"continuous.{position}.value"] = np.array([one.value_mean, one.value_std])
+            arrays[f"continuous.{position}.probe_weights"] = one.probe_weights
+            arrays[f"continuous.{position}.probe_bias"] = np.array(one.probe_bias)
         np.savez(buffer, allow_pickle=False, **arrays)
         return buffer.getvalue()
 
@@ -198,5 +249,15 @@ class ReferenceStatistics:
             attributes=tuple(
                 AttributeReference(str(name), *(arrays[f"attributes.{position}.{key}"] for key in _ATTRIBUTE_FIELDS))
                 for position, name in enumerate(arrays.get("attributes.names", np.array([], dtype=str)))
+            ),
+            continuous=tuple(
+                ContinuousReference(
+                    str(name),
+                    float(arrays[f"continuous.{position}.value"][0]),
+                    float(arrays[f"continuous.{position}.value"][1]),
+                    arrays[f"continuous.{position}.probe_weights"],
+                    float(arrays[f"continuous.{position}.probe_bias"]),
+                )
+                for position, name in enumerate(arrays.get("continuous.names", np.array([], dtype=str)))
             ),
         )

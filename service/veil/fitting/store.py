@@ -14,7 +14,7 @@ from veil.audit import audit
 from veil.audit.points import Sweep
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
-from veil.checks.reference import REFERENCE_FILE, AttributeReference, ReferenceStatistics
+from veil.checks.reference import REFERENCE_FILE, AttributeReference, ContinuousReference, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
 from veil.erasers import Erasure
 from veil.errors import DataError
@@ -75,6 +75,7 @@ def audit_and_store(
     artifact = eraser.export()
     attribute_audits: list[tuple[str, AuditReport]] = []
     attributes: tuple[AttributeReference, ...] = ()
+    continuous: tuple[ContinuousReference, ...] = ()
     if is_table(z_held):
         attribute_audits = audit_each_attribute(
             z_held,
@@ -91,8 +92,13 @@ def audit_and_store(
                 AttributeReference.from_fit(
                     artifact, attribute, fit_sample[0], _codes_of(artifact, attribute, values), random_state=seed
                 )
-                for attribute, continuous, values in attribute_columns(fit_sample[1])
-                if not continuous
+                for attribute, is_continuous, values in attribute_columns(fit_sample[1])
+                if not is_continuous
+            )
+            continuous = tuple(
+                ContinuousReference.from_fit(attribute, fit_sample[0], values)
+                for attribute, is_continuous, values in attribute_columns(fit_sample[1])
+                if is_continuous
             )
         fit_codes = _codes_of(artifact, first, fit_sample[1][first])
     else:
@@ -103,7 +109,7 @@ def audit_and_store(
         fit_codes = fit_sample[1]
     with phase("reference statistics"):
         reference = ReferenceStatistics.from_fit(
-            artifact, fit_sample[0], fit_codes, random_state=seed, attributes=attributes
+            artifact, fit_sample[0], fit_codes, random_state=seed, attributes=attributes, continuous=continuous
         )
     with phase("report plots"):
         plots = PlotData.from_heldout(x_held, eraser.transform(x_held), codes_held, seed=seed)

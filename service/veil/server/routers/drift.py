@@ -43,11 +43,15 @@ _DRIFT_BODY = {
                             {"type": "array", "items": {"type": "string"}},
                             {
                                 "type": "object",
-                                "additionalProperties": {"type": "array", "items": {"type": "string"}},
+                                "additionalProperties": {
+                                    "type": "array",
+                                    "items": {"oneOf": [{"type": "string"}, {"type": "number"}]},
+                                },
                             },
                         ],
                         "description": "attribute labels; for a version of several attributes, an object of "
-                        "labels by attribute (attributes left out are checked with pseudo-labels)",
+                        "labels by attribute, numbers for a continuous one (attributes left out are checked with "
+                        "pseudo-labels)",
                     },
                 },
             }
@@ -63,13 +67,16 @@ def _class_names(value: object) -> bool:
 
 
 def _labels_by_attribute(value: object) -> bool:
-    return isinstance(value, dict) and all(_class_names(v) for v in value.values())
+    return isinstance(value, dict) and all(
+        isinstance(column, list) and all(isinstance(v, (str, int, float)) and not isinstance(v, bool) for v in column)
+        for column in value.values()
+    )
 
 
 async def _run(
     served: ServedVersion,
     raw: NDArray[np.floating],
-    labels: list[str] | dict[str, list[str]] | None,
+    labels: list[str] | dict[str, list[Any]] | None,
     catalog: Catalog,
     metrics: ServiceMetrics,
 ) -> dict[str, Any]:
@@ -108,7 +115,8 @@ async def drift_of_sample(name: EraserName, request: Request) -> dict[str, Any]:
     labels = fields.get("labels") if call.media == JSON_MEDIA_TYPE else None
     if labels is not None and not (_class_names(labels) or _labels_by_attribute(labels)):
         raise ServiceError(
-            "invalid_request", '"labels" must be a list of class names (strings), or an object of such lists'
+            "invalid_request",
+            '"labels" must be a list of class names (strings), or an object of lists of class names or numbers',
         )
     return await _run(served, vectors, labels, catalog, request.app.state.metrics)
 
