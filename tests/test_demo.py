@@ -30,6 +30,19 @@ def test_the_demo_fits_serves_searches_checks_drift_and_rolls_back(tmp_path: Pat
     same = [int(count) for count in re.findall(r"the same 10 profiles for (\d+) of 300 queries", out)]
     assert len(same) == 2
     assert min(same) >= 297
+    # The pronoun and the age bracket guarded together, with their intersection: figures, checks and counterfactuals
+    # per attribute.
+    joint = re.findall(r"stored (v0001-\w+) \(LEACE, rank (\d+), linear probes only\)", out)
+    assert joint
+    assert int(joint[0][1]) == 5  # 1 + 2 directions for the two attributes, 2 more for the intersection
+    for attribute, kind in (
+        ("pronoun", "categorical"),
+        ("age_bracket", "categorical"),
+        ("pronoun&age_bracket", "joint"),
+    ):
+        assert re.search(rf"  {re.escape(attribute)} \({kind}, 1919 fitting rows\): linear probe ", out)
+        assert re.search(rf"     {re.escape(attribute)}: prior shift \d\.\d+, leakage gap", out)
+    assert f"5 profiles as 'she, over 50' with {joint[0][0]}" in out
     assert "service stopped cleanly" in out
     for version in (first, second):
         assert (tmp_path / "demo-registry" / "profiles-minilm" / "versions" / version / "report.html").is_file()

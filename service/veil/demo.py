@@ -5,10 +5,13 @@ member profiles by embedding similarity in a faiss inner-product index; the
 embeddings carry the member's pronoun, which the search must not use.  The
 demo fits two erasers into a fresh registry on the profiles that signed up
 before March, audits the first on the March sign-ups and records that audit,
-promotes one, starts the service on a free loopback port, cleans the corpus
+promotes one, fits a third that guards the pronoun and the age bracket
+together (and their intersection), starts the service on a free loopback port, cleans the corpus
 through the client, searches the raw index before and after (with search
 vectors, no re-index), re-indexes with ``veil apply`` and gets the same
-results, checks a normal and a shifted traffic sample for drift, rolls back
+results, checks a normal and a shifted traffic sample for drift (and the
+third eraser's attributes one by one), moves profiles to a target per
+attribute, rolls back
 and keeps searching the raw index with the rolled-back version's search
 vectors while the new index is built, and stops the service.
 """
@@ -37,7 +40,7 @@ from veil.cleaning.index import read_index
 from veil.fitting.fresh_audit import audit_stored_version
 from veil.fitting.job import fit_version
 from veil.registry import Registry
-from veil.registry.card import card_verdict
+from veil.registry.card import attributes_text, card_verdict
 from veil.reporting import REPORT_FILE
 from veil.samples.harbourline import ProfileSample, load_harbourline_profiles
 from veil.samples.sources import load_labelled_sample
@@ -47,6 +50,8 @@ DEMO_REGISTRY = Path("demo-registry")
 DEMO_DATA = Path("demo-data")
 DEMO_INDEXES = Path("demo-indexes")
 NAME = "profiles-minilm"
+# A second eraser that guards the pronoun and the age bracket together, and their intersection.
+JOINT_NAME = "profiles-minilm-pronoun-age"
 ADMIN_TOKEN = "demo-admin-token"
 NEIGHBOURS = 10
 
@@ -124,7 +129,13 @@ def _signups(profiles: ProfileSample) -> tuple[Path, Path]:
     cut = profiles.embedding.shape[0] * 4 // 5
     paths = (DEMO_DATA / "signups-before-march.npz", DEMO_DATA / "signups-march.npz")
     for path, rows in zip(paths, (slice(0, cut), slice(cut, None)), strict=True):
-        np.savez(path, embedding=profiles.embedding[rows], pronoun=profiles.pronoun[rows], field=profiles.field[rows])
+        np.savez(
+            path,
+            embedding=profiles.embedding[rows],
+            pronoun=profiles.pronoun[rows],
+            age_bracket=profiles.age_bracket[rows],
+            field=profiles.field[rows],
+        )
     return paths
 
 
@@ -163,6 +174,13 @@ def main() -> None:
     print(f"\nstored {leace.version_id} (LEACE, live) and {inlp.version_id} (INLP, {inlp.card['rank']} directions)")
     registry.promote(NAME, inlp.version_id, reason="demo: try INLP in production")
     print(f"promoted {inlp.version_id} to live\n")
+
+    print(f"1b. Guard the pronoun and the age bracket together, and their intersection, in one eraser ({JOINT_NAME})")
+    both = load_labelled_sample(before_march, attribute=["pronoun", "age_bracket"], joint=True, task="field")
+    joint = fit_version(both, registry=registry, name=JOINT_NAME, method="leace", alias="live", nonlinear=False)
+    print(f"stored {joint.version_id} (LEACE, rank {joint.card['rank']}, linear probes only)")
+    print("\n".join(attributes_text(joint.card)))
+    print(f"verdict at fitting time: {card_verdict(joint.card).sentence()}\n")
 
     port = _free_port()
     print(f"2. Start the service on 127.0.0.1:{port}")
@@ -205,7 +223,21 @@ def main() -> None:
         shift = np.random.default_rng(2).normal(size=normal.shape[1])
         shifted = (normal + 0.5 * spread * shift / np.linalg.norm(shift)).astype(np.float32)
         loud = veil.drift(NAME, shifted, labels=None)
-        print(f"   the same sample, shifted:           {loud['status']}  {'; '.join(loud['reasons'])}\n")
+        print(f"   the same sample, shifted:           {loud['status']}  {'; '.join(loud['reasons'])}")
+        several = veil.drift(JOINT_NAME, normal)
+        print(f"   the normal sample against {JOINT_NAME}: {several['status']}, by attribute (pseudo-labels):")
+        for attribute, figures in several["attributes"].items():
+            gap = figures["leakage_gap"]
+            print(
+                f"     {attribute}: prior shift {figures['prior_shift']:.3f}, leakage gap "
+                f"{'-' if gap is None else f'{gap:.3f}'}"
+            )
+        moved = veil.counterfactual(JOINT_NAME, normal[:5], {"pronoun": "she", "age_bracket": "over 50"})
+        distance = np.linalg.norm(moved.vectors - veil.apply(JOINT_NAME, normal[:5]).vectors, axis=1).mean()
+        print(
+            f"   counterfactuals name a target per attribute: 5 profiles as 'she, over 50' with {moved.version}, "
+            f"{float(distance):.3f} from their cleaned vectors\n"
+        )
 
         print("5. Roll back, and keep searching while the new index is built")
         event = registry.rollback(NAME, reason="demo: back to LEACE")
