@@ -378,7 +378,7 @@ BAD_FIT = [
     ),
     (
         ["--data", "{sample}", "--attribute", "pronoun", "--attribute", "age_bracket", "--stream"],
-        "several or continuous attributes are fitted from a sample in memory",
+        "are fitted from a sample in memory; drop --stream",
     ),
     (["--data", "{sample}", "--attribute", "field", "--continuous", "field"], "'field' holds text that is not a"),
 ]

@@ -23,3 +23,9 @@ AUDIT_ROWS = 20_000
 FIT_SAMPLE_ROWS = 50_000
 #: Where a streamed fit runs.
 ENGINES = ("local", "dask")
+#: A class of a protected attribute with fewer fitting rows than this is refused: its mean is mostly noise and
+#: the audit cannot measure it.  Merge it with others explicitly (``veil fit --merge-classes``).
+MIN_CLASS_ROWS = 5
+#: A class with fewer fitting rows than this gets a note on the card that its figures are uncertain (common
+#: practice: some tens of rows before a class mean or a per-class recall is read with confidence).
+FEW_CLASS_ROWS = 30

@@ -52,6 +52,7 @@ def _open_sample(args: argparse.Namespace, *, streamed: bool) -> Any:
         "drop_missing": args.drop_missing,
         "continuous": args.continuous,
         "joint": args.joint,
+        "merge_classes": args.merge_classes,
     }
     return open_stream(args.data, **source) if streamed else load_labelled_sample(args.data, **source)
 

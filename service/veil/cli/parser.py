@@ -12,9 +12,11 @@ from veil.defaults import (
     AUDIT_ROWS,
     EMBEDDINGS_KEY,
     ENGINES,
+    FEW_CLASS_ROWS,
     FIT_SAMPLE_ROWS,
     INDEX_FACTORY,
     METHOD_NAMES,
+    MIN_CLASS_ROWS,
     STREAM_CHUNK_ROWS,
 )
 from veil.registry import DEFAULT_ALIAS
@@ -119,6 +121,14 @@ def _sample_options(command: argparse.ArgumentParser) -> None:
         default=[],
         metavar="NAME",
         help="treat attribute NAME as continuous (age in years, a score; repeatable); every other is categorical",
+    )
+    command.add_argument(
+        "--merge-classes",
+        action="append",
+        default=[],
+        metavar="ATTRIBUTE:CLASS,CLASS=NEW",
+        help="merge rare classes of an attribute into one (repeatable); a class needs at least "
+        f"{MIN_CLASS_ROWS} fitting rows, and fewer than {FEW_CLASS_ROWS} get a note on the card",
     )
     command.add_argument(
         "--joint",

@@ -28,7 +28,14 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
-from veil.defaults import AUDIT_ROWS, ENGINES, FIT_SAMPLE_ROWS, STREAM_CHUNK_ROWS
+from veil.defaults import (
+    AUDIT_ROWS,
+    ENGINES,
+    FEW_CLASS_ROWS,
+    FIT_SAMPLE_ROWS,
+    MIN_CLASS_ROWS,
+    STREAM_CHUNK_ROWS,
+)
 from veil.erasers import INLP, Erasure, MomentErasure
 from veil.errors import DataError
 from veil.fitting.methods import fit_collecting_notes, make_eraser
@@ -197,8 +204,16 @@ def fit_version(
 
     x_sample, z_sample, _ = concatenated(total.fit_sample, "fit")
     x_held, z_held, task_held = concatenated(total.held_sample, "audit")
+    # Small classes first: a class too small to fit is refused with its remedy, before the audit's needs are checked.
     if table:
-        _check_table_split(sample, total.fit_rows, total.moments, z_held)
+        if total.moments is None:
+            raise DataError("no rows are left to fit on; lower the held-out share")
+        blocks = total.moments.blocks
+        counted = [
+            (block.name, block.labels, total.moments.block(block.name).class_counts)
+            for block in blocks
+            if block.labels is not None
+        ]
     else:
         if exact_moments:
             fitted = _classes_of(total.moments)
@@ -206,6 +221,15 @@ def fit_version(
             fitted = _classes_of(getattr(eraser, "moments_", None))
         else:
             fitted = np.unique(z_sample)
+        source = total.moments if exact_moments else getattr(eraser, "moments_", None) if streams_inlp else None
+        counts = np.unique(z_sample, return_counts=True)[1] if source is None else source.class_counts
+        counted = [(sample.attribute_key, fitted, counts)] if fitted.size else []
+    for attribute, classes, counts in counted:
+        notes += _small_classes(attribute, classes, counts)
+    notes += list(getattr(sample, "notes", ()))
+    if table:
+        _check_table_split(sample, total.fit_rows, total.moments, z_held)
+    else:
         _check_split(sample, total.fit_rows, fitted, z_held, audit_sampled=audit_rows is not None)
 
     def fit(candidate: Erasure) -> list[str]:
@@ -338,6 +362,23 @@ def _check_split(
     _check_split_classes(sample.attribute_key, fitted, z_held, audit_sampled=audit_sampled)
     if fit_rows <= sample.dim // 10:
         raise DataError(f"only {fit_rows} rows are left to fit on; lower the held-out share")
+
+
+def _small_classes(attribute: str, classes: NDArray[Any], counts: NDArray[np.int64]) -> list[str]:
+    """Refuse a class with fewer than :data:`MIN_CLASS_ROWS` fitting rows; a note for each with few."""
+    present = counts > 0
+    for label, count in zip(classes[present], counts[present], strict=True):
+        if count < MIN_CLASS_ROWS:
+            raise DataError(
+                f"class {str(label)!r} of {attribute!r} has {int(count)} fitting row(s); a class needs at least "
+                f"{MIN_CLASS_ROWS}: merge it with another (--merge-classes {attribute}:{label},OTHER=NEW) or add rows"
+            )
+    return [
+        f"class {str(label)!r} of {attribute!r} has only {int(count)} fitting rows (fewer than {FEW_CLASS_ROWS}): "
+        "its figures are uncertain; see its per-class recall in the audit"
+        for label, count in zip(classes[present], counts[present], strict=True)
+        if count < FEW_CLASS_ROWS
+    ]
 
 
 def _check_split_classes(attribute: str, fitted: NDArray[Any], z_held: NDArray[Any], *, audit_sampled: bool) -> None:

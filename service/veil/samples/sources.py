@@ -59,6 +59,8 @@ class LabelledSample:
         Which rows of the files were kept when rows with a missing label
         were dropped (None: every row).  The held-out split hashes a row's
         index in the files, so dropping rows moves no other row across it.
+    notes : tuple of str
+        What was done to the labels as read (classes merged), for the card.
     """
 
     embeddings: NDArray[np.floating]
@@ -68,6 +70,7 @@ class LabelledSample:
     task_key: str | None
     files: dict[str, str]
     kept: NDArray[np.bool_] | None = None
+    notes: tuple[str, ...] = ()
 
     @property
     def rows(self) -> int:
@@ -253,6 +256,7 @@ def load_labelled_sample(
     drop_missing: bool = False,
     continuous: Sequence[str] = (),
     joint: bool = False,
+    merge_classes: Sequence[str] = (),
 ) -> LabelledSample:
     """Read embeddings and labels for a fit.
 
@@ -276,6 +280,8 @@ def load_labelled_sample(
         The attributes that are continuous (age in years, a score); the others are categorical.
     joint : bool, default=False
         Also guard the intersection of the categorical attributes (their joint classes).
+    merge_classes : sequence of str
+        Rare classes to merge, each ``ATTRIBUTE:CLASS,CLASS=NEW`` (the classes named become class ``NEW``).
 
     Raises
     ------
@@ -284,7 +290,8 @@ def load_labelled_sample(
         its column, how many, and the first row).
     """
     names = [attribute] if isinstance(attribute, str) else list(attribute)
-    spec = AttributeSpec(names=tuple(names), continuous=tuple(continuous), joint=joint)
+    merges = tuple(parse_merge(text) for text in merge_classes)
+    spec = AttributeSpec(names=tuple(names), continuous=tuple(continuous), joint=joint, merges=merges)
     with phase(f"reading {Path(path).name}"):
         return _read_sample(Path(path), spec, task, embeddings_key, labels, drop_missing)
 
@@ -296,6 +303,8 @@ class AttributeSpec:
     names: tuple[str, ...]
     continuous: tuple[str, ...] = ()
     joint: bool = False
+    #: ``(attribute, classes, new class)`` of each merge of rare classes.
+    merges: tuple[tuple[str, tuple[str, ...], str], ...] = ()
 
     def __post_init__(self) -> None:
         if not self.names:
@@ -308,6 +317,28 @@ class AttributeSpec:
             raise DataError(f"--continuous {unknown[0]} names no attribute; the attributes are {', '.join(self.names)}")
         if self.joint and len(self.names) - len(set(self.continuous)) < 2:
             raise DataError("the intersection (--joint) needs at least two categorical attributes")
+        for attribute, _, _ in self.merges:
+            if attribute not in self.names or attribute in self.continuous:
+                raise DataError(
+                    f"--merge-classes names {attribute!r}, which is not a categorical attribute of this fit"
+                )
+
+    def merged(self, columns: dict[str, NDArray[Any]], *, source: str) -> tuple[dict[str, NDArray[Any]], list[str]]:
+        """The label columns with the rare classes merged as asked, and a note on each merge for the card."""
+        out = dict(columns)
+        notes = []
+        for attribute, classes, new in self.merges:
+            text = out[attribute].astype(str)
+            unknown = [name for name in classes if not np.any(text == name)]
+            if unknown:
+                raise DataError(f"{source}: --merge-classes: {attribute!r} has no class {unknown[0]!r}")
+            merging = np.isin(text, classes)
+            out[attribute] = np.where(merging, new, text)
+            notes.append(
+                f"classes {', '.join(classes)} of {attribute!r} were merged into {new!r} ({int(merging.sum())} rows; "
+                "--merge-classes)"
+            )
+        return out, notes
 
     @property
     def is_table(self) -> bool:
@@ -337,6 +368,16 @@ class AttributeSpec:
             return attribute_table(values, continuous=self.continuous, joint=self.joint)
         except ValueError as error:
             raise DataError(f"{source}: {error}") from None
+
+
+def parse_merge(text: str) -> tuple[str, tuple[str, ...], str]:
+    """``ATTRIBUTE:CLASS,CLASS=NEW`` as ``(attribute, classes, new class)``; refuses anything else in one line."""
+    attribute, colon, rest = text.partition(":")
+    listed, equals, new = rest.rpartition("=")
+    classes = tuple(name.strip() for name in listed.split(",") if name.strip())
+    if not colon or not equals or not attribute.strip() or not classes or not new.strip():
+        raise DataError(f"--merge-classes {text!r} does not read as ATTRIBUTE:CLASS,CLASS=NEW (e.g. gender:x,y=other)")
+    return attribute.strip(), classes, new.strip()
 
 
 def _read_sample(
@@ -387,8 +428,10 @@ def _read_sample(
     if kept is not None:
         embeddings = embeddings[kept]
         found = {key: values[kept] for key, values in found.items()}
+    found, notes = spec.merged(found, source=str(label_source))
     return LabelledSample(
         embeddings=embeddings,
+        notes=tuple(notes),
         attribute=spec.table(found, source=str(label_source)),
         attribute_key=spec.key,
         task=None if task is None else found[task],

@@ -261,6 +261,7 @@ def open_stream(
     drop_missing: bool = False,
     continuous: Sequence[str] = (),
     joint: bool = False,
+    merge_classes: Sequence[str] = (),
 ) -> StreamedSample:
     """Describe a large labelled sample without reading its embeddings (every file is hashed, in one pass each).
 
@@ -274,9 +275,10 @@ def open_stream(
         of the wrong length, a missing label (unless ``drop_missing``).
     """
     names = [attribute] if isinstance(attribute, str) else list(attribute)
-    if len(names) > 1 or continuous or joint:
+    if len(names) > 1 or continuous or joint or merge_classes:
         raise DataError(
-            "several or continuous attributes are fitted from a sample in memory; drop --stream (and --engine dask)"
+            "several or continuous attributes, and merged classes, are fitted from a sample in memory; drop --stream "
+            "(and --engine dask)"
         )
     attribute = names[0]
     source = Path(path)
