@@ -53,6 +53,7 @@ def _open_sample(args: argparse.Namespace, *, streamed: bool) -> Any:
         "continuous": args.continuous,
         "joint": args.joint,
         "merge_classes": args.merge_classes,
+        "incomplete": args.incomplete_labels,
     }
     return open_stream(args.data, **source) if streamed else load_labelled_sample(args.data, **source)
 

@@ -131,6 +131,12 @@ def _sample_options(command: argparse.ArgumentParser) -> None:
         f"{MIN_CLASS_ROWS} fitting rows, and fewer than {FEW_CLASS_ROWS} get a note on the card",
     )
     command.add_argument(
+        "--incomplete-labels",
+        action="store_true",
+        help="with several attributes, keep rows that lack some of them: each attribute's statistics come from the "
+        "rows that carry it (the card counts them); a row lacking every attribute is refused or dropped as usual",
+    )
+    command.add_argument(
         "--joint",
         action="store_true",
         help="also guard the intersection of the categorical attributes (their joint classes): guarding each "

@@ -34,7 +34,7 @@ from veil.progress import phase
 from veil.registry import Registry, current_user
 from veil.registry.card import card_thresholds, json_safe, verdict_record, worst_verdict
 from veil.registry.records import Record
-from veil.samples.attributes import attribute_columns, is_table
+from veil.samples.attributes import attribute_columns, is_table, present_rows
 from veil.samples.chunks import Sample
 from veil.samples.splitting import held_out_rows
 
@@ -194,12 +194,18 @@ def _audit_each(
 ) -> list[tuple[str, AuditReport]]:
     """Each attribute of a fresh sample of several audited on its own (the first categorical one first)."""
     for attribute, continuous, values in attribute_columns(z):
-        if not continuous and np.unique(values).size < 2:
+        if not continuous and np.unique(values[present_rows(z, attribute)]).size < 2:
             raise DataError(f"the fresh sample holds one class of {attribute!r}; an audit needs two or more")
     reports = audit_each_attribute(
         z,
-        lambda target, folds: audit_artifact(
-            artifact, x, target, task=task, folds=folds, nonlinear=nonlinear, random_state=seed
+        lambda rows, target, folds: audit_artifact(
+            artifact,
+            x[rows],
+            target,
+            task=None if task is None else task[rows],
+            folds=folds,
+            nonlinear=nonlinear,
+            random_state=seed,
         ),
     )
     continuous_ones = {attribute for attribute, is_continuous, _ in attribute_columns(z) if is_continuous}

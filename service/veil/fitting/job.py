@@ -46,7 +46,7 @@ from veil.fitting.sweep import sweep_values as strengths
 from veil.maps.moments import MomentState
 from veil.progress import advance, phase
 from veil.registry import Registry
-from veil.samples.attributes import attribute_columns, is_table
+from veil.samples.attributes import attribute_columns, is_table, present_rows
 from veil.samples.chunks import Partition, Sample
 
 MOMENT_METHODS = ("leace", "meanproj")
@@ -226,6 +226,12 @@ def fit_version(
         counted = [(sample.attribute_key, fitted, counts)] if fitted.size else []
     for attribute, classes, counts in counted:
         notes += _small_classes(attribute, classes, counts)
+    if table and total.moments is not None and total.moments.partial:
+        rows = ", ".join(
+            f"{block.name} {state.count}"
+            for block, state in zip(total.moments.blocks, total.moments.partial, strict=True)
+        )
+        notes.append(f"incomplete labels: each attribute was fitted on the fitting rows that carry it ({rows})")
     notes += list(getattr(sample, "notes", ()))
     if table:
         _check_table_split(sample, total.fit_rows, total.moments, z_held)
@@ -339,7 +345,8 @@ def _check_table_split(sample: Sample, fit_rows: int, moments: MomentState | Non
     except ValueError as error:
         raise DataError(str(error)) from None
     fitted = {block.name: block.labels for block in moments.blocks}
-    for attribute, continuous, values in attribute_columns(z_held):
+    for attribute, continuous, every in attribute_columns(z_held):
+        values = every[present_rows(z_held, attribute)]
         if continuous:
             if np.ptp(values) == 0:
                 raise DataError(f"continuous attribute {attribute!r} takes a single value in the held-out rows")

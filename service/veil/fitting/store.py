@@ -24,7 +24,7 @@ from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
 from veil.registry.artifact_files import encode_artifact
 from veil.registry.card import build_card
 from veil.reporting import PLOT_DATA_FILE, REPORT_FILE, PlotData, render_report
-from veil.samples.attributes import attribute_columns, is_table
+from veil.samples.attributes import attribute_columns, is_table, present_rows
 from veil.samples.chunks import Sample
 
 # The probes score by cross-validation inside the held-out rows.
@@ -79,40 +79,59 @@ def audit_and_store(
     if is_table(z_held):
         attribute_audits = audit_each_attribute(
             z_held,
-            lambda target, folds: audit(
-                eraser, x_held, target, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed
+            lambda rows, target, folds: audit(
+                eraser,
+                x_held[rows],
+                target,
+                task=None if task_held is None else task_held[rows],
+                folds=folds,
+                nonlinear=nonlinear,
+                random_state=seed,
             ),
         )
         first = _first_categorical(z_held)
         classes = artifact.moments.block(first).labels
         report = dict(attribute_audits)[first]
-        codes_held = np.searchsorted(np.asarray(classes), z_held[first]).astype(np.intp)
+        # The plots show the held-out rows that carry the first attribute, coloured by it.
+        plotted = present_rows(z_held, first)
+        x_plot, codes_held = (
+            x_held[plotted],
+            np.searchsorted(np.asarray(classes), z_held[first][plotted]).astype(np.intp),
+        )
+        x_fit, z_fit = fit_sample
         with phase("reference statistics"):
             attributes = tuple(
                 AttributeReference.from_fit(
-                    artifact, attribute, fit_sample[0], _codes_of(artifact, attribute, values), random_state=seed
+                    artifact,
+                    attribute,
+                    x_fit[present_rows(z_fit, attribute)],
+                    _codes_of(artifact, attribute, values[present_rows(z_fit, attribute)]),
+                    random_state=seed,
                 )
-                for attribute, is_continuous, values in attribute_columns(fit_sample[1])
+                for attribute, is_continuous, values in attribute_columns(z_fit)
                 if not is_continuous
             )
             continuous = tuple(
-                ContinuousReference.from_fit(attribute, fit_sample[0], values)
-                for attribute, is_continuous, values in attribute_columns(fit_sample[1])
+                ContinuousReference.from_fit(
+                    attribute, x_fit[present_rows(z_fit, attribute)], values[present_rows(z_fit, attribute)]
+                )
+                for attribute, is_continuous, values in attribute_columns(z_fit)
                 if is_continuous
             )
-        fit_codes = _codes_of(artifact, first, fit_sample[1][first])
+        fit_codes = np.zeros(0, dtype=np.intp)  # the first attribute's reference is attributes[0]
     else:
         codes_held = np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp)
         folds = audit_folds(codes_held)
         # The audit reports each probe's folds as a stage of its own.
         report = audit(eraser, x_held, z_held, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed)
+        x_plot = x_held
         fit_codes = fit_sample[1]
     with phase("reference statistics"):
         reference = ReferenceStatistics.from_fit(
             artifact, fit_sample[0], fit_codes, random_state=seed, attributes=attributes, continuous=continuous
         )
     with phase("report plots"):
-        plots = PlotData.from_heldout(x_held, eraser.transform(x_held), codes_held, seed=seed)
+        plots = PlotData.from_heldout(x_plot, eraser.transform(x_plot), codes_held, seed=seed)
     card = build_card(
         name=name,
         artifact=artifact,
@@ -160,19 +179,22 @@ def _codes_of(artifact: MapArtifact, attribute: str, values: NDArray[Any]) -> ND
 
 
 def audit_each_attribute(
-    z: NDArray[Any], run: Callable[[NDArray[Any], int], AuditReport]
+    z: NDArray[Any], run: Callable[[NDArray[np.bool_], NDArray[Any], int], AuditReport]
 ) -> list[tuple[str, AuditReport]]:
     """The audit of each attribute of a table (and of their intersection when it is guarded).
 
-    ``run(target, folds)`` audits one attribute: class labels, or a continuous
-    attribute as one column (audited by regression probes).
+    ``run(rows, target, folds)`` audits one attribute on the rows that carry
+    it (all of them unless labels are incomplete): class labels, or a
+    continuous attribute as one column (audited by regression probes).
     """
     reports = []
-    for attribute, continuous, values in attribute_columns(z):
+    for attribute, continuous, every in attribute_columns(z):
+        rows = present_rows(z, attribute)
+        values = every[rows]
         with phase(f"auditing {attribute}"):
             if continuous:
-                report = run(np.asarray(values, dtype=np.float64)[:, None], AUDIT_FOLDS)
+                report = run(rows, np.asarray(values, dtype=np.float64)[:, None], AUDIT_FOLDS)
             else:
-                report = run(values, audit_folds(np.unique(values, return_inverse=True)[1].astype(np.intp)))
+                report = run(rows, values, audit_folds(np.unique(values, return_inverse=True)[1].astype(np.intp)))
         reports.append((attribute, report))
     return reports

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.samples.attributes import attribute_columns, table_spec
+from veil.samples.attributes import attribute_columns, is_incomplete, present_rows, table_spec
 
 
 @dataclass(frozen=True, eq=False)
@@ -70,11 +70,15 @@ class EncodedAttribute:
     matrix : ndarray of shape (n, m), float64
     blocks : tuple of AttributeBlock
         Each attribute's columns when ``z`` held several (an :func:`attribute_table`); empty otherwise.
+    present : tuple of ndarray of shape (n,), dtype bool
+        Incomplete labels: for each block, the rows that carry it (``matrix``
+        is zero elsewhere); empty when every row carries every attribute.
     """
 
     labels: NDArray[np.generic] | None
     matrix: NDArray[np.float64]
     blocks: tuple[AttributeBlock, ...] = ()
+    present: tuple[NDArray[np.bool_], ...] = ()
 
     @property
     def is_categorical(self) -> bool:
@@ -162,23 +166,29 @@ def _encode_table(z: NDArray[np.void]) -> EncodedAttribute:
     start = 0
     _, _, joint = table_spec(z)
     columns = attribute_columns(z)
+    incomplete = is_incomplete(z)
+    present: list[NDArray[np.bool_]] = []
     for position, (name, is_continuous, values) in enumerate(columns):
+        rows = present_rows(z, name)
+        present.append(rows)
         if is_continuous:
-            column = np.asarray(values, dtype=np.float64)
+            column = np.where(rows, np.asarray(values, dtype=np.float64), 0.0)
             if not np.all(np.isfinite(column)):
                 raise ValueError(f"continuous attribute {name!r} holds NaN or infinity")
             matrices.append(column[:, None])
             blocks.append(AttributeBlock(name=name, labels=None, start=start, stop=start + 1))
             start += 1
             continue
-        labels, inverse = np.unique(values, return_inverse=True)
+        labels, inverse = np.unique(values[rows], return_inverse=True)
         matrix = np.zeros((n_rows, labels.size))
-        matrix[np.arange(n_rows), inverse] = 1.0
+        matrix[np.flatnonzero(rows), inverse] = 1.0
         matrices.append(matrix)
         is_joint = joint and position == len(columns) - 1
         blocks.append(AttributeBlock(name=name, labels=labels, start=start, stop=start + labels.size, joint=is_joint))
         start += labels.size
-    return EncodedAttribute(labels=None, matrix=np.hstack(matrices), blocks=tuple(blocks))
+    return EncodedAttribute(
+        labels=None, matrix=np.hstack(matrices), blocks=tuple(blocks), present=tuple(present) if incomplete else ()
+    )
 
 
 def check_enough_rows(n_rows: int, labels: NDArray[np.generic] | None) -> None:

@@ -30,7 +30,12 @@ BLOCK_ROWS = 65536
 
 
 def _rows_of(attribute: EncodedAttribute, start: int, stop: int) -> EncodedAttribute:
-    return EncodedAttribute(labels=attribute.labels, matrix=attribute.matrix[start:stop], blocks=attribute.blocks)
+    return EncodedAttribute(
+        labels=attribute.labels,
+        matrix=attribute.matrix[start:stop],
+        blocks=attribute.blocks,
+        present=tuple(rows[start:stop] for rows in attribute.present),
+    )
 
 
 Float64Array = NDArray[np.float64]
@@ -60,6 +65,10 @@ class MomentState:
     blocks : tuple of AttributeBlock
         Each attribute's columns of ``z`` when the state holds several (``labels`` is then None);
         :meth:`block` gives one attribute's own state.
+    partial : tuple of MomentState
+        Incomplete labels: each attribute's own state, of the rows that carry
+        it (``x`` and its encoding); this state then holds the moments of
+        ``x`` over every row and no columns of ``z``.  Empty otherwise.
     """
 
     count: int
@@ -71,6 +80,7 @@ class MomentState:
     labels: NDArray[np.generic] | None
     class_comoments: Float64Array | None = None
     blocks: tuple[AttributeBlock, ...] = ()
+    partial: tuple[MomentState, ...] = ()
 
     @classmethod
     def from_batch(cls, x: NDArray[np.floating], attribute: EncodedAttribute, *, by_class: bool = False) -> MomentState:
@@ -99,6 +109,18 @@ class MomentState:
 
     @classmethod
     def _from_block(cls, x: NDArray[np.floating], attribute: EncodedAttribute, by_class: bool) -> MomentState:
+        if attribute.present:
+            # Incomplete labels: x over every row, and each attribute with x over the rows that carry it.
+            pooled = cls._from_block(x, EncodedAttribute(labels=None, matrix=np.zeros((x.shape[0], 0))), False)
+            partial = tuple(
+                cls._from_block(
+                    x[rows],
+                    EncodedAttribute(labels=block.labels, matrix=attribute.matrix[rows, block.start : block.stop]),
+                    False,
+                )
+                for block, rows in zip(attribute.blocks, attribute.present, strict=True)
+            )
+            return dataclasses.replace(pooled, blocks=attribute.blocks, partial=partial)
         x64 = np.asarray(x, dtype=np.float64)
         z64 = attribute.matrix
         count = x64.shape[0]
@@ -202,6 +224,8 @@ class MomentState:
         if not matches:
             raise ValueError(f"unknown attribute {name!r}; the attributes are {self.block_names}")
         block = matches[0]
+        if self.partial:
+            return self.partial[self.blocks.index(block)]
         cols = slice(block.start, block.stop)
         return MomentState(
             self.count,
@@ -243,6 +267,8 @@ class MomentState:
         the per-class co-moments take the same update class by class, with
         the class's counts and means.
         """
+        if self.partial or other.partial:
+            return self._merged_partial(other)
         a, b = self._aligned(other)
         if b.count == 0:
             return a
@@ -269,8 +295,31 @@ class MomentState:
         if not self.blocks:
             check_enough_rows(self.count, self.labels)
             return
+        if self.partial:
+            for block, state in zip(self.blocks, self.partial, strict=True):
+                spread = np.diag(state.comoment_zz) / max(state.count, 1)
+                width = block.stop - block.start
+                check_blocks(state.count, (AttributeBlock(block.name, block.labels, 0, width, block.joint),), spread)
+            return
         spread = np.diag(self.comoment_zz) / max(self.count, 1)
         check_blocks(self.count, self.blocks, spread)
+
+    def _merged_partial(self, other: MomentState) -> MomentState:
+        """The merge of two states of incomplete labels: ``x`` over every row, each attribute over its own rows."""
+        kinds = [(block.name, block.kind) for block in self.blocks]
+        if not (self.partial and other.partial) or kinds != [(block.name, block.kind) for block in other.blocks]:
+            raise ValueError("cannot merge moments of incomplete labels with moments of other attributes")
+        pooled = dataclasses.replace(self, blocks=(), partial=()).merge(
+            dataclasses.replace(other, blocks=(), partial=())
+        )
+        partial = tuple(a.merge(b) for a, b in zip(self.partial, other.partial, strict=True))
+        blocks = []
+        start = 0
+        for block, state in zip(self.blocks, partial, strict=True):
+            width = 1 if state.labels is None else state.labels.size
+            blocks.append(AttributeBlock(block.name, state.labels, start, start + width, block.joint))
+            start += width
+        return dataclasses.replace(pooled, blocks=tuple(blocks), partial=partial)
 
     def _require_rows(self) -> None:
         if self.count == 0:
@@ -347,6 +396,11 @@ class MomentState:
         """
         if not self.blocks:
             raise ValueError("targets by attribute need moments of several attributes")
+        if self.partial:
+            raise ValueError(
+                "counterfactual targets need every attribute on the same rows; this eraser was fitted on "
+                "incomplete labels"
+            )
         if not isinstance(targets, Mapping):
             raise ValueError(f"the target must name a value for each attribute {self.block_names}, e.g. a dict")
         named = [block.name for block in self.blocks if not block.joint]

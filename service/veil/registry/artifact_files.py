@@ -36,6 +36,8 @@ READABLE_FORMATS = (1, 2)
 _MAP_PREFIX = "map."
 # The classes of the categorical attributes of an artifact of several, by position.
 _BLOCK_LABELS = "attribute_labels."
+# Each attribute's own moments, by position, when the labels were incomplete.
+_PARTIAL = "partial."
 
 _MOMENT_ARRAYS = ("mean_x", "mean_z", "comoment_xx", "comoment_xz", "comoment_zz")
 
@@ -65,6 +67,9 @@ def artifact_arrays(artifact: MapArtifact) -> dict[str, NDArray[Any]]:
     for position, block in enumerate(moments.blocks):
         if block.labels is not None:
             arrays[f"{_BLOCK_LABELS}{position}"] = block.labels
+    for position, state in enumerate(moments.partial):
+        arrays[f"{_PARTIAL}{position}.count"] = np.array(state.count, dtype=np.int64)
+        arrays.update({f"{_PARTIAL}{position}.{name}": getattr(state, name) for name in _MOMENT_ARRAYS})
     return arrays
 
 
@@ -75,8 +80,30 @@ def _blocks_description(moments: MomentState) -> dict[str, Any]:
     return {
         "attributes": [
             {"name": block.name, "kind": block.kind, "columns": [block.start, block.stop]} for block in moments.blocks
-        ]
+        ],
+        # Incomplete labels: each attribute's moments come from the rows that carry it (arrays ``partial.N.*``).
+        **({"incomplete": True} if moments.partial else {}),
     }
+
+
+def _stored_partial(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> tuple[MomentState, ...]:
+    if not description.get("incomplete"):
+        return ()
+    states = []
+    for position, block in enumerate(_stored_blocks(description, arrays)):
+        prefix = f"{_PARTIAL}{position}."
+        states.append(
+            MomentState(
+                count=int(arrays[prefix + "count"]),
+                mean_x=arrays[prefix + "mean_x"],
+                mean_z=arrays[prefix + "mean_z"],
+                comoment_xx=arrays[prefix + "comoment_xx"],
+                comoment_xz=arrays[prefix + "comoment_xz"],
+                comoment_zz=arrays[prefix + "comoment_zz"],
+                labels=block.labels,
+            )
+        )
+    return tuple(states)
 
 
 def _stored_blocks(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> tuple[AttributeBlock, ...]:
@@ -179,6 +206,7 @@ def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> 
                 count=int(arrays["count"]),
                 labels=arrays.get("labels"),
                 blocks=_stored_blocks(description, arrays),
+                partial=_stored_partial(description, arrays),
                 **{name: arrays[name] for name in _MOMENT_ARRAYS},
             ),
             history=list(description["history"]),

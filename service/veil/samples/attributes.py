@@ -20,6 +20,8 @@ TABLE_METADATA = "veil.attributes"
 #: Joins the attributes' names in the joint attribute's name, and their classes in its class labels.
 JOINT_NAME_SEPARATOR = "&"
 JOINT_LABEL_SEPARATOR = "|"
+#: Ends the name of the field that marks the rows lacking an attribute, in a table of incomplete labels.
+MISSING_SUFFIX = "~missing"
 
 
 def is_table(z: object) -> bool:
@@ -43,7 +45,11 @@ def _as_labels(name: str, values: NDArray[Any]) -> NDArray[Any]:
 
 
 def attribute_table(
-    columns: Mapping[str, ArrayLike], *, continuous: Iterable[str] = (), joint: bool = False
+    columns: Mapping[str, ArrayLike],
+    *,
+    continuous: Iterable[str] = (),
+    joint: bool = False,
+    missing: Mapping[str, ArrayLike] | None = None,
 ) -> NDArray[np.void]:
     """Several attributes of the same rows, as one ``z`` for every veil eraser that can guard them together.
 
@@ -57,6 +63,11 @@ def attribute_table(
     joint : bool, default=False
         Also guard the intersection: the joint classes of the categorical
         attributes (guarding each one alone leaves their combination readable).
+    missing : mapping of str to bool array-like of shape (n,), optional
+        Incomplete labels: the rows that lack each attribute (their values are
+        ignored).  Each attribute's statistics then come from the rows that
+        carry it (the intersection's from the rows that carry every
+        categorical one); a row must carry at least one attribute.
 
     Returns
     -------
@@ -69,33 +80,85 @@ def attribute_table(
     if not names:
         raise ValueError("the attribute table needs at least one attribute")
     for name in names:
-        if not isinstance(name, str) or not name or JOINT_NAME_SEPARATOR in name:
-            raise ValueError(f"attribute names must be non-empty text without {JOINT_NAME_SEPARATOR!r}; got {name!r}")
+        if not isinstance(name, str) or not name or JOINT_NAME_SEPARATOR in name or MISSING_SUFFIX in name:
+            raise ValueError(
+                f"attribute names must be non-empty text without {JOINT_NAME_SEPARATOR!r} or {MISSING_SUFFIX!r}; "
+                f"got {name!r}"
+            )
     unknown = [name for name in marked if name not in columns]
     if unknown:
         raise ValueError(f"{unknown[0]!r} is marked continuous but is not one of the attributes {names}")
+    masks = _missing_masks(names, missing)
     arrays: dict[str, NDArray[np.generic]] = {}
     for name in names:
         values = np.asarray(columns[name])
         if values.ndim != 1:
             raise ValueError(f"attribute {name!r} must hold one value per row, got shape {values.shape}")
+        absent = masks.get(name)
         if name in marked:
             if values.dtype.kind not in "biuf":
                 raise ValueError(f"attribute {name!r} is marked continuous but holds {values.dtype} values")
             arrays[name] = values.astype(np.float64)
+            if absent is not None and absent.shape == values.shape:
+                # A placeholder the statistics never read: the mask says the row lacks the value.
+                arrays[name] = np.where(absent, 0.0, arrays[name])
+        elif absent is not None and absent.shape == values.shape and values.dtype.kind == "f":
+            arrays[name] = _as_labels(name, np.where(absent, 0.0, values))
         else:
             arrays[name] = _as_labels(name, values)
+    for name, absent in masks.items():
+        arrays[name + MISSING_SUFFIX] = absent
     lengths = {name: array.shape[0] for name, array in arrays.items()}
     if len(set(lengths.values())) > 1:
         raise ValueError(f"the attributes have different numbers of rows: {lengths}")
     if joint and len(names) - len(set(marked)) < 2:
         raise ValueError("the intersection (joint classes) needs at least two categorical attributes")
+    if len(masks) == len(names):
+        lacking = np.logical_and.reduce([masks[name] for name in names])
+        if lacking.any():
+            raise ValueError(
+                f"{int(lacking.sum())} row(s) lack every attribute, the first at row {int(np.argmax(lacking))}; "
+                "drop them (they carry nothing to guard)"
+            )
     spec = {"continuous": tuple(name for name in names if name in marked), "joint": bool(joint)}
-    dtype = np.dtype([(name, arrays[name].dtype) for name in names], metadata={TABLE_METADATA: spec})
+    fields = list(arrays)
+    dtype = np.dtype([(name, arrays[name].dtype) for name in fields], metadata={TABLE_METADATA: spec})
     table = np.empty(lengths[names[0]], dtype=dtype)
-    for name in names:
+    for name in fields:
         table[name] = arrays[name]
     return table
+
+
+def _missing_masks(names: list[str], missing: Mapping[str, ArrayLike] | None) -> dict[str, NDArray[np.bool_]]:
+    """The masks of rows lacking each attribute that lacks any (the others are complete)."""
+    masks: dict[str, NDArray[np.bool_]] = {}
+    for name, mask in (missing or {}).items():
+        if name not in names:
+            raise ValueError(f"missing labels are given for {name!r}, which is not one of the attributes {names}")
+        array = np.asarray(mask)
+        if array.dtype != np.bool_ or array.ndim != 1:
+            raise ValueError(f"the missing-label mask of {name!r} must be one boolean per row")
+        if array.any():
+            masks[name] = array
+    return masks
+
+
+def present_rows(z: NDArray[np.void], name: str) -> NDArray[np.bool_]:
+    """The rows of a table that carry attribute ``name`` (the intersection: every categorical one), shape (n,)."""
+    names, continuous, _ = table_spec(z)
+    fields = z.dtype.names or ()
+    joint = JOINT_NAME_SEPARATOR in name
+    wanted = [other for other in names if other not in continuous] if joint else [name]
+    present = np.ones(z.shape[0], dtype=bool)
+    for other in wanted:
+        if other + MISSING_SUFFIX in fields:
+            present &= ~np.asarray(z[other + MISSING_SUFFIX])
+    return present
+
+
+def is_incomplete(z: NDArray[np.void]) -> bool:
+    """Whether a table marks rows that lack an attribute (its statistics then come attribute by attribute)."""
+    return any(field.endswith(MISSING_SUFFIX) for field in z.dtype.names or ())
 
 
 def table_spec(z: NDArray[np.void]) -> tuple[tuple[str, ...], frozenset[str], bool]:
@@ -107,7 +170,8 @@ def table_spec(z: NDArray[np.void]) -> tuple[tuple[str, ...], frozenset[str], bo
             "several attributes must come as veil.attribute_table(...), which marks the continuous ones; "
             "a plain structured array does not say which are continuous"
         )
-    return tuple(z.dtype.names), frozenset(spec["continuous"]), bool(spec["joint"])
+    names = tuple(name for name in z.dtype.names if not name.endswith(MISSING_SUFFIX))
+    return names, frozenset(spec["continuous"]), bool(spec["joint"])
 
 
 def joint_name(names: Iterable[str]) -> str:

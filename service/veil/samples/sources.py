@@ -257,6 +257,7 @@ def load_labelled_sample(
     continuous: Sequence[str] = (),
     joint: bool = False,
     merge_classes: Sequence[str] = (),
+    incomplete: bool = False,
 ) -> LabelledSample:
     """Read embeddings and labels for a fit.
 
@@ -282,6 +283,9 @@ def load_labelled_sample(
         Also guard the intersection of the categorical attributes (their joint classes).
     merge_classes : sequence of str
         Rare classes to merge, each ``ATTRIBUTE:CLASS,CLASS=NEW`` (the classes named become class ``NEW``).
+    incomplete : bool, default=False
+        Several attributes: keep the rows that lack some of them (not all);
+        each attribute's statistics then come from the rows that carry it.
 
     Raises
     ------
@@ -291,7 +295,9 @@ def load_labelled_sample(
     """
     names = [attribute] if isinstance(attribute, str) else list(attribute)
     merges = tuple(parse_merge(text) for text in merge_classes)
-    spec = AttributeSpec(names=tuple(names), continuous=tuple(continuous), joint=joint, merges=merges)
+    spec = AttributeSpec(
+        names=tuple(names), continuous=tuple(continuous), joint=joint, merges=merges, incomplete=incomplete
+    )
     with phase(f"reading {Path(path).name}"):
         return _read_sample(Path(path), spec, task, embeddings_key, labels, drop_missing)
 
@@ -305,6 +311,8 @@ class AttributeSpec:
     joint: bool = False
     #: ``(attribute, classes, new class)`` of each merge of rare classes.
     merges: tuple[tuple[str, tuple[str, ...], str], ...] = ()
+    #: Keep rows that lack some attributes: each attribute's statistics come from the rows that carry it.
+    incomplete: bool = False
 
     def __post_init__(self) -> None:
         if not self.names:
@@ -317,22 +325,34 @@ class AttributeSpec:
             raise DataError(f"--continuous {unknown[0]} names no attribute; the attributes are {', '.join(self.names)}")
         if self.joint and len(self.names) - len(set(self.continuous)) < 2:
             raise DataError("the intersection (--joint) needs at least two categorical attributes")
+        if self.incomplete and len(self.names) < 2:
+            raise DataError(
+                "incomplete labels (--incomplete-labels) need several attributes; a row lacking the one "
+                "attribute carries nothing to guard (drop it with --drop-missing)"
+            )
         for attribute, _, _ in self.merges:
             if attribute not in self.names or attribute in self.continuous:
                 raise DataError(
                     f"--merge-classes names {attribute!r}, which is not a categorical attribute of this fit"
                 )
 
-    def merged(self, columns: dict[str, NDArray[Any]], *, source: str) -> tuple[dict[str, NDArray[Any]], list[str]]:
+    def merged(
+        self,
+        columns: dict[str, NDArray[Any]],
+        *,
+        source: str,
+        missing: dict[str, NDArray[np.bool_]] | None = None,
+    ) -> tuple[dict[str, NDArray[Any]], list[str]]:
         """The label columns with the rare classes merged as asked, and a note on each merge for the card."""
         out = dict(columns)
         notes = []
         for attribute, classes, new in self.merges:
             text = out[attribute].astype(str)
-            unknown = [name for name in classes if not np.any(text == name)]
+            carried = np.ones(text.shape, bool) if missing is None else ~missing[attribute]
+            unknown = [name for name in classes if not np.any((text == name) & carried)]
             if unknown:
                 raise DataError(f"{source}: --merge-classes: {attribute!r} has no class {unknown[0]!r}")
-            merging = np.isin(text, classes)
+            merging = np.isin(text, classes) & carried
             out[attribute] = np.where(merging, new, text)
             notes.append(
                 f"classes {', '.join(classes)} of {attribute!r} were merged into {new!r} ({int(merging.sum())} rows; "
@@ -349,13 +369,20 @@ class AttributeSpec:
     def key(self) -> str:
         return ", ".join(self.names)
 
-    def table(self, columns: dict[str, NDArray[Any]], *, source: str) -> NDArray[Any]:
-        """The attribute column (one categorical attribute) or table (any other case) of the labels read."""
+    def table(
+        self, columns: dict[str, NDArray[Any]], *, source: str, missing: dict[str, NDArray[np.bool_]] | None = None
+    ) -> NDArray[Any]:
+        """The attribute column (one categorical attribute) or table (any other case) of the labels read.
+
+        ``missing`` marks, for incomplete labels, the rows that lack each attribute.
+        """
         if not self.is_table:
             return columns[self.names[0]]
         values: dict[str, NDArray[Any]] = {}
         for name in self.names:
             column = columns[name]
+            if missing is not None and name in self.continuous and column.dtype.kind in "US":
+                column = np.where(missing[name], "0", column)
             if name in self.continuous and column.dtype.kind in "US":
                 try:
                     column = column.astype(np.float64)
@@ -365,7 +392,7 @@ class AttributeSpec:
                     ) from None
             values[name] = column
         try:
-            return attribute_table(values, continuous=self.continuous, joint=self.joint)
+            return attribute_table(values, continuous=self.continuous, joint=self.joint, missing=missing)
         except ValueError as error:
             raise DataError(f"{source}: {error}") from None
 
@@ -423,16 +450,21 @@ def _read_sample(
     found = {key: _labels(np.asarray(columns[key]), key=key, rows=rows, source=str(data_path)) for key in keys}
     if absent is None:
         absent = {key: missing_labels(values) for key, values in found.items()}
-    roles = [("attribute", name) for name in spec.names] + ([] if task is None else [("task", task)])
-    kept = rows_to_keep([(role, key, absent[key]) for role, key in roles], source=str(label_source), drop=drop_missing)
+    checked = [("attribute", name, absent[name]) for name in spec.names]
+    if spec.incomplete:
+        # A row may lack some attributes; one that lacks every one carries nothing to guard.
+        checked = [("attribute", f"every attribute ({spec.key})", np.logical_and.reduce([m for _, _, m in checked]))]
+    checked += [] if task is None else [("task", task, absent[task])]
+    kept = rows_to_keep(checked, source=str(label_source), drop=drop_missing)
     if kept is not None:
         embeddings = embeddings[kept]
         found = {key: values[kept] for key, values in found.items()}
-    found, notes = spec.merged(found, source=str(label_source))
+        absent = {key: values[kept] for key, values in absent.items()}
+    found, notes = spec.merged(found, source=str(label_source), missing=absent if spec.incomplete else None)
     return LabelledSample(
         embeddings=embeddings,
         notes=tuple(notes),
-        attribute=spec.table(found, source=str(label_source)),
+        attribute=spec.table(found, source=str(label_source), missing=absent if spec.incomplete else None),
         attribute_key=spec.key,
         task=None if task is None else found[task],
         task_key=task,

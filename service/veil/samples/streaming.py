@@ -262,6 +262,7 @@ def open_stream(
     continuous: Sequence[str] = (),
     joint: bool = False,
     merge_classes: Sequence[str] = (),
+    incomplete: bool = False,
 ) -> StreamedSample:
     """Describe a large labelled sample without reading its embeddings (every file is hashed, in one pass each).
 
@@ -275,7 +276,7 @@ def open_stream(
         of the wrong length, a missing label (unless ``drop_missing``).
     """
     names = [attribute] if isinstance(attribute, str) else list(attribute)
-    if len(names) > 1 or continuous or joint or merge_classes:
+    if len(names) > 1 or continuous or joint or merge_classes or incomplete:
         raise DataError(
             "several or continuous attributes, and merged classes, are fitted from a sample in memory; drop --stream "
             "(and --engine dask)"

@@ -111,7 +111,11 @@ class ServedVersion:
             elif str(wanted) not in block.labels.astype(str).tolist():
                 classes = block.labels.astype(str).tolist()
                 raise ServiceError("unknown_class", f"{wanted!r} is not a class of {block.name!r}; classes: {classes}")
-        return self.artifact.counterfactual_towards(x, self.artifact.moments.conditional_mean(target))
+        try:
+            target_mean = self.artifact.moments.conditional_mean(target)
+        except ValueError as error:  # a version fitted on incomplete labels takes no targets
+            raise ServiceError("invalid_request", str(error)) from None
+        return self.artifact.counterfactual_towards(x, target_mean)
 
     def check_dim(self, x: NDArray[np.floating]) -> None:
         if x.shape[1] != self.dim:
