@@ -31,5 +31,10 @@ def test_the_demo_fits_serves_searches_checks_drift_and_rolls_back(tmp_path: Pat
     assert len(same) == 2
     assert min(same) >= 297
     assert "service stopped cleanly" in out
+    # The rolled-back version's live check, recorded as a scheduled patrol would, and its auditor's report.
+    assert re.search(rf"profiles-minilm {first}: (ok|warn|alert).*, recorded as check 1", out)
+    report = (tmp_path / "demo-report.html").read_text()
+    assert "Latest fresh audit (1)" in report
+    assert "Latest live check (" in report
     for version in (first, second):
         assert (tmp_path / "demo-registry" / "profiles-minilm" / "versions" / version / "report.html").is_file()
