@@ -140,7 +140,7 @@ async def apply(name: EraserName, request: Request) -> Response:
     vectors, _ = decode_batch(call.body, call.media)
     cleaned = served.apply(vectors)
     state.reservoirs.offer(name, vectors)
-    state.metrics.vectors.labels(name, served.version_id).inc(vectors.shape[0])
+    state.metrics.cleaned(name, served.version_id, vectors.shape[0])
     return encode_batch(cleaned, call.answer, served)
 
 
