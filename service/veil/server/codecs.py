@@ -157,7 +157,7 @@ def npy_bytes(matrix: NDArray[np.floating]) -> bytes:
     anew each time, which costs more than erasing a vector).
     """
     matrix = np.ascontiguousarray(matrix)
-    return b"".join((_npy_header(matrix.dtype.str, matrix.shape), memoryview(matrix).cast("B")))
+    return b"".join((_npy_header(matrix.dtype.str, matrix.shape), matrix.data.cast("B")))
 
 
 def json_bytes(content: dict[str, Any]) -> bytes:

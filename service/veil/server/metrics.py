@@ -49,9 +49,10 @@ class RequestCounts(Collector):
         yield requests
         latency = HistogramMetricFamily("veil_request_seconds", "request latency by route template", labels=["route"])
         for route, counts in list(self._latency.items()):
-            cumulative, running = [], 0.0
-            for bound, count in zip((*map(str, self.buckets), "+Inf"), counts[:-1], strict=True):
-                running += count
+            cumulative: list[tuple[str, float]] = []
+            running = 0.0
+            for bound, observed in zip((*map(str, self.buckets), "+Inf"), counts[:-1], strict=True):
+                running += observed
                 cumulative.append((bound, running))
             latency.add_metric([route], cumulative, sum_value=counts[-1])
         yield latency
