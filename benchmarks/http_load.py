@@ -4,7 +4,8 @@
 ``CONNECTIONS`` keep-alive connections to ``127.0.0.1:PORT``; each sends the same ``POST`` again as soon as
 the answer before it is complete (one request in flight per connection, no pipelining).  Requests answered
 in the ``WARMUP`` seconds are not counted; those answered in the ``SECONDS`` after are.  It prints one JSON
-line: ``requests``, ``seconds``, ``requests_per_s``, ``p50_ms``, ``p99_ms``.
+line: ``requests`` (in the window), ``answered`` (warm-up included), ``seconds``, ``requests_per_s``,
+``p50_ms``, ``p99_ms``.
 
 Why not httpx: its pool costs more client CPU per request than the service under test, and the client shares
 the machine's two cores with the server, so a heavy client would measure itself.  This one does only what the
@@ -101,8 +102,10 @@ class _Run:
         self.start = now + warmup
         self.stop = self.start + seconds
         self.latencies: list[float] = []
+        self.total = 0
 
     def answered(self, sent: float, now: float) -> None:
+        self.total += 1
         if self.start <= sent and now <= self.stop:
             self.latencies.append(now - sent)
 
@@ -131,6 +134,7 @@ async def measure(
         raise LoadError("no request was answered within the measured window")
     return {
         "requests": len(ordered),
+        "answered": run.total,
         "seconds": seconds,
         "requests_per_s": len(ordered) / seconds,
         "p50_ms": _percentile(ordered, 0.50) * 1e3,
