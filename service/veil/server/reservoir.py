@@ -126,8 +126,9 @@ class ReservoirBank:
     the rows waiting are at most about ``capacity`` per eraser.
     """
 
-    def __init__(self, capacity: int) -> None:
+    def __init__(self, capacity: int, *, seed: int = 0) -> None:
         self.capacity = capacity
+        self.seed = seed
         self._reservoirs: dict[str, Reservoir] = {}
         self._pending: dict[str, list[NDArray[np.floating]]] = {}
         self._pending_rows: dict[str, int] = {}
@@ -161,5 +162,5 @@ class ReservoirBank:
         dim = batches[0].shape[1]
         reservoir = self._reservoirs.get(name)
         if reservoir is None or reservoir.dim != dim:
-            reservoir = self._reservoirs[name] = Reservoir(self.capacity, dim)
+            reservoir = self._reservoirs[name] = Reservoir(self.capacity, dim, seed=self.seed)
         reservoir.add_many(batches)
