@@ -197,7 +197,7 @@ def test_the_bank_queues_batches_and_samples_them_uniformly_when_read() -> None:
         start = 0
         while start < total:
             size = min(1 if rng.random() < 0.8 else int(rng.integers(2, 300)), total - start)
-            bank.offer("a", np.arange(start, start + size, dtype=np.float32)[:, None])
+            bank.add("a", np.arange(start, start + size, dtype=np.float32)[:, None])
             start += size
             # Never more than a reservoir's worth of rows waits, plus the batch that brought it there.
             assert sum(batch.shape[0] for batch in bank._pending.get("a", [])) < capacity + size
@@ -212,8 +212,8 @@ def test_the_bank_queues_batches_and_samples_them_uniformly_when_read() -> None:
 
 def test_a_new_dimension_starts_a_new_reservoir_after_the_old_traffic() -> None:
     bank = ReservoirBank(10)
-    bank.offer("a", np.ones((3, 2), dtype=np.float32))
-    bank.offer("a", np.zeros((2, 5), dtype=np.float32))
+    bank.add("a", np.ones((3, 2), dtype=np.float32))
+    bank.add("a", np.zeros((2, 5), dtype=np.float32))
     reservoir = bank.get("a")
     assert reservoir is not None
     assert (reservoir.dim, reservoir.seen) == (5, 2)

@@ -73,11 +73,13 @@ async def require_data_token(
         _check_bearer(authorization, settings.data_token)
 
 
-async def read_body(request: Request, limit: int, declared: str | None) -> bytes:
-    """The request body, refused with 413 as soon as it passes ``limit`` bytes (never read in full first).
+async def read_body(request: Request, limit: int) -> bytes:
+    """The request body, refused with 413 as soon as it passes ``limit`` bytes (never read in full first)."""
+    return await _read_body(request, limit, request.headers.get("content-length"))
 
-    ``declared`` is the request's ``Content-Length``, if it sent one.
-    """
+
+async def _read_body(request: Request, limit: int, declared: str | None) -> bytes:
+    """:func:`read_body`, given the request's ``Content-Length`` (if it sent one) already read."""
     if declared is not None and declared.isdigit() and int(declared) > limit:
         raise ServiceError("body_too_large", f"the body is {declared} bytes; the limit is {limit}")
     chunks, size = [], 0
@@ -164,7 +166,7 @@ async def batch_call(request: Request) -> BatchCall:
     media = request_media(headers.get(b"content-type"))
     answer = response_media(media, headers.get(b"accept"))
     pin = _pin(request, headers.get(b"x-veil-version"), headers.get(b"x-veil-alias"))
-    body = await read_body(request, settings.max_body_bytes, headers.get(b"content-length"))
+    body = await _read_body(request, settings.max_body_bytes, headers.get(b"content-length"))
     return BatchCall(body=body, media=media, answer=answer, pin=pin)
 
 

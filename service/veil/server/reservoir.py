@@ -119,7 +119,7 @@ def _gather(
 class ReservoirBank:
     """One reservoir per eraser name, created on first traffic (and anew if the dimension changes).
 
-    A request only appends its batch to a list (:meth:`offer`): sampling
+    A request only appends its batch to a list (:meth:`add`): sampling
     happens when the list holds a reservoir's worth of rows, or when the
     sample is read (:meth:`get`), for many batches at once.  At one vector
     per request, sampling each batch as it came cost more than erasing it;
@@ -134,7 +134,7 @@ class ReservoirBank:
         self._pending_rows: dict[str, int] = {}
         self._lock = threading.Lock()
 
-    def offer(self, name: str, batch: NDArray[np.floating]) -> None:
+    def add(self, name: str, batch: NDArray[np.floating]) -> None:
         """Queue a batch of raw vectors for the eraser's reservoir (cheap: the hot path calls it)."""
         if self.capacity == 0:
             return

@@ -18,5 +18,5 @@ router = APIRouter(prefix="/v1/bench", tags=["benchmark"], include_in_schema=Fal
 @router.post("/echo")
 async def echo(request: Request) -> Response:
     # Read like the batch routes read (size limit included), answer the bytes back.
-    body = await read_body(request, request.app.state.settings.max_body_bytes, request.headers.get("content-length"))
+    body = await read_body(request, request.app.state.settings.max_body_bytes)
     return Response(body, media_type=request.headers.get("content-type") or "application/octet-stream")

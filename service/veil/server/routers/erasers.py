@@ -139,7 +139,7 @@ async def apply(name: EraserName, request: Request) -> Response:
     served = await pick_version(state.catalog, name, call.pin)
     vectors, _ = decode_batch(call.body, call.media)
     cleaned = served.apply(vectors)
-    state.reservoirs.offer(name, vectors)
+    state.reservoirs.add(name, vectors)
     state.metrics.cleaned(name, served.version_id, vectors.shape[0])
     return encode_batch(cleaned, call.answer, served)
 
