@@ -278,7 +278,7 @@ def serve(args: argparse.Namespace) -> int:
 
     serve_forever(
         registry=args.registry, names=args.names or [], alias=args.alias, host=args.host, port=args.port,
-        workers=args.workers,
+        workers=args.workers, http=args.http,
     )  # fmt: skip
     return 0
 

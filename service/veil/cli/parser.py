@@ -353,5 +353,11 @@ def build_parser() -> VeilParser:
     serve.add_argument("--host", default="127.0.0.1")
     serve.add_argument("--port", type=int, default=8080)
     serve.add_argument("--workers", type=int, default=1, help="uvicorn worker processes")
+    serve.add_argument(
+        "--http",
+        choices=("httptools", "h11"),
+        default="httptools",
+        help="HTTP stack: httptools on uvloop (default, C parsers) or h11 on asyncio (pure Python, slower)",
+    )
     serve.set_defaults(handler="serve")
     return parser
