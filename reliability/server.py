@@ -60,10 +60,12 @@ def live_server(
     environment: dict[str, str] | None = None,
     expect_ready: bool = True,
     launcher: Sequence[str] = (),
+    http: str | None = None,
 ) -> Iterator[LiveServer]:
     """Start ``veil serve`` on loopback, wait until ``/readyz`` (or ``/healthz``) answers 200, stop it after.
 
-    ``launcher`` goes before the command, e.g. to run the server with fewer privileges than the caller.
+    ``launcher`` goes before the command, e.g. to run the server with fewer privileges than the caller;
+    ``http`` picks ``veil serve --http`` (its default if None).
     """
     port = free_port()
     command = [
@@ -72,6 +74,8 @@ def live_server(
     ]  # fmt: skip
     for name in names:
         command += ["--name", name]
+    if http is not None:
+        command += ["--http", http]
     with log.open("wb") as sink:
         process = subprocess.Popen(
             command, stdout=sink, stderr=subprocess.STDOUT, env={**os.environ, **(environment or {})}

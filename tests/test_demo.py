@@ -44,5 +44,10 @@ def test_the_demo_fits_serves_searches_checks_drift_and_rolls_back(tmp_path: Pat
         assert re.search(rf"     {re.escape(attribute)}: prior shift \d\.\d+, leakage gap", out)
     assert f"5 profiles as 'she, over 50' with {joint[0][0]}" in out
     assert "service stopped cleanly" in out
+    # The rolled-back version's live check, recorded as a scheduled patrol would, and its auditor's report.
+    assert re.search(rf"profiles-minilm {first}: (ok|warn|alert).*, recorded as check 1", out)
+    report = (tmp_path / "demo-report.html").read_text()
+    assert "Latest fresh audit (1)" in report
+    assert "Latest live check (" in report
     for version in (first, second):
         assert (tmp_path / "demo-registry" / "profiles-minilm" / "versions" / version / "report.html").is_file()

@@ -192,3 +192,21 @@ def test_what_cannot_be_audited_is_refused_with_one_line(fitted: tuple[Path, str
         assert result.code == 2, result.err
         assert message in result.err
         assert len(result.err.strip().splitlines()) == 1
+
+
+def test_a_streamed_fresh_sample_is_read_in_chunks_and_drawn_by_hash(
+    fitted: tuple[Path, str, Path], tmp_path: Path
+) -> None:
+    registry, _, _ = fitted
+    x, z, task = _population(draw_seed=8)
+    np.save(tmp_path / "march.npy", x.astype(np.float32))
+    rows = "\n".join(f"{a},{b}" for a, b in zip(z, task, strict=True))
+    (tmp_path / "march.csv").write_text(f"region,task\n{rows}\n")
+    audited = _audit(
+        registry, tmp_path / "march.npy", "--labels", str(tmp_path / "march.csv"), "--stream", "--chunk-rows", "500",
+        "--rows", "600", "--probes", "linear",
+    )  # fmt: skip
+    # About 600 of 2,000 rows, drawn by a hash of each row's index (600 is its expectation, not a quota).
+    assert 500 < audited["data"]["audited_rows"] < 700
+    assert audited["data"]["rows"] == 2000
+    assert f"audited on a hash-drawn sample of {audited['data']['audited_rows']} of the 2000 rows" in audited["notes"]

@@ -223,3 +223,42 @@ def test_killed_patrols_leave_no_partial_record_and_the_next_run_completes_the_s
     assert len(history) == len(complete) >= 2
     assert len({record.key for record in history}) == len(history)  # one record per slot
     assert run("verify", "--registry", registry).code == 0
+
+
+@pytest.mark.parametrize(
+    ("files", "argv", "message"),
+    [
+        ({}, ("--sample", "missing.npy"), "missing.npy does not exist"),
+        ({"s.csv": b"1,2\n"}, ("--sample", "s.csv"), "a --sample is a .npy or .npz file, not .csv"),
+        ({"s.npz": None}, ("--sample", "s.npz", "--attribute", "gender"), "has no array 'gender'"),
+        ({"s.npy": None}, ("--sample", "s.npy", "--attribute", "pronoun"), "labels come with a .npz sample"),
+        ({}, ("--attribute", "pronoun"), "give the sample too"),
+        ({}, ("--every", "0", "--once"), "--every must be a positive number of seconds"),
+    ],
+)
+def test_what_the_patrol_cannot_use_is_refused_before_any_round(
+    registry: Registry, tmp_path: Path, files: dict[str, bytes | None], argv: tuple[str, ...], message: str
+) -> None:
+    vectors = np.zeros((30, 384), dtype=np.float32)
+    for name, content in files.items():
+        if name.endswith(".npz"):
+            np.savez(tmp_path / name, embedding=vectors, pronoun=np.array(["he"] * 30))
+        elif name.endswith(".npy"):
+            np.save(tmp_path / name, vectors)
+        else:
+            (tmp_path / name).write_bytes(content or b"")
+    argv = tuple(str(tmp_path / a) if a in files or a == "missing.npy" else a for a in argv)
+    # Nothing listens on port 9: a round would fail; every refusal here comes first, as one line, exit 2.
+    result = run("patrol", PROFILES, "--service", "http://127.0.0.1:9", "--registry", registry.url, *argv)
+    assert result.code == 2, result.err
+    assert message in result.err
+    assert len(result.err.strip().splitlines()) == 1
+    assert check_history(registry, PROFILES) == []
+
+
+def test_a_service_that_does_not_answer_fails_the_single_round_in_one_line(registry: Registry) -> None:
+    result = run("patrol", PROFILES, "--service", "http://127.0.0.1:9", "--registry", registry.url, "--once")
+    assert result.code == 1
+    assert result.err.startswith("veil patrol: the service at http://127.0.0.1:9 did not answer: ")
+    assert len(result.err.strip().splitlines()) == 1
+    assert check_history(registry, PROFILES) == []

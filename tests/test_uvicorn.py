@@ -17,14 +17,19 @@ import numpy as np
 import pytest
 import uvicorn
 from uvicorn.protocols.http.h11_impl import H11Protocol
+from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 from uvicorn.server import ServerState
 
 from reliability.server import live_server, wait_until
+from veil.cli import main
 from veil.registry import Registry
 from veil.samples.harbourline import load_harbourline_profiles
-from veil.server.protocol import NoDelayH11Protocol
+from veil.server import run
+from veil.server.protocol import NoDelayH11Protocol, NoDelayHttpToolsProtocol
 
 from .service_fixtures import ADMIN_TOKEN, PROFILES, ServiceRegistry
+
+NPY = "application/x-npy"
 
 
 @pytest.fixture(params=[1, 2], ids=["one-worker", "two-workers"])
@@ -101,10 +106,15 @@ async def no_app(scope: object, receive: object, send: object) -> None:
     """The connections are checked before any request reaches an app."""
 
 
-@pytest.mark.parametrize(("protocol", "nodelay"), [(H11Protocol, False), (NoDelayH11Protocol, True)])
-def test_connections_on_the_multi_worker_socket_get_tcp_nodelay(protocol: type[H11Protocol], nodelay: bool) -> None:
+@pytest.mark.parametrize(
+    ("protocol", "nodelay"),
+    [(H11Protocol, False), (NoDelayH11Protocol, True), (HttpToolsProtocol, False), (NoDelayHttpToolsProtocol, True)],
+)
+def test_connections_on_the_multi_worker_socket_get_tcp_nodelay(
+    protocol: type[asyncio.Protocol], nodelay: bool
+) -> None:
     # The socket uvicorn binds for --workers > 1 is made with a family only (protocol 0), and asyncio then leaves
-    # Nagle's algorithm on: plain h11 shows it (the control), our protocol turns it off.
+    # Nagle's algorithm on: uvicorn's own protocols show it (the controls), ours turn it off.
     async def accept_one() -> bool:
         listener = socket.socket(family=socket.AF_INET)
         listener.bind(("127.0.0.1", 0))
@@ -112,7 +122,7 @@ def test_connections_on_the_multi_worker_socket_get_tcp_nodelay(protocol: type[H
         config.load()
         seen: list[bool] = []
 
-        class Recording(protocol):  # type: ignore[misc, valid-type]
+        class Recording(protocol):  # type: ignore[valid-type, misc]
             def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
                 super().connection_made(transport)
                 option = transport.get_extra_info("socket").getsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY)
@@ -170,3 +180,52 @@ def test_serve_names_an_unusable_registry_once_in_the_log_and_in_readyz(kind: st
     assert reason in problems[0]["problem"]
     assert ready.status_code == 503
     assert ready.json()["error"] == {"code": "not_ready", "message": problems[0]["problem"]}
+
+
+@pytest.mark.parametrize("http", ["httptools", "h11"])
+def test_both_http_stacks_serve_the_same_answers(http: str, service_registry: ServiceRegistry, tmp_path: Path) -> None:
+    batch = load_harbourline_profiles().embedding[:16]
+    expected = Registry(service_registry.path).read_version(PROFILES, "live").artifact.apply(batch)
+    buffer = io.BytesIO()
+    np.save(buffer, batch)
+    log = tmp_path / "server.log"
+    with (
+        live_server(service_registry.path, names=[PROFILES], log=log, http=http) as live,
+        httpx.Client(base_url=live.base_url, timeout=30.0) as client,
+    ):
+        binary = client.post(f"/v1/erasers/{PROFILES}/apply", content=buffer.getvalue(), headers={"Content-Type": NPY})
+        as_json = client.post(f"/v1/erasers/{PROFILES}/apply", json={"vectors": batch.tolist()})
+        refused = client.post(f"/v1/erasers/{PROFILES}/apply", content=b"[", headers={"Content-Type": "text/csv"})
+    assert binary.status_code == 200
+    np.testing.assert_allclose(np.load(io.BytesIO(binary.content)), expected, atol=1e-6)
+    np.testing.assert_allclose(np.array(as_json.json()["vectors"]), expected, atol=1e-6)
+    assert refused.status_code == 415
+    assert refused.json()["error"]["code"] == "unsupported_media_type"
+
+
+@pytest.mark.parametrize(
+    ("arguments", "protocol", "loop"),
+    [
+        ((), "veil.server.protocol:NoDelayHttpToolsProtocol", "uvloop"),
+        (("--http", "httptools"), "veil.server.protocol:NoDelayHttpToolsProtocol", "uvloop"),
+        (("--http", "h11"), "veil.server.protocol:NoDelayH11Protocol", "asyncio"),
+    ],
+)
+def test_serve_runs_httptools_on_uvloop_unless_told_h11(
+    arguments: tuple[str, ...], protocol: str, loop: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    calls: list[dict[str, object]] = []
+    monkeypatch.setattr(run.uvicorn, "run", lambda app, **options: calls.append(options))
+    # serve_forever writes VEIL_... variables for its workers: set here first, monkeypatch removes them after.
+    for variable in ("VEIL_REGISTRY", "VEIL_ALIAS"):
+        monkeypatch.setenv(variable, "")
+    assert main(["serve", "--registry", str(tmp_path), "--workers", "2", *arguments]) == 0
+    (options,) = calls
+    assert (options["http"], options["loop"], options["workers"]) == (protocol, loop, 2)
+
+
+def test_serve_refuses_an_unknown_http_stack(capsys: pytest.CaptureFixture[str], tmp_path: Path) -> None:
+    with pytest.raises(SystemExit) as exit_:
+        main(["serve", "--registry", str(tmp_path), "--http", "zttp"])
+    assert exit_.value.code == 2
+    assert "invalid choice: 'zttp'" in capsys.readouterr().err

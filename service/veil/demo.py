@@ -6,14 +6,18 @@ embeddings carry the member's pronoun, which the search must not use.  The
 demo fits two erasers into a fresh registry on the profiles that signed up
 before March, audits the first on the March sign-ups and records that audit,
 promotes one, fits a third that guards the pronoun and the age bracket
-together (and their intersection), starts the service on a free loopback port, cleans the corpus
+together (and their intersection), starts the service on a free loopback
+port, cleans the corpus
 through the client, searches the raw index before and after (with search
 vectors, no re-index), re-indexes with ``veil apply`` and gets the same
 results, checks a normal and a shifted traffic sample for drift (and the
 third eraser's attributes one by one), moves profiles to a target per
 attribute, rolls back
 and keeps searching the raw index with the rolled-back version's search
-vectors while the new index is built, and stops the service.
+vectors while the new index is built, records the service's live check of
+the rolled-back version as a scheduled ``veil patrol`` would, stops the
+service, and writes that version's report with its fresh audit and live
+check.
 """
 
 from __future__ import annotations
@@ -39,15 +43,17 @@ from veil.cleaning.corpus import apply_to_file
 from veil.cleaning.index import read_index
 from veil.fitting.fresh_audit import audit_stored_version
 from veil.fitting.job import fit_version
+from veil.patrol.loop import run_patrol
 from veil.registry import Registry
 from veil.registry.card import attributes_text, card_verdict
-from veil.reporting import REPORT_FILE
+from veil.reporting import REPORT_FILE, version_report
 from veil.samples.harbourline import ProfileSample, load_harbourline_profiles
 from veil.samples.sources import load_labelled_sample
 from veil_client import VeilClient
 
 DEMO_REGISTRY = Path("demo-registry")
 DEMO_DATA = Path("demo-data")
+DEMO_REPORT = Path("demo-report.html")
 DEMO_INDEXES = Path("demo-indexes")
 NAME = "profiles-minilm"
 # A second eraser that guards the pronoun and the age bracket together, and their intersection.
@@ -257,6 +263,12 @@ def main() -> None:
             f"{_same(switched, interim)} of {query_rows.size} queries; reads switch to it"
         )
 
+        print("\n6. Record the service's live check for the auditors (what a scheduled veil patrol does)")
+        run_patrol(
+            registry, NAME, service=base, token=None, sample=None, every=60.0, rounds=1,
+            say=lambda line: print(f"   {line}"),
+        )  # fmt: skip
+
     print("\nHistory of the live alias:")
     for entry in registry.history(NAME):
         print(
@@ -264,7 +276,12 @@ def main() -> None:
         )
     print("\nReports:")
     for version in registry.versions(NAME):
-        print(f"   {DEMO_REGISTRY / NAME / 'versions' / version.id / REPORT_FILE}  ({version.method})")
+        print(f"   {DEMO_REGISTRY / NAME / 'versions' / version.id / REPORT_FILE}  ({version.method}, at fitting time)")
+    DEMO_REPORT.write_text(version_report(registry, NAME, leace.version_id), encoding="utf-8")
+    print(
+        f"   {DEMO_REPORT}  (LEACE with its fresh audit and live check: what an auditor reads; veil report writes it)"
+    )
+    print(f"Live checks: .venv/bin/veil checks {NAME} --registry {DEMO_REGISTRY}")
     print(f"\nDone in {time.perf_counter() - started:.0f} s.")
     print(f"Try: .venv/bin/veil versions {NAME} --registry {DEMO_REGISTRY}")
     print(

@@ -7,6 +7,8 @@ from collections.abc import Iterator
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
+from veil.audit.glossary import MEANINGS, PROBE_MODELS, REGRESSION_MODELS
+
 #: Every probe the audit can run, in the order tables list them (and ties for the strongest are broken).
 PROBES = ("linear", "quadratic", "kernel", "trees", "mlp")
 PROBE_LABELS = {
@@ -16,9 +18,30 @@ PROBE_LABELS = {
     "trees": "boosted-trees probe",
     "mlp": "MLP probe",
 }
+#: The keys of :meth:`RankingFairness.rows`, in order.
+RANKING_KEYS = ("ranking_share", "ranking_exposure", "max_skew", "absent_class", "ndkl")
 #: The protocol :func:`veil.audit.audit` follows.
 HELD_OUT_KFOLD = "k-fold cross-validation within held-out rows"
 FRESH_KFOLD = "k-fold cross-validation within a fresh sample"
+
+
+@dataclass(frozen=True)
+class FigureRow:
+    """One figure of an audit, as a table shows it: what it is, its values, what it means and its chance level.
+
+    ``key`` names the kind of figure (see :mod:`veil.audit.glossary`); ``chance`` is
+    what the figure reads when erasure leaves nothing to read (or the value
+    that means "unchanged"), as text; ``group`` gathers related rows (one
+    probe's, the costs, the neighbours, the rankings).
+    """
+
+    key: str
+    label: str
+    before: str
+    after: str
+    meaning: str
+    chance: str
+    group: str
 
 
 @dataclass(frozen=True)
@@ -214,6 +237,24 @@ class RankingFairness:
             (f"NDKL@{k}", f"{self.ndkl_before:.4f}", f"{self.ndkl_after:.4f}"),
         ]  # fmt: skip
 
+    def chance_levels(self) -> list[str]:
+        """What each of :meth:`rows` reads when results ignore the attribute, in the same order."""
+        base = f"base rates {_shares(self.base_rate)}"
+        exact = "0 at exactly the base rates; above 0 by chance"
+        return [base, base, exact, f"{_absent_by_chance(self.base_rate, self.k):.3f} by chance", exact]
+
+
+def _absent_by_chance(base_rate: tuple[float, ...], k: int) -> float:
+    """The chance that ``k`` results drawn at the base rates miss some class (inclusion-exclusion over classes)."""
+    classes = len(base_rate)
+    if classes > 12:  # 4096 subsets at most; beyond, the union bound (an upper bound) is close enough to read
+        return min(1.0, sum((1 - p) ** k for p in base_rate))
+    total = 0.0
+    for subset in range(1, 1 << classes):
+        members = [base_rate[c] for c in range(classes) if subset >> c & 1]
+        total += (-1) ** (len(members) + 1) * max(0.0, 1 - sum(members)) ** k
+    return total
+
 
 def _mae(score: RegressionScore) -> str:
     """The mean absolute error with its interval, against the mean predictor's."""
@@ -317,70 +358,89 @@ class AuditReport:
     def from_json(cls, text: str) -> AuditReport:
         return cls.from_dict(json.loads(text))
 
-    def format_table(self) -> str:
-        """A plain-text before/after table for terminals and READMEs."""
-        rows: list[tuple[str, str, str]] = []
-
+    def figure_rows(self) -> list[FigureRow]:
+        """Every figure of the audit before and after erasure, with what it means and its chance level."""
+        rows: list[FigureRow] = []
         chance = self.balanced_chance
         balanced = "balanced accuracy" + ("" if chance is None else f" (chance {chance:.3f})")
-
-        def probe(label: str, before: object, after: object) -> None:
-            if isinstance(before, ProbeScore) and isinstance(after, ProbeScore):
-                rows.append((f"{label} accuracy", before.with_interval(), after.with_interval()))
-                rows.append(
-                    (f"{label} {balanced}", f"{before.balanced_accuracy:.3f}", f"{after.balanced_accuracy:.3f}")
-                )
-                if self.classes and before.recall is not None and after.recall is not None:
-                    rows.append((f"{label} recall {' / '.join(self.classes)}", _recall(before), _recall(after)))
-                rows.append((f"{label} |accuracy - majority|", f"{before.gap:.3f}", f"{after.gap:.3f}"))
-            elif isinstance(before, RegressionScore) and isinstance(after, RegressionScore):
-                rows.append((f"{label} R²", before.with_interval(), after.with_interval()))
-                if before.mae is not None and after.mae is not None:
-                    rows.append((f"{label} mean absolute error", _mae(before), _mae(after)))
-
         lk = self.leakage
         majority = lk.linear_before.majority if isinstance(lk.linear_before, ProbeScore) else None
+
+        group = "baseline"
+
+        def row(key: str, label: str, before: str, after: str, level: str, model: str = "") -> None:
+            rows.append(FigureRow(key, label, before, after, MEANINGS[key].format(model=model), level, group))
+
+        def probe(name: str, before: object, after: object) -> None:
+            label, model = PROBE_LABELS[name], PROBE_MODELS[name]
+            if isinstance(before, ProbeScore) and isinstance(after, ProbeScore):
+                level = f"majority {after.majority:.3f}"
+                row("accuracy", f"{label} accuracy", before.with_interval(), after.with_interval(), level, model)
+                row(
+                    "balanced", f"{label} {balanced}", f"{before.balanced_accuracy:.3f}",
+                    f"{after.balanced_accuracy:.3f}", "" if chance is None else f"{chance:.3f}",
+                )  # fmt: skip
+                if self.classes and before.recall is not None and after.recall is not None:
+                    row(
+                        "recall", f"{label} recall {' / '.join(self.classes)}", _recall(before), _recall(after),
+                        "" if chance is None else f"{chance:.3f} on average",
+                    )  # fmt: skip
+                row("gap", f"{label} |accuracy - majority|", f"{before.gap:.3f}", f"{after.gap:.3f}", "0")
+            elif isinstance(before, RegressionScore) and isinstance(after, RegressionScore):
+                model = REGRESSION_MODELS.get(name, model)
+                row("r2", f"{label} R²", before.with_interval(), after.with_interval(), "0", model)
+                if before.mae is not None and after.mae is not None:
+                    row("mae", f"{label} mean absolute error", _mae(before), _mae(after), "the mean predictor's", model)
+
         if majority is not None:
-            rows.append(("majority baseline", f"{majority:.3f}", f"{majority:.3f}"))
+            row("majority", "majority baseline", f"{majority:.3f}", f"{majority:.3f}", f"{majority:.3f}")
         for name, before, after in lk.probes():
-            probe(PROBE_LABELS[name], before, after)
+            group = PROBE_LABELS[name]
+            probe(name, before, after)
+        group = "linear guardedness"
         if lk.guardedness_gap_before is not None and lk.guardedness_gap_after is not None:
-            floor = "" if lk.guardedness_noise_floor is None else f" (noise {lk.guardedness_noise_floor:.2f})"
-            rows.append(
-                (
-                    "max whitened class-mean gap" + floor,
-                    f"{lk.guardedness_gap_before:.3f}",
-                    f"{lk.guardedness_gap_after:.3f}",
-                )
-            )
+            noise = lk.guardedness_noise_floor
+            floor = "" if noise is None else f" (noise {noise:.2f})"
+            row(
+                "class_mean_gap", "max whitened class-mean gap" + floor, f"{lk.guardedness_gap_before:.3f}",
+                f"{lk.guardedness_gap_after:.3f}", "" if noise is None else f"noise {noise:.2f}",
+            )  # fmt: skip
         ut = self.utility
-        rows.append(("relative squared distortion", "0", f"{ut.relative_distortion:.4f}"))
-        rows.append(("mean cosine(x, x')", "1", f"{ut.mean_cosine:.4f}"))
-        rows.append(("10-NN overlap with raw", "1", f"{ut.knn_overlap_at_10:.3f}"))
+        group = "what erasure costs"
+        row("distortion", "relative squared distortion", "0", f"{ut.relative_distortion:.4f}", "0 is unchanged")
+        row("cosine", "mean cosine(x, x')", "1", f"{ut.mean_cosine:.4f}", "1 is unchanged")
+        row("knn_overlap", "10-NN overlap with raw", "1", f"{ut.knn_overlap_at_10:.3f}", "1 is unchanged")
         if ut.task_accuracy_before is not None and ut.task_accuracy_after is not None:
-            rows.append(("task probe accuracy", f"{ut.task_accuracy_before:.3f}", f"{ut.task_accuracy_after:.3f}"))
+            row(
+                "task", "task probe accuracy", f"{ut.task_accuracy_before:.3f}", f"{ut.task_accuracy_after:.3f}",
+                "keep it near its raw value",
+            )  # fmt: skip
         if ut.tpr_gap_rms_before is not None and ut.tpr_gap_rms_after is not None:
-            rows.append(("task TPR gap (RMS)", f"{ut.tpr_gap_rms_before:.3f}", f"{ut.tpr_gap_rms_after:.3f}"))
+            row("tpr_gap", "task TPR gap (RMS)", f"{ut.tpr_gap_rms_before:.3f}", f"{ut.tpr_gap_rms_after:.3f}", "0")
         if self.retrieval is not None:
             rt = self.retrieval
-            base = f" (base {rt.attribute_base_rate:.3f})"
-            rows.append(
-                (
-                    "10-NN sharing attribute" + base,
-                    f"{rt.attribute_share_before:.3f}",
-                    f"{rt.attribute_share_after:.3f}",
-                )
-            )
+            group = "nearest neighbours"
+            row(
+                "nn_attribute", f"10-NN sharing attribute (base {rt.attribute_base_rate:.3f})",
+                f"{rt.attribute_share_before:.3f}", f"{rt.attribute_share_after:.3f}",
+                f"base rate {rt.attribute_base_rate:.3f}",
+            )  # fmt: skip
             if rt.task_share_before is not None and rt.task_share_after is not None and rt.task_base_rate is not None:
-                rows.append(
-                    (
-                        f"10-NN sharing task (base {rt.task_base_rate:.3f})",
-                        f"{rt.task_share_before:.3f}",
-                        f"{rt.task_share_after:.3f}",
-                    )
-                )
+                row(
+                    "nn_task", f"10-NN sharing task (base {rt.task_base_rate:.3f})", f"{rt.task_share_before:.3f}",
+                    f"{rt.task_share_after:.3f}", f"base rate {rt.task_base_rate:.3f}",
+                )  # fmt: skip
         if self.ranking is not None:
-            rows += self.ranking.rows(self.classes)
+            group = "rankings"
+            for key, (label, before_text, after_text), level in zip(
+                RANKING_KEYS, self.ranking.rows(self.classes), self.ranking.chance_levels(), strict=True
+            ):
+                row(key, label, before_text, after_text, level)
+        return rows
+
+    def format_table(self) -> str:
+        """A plain-text before/after table for terminals and READMEs."""
+        rows = [(row.label, row.before, row.after) for row in self.figure_rows()]
         width = max(len(r[0]) for r in rows)
         column = max(21, *(len(text) for row in rows for text in row[1:]))
         fresh = self.protocol is not None and self.protocol.scheme == FRESH_KFOLD

@@ -250,17 +250,12 @@ def verify(args: argparse.Namespace) -> int:
 
 
 def report(args: argparse.Namespace) -> int:
-    from veil.reporting import PLOT_DATA_FILE, PlotData, render_report
+    from veil.reporting import version_report
 
     out = Path(args.out)
     if not out.parent.is_dir():
         raise DataError(f"the output folder {out.parent} does not exist")
-    registry = Registry(args.registry)
-    stored = registry.read_version(args.name, args.version)
-    plots = PlotData.from_bytes(stored.files[PLOT_DATA_FILE])
-    audits = [(record.number, record.body) for record in registry.records(args.name, stored.id, "audits")]
-    page = render_report(stored.id, dict(stored.card), stored.artifact.history, plots, audits)
-    out.write_text(page, encoding="utf-8")
+    out.write_text(version_report(Registry(args.registry), args.name, args.version), encoding="utf-8")
     print(out)
     return 0
 
@@ -289,7 +284,7 @@ def serve(args: argparse.Namespace) -> int:
 
     serve_forever(
         registry=args.registry, names=args.names or [], alias=args.alias, host=args.host, port=args.port,
-        workers=args.workers,
+        workers=args.workers, http=args.http,
     )  # fmt: skip
     return 0
 

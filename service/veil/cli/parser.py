@@ -161,6 +161,16 @@ def _sample_options(command: argparse.ArgumentParser) -> None:
     command.add_argument("--chunk-rows", type=int, default=STREAM_CHUNK_ROWS, help="rows per chunk when streaming")
 
 
+def _probes_option(command: argparse.ArgumentParser) -> None:
+    """``--probes``: which probes an audit runs, the same for ``veil fit`` and ``veil audit``."""
+    command.add_argument(
+        "--probes",
+        choices=("all", "linear"),
+        default="all",
+        help="audit with every probe (linear, quadratic, RBF kernel, boosted trees, MLP), or the linear one only",
+    )
+
+
 def _band(text: str) -> tuple[str, tuple[float, float]]:
     """``FIGURE=WARN,ALERT`` as ``(figure, (warn, alert))``."""
     figure, _, levels = text.partition("=")
@@ -198,12 +208,7 @@ def build_parser() -> VeilParser:
     fit.add_argument("--holdout", type=float, default=0.2, help="share of rows held out for the audit (default 0.2)")
     fit.add_argument("--seed", type=int, default=0, help="seeds the split, probes and randomised methods")
     fit.add_argument("--normalize", action="store_true", help="re-normalise served vectors to unit length")
-    fit.add_argument(
-        "--probes",
-        choices=("all", "linear"),
-        default="all",
-        help="audit with every probe (linear, quadratic, RBF kernel, boosted trees, MLP), or the linear one only",
-    )
+    _probes_option(fit)
     fit.add_argument(
         "--sweep",
         nargs="?",
@@ -259,12 +264,7 @@ def build_parser() -> VeilParser:
     audit.add_argument("name")
     audit.add_argument("version", help="a version id, its sequence number (3 or v3), or an alias")
     _sample_options(audit)
-    audit.add_argument(
-        "--probes",
-        choices=("all", "linear"),
-        default="all",
-        help="audit with every probe (linear, quadratic, RBF kernel, boosted trees, MLP), or the linear one only",
-    )
+    _probes_option(audit)
     audit.add_argument("--seed", type=int, default=0, help="seeds the folds, the probes and the row draw")
     audit.add_argument("--rows", type=int, help="audit a hash-drawn share of about this many rows (default: all)")
     audit.add_argument("--json", action="store_true", help="print the stored record as JSON")
@@ -387,5 +387,11 @@ def build_parser() -> VeilParser:
     serve.add_argument("--host", default="127.0.0.1")
     serve.add_argument("--port", type=int, default=8080)
     serve.add_argument("--workers", type=int, default=1, help="uvicorn worker processes")
+    serve.add_argument(
+        "--http",
+        choices=("httptools", "h11"),
+        default="httptools",
+        help="HTTP stack: httptools on uvloop (default, C parsers) or h11 on asyncio (pure Python, slower)",
+    )
     serve.set_defaults(handler="serve")
     return parser

@@ -26,7 +26,7 @@ from numpy.typing import NDArray
 from veil.audit import audit_artifact
 from veil.audit.report import AuditReport
 from veil.checks.verdict import Verdict
-from veil.defaults import STREAM_CHUNK_ROWS
+from veil.defaults import AUDIT_ROWS, STREAM_CHUNK_ROWS
 from veil.errors import DataError
 from veil.fitting.store import audit_each_attribute, audit_folds
 from veil.maps.artifact import MapArtifact
@@ -100,7 +100,8 @@ def audit_stored_version(
     seed : int, default=0
         Seeds the folds, the probes and the row draw.
     max_rows : int, optional
-        Audit a hash-drawn share of about this many rows (all rows without it).
+        Audit a hash-drawn share of about this many rows.  Default: every row of a sample in memory, about
+        :data:`veil.defaults.AUDIT_ROWS` of a streamed one (whose rows may not fit in memory).
 
     Raises
     ------
@@ -109,6 +110,8 @@ def audit_stored_version(
     """
     if max_rows is not None and max_rows < 2:
         raise DataError("an audit needs at least 2 rows")
+    if max_rows is None and len(sample.partitions(chunk_rows)) > 1:
+        max_rows = AUDIT_ROWS
     stored = registry.read_version(name, reference)
     card = stored.card
     if sample.fingerprint == card["data"]["fingerprint_sha256"]:
@@ -129,6 +132,8 @@ def audit_stored_version(
         x, z, task = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows)
     attributes: list[tuple[str, AuditReport]] = []
     notes = []
+    if x.shape[0] < sample.labelled_rows:
+        notes.append(f"audited on a hash-drawn sample of {x.shape[0]} of the {sample.labelled_rows} rows")
     if is_table(z):
         attributes = _audit_each(stored.artifact, x, z, task, nonlinear=nonlinear, seed=seed)
         report = attributes[0][1]

@@ -19,6 +19,7 @@ from threadpoolctl import threadpool_limits
 from veil.registry import Registry
 from veil.server.catalog import Catalog
 from veil.server.errors import install_error_handlers
+from veil.server.hotpath import ApplyHotPath
 from veil.server.logs import configure_logging
 from veil.server.metrics import ServiceMetrics
 from veil.server.middleware import RequestRecorder
@@ -71,6 +72,8 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
         app.include_router(router)
     if settings.benchmark_echo:
         app.include_router(bench.router)
+    # Innermost, so that CORS and the request recorder see the hot path's requests like any other.
+    app.add_middleware(ApplyHotPath, route=erasers.apply_route())
     if settings.cors_origins:
         app.add_middleware(CORSMiddleware, allow_origins=settings.cors_origins, allow_methods=["GET", "POST"])
     app.add_middleware(RequestRecorder, metrics=metrics)

@@ -13,6 +13,7 @@ native array.  Nothing is ever unpickled.
 from __future__ import annotations
 
 import ast
+import functools
 import io
 from typing import Any
 
@@ -53,6 +54,29 @@ def _float_dtype(descr: object) -> tuple[np.dtype[Any], np.dtype[Any]]:
     raise ServiceError("invalid_vectors", f"the .npy dtype must be float16, float32 or float64, got {descr!r}")
 
 
+@functools.lru_cache(maxsize=256)
+def _header(text: bytes) -> tuple[np.dtype[Any], np.dtype[Any], bool, tuple[int, int]]:
+    """The dtype sent, the dtype served, the order and the shape a ``.npy`` header declares, checked strictly.
+
+    Cached by the header's bytes: callers send the same few shapes again and
+    again, and evaluating the dictionary costs more than erasing one vector.
+    A header that fails a check raises each time (exceptions are not cached).
+    """
+    try:
+        header = ast.literal_eval(text.decode("latin1"))
+    except (ValueError, SyntaxError, MemoryError, RecursionError):
+        raise ServiceError("malformed_body", "the .npy header is not a valid dictionary") from None
+    if not isinstance(header, dict) or set(header) != {"descr", "fortran_order", "shape"}:
+        raise ServiceError("malformed_body", "the .npy header must hold exactly descr, fortran_order and shape")
+    descr, fortran, shape = header["descr"], header["fortran_order"], header["shape"]
+    wire, served = _float_dtype(descr)
+    if not isinstance(fortran, bool):
+        raise ServiceError("malformed_body", f"the .npy fortran_order must be True or False, got {fortran!r}")
+    if not (isinstance(shape, tuple) and len(shape) == 2 and all(isinstance(s, int) and s >= 0 for s in shape)):
+        raise ServiceError("invalid_vectors", f"the .npy array must be 2-D, got shape {shape!r}")
+    return wire, served, fortran, shape
+
+
 def parse_npy(body: bytes) -> NDArray[np.floating]:
     """A strict reader of one 2-D float ``.npy`` array (format 1.0, 2.0 or 3.0)."""
     if len(body) < 10 or body[:6] != _MAGIC:
@@ -68,18 +92,7 @@ def parse_npy(body: bytes) -> NDArray[np.floating]:
         raise ServiceError("malformed_body", f"unsupported .npy format version {major}")
     if header_length > _MAX_HEADER or start + header_length > len(body):
         raise ServiceError("malformed_body", "the .npy header is truncated or implausibly long")
-    try:
-        header = ast.literal_eval(body[start : start + header_length].decode("latin1"))
-    except (ValueError, SyntaxError, MemoryError, RecursionError):
-        raise ServiceError("malformed_body", "the .npy header is not a valid dictionary") from None
-    if not isinstance(header, dict) or set(header) != {"descr", "fortran_order", "shape"}:
-        raise ServiceError("malformed_body", "the .npy header must hold exactly descr, fortran_order and shape")
-    descr, fortran, shape = header["descr"], header["fortran_order"], header["shape"]
-    wire, served = _float_dtype(descr)
-    if not isinstance(fortran, bool):
-        raise ServiceError("malformed_body", f"the .npy fortran_order must be True or False, got {fortran!r}")
-    if not (isinstance(shape, tuple) and len(shape) == 2 and all(isinstance(s, int) and s >= 0 for s in shape)):
-        raise ServiceError("invalid_vectors", f"the .npy array must be 2-D, got shape {shape!r}")
+    wire, served, fortran, shape = _header(body[start : start + header_length])
     data_start = start + header_length
     expected = shape[0] * shape[1] * wire.itemsize
     if len(body) - data_start != expected:
@@ -129,10 +142,22 @@ def load_json(body: bytes) -> Any:
         raise ServiceError("malformed_body", f"the body is not valid JSON: {error}") from None
 
 
-def npy_bytes(matrix: NDArray[np.floating]) -> bytes:
+@functools.lru_cache(maxsize=256)
+def _npy_header(descr: str, shape: tuple[int, ...]) -> bytes:
+    """The ``.npy`` header numpy writes for a C-order array of this dtype and shape (format 1.0)."""
     buffer = io.BytesIO()
-    np.save(buffer, np.ascontiguousarray(matrix), allow_pickle=False)
+    np.lib.format.write_array_header_1_0(buffer, {"descr": descr, "fortran_order": False, "shape": shape})
     return buffer.getvalue()
+
+
+def npy_bytes(matrix: NDArray[np.floating]) -> bytes:
+    """The ``.npy`` file of a matrix, as ``np.save`` writes it, in one copy of the data.
+
+    The header is built once per dtype and shape (``np.save`` formats it
+    anew each time, which costs more than erasing a vector).
+    """
+    matrix = np.ascontiguousarray(matrix)
+    return b"".join((_npy_header(matrix.dtype.str, matrix.shape), matrix.data.cast("B")))
 
 
 def json_bytes(content: dict[str, Any]) -> bytes:

@@ -41,10 +41,20 @@ class Reservoir:
         self._lock = threading.Lock()
 
     def add(self, batch: NDArray[np.floating]) -> None:
-        if self.capacity == 0 or batch.shape[1] != self.dim:
+        self.add_many([batch])
+
+    def add_many(self, batches: list[NDArray[np.floating]]) -> None:
+        """Offer batches in order, as one stream: the same sample as adding them one by one.
+
+        Only the candidate rows are gathered from the batches, so folding in
+        many batches at once costs about one batch's work, not a copy of them all.
+        """
+        batches = [batch for batch in batches if batch.shape[1] == self.dim]
+        if self.capacity == 0 or not batches:
             return
         with self._lock:
-            n = batch.shape[0]
+            sizes = [batch.shape[0] for batch in batches]
+            n = sum(sizes)
             fill = min(max(self.capacity - self.seen, 0), n)
             rest = np.arange(fill, n)
             # Rows offered while fewer than k have been are all candidates; after that, Algorithm R's draw.
@@ -52,7 +62,7 @@ class Reservoir:
             chosen = slots < self.capacity
             candidates = np.concatenate([np.arange(fill), rest[chosen]])
             if candidates.size:
-                self._keep(np.asarray(batch[candidates], dtype=np.float32), slots[chosen])
+                self._keep(_gather(batches, sizes, candidates, self.dim), slots[chosen])
             self.seen += n
 
     def _keep(self, rows: NDArray[np.float32], slots: NDArray[np.int64]) -> None:
@@ -91,18 +101,66 @@ class Reservoir:
             return self._rows[: self.held].copy()
 
 
-class ReservoirBank:
-    """One reservoir per eraser name, created on first traffic (and anew if the dimension changes)."""
+def _gather(
+    batches: list[NDArray[np.floating]], sizes: list[int], rows: NDArray[np.int64], dim: int
+) -> NDArray[np.float32]:
+    """Rows ``rows`` (ascending) of the batches stacked, without stacking them."""
+    if len(batches) == 1:
+        return np.asarray(batches[0][rows], dtype=np.float32)
+    starts = np.cumsum([0, *sizes])
+    owner = np.searchsorted(starts, rows, side="right") - 1
+    out = np.empty((rows.size, dim), dtype=np.float32)
+    for index in np.unique(owner).tolist():
+        mine = owner == index
+        out[mine] = batches[index][rows[mine] - starts[index]]
+    return out
 
-    def __init__(self, capacity: int) -> None:
+
+class ReservoirBank:
+    """One reservoir per eraser name, created on first traffic (and anew if the dimension changes).
+
+    A request only appends its batch to a list (:meth:`add`): sampling
+    happens when the list holds a reservoir's worth of rows, or when the
+    sample is read (:meth:`get`), for many batches at once.  At one vector
+    per request, sampling each batch as it came cost more than erasing it;
+    the rows waiting are at most about ``capacity`` per eraser.
+    """
+
+    def __init__(self, capacity: int, *, seed: int = 0) -> None:
         self.capacity = capacity
+        self.seed = seed
         self._reservoirs: dict[str, Reservoir] = {}
+        self._pending: dict[str, list[NDArray[np.floating]]] = {}
+        self._pending_rows: dict[str, int] = {}
+        self._lock = threading.Lock()
 
     def add(self, name: str, batch: NDArray[np.floating]) -> None:
-        reservoir = self._reservoirs.get(name)
-        if reservoir is None or reservoir.dim != batch.shape[1]:
-            reservoir = self._reservoirs[name] = Reservoir(self.capacity, batch.shape[1])
-        reservoir.add(batch)
+        """Queue a batch of raw vectors for the eraser's reservoir (cheap: the hot path calls it)."""
+        if self.capacity == 0:
+            return
+        with self._lock:
+            pending = self._pending.setdefault(name, [])
+            if pending and pending[0].shape[1] != batch.shape[1]:
+                self._fold(name)  # a new dimension starts a new reservoir: the old traffic goes to the old one
+                pending = self._pending.setdefault(name, [])
+            pending.append(batch)
+            rows = self._pending_rows[name] = self._pending_rows.get(name, 0) + batch.shape[0]
+            if rows >= self.capacity:
+                self._fold(name)
 
     def get(self, name: str) -> Reservoir | None:
-        return self._reservoirs.get(name)
+        """The eraser's reservoir with every batch offered so far folded in."""
+        with self._lock:
+            self._fold(name)
+            return self._reservoirs.get(name)
+
+    def _fold(self, name: str) -> None:
+        batches = self._pending.pop(name, None)
+        self._pending_rows.pop(name, None)
+        if not batches:
+            return
+        dim = batches[0].shape[1]
+        reservoir = self._reservoirs.get(name)
+        if reservoir is None or reservoir.dim != dim:
+            reservoir = self._reservoirs[name] = Reservoir(self.capacity, dim, seed=self.seed)
+        reservoir.add_many(batches)

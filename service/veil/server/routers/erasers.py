@@ -8,6 +8,7 @@ from typing import Annotated, Any
 import numpy as np
 from fastapi import APIRouter, Depends, Query, Request
 from fastapi.concurrency import run_in_threadpool
+from fastapi.routing import APIRoute
 from numpy.typing import NDArray
 from starlette.responses import Response
 
@@ -147,8 +148,16 @@ async def apply(name: EraserName, request: Request) -> Response:
     vectors, _ = decode_batch(call.body, call.media)
     cleaned = served.apply(vectors)
     state.reservoirs.add(name, vectors)
-    state.metrics.vectors.labels(name, served.version_id).inc(vectors.shape[0])
+    state.metrics.cleaned(name, served.version_id, vectors.shape[0])
     return encode_batch(cleaned, call.answer, served)
+
+
+def apply_route() -> APIRoute:
+    """The route of :func:`apply` (:class:`veil.server.hotpath.ApplyHotPath` calls it directly)."""
+    for route in router.routes:
+        if isinstance(route, APIRoute) and route.endpoint is apply:
+            return route
+    raise LookupError("the apply route is not on the router")
 
 
 @router.post(
