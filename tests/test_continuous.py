@@ -9,13 +9,15 @@ planted linear model (``var(signal) / (var(signal) + var(noise))``).
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
+import jsonschema
 import numpy as np
 import pytest
 from fastapi.testclient import TestClient
 from numpy.typing import NDArray
-from sklearn.linear_model import RidgeCV
+from sklearn.linear_model import LinearRegression, RidgeCV
 from sklearn.metrics import mean_absolute_error, r2_score
 from sklearn.model_selection import KFold, cross_val_predict
 from sklearn.pipeline import make_pipeline
@@ -29,7 +31,9 @@ from veil.checks.verdict import judge_audit
 from veil.errors import DataError
 from veil.fitting.job import fit_version
 from veil.registry import Registry
+from veil.registry.evidence import version_evidence
 from veil.samples.sources import load_labelled_sample
+from veil.samples.splitting import holdout_mask
 from veil_client import VeilClient
 
 from .service_fixtures import app_for
@@ -164,3 +168,29 @@ def test_bad_continuous_attributes_are_refused_by_name(tmp_path: Path, age: NDAr
     with pytest.raises(DataError, match=message):
         fit()
     assert not (tmp_path / "registry" / "ages").exists()
+
+
+def test_a_version_may_guard_a_continuous_attribute_alone(tmp_path: Path) -> None:
+    path = _write(tmp_path, 1200)
+    sample = load_labelled_sample(path, attribute="age_years", continuous=["age_years"])
+    registry = Registry(tmp_path / "registry")
+    outcome = fit_version(sample, registry=registry, name="ages", method="leace", nonlinear=False, alias="live")
+    assert outcome.card["attribute"]["classes"] == []
+    assert [entry["kind"] for entry in outcome.card["attributes"]] == ["continuous"]
+    assert outcome.card["audit"]["leakage"]["linear_after"]["r2"] < 0.05
+    x, ages, _ = _ages(1200, seed=3)
+    held = holdout_mask(1200, fraction=0.2, seed=0)
+    # E[x | age = 30] by the linear model of x on age, as scikit-learn's LinearRegression fits it on the fitting
+    # rows: the counterfactual moves the fitting rows' cleaned mean onto it.
+    expected = LinearRegression().fit(ages[~held, None], x[~held]).predict(np.array([[30.0]]))[0]
+    with TestClient(app_for(tmp_path / "registry")) as http, VeilClient(http_client=http) as client:
+        moved = client.counterfactual("ages", x[~held], {"age_years": 30})
+        checked = client.drift("ages", x[:400])
+    np.testing.assert_allclose(moved.vectors.mean(0), expected, atol=1e-4)
+    assert checked["labels"] == "none"
+    assert checked["prior_shift"] is None
+    assert checked["attributes"]["age_years"]["labels"] == "pseudo-values"
+    # The evidence document of such a version still validates against its schema (the jsonschema library).
+    schema = json.loads((Path(__file__).resolve().parents[1] / "docs" / "version-evidence.schema.json").read_text())
+    document = json.loads(json.dumps(version_evidence(registry, "ages", "live")))
+    jsonschema.Draft202012Validator(schema).validate(document)

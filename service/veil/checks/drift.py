@@ -139,18 +139,18 @@ def check_drift(
         headline_labels = by_attribute.get(known[0], labels if isinstance(labels, list) else None)
     else:
         headline_labels = labels if isinstance(labels, list) else None
-    headline = _class_figures(
+    # A version whose attributes are all continuous has no classes: its figures are in ``attributes`` only.
+    headline = None if not classes else _class_figures(
         x, erased, whitening, reference.mean, classes, reference.class_priors,
         _codes(headline_labels, classes, n, reference.probe_codes, what="label"), random_state,
     )  # fmt: skip
-    source = "labels" if headline_labels is not None else "pseudo-labels"
-    codes = headline.codes
+    source = "none" if headline is None else "labels" if headline_labels is not None else "pseudo-labels"
     attribute_figures: dict[str, dict[str, Any]] = {}
     for attribute in reference.attributes:
         attribute_classes = attribute.classes.tolist()
         given = by_attribute.get(attribute.name, headline_labels if attribute.name == known[0] else None)
         # The first attribute's figures are the headline's (its reference is the top-level one).
-        figures_of = headline if attribute.name == known[0] else _class_figures(
+        figures_of = headline if headline is not None and attribute.name == known[0] else _class_figures(
             x, erased, whitening, reference.mean, attribute_classes, attribute.class_priors,
             _codes(given, attribute_classes, n, attribute.probe_codes, what=f"{attribute.name} label"), random_state,
         )  # fmt: skip
@@ -162,13 +162,16 @@ def check_drift(
         attribute_figures[continuous.name] = _continuous_figures(
             x, erased, continuous, by_attribute.get(continuous.name), random_state
         )
-    prior_shift, leakage, leakage_gap = headline.prior_shift, headline.leakage, headline.leakage_gap
-    class_mean_gap, shares = headline.class_mean_gap, headline.shares
-
-    queries = None
-    if n > RANKING_QUERIES:
-        queries = np.sort(np.random.default_rng(random_state).choice(n, RANKING_QUERIES, replace=False))
-    ranking = ranking_before_after(x, np.asarray(erased), codes, RANKING_K, queries=queries)
+    prior_shift = leakage_gap = class_mean_gap = None
+    leakage = class_shares = ranking = None
+    if headline is not None:
+        prior_shift, leakage, leakage_gap = headline.prior_shift, headline.leakage, headline.leakage_gap
+        class_mean_gap = headline.class_mean_gap
+        class_shares = {classes[i]: float(headline.shares[i]) for i in range(len(classes))}
+        queries = None
+        if n > RANKING_QUERIES:
+            queries = np.sort(np.random.default_rng(random_state).choice(n, RANKING_QUERIES, replace=False))
+        ranking = ranking_before_after(x, np.asarray(erased), headline.codes, RANKING_K, queries=queries)
 
     figures = {
         "mean_shift": max(0.0, mean_raw - mean_noise),
@@ -178,10 +181,11 @@ def check_drift(
         "leakage_gap": leakage_gap,
     }
     judged = [("", figure, value) for figure, value in figures.items()]
-    # Every attribute of several is judged by the same bands (the first one's figures are the headline's).
+    # Every attribute of several is judged by the same bands (the first categorical one's figures are the headline's).
     judged += [
         (f"{name}: ", figure, entry[figure])
-        for name, entry in list(attribute_figures.items())[1:]
+        for name, entry in attribute_figures.items()
+        if headline is None or name != known[0]
         for figure in ("prior_shift", "leakage_gap")
         if figure in entry
     ]
@@ -206,7 +210,7 @@ def check_drift(
         erased_variance_share=share,
         erased_variance_ratio=ratio,
         prior_shift=prior_shift,
-        class_shares={classes[i]: float(shares[i]) for i in range(len(classes))},
+        class_shares=class_shares,
         leakage=leakage,
         leakage_gap=leakage_gap,
         class_mean_gap=class_mean_gap,

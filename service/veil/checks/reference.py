@@ -185,6 +185,10 @@ class ReferenceStatistics:
         if attributes:
             first = attributes[0]
             priors, means, weights, bias = first.class_priors, first.class_means, first.probe_weights, first.probe_bias
+        elif continuous:
+            # Every attribute is continuous: no classes, and each attribute's reference is in ``continuous``.
+            d = artifact.map.dim
+            priors, means, weights, bias = np.zeros(0), np.zeros((0, d)), np.zeros((0, d)), np.zeros(0)
         else:
             if artifact.class_priors is None or artifact.class_means is None:
                 raise ValueError("reference statistics need a categorical attribute")

@@ -154,7 +154,7 @@ def fit_version(
     # Several attributes (or a continuous one) come as a table, read in memory: one partition, loaded already.
     table = not streamed and bool(partitions) and is_table(partitions[0].load().attribute)
     if table:
-        _check_table_options(method, eraser, sweep, partitions[0].load().attribute)
+        _check_table_options(method, eraser, sweep)
     # A sweep's points are configured (and checked) before the pass too: the pass accumulates what any needs.
     candidates = [eraser]
     if sweep:
@@ -319,13 +319,8 @@ def _local_pass(
     return total
 
 
-def _check_table_options(method: str, eraser: Erasure, sweep: bool, z: NDArray[Any]) -> None:
+def _check_table_options(method: str, eraser: Erasure, sweep: bool) -> None:
     """Refuse, before the pass, what several attributes (or a continuous one) cannot be fitted with."""
-    if all(continuous for _, continuous, _ in attribute_columns(z)):
-        raise DataError(
-            "a version needs a categorical attribute among those it guards (its live checks and report are "
-            "read by class); add one with --attribute"
-        )
     if method not in MOMENT_METHODS:
         raise DataError(
             f"{method} erases one categorical attribute; several or continuous attributes need leace or meanproj"

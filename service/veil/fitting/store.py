@@ -17,7 +17,6 @@ from veil.audit.report import AuditReport
 from veil.checks.reference import REFERENCE_FILE, AttributeReference, ContinuousReference, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
 from veil.erasers import Erasure
-from veil.errors import DataError
 from veil.maps.artifact import MapArtifact
 from veil.progress import phase
 from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
@@ -90,14 +89,16 @@ def audit_and_store(
             ),
         )
         first = _first_categorical(z_held)
-        classes = artifact.moments.block(first).labels
-        report = dict(attribute_audits)[first]
-        # The plots show the held-out rows that carry the first attribute, coloured by it.
-        plotted = present_rows(z_held, first)
-        x_plot, codes_held = (
-            x_held[plotted],
-            np.searchsorted(np.asarray(classes), z_held[first][plotted]).astype(np.intp),
-        )
+        # The version's headline is its first categorical attribute (its first attribute if all are continuous).
+        report = dict(attribute_audits)[first or attribute_audits[0][0]]
+        if first is None:
+            x_plot, codes_held = x_held, np.zeros(x_held.shape[0], dtype=np.intp)
+        else:
+            # The plots show the held-out rows that carry the first categorical attribute, coloured by it.
+            plotted = present_rows(z_held, first)
+            classes = artifact.moments.block(first).labels
+            x_plot = x_held[plotted]
+            codes_held = np.searchsorted(np.asarray(classes), z_held[first][plotted]).astype(np.intp)
         x_fit, z_fit = fit_sample
         with phase("reference statistics"):
             attributes = tuple(
@@ -164,12 +165,12 @@ def audit_and_store(
     return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion)
 
 
-def _first_categorical(z: NDArray[Any]) -> str:
-    """The attribute whose figures head a version of several: the first categorical one."""
+def _first_categorical(z: NDArray[Any]) -> str | None:
+    """The attribute whose figures head a version of several: the first categorical one (None: all continuous)."""
     for attribute, continuous, _ in attribute_columns(z):
         if not continuous:
             return attribute
-    raise DataError("a version needs a categorical attribute among those it guards, for its live checks")
+    return None
 
 
 def _codes_of(artifact: MapArtifact, attribute: str, values: NDArray[Any]) -> NDArray[np.intp]:
