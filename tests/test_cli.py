@@ -376,10 +376,6 @@ BAD_FIT = [
         ["--data", "{sample}", "--attribute", "pronoun", "--attribute", "age_bracket", "--sweep", "0,1"],
         "a sweep measures one categorical attribute",
     ),
-    (
-        ["--data", "{sample}", "--attribute", "pronoun", "--attribute", "age_bracket", "--stream"],
-        "are fitted from a sample in memory; drop --stream",
-    ),
     (["--data", "{sample}", "--attribute", "field", "--continuous", "field"], "'field' holds text that is not a"),
 ]
 

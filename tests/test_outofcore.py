@@ -11,7 +11,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from veil import INLP, LEACE, MeanProjection
+from veil import INLP, LEACE, MeanProjection, attribute_table
 from veil.errors import DataError
 from veil.fitting.job import fit_version
 from veil.registry import Registry
@@ -248,3 +248,48 @@ def test_a_streamed_fit_refuses_or_drops_missing_labels_like_the_in_memory_fit(
         assert card["data"]["missing_labels_dropped"] == gaps.size
         assert card["data"]["rows"] == N - gaps.size
         assert card["attribute"]["classes"] == ["north", "south", "west"]
+
+
+def test_several_attributes_stream_from_shards_parquet_and_dask(
+    tmp_path: Path, data: tuple[np.ndarray, np.ndarray]
+) -> None:
+    x, z = data
+    rng = np.random.default_rng(22)
+    band = np.array(["low", "high"])[rng.integers(0, 2, N)]
+    x = x + np.where(band == "high", 0.8, 0.0)[:, None].astype(np.float32)
+    band_text = band.copy().astype("U4")
+    band_text[rng.random(N) < 0.1] = ""  # incomplete labels: a tenth of the rows lack the band
+    carried = band_text != ""
+    shards = tmp_path / "shards"
+    write_shards(shards, x, z)
+    rows = "\n".join(f"{a},{b}" for a, b in zip(z, band_text, strict=True))
+    (tmp_path / "labels.csv").write_text("region,band\n" + rows + "\n")
+    names = ["region", "band"]
+    keep = fit_rows()
+    table = attribute_table(
+        {"region": z[keep], "band": np.where(carried, band_text, "low")[keep]},
+        joint=True,
+        missing={"band": ~carried[keep]},
+    )
+    # LEACE in memory on the same fitting rows (the split hashes the row index, whatever the chunking).
+    expected = LEACE().fit(x[keep], table).transform(x)
+    pq.write_table(
+        pa.table({"embedding": list(x), "region": z, "band": pa.array(band_text)}), tmp_path / "x.parquet",
+        row_group_size=1000,
+    )  # fmt: skip
+    sources = [
+        (open_stream(shards, attribute=names, labels=tmp_path / "labels.csv", joint=True, incomplete=True), "local"),
+        (open_stream(tmp_path / "x.parquet", attribute=names, joint=True, incomplete=True), "local"),
+        (open_stream(tmp_path / "x.parquet", attribute=names, joint=True, incomplete=True), "dask"),
+    ]
+    for number, (sample, engine) in enumerate(sources):
+        assert sample.attribute_table
+        outcome = fit_version(
+            sample, registry=Registry(tmp_path / "r"), name=f"several-{number}", method="leace", nonlinear=False,
+            chunk_rows=777, engine=engine, workers=2,
+        )  # fmt: skip
+        stored = Registry(tmp_path / "r").read_version(f"several-{number}", outcome.version_id).artifact
+        np.testing.assert_allclose(stored.apply(x), expected, rtol=1e-9, atol=1e-5)
+        entries = {entry["name"]: entry for entry in outcome.card["attributes"]}
+        assert entries["band"]["fit_rows"] == int(np.count_nonzero(keep & carried))
+        assert entries["region&band"]["fit_rows"] == int(np.count_nonzero(keep & carried))

@@ -46,7 +46,7 @@ from veil.fitting.sweep import sweep_values as strengths
 from veil.maps.moments import MomentState
 from veil.progress import advance, phase
 from veil.registry import Registry
-from veil.samples.attributes import attribute_columns, is_table, present_rows
+from veil.samples.attributes import attribute_columns, present_rows
 from veil.samples.chunks import Partition, Sample
 
 MOMENT_METHODS = ("leace", "meanproj")
@@ -151,8 +151,8 @@ def fit_version(
     partitions = sample.partitions(chunk_rows)
     streamed = len(partitions) > 1
     exact_moments = method in MOMENT_METHODS
-    # Several attributes (or a continuous one) come as a table, read in memory: one partition, loaded already.
-    table = not streamed and bool(partitions) and is_table(partitions[0].load().attribute)
+    # Several attributes (or a continuous one) come as a table, the labels read and checked before the pass.
+    table = sample.attribute_table
     if table:
         _check_table_options(method, eraser, sweep)
     # A sweep's points are configured (and checked) before the pass too: the pass accumulates what any needs.
@@ -199,6 +199,8 @@ def fit_version(
         from veil.fitting.distributed import run_pass
 
         total = run_pass(plan, partitions, scheduler=scheduler, workers=workers)
+        if sample.attribute_dtype is not None:
+            total = total.with_attribute_dtype(sample.attribute_dtype)
     else:
         total = _local_pass(plan, partitions, eraser if streams_inlp else None, notes)
 

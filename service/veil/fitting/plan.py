@@ -44,6 +44,19 @@ class PartResult:
     def empty(cls) -> PartResult:
         return cls(moments=None, fit_rows=0, held_sample=[], fit_sample=[])
 
+    def with_attribute_dtype(self, dtype: np.dtype[Any]) -> PartResult:
+        """The same result with its samples' attribute tables viewed as ``dtype`` again.
+
+        Dask's serialisation of results drops a structured dtype's metadata,
+        where an attribute table records which attributes are continuous; the
+        fields and their bytes arrive intact.
+        """
+
+        def restored(parts: list[Rows]) -> list[Rows]:
+            return [(x, z.view(dtype), task) for x, z, task in parts]
+
+        return PartResult(self.moments, self.fit_rows, restored(self.held_sample), restored(self.fit_sample))
+
     def merge(self, later: PartResult) -> PartResult:
         if self.moments is None or later.moments is None:
             moments = self.moments if later.moments is None else later.moments

@@ -26,6 +26,7 @@ class Chunk:
         Index of each row in the files (increasing).
     embeddings : ndarray of shape (n, d)
     attribute : ndarray of shape (n,)
+        Labels, or rows of an attribute table (see :mod:`veil.samples.attributes`).
     task : ndarray of shape (n,) or None
     """
 
@@ -80,6 +81,16 @@ class Sample(Protocol):
     @property
     def dropped_rows(self) -> int:
         """Rows of the files dropped for a missing label."""
+        ...
+
+    @property
+    def attribute_table(self) -> bool:
+        """Whether the attribute is a table of several attributes (or a continuous one), not one label column."""
+        ...
+
+    @property
+    def attribute_dtype(self) -> np.dtype[Any] | None:
+        """The dtype of the attribute table (it marks which attributes are continuous); None for label columns."""
         ...
 
     @property

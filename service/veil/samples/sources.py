@@ -29,7 +29,7 @@ from numpy.typing import NDArray
 from veil.defaults import EMBEDDINGS_KEY, STREAM_CHUNK_ROWS
 from veil.errors import DataError
 from veil.progress import advance, phase
-from veil.samples.attributes import attribute_table
+from veil.samples.attributes import attribute_table, is_table
 from veil.samples.chunks import Chunk, InMemoryPartition
 from veil.samples.labels import arrow_labels, missing_labels, rows_to_keep
 from veil.samples.tables import embedding_matrix
@@ -80,6 +80,15 @@ class LabelledSample:
     def labelled_rows(self) -> int:
         """Rows with every label present: here, every row."""
         return self.rows
+
+    @property
+    def attribute_table(self) -> bool:
+        """Whether the attribute is a table (several attributes, or a continuous one)."""
+        return is_table(self.attribute)
+
+    @property
+    def attribute_dtype(self) -> np.dtype[Any] | None:
+        return self.attribute.dtype if is_table(self.attribute) else None
 
     @property
     def dropped_rows(self) -> int:
@@ -450,24 +459,56 @@ def _read_sample(
     found = {key: _labels(np.asarray(columns[key]), key=key, rows=rows, source=str(data_path)) for key in keys}
     if absent is None:
         absent = {key: missing_labels(values) for key, values in found.items()}
+    read = labels_of(spec, found, absent, task, source=str(label_source), drop=drop_missing)
+    return LabelledSample(
+        embeddings=embeddings if read.kept is None else embeddings[read.kept],
+        notes=read.notes,
+        attribute=read.attribute,
+        attribute_key=spec.key,
+        task=read.task,
+        task_key=task,
+        files=files,
+        kept=read.kept,
+    )
+
+
+@dataclass(frozen=True, eq=False)
+class ReadLabels:
+    """The labels of a sample as a fit uses them: the rows kept, the attribute (or table) and task of those rows."""
+
+    kept: NDArray[np.bool_] | None
+    attribute: NDArray[Any]
+    task: NDArray[Any] | None
+    notes: tuple[str, ...]
+
+
+def labels_of(
+    spec: AttributeSpec,
+    found: dict[str, NDArray[Any]],
+    absent: dict[str, NDArray[np.bool_]],
+    task: str | None,
+    *,
+    source: str,
+    drop: bool,
+) -> ReadLabels:
+    """Refuse or drop the rows whose labels are missing, merge classes, and build the attribute (or its table).
+
+    ``found`` holds every label column read (attributes and task) and ``absent``
+    the masks of their missing labels, over every row of the files.
+    """
     checked = [("attribute", name, absent[name]) for name in spec.names]
     if spec.incomplete:
         # A row may lack some attributes; one that lacks every one carries nothing to guard.
         checked = [("attribute", f"every attribute ({spec.key})", np.logical_and.reduce([m for _, _, m in checked]))]
     checked += [] if task is None else [("task", task, absent[task])]
-    kept = rows_to_keep(checked, source=str(label_source), drop=drop_missing)
+    kept = rows_to_keep(checked, source=source, drop=drop)
     if kept is not None:
-        embeddings = embeddings[kept]
         found = {key: values[kept] for key, values in found.items()}
         absent = {key: values[kept] for key, values in absent.items()}
-    found, notes = spec.merged(found, source=str(label_source), missing=absent if spec.incomplete else None)
-    return LabelledSample(
-        embeddings=embeddings,
-        notes=tuple(notes),
-        attribute=spec.table(found, source=str(label_source), missing=absent if spec.incomplete else None),
-        attribute_key=spec.key,
-        task=None if task is None else found[task],
-        task_key=task,
-        files=files,
+    found, notes = spec.merged(found, source=source, missing=absent if spec.incomplete else None)
+    return ReadLabels(
         kept=kept,
+        attribute=spec.table(found, source=source, missing=absent if spec.incomplete else None),
+        task=None if task is None else found[task],
+        notes=tuple(notes),
     )

@@ -26,7 +26,17 @@ from veil.defaults import STREAM_CHUNK_ROWS
 from veil.errors import DataError
 from veil.samples.chunks import Chunk
 from veil.samples.labels import arrow_labels, missing_labels, rows_to_keep
-from veil.samples.sources import PARQUET_SUFFIXES, check_embeddings, csv_columns, file_sha256, fingerprint_of
+from veil.samples.sources import (
+    PARQUET_SUFFIXES,
+    AttributeSpec,
+    ReadLabels,
+    check_embeddings,
+    csv_columns,
+    file_sha256,
+    fingerprint_of,
+    labels_of,
+    parse_merge,
+)
 from veil.samples.tables import embedding_matrix
 
 
@@ -36,7 +46,9 @@ class StreamedSample:
 
     ``rows`` counts every row of the files; ``dropped_rows`` of them lack a
     label and are skipped by the fit (only when dropping was asked for: a
-    sample with missing labels is refused otherwise).
+    sample with missing labels is refused otherwise).  For several attributes
+    (``attribute_table``) the labels are read, checked and tabled once, here,
+    and each partition carries its rows of the table.
     """
 
     rows: int
@@ -47,6 +59,10 @@ class StreamedSample:
     files: dict[str, str]
     _partitions: Any = field(repr=False)
     dropped_rows: int = 0
+    attribute_table: bool = False
+    notes: tuple[str, ...] = ()
+    #: The dtype of the attribute table (None: one label column).
+    attribute_dtype: np.dtype[Any] | None = None
 
     @property
     def labelled_rows(self) -> int:
@@ -146,11 +162,15 @@ class NpyPartition:
     start: int
     attribute: NDArray[Any]
     task: NDArray[Any] | None
+    #: Labels prepared whole (an attribute table): the rows kept; ``attribute`` and ``task`` hold only those.
+    kept: NDArray[np.bool_] | None = None
 
     def load(self) -> Chunk:
         block = check_embeddings(
             self.file.read(self.offset, self.rows), source=f"{self.file.path} rows {self.offset}.."
         )
+        if self.kept is not None:
+            return _prepared_chunk(self.start, block, self.kept, self.attribute, self.task)
         missing = missing_labels(self.attribute)
         if self.task is not None:
             missing |= missing_labels(self.task)
@@ -161,29 +181,61 @@ class NpyPartition:
         return self.start + self.rows
 
 
-def _array_partitions(parts: list[NpyFile], columns: dict[str, NDArray[Any]], attribute: str, task: str | None) -> Any:
+def _prepared_chunk(
+    start: int, block: NDArray[np.floating], kept: NDArray[np.bool_], attribute: NDArray[Any], task: NDArray[Any] | None
+) -> Chunk:
+    index = np.arange(start, start + block.shape[0], dtype=np.int64)[kept]
+    return Chunk(index=index, embeddings=block[kept], attribute=attribute, task=task)
+
+
+class _Prepared:
+    """Labels read whole (see :func:`veil.samples.sources.labels_of`), handed out by ranges of the files' rows."""
+
+    def __init__(self, read: ReadLabels, rows: int) -> None:
+        self.read = read
+        self.kept = np.ones(rows, dtype=bool) if read.kept is None else read.kept
+        # Kept rows before each row of the files: where a range's rows start in the kept labels.
+        self.before = np.concatenate([[0], np.cumsum(self.kept)])
+
+    def rows(self, start: int, stop: int) -> tuple[NDArray[np.bool_], NDArray[Any], NDArray[Any] | None]:
+        first, last = int(self.before[start]), int(self.before[stop])
+        task = None if self.read.task is None else self.read.task[first:last]
+        return self.kept[start:stop], self.read.attribute[first:last], task
+
+
+def _array_partitions(
+    parts: list[NpyFile],
+    columns: dict[str, NDArray[Any]],
+    attribute: str,
+    task: str | None,
+    prepared: _Prepared | None = None,
+) -> Any:
     def partitions(chunk_rows: int) -> list[NpyPartition]:
         found, start = [], 0
         for part in parts:
             for offset in range(0, part.shape[0], chunk_rows):
                 rows = min(chunk_rows, part.shape[0] - offset)
-                found.append(
-                    NpyPartition(
-                        file=part,
-                        offset=offset,
-                        rows=rows,
-                        start=start,
-                        attribute=np.array(columns[attribute][start : start + rows]),
-                        task=None if task is None else np.array(columns[task][start : start + rows]),
+                if prepared is not None:
+                    kept, labels, tasks = prepared.rows(start, start + rows)
+                    found.append(NpyPartition(part, offset, rows, start, labels, tasks, kept))
+                else:
+                    found.append(
+                        NpyPartition(
+                            file=part,
+                            offset=offset,
+                            rows=rows,
+                            start=start,
+                            attribute=np.array(columns[attribute][start : start + rows]),
+                            task=None if task is None else np.array(columns[task][start : start + rows]),
+                        )
                     )
-                )
                 start += rows
         return found
 
     return partitions
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class ParquetPartition:
     """One row group of a Parquet file, global rows from ``start``."""
 
@@ -195,15 +247,23 @@ class ParquetPartition:
     attribute_key: str
     task_key: str | None
     dim: int
+    #: Labels prepared whole (an attribute table): the rows kept, and their attribute table and task labels.
+    prepared: tuple[NDArray[np.bool_], NDArray[Any], NDArray[Any] | None] | None = None
 
     def load(self) -> Chunk:
         import pyarrow.parquet as pq
 
-        keys = [self.embeddings_key, self.attribute_key] + ([] if self.task_key is None else [self.task_key])
+        keys = [self.embeddings_key]
+        if self.prepared is None:
+            keys += [self.attribute_key] + ([] if self.task_key is None else [self.task_key])
         table = pq.ParquetFile(self.path).read_row_group(self.group, columns=keys)
         matrix = embedding_matrix(table.column(self.embeddings_key), name=self.embeddings_key, first_row=self.start)
         if matrix.shape[1] != self.dim:
             raise DataError(f"{self.path}: column {self.embeddings_key!r} mixes dimensions from row {self.start}")
+        if self.prepared is not None:
+            kept, labels, tasks = self.prepared
+            block = check_embeddings(matrix, source=f"{self.path} rows {self.start}..")
+            return _prepared_chunk(self.start, block, kept, labels, tasks)
         source = str(self.path)
         attribute, missing = arrow_labels(table.column(self.attribute_key), key=self.attribute_key, source=source)
         task = None
@@ -215,7 +275,9 @@ class ParquetPartition:
         )
 
 
-def _parquet_partitions(path: Path, embeddings_key: str, attribute: str, task: str | None) -> tuple[Any, int, int, Any]:
+def _parquet_partitions(
+    path: Path, embeddings_key: str, attribute: str, task: str | None, prepared: _Prepared | None = None
+) -> tuple[Any, int, int, Any]:
     import pyarrow as pa
     import pyarrow.parquet as pq
 
@@ -239,12 +301,26 @@ def _parquet_partitions(path: Path, embeddings_key: str, attribute: str, task: s
         # A row group is the unit Parquet reads; write files with row groups of a chunk's size or less.
         return [
             ParquetPartition(
-                path, group, int(starts[group]), int(starts[group + 1]), embeddings_key, attribute, task, first.shape[1]
+                path, group, int(starts[group]), int(starts[group + 1]), embeddings_key, attribute, task,
+                first.shape[1], None if prepared is None else prepared.rows(int(starts[group]), int(starts[group + 1])),
             )
             for group in range(parquet.num_row_groups)
-        ]
+        ]  # fmt: skip
 
     return partitions, rows, first.shape[1], first.dtype
+
+
+def _prepare(
+    spec: AttributeSpec,
+    found: dict[str, NDArray[Any]],
+    absent: dict[str, NDArray[np.bool_]],
+    task: str | None,
+    source: str | Path,
+    rows: int,
+    drop: bool,
+) -> _Prepared:
+    """The labels of every row, refused or dropped where missing, merged and tabled (see ``labels_of``)."""
+    return _Prepared(labels_of(spec, found, absent, task, source=str(source), drop=drop), rows)
 
 
 def _dropped(kept: NDArray[np.bool_] | None) -> int:
@@ -276,16 +352,17 @@ def open_stream(
         of the wrong length, a missing label (unless ``drop_missing``).
     """
     names = [attribute] if isinstance(attribute, str) else list(attribute)
-    if len(names) > 1 or continuous or joint or merge_classes or incomplete:
-        raise DataError(
-            "several or continuous attributes, and merged classes, are fitted from a sample in memory; drop --stream "
-            "(and --engine dask)"
-        )
+    merges = tuple(parse_merge(text) for text in merge_classes)
+    spec = AttributeSpec(
+        names=tuple(names), continuous=tuple(continuous), joint=joint, merges=merges, incomplete=incomplete
+    )
+    # Several attributes (or merged classes): the labels are read, checked and tabled once, before the pass.
+    whole = spec.is_table or bool(merges)
     attribute = names[0]
     source = Path(path)
     if not source.exists():
         raise DataError(f"{source} does not exist")
-    keys = [attribute] if task is None else [attribute, task]
+    keys = [*names] if task is None else [*names, task]
     roles = [("attribute", attribute)] + ([] if task is None else [("task", task)])
     if source.is_dir() or source.suffix.lower() == ".npy":
         shards = sorted(source.glob("*.npy")) if source.is_dir() else [source]
@@ -299,15 +376,25 @@ def open_stream(
             raise DataError(f"{source}: the shards have different dimensions ({sorted(dims)})")
         rows = sum(part.shape[0] for part in parts)
         columns = _label_columns(Path(labels), keys, rows)
+        files = {str(shard): file_sha256(shard) for shard in shards}
+        files[str(labels)] = file_sha256(Path(labels))
+        dtypes = {part.dtype for part in parts}
+        dtype = np.dtype(np.float32) if dtypes == {np.dtype(np.float32)} else np.dtype(np.float64)
+        if whole:
+            found = {key: np.asarray(values) for key, values in columns.items()}
+            absent = {key: missing_labels(values) for key, values in found.items()}
+            tabled = _prepare(spec, found, absent, task, labels, rows, drop_missing)
+            return StreamedSample(
+                rows=rows, dim=dims.pop(), dtype=dtype, attribute_key=spec.key, task_key=task, files=files,
+                _partitions=_array_partitions(parts, columns, attribute, task, tabled),
+                dropped_rows=_dropped(tabled.read.kept), attribute_table=spec.is_table, notes=tabled.read.notes,
+                attribute_dtype=tabled.read.attribute.dtype,
+            )  # fmt: skip
         kept = rows_to_keep(
             [(role, key, missing_labels(np.asarray(columns[key]))) for role, key in roles],
             source=str(labels),
             drop=drop_missing,
         )
-        files = {str(shard): file_sha256(shard) for shard in shards}
-        files[str(labels)] = file_sha256(Path(labels))
-        dtypes = {part.dtype for part in parts}
-        dtype = np.dtype(np.float32) if dtypes == {np.dtype(np.float32)} else np.dtype(np.float64)
         return StreamedSample(
             rows=rows, dim=dims.pop(), dtype=dtype, attribute_key=attribute, task_key=task, files=files,
             _partitions=_array_partitions(parts, columns, attribute, task), dropped_rows=_dropped(kept),
@@ -315,9 +402,34 @@ def open_stream(
     if source.suffix.lower() in PARQUET_SUFFIXES:
         if labels is not None:
             raise DataError("Parquet input carries its labels in columns; --labels goes with .npy input")
-        partitions, rows, dim, dtype = _parquet_partitions(source, embeddings_key, attribute, task)
         import pyarrow.parquet as pq
 
+        prepared: _Prepared | None = None
+        if whole:
+            import pyarrow as pa
+
+            try:
+                names_in_file = pq.ParquetFile(source).schema_arrow.names
+            except (pa.ArrowInvalid, OSError) as error:
+                raise DataError(f"{source} is not a readable Parquet file ({error})") from None
+            absent_keys = [key for key in keys if key not in names_in_file]
+            if absent_keys:
+                raise DataError(
+                    f"{source} has no column {absent_keys[0]!r}; its columns are {', '.join(names_in_file)}"
+                )
+            table = pq.read_table(source, columns=list(dict.fromkeys(keys)))
+            read = {key: arrow_labels(table.column(key), key=key, source=str(source)) for key in keys}
+            found = {key: values for key, (values, _) in read.items()}
+            absent = {key: mask for key, (_, mask) in read.items()}
+            prepared = _prepare(spec, found, absent, task, source, table.num_rows, drop_missing)
+        partitions, rows, dim, dtype = _parquet_partitions(source, embeddings_key, attribute, task, prepared)
+        if prepared is not None:
+            return StreamedSample(
+                rows=rows, dim=dim, dtype=np.dtype(dtype), attribute_key=spec.key, task_key=task,
+                files={str(source): file_sha256(source)}, _partitions=partitions,
+                dropped_rows=_dropped(prepared.read.kept), attribute_table=spec.is_table, notes=prepared.read.notes,
+                attribute_dtype=prepared.read.attribute.dtype,
+            )  # fmt: skip
         table = pq.read_table(source, columns=list(dict.fromkeys(keys)))
         kept = rows_to_keep(
             [(role, key, arrow_labels(table.column(key), key=key, source=str(source))[1]) for role, key in roles],
