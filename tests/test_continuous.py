@@ -32,6 +32,7 @@ from veil.errors import DataError
 from veil.fitting.job import fit_version
 from veil.registry import Registry
 from veil.registry.evidence import version_evidence
+from veil.reporting import REPORT_FILE
 from veil.samples.sources import load_labelled_sample
 from veil.samples.splitting import holdout_mask
 from veil_client import VeilClient
@@ -194,3 +195,6 @@ def test_a_version_may_guard_a_continuous_attribute_alone(tmp_path: Path) -> Non
     schema = json.loads((Path(__file__).resolve().parents[1] / "docs" / "version-evidence.schema.json").read_text())
     document = json.loads(json.dumps(version_evidence(registry, "ages", "live")))
     jsonschema.Draft202012Validator(schema).validate(document)
+    # Its report still draws the held-out rows on their principal axes, in one colour (there are no classes).
+    page = registry.read_version("ages", "live").files[REPORT_FILE].decode()
+    assert page.count("rows (no classes)") == 2

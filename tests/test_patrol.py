@@ -233,6 +233,12 @@ def test_killed_patrols_leave_no_partial_record_and_the_next_run_completes_the_s
         ({"s.npz": None}, ("--sample", "s.npz", "--attribute", "gender"), "has no array 'gender'"),
         ({"s.npy": None}, ("--sample", "s.npy", "--attribute", "pronoun"), "labels come with a .npz sample"),
         ({}, ("--attribute", "pronoun"), "give the sample too"),
+        (
+            {"s.npz": None},
+            ("--sample", "s.npz", "--attribute", "pronoun", "--continuous", "age"),
+            "names no --attribute",
+        ),
+        ({"s.npz": None}, ("--sample", "s.npz", "--attribute", "pronoun", "--continuous", "pronoun"), "not numbers"),
         ({}, ("--every", "0", "--once"), "--every must be a positive number of seconds"),
     ],
 )
@@ -262,3 +268,26 @@ def test_a_service_that_does_not_answer_fails_the_single_round_in_one_line(regis
     assert result.err.startswith("veil patrol: the service at http://127.0.0.1:9 did not answer: ")
     assert len(result.err.strip().splitlines()) == 1
     assert check_history(registry, PROFILES) == []
+
+
+def test_a_labelled_sample_posts_each_attributes_labels(
+    monkeypatch: pytest.MonkeyPatch, registry: Registry, service_registry: ServiceRegistry, tmp_path: Path
+) -> None:
+    sent: list[Any] = []
+
+    def fake_drift(client: Any, name: str, vectors: Any = None, labels: Any = None, **kwargs: Any) -> dict[str, Any]:
+        sent.append(labels)
+        return _report(service_registry.leace)
+
+    monkeypatch.setattr(VeilClient, "drift", fake_drift)
+    sample = tmp_path / "s.npz"
+    pronoun, age = np.array(["he", "she"] * 15), np.linspace(20, 70, 30)
+    np.savez(sample, embedding=np.zeros((30, 384), dtype=np.float32), pronoun=pronoun, age=age)
+    common = ("patrol", PROFILES, "--service", "http://veil", "--registry", registry.url, "--sample", sample, "--once")
+    assert run(*common, "--attribute", "pronoun").code == 0
+    assert run(*common, "--every", "7", "--attribute", "pronoun", "--attribute", "age", "--continuous", "age").code == 0
+    # One attribute's class names as a list (what a version of one attribute takes); several by name, with
+    # numbers for the continuous one.
+    assert sent[0] == pronoun.tolist()
+    assert sent[1] == {"pronoun": pronoun.tolist(), "age": age.tolist()}
+    assert len(check_history(registry, PROFILES)) == 2

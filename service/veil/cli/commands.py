@@ -296,33 +296,51 @@ def _posted_sample(args: argparse.Namespace) -> Any:
     from veil.patrol.rounds import PostedSample
     from veil.samples.sources import check_embeddings, file_sha256
 
+    keys: list[str] = args.attribute
+    unknown = sorted(set(args.continuous) - set(keys))
+    if unknown:
+        raise DataError(f"--continuous {unknown[0]} names no --attribute")
     if args.sample is None:
-        if args.attribute is not None:
+        if keys:
             raise DataError("--attribute names labels inside a --sample file; give the sample too")
         return None
     path = Path(args.sample)
     if not path.is_file():
         raise DataError(f"{path} does not exist")
+    columns: dict[str, Any] = {}
     try:
         if path.suffix.lower() == ".npy":
-            if args.attribute is not None:
+            if keys:
                 raise DataError(f"{path.name} holds vectors only; labels come with a .npz sample")
-            vectors, labels = np.load(path, allow_pickle=False), None
+            vectors = np.load(path, allow_pickle=False)
         elif path.suffix.lower() == ".npz":
             with np.load(path, allow_pickle=False) as arrays:
-                missing = [key for key in (args.embeddings, args.attribute) if key is not None and key not in arrays]
+                missing = [key for key in (args.embeddings, *keys) if key not in arrays]
                 if missing:
                     raise DataError(f"{path.name} has no array {missing[0]!r}; it has {', '.join(arrays.files)}")
                 vectors = arrays[args.embeddings]
-                labels = None if args.attribute is None else [str(label) for label in arrays[args.attribute]]
+                columns = {key: arrays[key] for key in keys}
         else:
             raise DataError(f"a --sample is a .npy or .npz file, not {path.suffix or 'a file without a suffix'}")
     except (ValueError, OSError) as error:
         raise DataError(f"{path} cannot be read as a sample ({error})") from None
     vectors = check_embeddings(vectors, source=str(path))
-    if labels is not None and len(labels) != vectors.shape[0]:
-        raise DataError(f"{path.name}: {len(labels)} labels for {vectors.shape[0]} vectors")
-    return PostedSample(vectors=vectors, labels=labels, file=path.name, sha256=file_sha256(path))
+    labels: dict[str, list[str] | list[float]] = {}
+    for key, column in columns.items():
+        if column.shape != (vectors.shape[0],):
+            raise DataError(f"{path.name}: {key!r} holds {column.size} labels for {vectors.shape[0]} vectors")
+        try:
+            labels[key] = [float(v) for v in column] if key in args.continuous else [str(v) for v in column]
+        except (TypeError, ValueError):
+            raise DataError(
+                f"{path.name}: the continuous attribute {key!r} holds values that are not numbers"
+            ) from None
+    # One categorical attribute's class names go as a list, which the service reads as the version's first
+    # attribute's (as every version of one attribute takes them); otherwise labels go by attribute.
+    posted: list[str] | dict[str, list[str] | list[float]] | None = labels or None
+    if len(keys) == 1 and keys[0] not in args.continuous:
+        posted = [str(v) for v in labels[keys[0]]]
+    return PostedSample(vectors=vectors, labels=posted, file=path.name, sha256=file_sha256(path))
 
 
 def patrol(args: argparse.Namespace) -> int:

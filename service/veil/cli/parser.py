@@ -368,7 +368,19 @@ def build_parser() -> VeilParser:
         "--attribute labels) instead of checking the service's recent traffic",
     )
     patrol.add_argument("--embeddings", default=EMBEDDINGS_KEY, help="key of the vectors in a .npz sample")
-    patrol.add_argument("--attribute", help="key of the attribute labels in a .npz sample")
+    patrol.add_argument(
+        "--attribute",
+        action="append",
+        default=[],
+        help="key of an attribute's labels in a .npz sample (repeatable, for a version of several attributes)",
+    )
+    patrol.add_argument(
+        "--continuous",
+        action="append",
+        default=[],
+        metavar="NAME",
+        help="attribute NAME holds numbers (a continuous attribute; repeatable); every other holds class names",
+    )
     patrol.set_defaults(handler="patrol")
 
     checks = commands.add_parser("checks", parents=common, help="the recorded live checks of an eraser, in order")

@@ -27,10 +27,15 @@ CHECKS = "checks"
 
 @dataclass(frozen=True)
 class PostedSample:
-    """A sample of raw live vectors the patrol posts each round (labels optional), and where it came from."""
+    """A sample of raw live vectors the patrol posts each round, and where it came from.
+
+    ``labels``: none (the service predicts pseudo-labels), one categorical
+    attribute's class names (the version's first attribute), or attributes'
+    labels by name (numbers for a continuous one).
+    """
 
     vectors: NDArray[np.floating]
-    labels: list[str] | None
+    labels: list[str] | dict[str, list[str] | list[float]] | None
     file: str
     sha256: str
 
@@ -51,10 +56,10 @@ def slot_start(now: float, every: float) -> float:
     return math.floor(now / every) * every
 
 
-def round_key(name: str, service: str, sample: PostedSample | None, slot: float) -> str:
-    """The record key of a round: the eraser, the service, what is checked and the slot."""
+def round_key(name: str, service: str, sample: PostedSample | None, slot: float, every: float) -> str:
+    """The record key of a round: the eraser, the service, what is checked and the slot (its start and length)."""
     what = "recent traffic" if sample is None else sample.sha256
-    return hashlib.sha256(f"{name}\n{service}\n{what}\n{slot!r}".encode()).hexdigest()[:16]
+    return hashlib.sha256(f"{name}\n{service}\n{what}\n{slot!r}\n{every!r}".encode()).hexdigest()[:16]
 
 
 def find_check(registry: Registry, name: str, key: str) -> Record | None:
@@ -89,7 +94,7 @@ def patrol_round(
     Raises whatever ``check`` raises (the service unreachable, no traffic yet): nothing is recorded then.
     """
     slot = slot_start(now, every)
-    key = round_key(name, service, sample, slot)
+    key = round_key(name, service, sample, slot, every)
     stored = find_check(registry, name, key)
     if stored is not None:
         return RoundOutcome(stored, already_stored=True)

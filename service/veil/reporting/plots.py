@@ -92,6 +92,8 @@ def history_plot(method: str, history: Sequence[dict[str, float]]) -> Draw | Non
 
 
 def scatter_plot(plots: PlotData, classes: Sequence[str]) -> Draw:
+    """The held-out rows on their two leading principal axes, before and after, coloured by class (if any)."""
+
     def draw(figure: Figure) -> None:
         colours = plt.get_cmap("tab10")
         for position, (title, points) in enumerate(
@@ -103,6 +105,8 @@ def scatter_plot(plots: PlotData, classes: Sequence[str]) -> Draw:
                 axes.scatter(
                     points[chosen, 0], points[chosen, 1], s=6, alpha=0.6, color=colours(code % 10), label=label
                 )
+            if not classes:  # a version of continuous attributes only: no classes to colour the rows by
+                axes.scatter(points[:, 0], points[:, 1], s=6, alpha=0.6, color=AFTER, label="rows (no classes)")
             axes.set_title(f"held-out rows {title}: leading two principal axes")
             axes.set_xlabel("PC 1")
             axes.set_ylabel("PC 2")
