@@ -166,12 +166,7 @@ class MomentState:
         assert self.labels is not None
         position = np.searchsorted(labels, self.labels)
         m = labels.size
-        mean_z = np.zeros(m)
-        mean_z[position] = self.mean_z
-        xz = np.zeros((self.n_features, m))
-        xz[:, position] = self.comoment_xz
-        zz = np.zeros((m, m))
-        zz[np.ix_(position, position)] = self.comoment_zz
+        mean_z, xz, zz = self._placed(position, m)
         by_class = None
         if self.class_comoments is not None:
             by_class = np.zeros((m, self.n_features, self.n_features))
@@ -188,14 +183,20 @@ class MomentState:
                 for old, new in zip(self.blocks, blocks, strict=True)
             ]
         ).astype(np.intp)
-        m = blocks[-1].stop
+        mean_z, xz, zz = self._placed(position, blocks[-1].stop)
+        return MomentState(self.count, self.mean_x, mean_z, self.comoment_xx, xz, zz, None, None, blocks)
+
+    def _placed(
+        self, position: NDArray[np.intp], m: int
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+        """The attribute's statistics moved to columns ``position`` of ``m`` (the others zero: no rows there)."""
         mean_z = np.zeros(m)
         mean_z[position] = self.mean_z
         xz = np.zeros((self.n_features, m))
         xz[:, position] = self.comoment_xz
         zz = np.zeros((m, m))
         zz[np.ix_(position, position)] = self.comoment_zz
-        return MomentState(self.count, self.mean_x, mean_z, self.comoment_xx, xz, zz, None, None, blocks)
+        return mean_z, xz, zz
 
     def _aligned_blocks(self, other: MomentState) -> tuple[MomentState, MomentState]:
         names = [(block.name, block.kind) for block in self.blocks]
