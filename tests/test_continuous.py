@@ -35,7 +35,7 @@ from veil.registry.evidence import version_evidence
 from veil.reporting import REPORT_FILE
 from veil.samples.sources import load_labelled_sample
 from veil.samples.splitting import holdout_mask
-from veil_client import VeilClient
+from veil_client import VeilClient, VeilClientError
 
 from .service_fixtures import app_for
 
@@ -187,10 +187,21 @@ def test_a_version_may_guard_a_continuous_attribute_alone(tmp_path: Path) -> Non
     with TestClient(app_for(tmp_path / "registry")) as http, VeilClient(http_client=http) as client:
         moved = client.counterfactual("ages", x[~held], {"age_years": 30})
         checked = client.drift("ages", x[:400])
+        labelled = client.drift("ages", x[:400], {"age_years": ages[:400].tolist()})
+        # A target too large for a float is refused, not a 500 (from the query it arrives as a Python int).
+        huge = http.post(
+            "/v1/erasers/ages/counterfactual",
+            params={"target": json.dumps({"age_years": 10**400})},
+            json={"vectors": x[:2].tolist()},
+        )
+        with pytest.raises(VeilClientError, match="give their values by attribute"):
+            client.drift("ages", x[:400], ["30"] * 400)
     np.testing.assert_allclose(moved.vectors.mean(0), expected, atol=1e-4)
     assert checked["labels"] == "none"
     assert checked["prior_shift"] is None
     assert checked["attributes"]["age_years"]["labels"] == "pseudo-values"
+    assert labelled["attributes"]["age_years"]["labels"] == "labels"  # the values given are used
+    assert (huge.status_code, huge.json()["error"]["code"]) == (422, "invalid_request")
     # The evidence document of such a version still validates against its schema (the jsonschema library).
     schema = json.loads((Path(__file__).resolve().parents[1] / "docs" / "version-evidence.schema.json").read_text())
     document = json.loads(json.dumps(version_evidence(registry, "ages", "live")))

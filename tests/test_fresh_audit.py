@@ -210,3 +210,26 @@ def test_a_streamed_fresh_sample_is_read_in_chunks_and_drawn_by_hash(
     assert 500 < audited["data"]["audited_rows"] < 700
     assert audited["data"]["rows"] == 2000
     assert f"audited on a hash-drawn sample of {audited['data']['audited_rows']} of the 2000 rows" in audited["notes"]
+
+
+def test_the_same_file_audited_for_another_attribute_is_another_audit(
+    fitted: tuple[Path, str, Path], tmp_path: Path
+) -> None:
+    registry, _, _ = fitted
+    x, z, _ = _population(draw_seed=9)
+    data = tmp_path / "two-columns.npz"
+    np.savez(data, embedding=x.astype(np.float32), region=z, reshuffled=np.random.default_rng(0).permutation(z))
+
+    def audited(attribute: str) -> dict:
+        result = run(
+            "audit", "planted", "1", "--data", data, "--attribute", attribute, "--registry", registry, "--json",
+            "--probes", "linear",
+        )  # fmt: skip
+        assert result.code == 0, result.err
+        return dict(json.loads(result.out))
+
+    region, reshuffled = audited("region"), audited("reshuffled")
+    assert reshuffled["number"] != region["number"]
+    assert (region["data"]["attribute"], reshuffled["data"]["attribute"]) == ("region", "reshuffled")
+    # Labels shuffled away from the rows say nothing a probe can read (scikit-learn's logistic regression).
+    assert reshuffled["audit"]["leakage"]["linear_before"]["accuracy"] < 0.6

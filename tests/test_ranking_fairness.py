@@ -158,3 +158,29 @@ def test_the_card_and_the_report_of_a_stored_version_show_the_figures(service_re
     report = stored.files[REPORT_FILE].decode()
     assert "<h2>Ranking fairness</h2>" in report
     assert f"<td>NDKL@10</td><td>{rk.ndkl_before:.4f}</td><td>{rk.ndkl_after:.4f}</td>" in report
+
+
+def test_a_class_absent_from_the_rows_keeps_its_place_with_a_share_of_zero() -> None:
+    # A live sample of a three-class attribute in which the last class never appears: the per-class tuples keep
+    # all three places (the names printed beside them stay right), and the other figures are those of the
+    # classes present, as if the absent class did not exist (the same rows with codes 0 and 1 only).
+    rng = np.random.default_rng(0)
+    x = rng.normal(size=(60, 5))
+    codes = (x[:, 0] > 0).astype(np.intp)
+    erased = x.copy()
+    erased[:, 0] = 0.0
+    with_absent = ranking_before_after(x, erased, codes, 5, classes=3)
+    present_only = ranking_before_after(x, erased, codes, 5)
+    assert len(with_absent.base_rate) == len(with_absent.share_after) == 3
+    assert with_absent.base_rate[2] == with_absent.share_before[2] == with_absent.exposure_share_after[2] == 0.0
+    assert with_absent.base_rate[:2] == present_only.base_rate
+    assert with_absent.share_after[:2] == present_only.share_after
+    assert (with_absent.ndkl_after, with_absent.max_skew_before) == (
+        present_only.ndkl_after,
+        present_only.max_skew_before,
+    )
+    # The chance that five results miss a class counts the classes present only (worked by hand: two classes of
+    # shares p and 1 - p miss one with probability p^5 + (1 - p)^5).
+    p = with_absent.base_rate[0]
+    level = with_absent.chance_levels()[3]
+    assert level == f"{p**5 + (1 - p) ** 5:.3f} by chance"

@@ -82,3 +82,14 @@ def test_figures_without_data_are_not_judged_and_bands_are_read_at_or_above() ->
     assert verdict.sentence() == "warn: the 10-NN attribute share lies 0.125 above its base rate (warn at 0.125)"
     calm = judge_audit(_report(_score(0.5, 0.47, 0.53), _score(0.5, 0.47, 0.53), 0.52, None), thresholds)
     assert calm.sentence() == "ok: all 3 judged figures are below their warn levels"
+
+
+def test_round_off_never_decides_which_side_of_a_level_a_figure_falls() -> None:
+    # 0.57 - 0.52 is 0.04999999999999993 in binary floating point; the gap is 0.05 and reaches alert at 0.05.
+    assert 0.57 - 0.52 < 0.05
+    verdict = judge_audit(
+        _report(_score(0.6, 0.57, 0.63, majority=0.52), _score(0.5, 0.47, 0.53), 0.5, 0.95), AuditThresholds()
+    )
+    assert verdict.figures["linear_gap"] == pytest.approx(0.05)
+    assert verdict.reasons[0] == "the linear probe reads the attribute 0.050 beyond majority (alert at 0.05)"
+    assert Band(0.02, 0.05).level(0.57 - 0.52) == "alert"

@@ -157,6 +157,7 @@ def ranking_before_after(
     k: int,
     *,
     queries: NDArray[np.intp] | None = None,
+    classes: int | None = None,
 ) -> RankingFairness:
     """Ranking-fairness figures of rows as queries against all rows but themselves (cosine), raw and erased.
 
@@ -170,24 +171,36 @@ def ranking_before_after(
         Results per query.
     queries : ndarray of shape (m,), optional
         The rows that query (default: every row).
+    classes : int, optional
+        How many classes the codes index (default: up to the largest code).  A class with no row here (a live
+        sample without it) gets a share and a base rate of 0, and the other figures are over the classes present.
     """
     n = raw.shape[0]
     asking = np.arange(n) if queries is None else np.asarray(queries, dtype=np.intp)
-    base = np.bincount(codes, minlength=int(codes.max()) + 1) / n
+    width = max(int(codes.max()) + 1, classes or 0)
+    present, local = np.unique(codes, return_inverse=True)
+    base = np.bincount(local, minlength=present.size) / n
     figures = []
     for vectors in (raw, erased):
         corpus = unit(vectors)
         ranked = ranked_neighbours(corpus[asking], corpus, k, exclude=asking)
-        figures.append(ranking_figures(codes[ranked], base))
+        figures.append(ranking_figures(local[ranked], base))
     before, after = figures
+
+    def spread(values: tuple[float, ...]) -> tuple[float, ...]:
+        """Per-class values of the classes present, placed at their codes among all ``width`` classes."""
+        full = np.zeros(width)
+        full[present] = values
+        return tuple(float(v) for v in full)
+
     return RankingFairness(
         k=k,
         queries=int(asking.size),
-        base_rate=tuple(float(v) for v in base),
-        share_before=before.share,
-        share_after=after.share,
-        exposure_share_before=before.exposure_share,
-        exposure_share_after=after.exposure_share,
+        base_rate=spread(tuple(float(v) for v in base)),
+        share_before=spread(before.share),
+        share_after=spread(after.share),
+        exposure_share_before=spread(before.exposure_share),
+        exposure_share_after=spread(after.exposure_share),
         max_skew_before=before.max_skew,
         max_skew_after=after.max_skew,
         absent_class_share_before=before.absent_class_share,

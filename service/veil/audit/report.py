@@ -246,6 +246,7 @@ class RankingFairness:
 
 def _absent_by_chance(base_rate: tuple[float, ...], k: int) -> float:
     """The chance that ``k`` results drawn at the base rates miss some class (inclusion-exclusion over classes)."""
+    base_rate = tuple(p for p in base_rate if p > 0)  # a class with no row here cannot be missed by chance
     classes = len(base_rate)
     if classes > 12:  # 4096 subsets at most; beyond, the union bound (an upper bound) is close enough to read
         return min(1.0, sum((1 - p) ** k for p in base_rate))

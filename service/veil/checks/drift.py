@@ -72,12 +72,6 @@ class DriftReport:
         return asdict(self)
 
 
-def _level(value: float | None, warn: float, alert: float) -> str:
-    if value is None:
-        return "ok"
-    return "alert" if value >= alert else "warn" if value >= warn else "ok"
-
-
 def check_drift(
     artifact: MapArtifact,
     reference: ReferenceStatistics,
@@ -124,8 +118,10 @@ def check_drift(
     ratio = share / reference.erased_variance_share if reference.erased_variance_share > 0 else 0.0
 
     by_attribute = labels if isinstance(labels, dict) else {}
-    if by_attribute and not reference.attributes:
+    if by_attribute and not (reference.attributes or reference.continuous):
         raise ValueError("this version guards one attribute: give its labels as a list, not by attribute")
+    if isinstance(labels, list) and not classes:
+        raise ValueError("this version guards continuous attributes only: give their values by attribute")
     known = [attribute.name for attribute in reference.attributes]
     every = known + [attribute.name for attribute in reference.continuous]
     unknown_attributes = sorted(set(by_attribute) - set(every))
@@ -171,7 +167,9 @@ def check_drift(
         queries = None
         if n > RANKING_QUERIES:
             queries = np.sort(np.random.default_rng(random_state).choice(n, RANKING_QUERIES, replace=False))
-        ranking = ranking_before_after(x, np.asarray(erased), headline.codes, RANKING_K, queries=queries)
+        ranking = ranking_before_after(
+            x, np.asarray(erased), headline.codes, RANKING_K, queries=queries, classes=len(classes)
+        )
 
     figures = {
         "mean_shift": max(0.0, mean_raw - mean_noise),
@@ -193,7 +191,7 @@ def check_drift(
     worst = "ok"
     for prefix, figure, value in judged:
         band = getattr(thresholds, figure)
-        level = _level(value, band.warn, band.alert)
+        level = band.level(value)
         if level != "ok":
             reasons.append(
                 f"{prefix}{figure} {value:.3f} reaches {level} ({band.warn if level == 'warn' else band.alert})"

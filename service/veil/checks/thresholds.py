@@ -35,6 +35,18 @@ class Band:
         if not (math.isfinite(self.warn) and math.isfinite(self.alert) and 0 <= self.warn <= self.alert):
             raise ValueError(f"a threshold band needs 0 <= warn <= alert, got warn={self.warn}, alert={self.alert}")
 
+    def level(self, value: float | None) -> str:
+        """``"alert"``, ``"warn"`` or ``"ok"`` for a figure (``"ok"`` when there is none).
+
+        The figure is compared at 9 decimals: a difference such as 0.57 − 0.52
+        (0.04999… in binary) reaches a level of 0.05, so round-off never
+        decides which side of a level a figure falls.
+        """
+        if value is None:
+            return "ok"
+        rounded = round(value, 9)
+        return "alert" if rounded >= self.alert else "warn" if rounded >= self.warn else "ok"
+
 
 @dataclass(frozen=True)
 class _BandSet:

@@ -15,7 +15,7 @@ from dataclasses import asdict, dataclass, field
 from typing import Any
 
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
-from veil.checks.thresholds import AuditThresholds, Band
+from veil.checks.thresholds import AuditThresholds
 
 LEVELS = ("ok", "warn", "alert")
 RULE = (
@@ -67,12 +67,6 @@ def _edge_gap(score: ProbeScore | RegressionScore) -> float:
     if isinstance(score, RegressionScore):
         return max(0.0, score.r2_low if score.r2_low is not None else score.r2)
     return max(0.0, score.interval_low - score.majority, score.majority - score.interval_high)
-
-
-def _level(value: float | None, band: Band) -> str:
-    if value is None:
-        return "ok"
-    return "alert" if value >= band.alert else "warn" if value >= band.warn else "ok"
 
 
 def _widest(report: AuditReport) -> tuple[str, float] | None:
@@ -130,7 +124,7 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds) -> Verdict:
     status = "ok"
     reasons = []
     for name, value in figures.items():
-        level = _level(value, bands[name])
+        level = bands[name].level(value)
         if level != "ok" and value is not None:
             band = bands[name]
             reasons.append(f"{labels[name]} {what[name].format(value=value)} ({level} at {getattr(band, level):g})")

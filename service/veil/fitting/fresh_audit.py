@@ -7,9 +7,10 @@ result, with its verdict under the thresholds the version's card records and
 what data was audited, becomes an immutable record beside the version
 (:mod:`veil.registry.records`); the version itself is not touched.
 
-The record's key is derived from the version, the data's sha256 and the
-audit's settings, so auditing the same data the same way again returns the
-record already stored rather than a second copy.
+The record's key is derived from the version, the audit's settings and the
+rows and labels exactly as audited, so auditing the same data the same way
+again returns the record already stored rather than a second copy, while the
+same file audited for another attribute is another audit.
 """
 
 from __future__ import annotations
@@ -69,10 +70,21 @@ def _rows(
     return np.concatenate(xs), np.concatenate(zs), np.concatenate(tasks) if tasks else None
 
 
-def audit_key(version_id: str, fingerprint: str, settings: dict[str, Any]) -> str:
-    """The record key of an audit: the same version, data and settings give the same key."""
-    text = json.dumps({"version": version_id, "data": fingerprint, **settings}, sort_keys=True)
-    return hashlib.sha256(text.encode()).hexdigest()[:16]
+def audit_key(version_id: str, settings: dict[str, Any], *arrays: NDArray[Any] | None) -> str:
+    """The record key of an audit: the version, the settings, and the rows and labels exactly as audited.
+
+    The arrays, not the file names: the same file audited for another
+    attribute, task, class merge or embeddings column is another audit.
+    """
+    digest = hashlib.sha256(json.dumps({"version": version_id, **settings}, sort_keys=True).encode())
+    for array in arrays:
+        if array is None:
+            digest.update(b"none")
+            continue
+        contiguous = np.ascontiguousarray(array if array.dtype != object else array.astype(str))
+        digest.update(f"{contiguous.dtype.descr}{contiguous.shape}".encode())
+        digest.update(contiguous.tobytes())
+    return digest.hexdigest()[:16]
 
 
 def audit_stored_version(
@@ -122,14 +134,15 @@ def audit_stored_version(
     if sample.dim != card["dim"]:
         raise DataError(f"the sample has {sample.dim} dimensions and {name} {stored.id} takes {card['dim']}")
     settings = {"nonlinear": nonlinear, "seed": seed, "max_rows": max_rows}
-    key = audit_key(stored.id, sample.fingerprint, settings)
     thresholds = card_thresholds(card)
+    with phase("reading the fresh sample"):
+        x, z, task = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows)
+    # Reading is cheap beside the probes: the key names the rows and labels themselves.
+    key = audit_key(stored.id, settings, x, z, task)
     earlier = registry.record(name, stored.id, AUDITS, key)
     if earlier is not None:
         report = AuditReport.from_dict(earlier.body["audit"])
         return FreshAudit(earlier, report, Verdict.from_dict(earlier.body["verdict"]), already_stored=True)
-    with phase("reading the fresh sample"):
-        x, z, task = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows)
     attributes: list[tuple[str, AuditReport]] = []
     notes = []
     if x.shape[0] < sample.labelled_rows:

@@ -10,6 +10,7 @@ finds it there: one record per slot, never two, never a partial one.
 from __future__ import annotations
 
 import hashlib
+import json
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -58,7 +59,8 @@ def slot_start(now: float, every: float) -> float:
 
 def round_key(name: str, service: str, sample: PostedSample | None, slot: float, every: float) -> str:
     """The record key of a round: the eraser, the service, what is checked and the slot (its start and length)."""
-    what = "recent traffic" if sample is None else sample.sha256
+    # A posted sample is its file and the labels it posts (another attribute of the same file is another check).
+    what = "recent traffic" if sample is None else f"{sample.sha256}\n{json.dumps(sample.labels, sort_keys=True)}"
     return hashlib.sha256(f"{name}\n{service}\n{what}\n{slot!r}\n{every!r}".encode()).hexdigest()[:16]
 
 

@@ -6,7 +6,9 @@ Layout under the registry root::
 
 A record is written whole in one step (``Storage.create_once``: a complete
 file appears, or nothing), so a writer killed mid-append leaves no partial
-record, and nothing is ever rewritten.  Records live beside the version,
+record, and nothing is ever rewritten.  Appends to one log hold its lock
+(``<kind>.lock`` beside the folder), so concurrent writers take distinct
+numbers and never store one key twice.  Records live beside the version,
 never inside it: the version's files, seal and content hash do not change.
 ``key`` names the record's content (the sha256 of its body, by default), so
 appending the same record again returns the one stored: retries are
@@ -25,6 +27,7 @@ from veil.registry.errors import IntegrityError
 from veil.registry.storage import Storage
 
 RECORD_FORMAT = 1
+LOCK_TIMEOUT_SECONDS = 30.0
 KINDS = ("audits", "checks")
 _NUMBER_DIGITS = 8
 _KEY = re.compile(r"^[0-9a-f]{16}$")
@@ -92,19 +95,20 @@ def append_record(
 ) -> Record:
     """Append ``body`` to the version's log of ``kind``; the stored record if one with ``key`` is there already.
 
-    Numbers are taken in order: two writers racing for a number both see
-    ``create_once`` decide, and the loser takes the next one.
+    Appends to one log are serialised by a lock beside it (released by the
+    kernel if the writer dies; a lease on object stores), so a key is never
+    stored twice and a number never taken twice, whatever runs at once.
     """
     directory = _directory(name, version_id, kind)
     canonical = _canonical(body)
     key = content_key(body) if key is None else key
     if not _KEY.match(key):
         raise ValueError(f"a record key is 16 lower-case hex digits, got {key!r}")
-    while True:
-        found = find_record(storage, name, version_id, kind, key)
-        if found is not None:
-            return found
+    with storage.lock(f"{directory}.lock", timeout=LOCK_TIMEOUT_SECONDS):
         entries = _entries(storage, directory)
+        for _, existing, entry in entries:
+            if existing == key:
+                return _read(storage, name, version_id, kind, entry)
         number = 1 + max((number for number, _, _ in entries), default=0)
         stored = {
             "record_format": RECORD_FORMAT,
@@ -116,8 +120,9 @@ def append_record(
             "body": body,
         }
         data = json.dumps(stored, indent=2, sort_keys=True).encode()
-        if storage.create_once(f"{directory}/{number:0{_NUMBER_DIGITS}d}-{key}.json", data):
-            return Record(kind=kind, version=version_id, number=number, key=key, body=body)
+        if not storage.create_once(f"{directory}/{number:0{_NUMBER_DIGITS}d}-{key}.json", data):
+            raise IntegrityError(f"{name} {version_id}: {kind} record {number} appeared while the log was locked")
+    return Record(kind=kind, version=version_id, number=number, key=key, body=body)
 
 
 def find_record(storage: Storage, name: str, version_id: str, kind: str, key: str) -> Record | None:

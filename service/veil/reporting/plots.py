@@ -15,6 +15,7 @@ from matplotlib.figure import Figure
 
 from veil.audit.points import Sweep, value_text
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore
+from veil.checks.thresholds import Band
 from veil.reporting.plotdata import PlotData
 
 Draw = Callable[[Figure], None]
@@ -60,8 +61,10 @@ def leakage_plot(audit: AuditReport) -> Draw:
         axes.set_xticks(range(len(pairs)), [p[0] for p in pairs])
         axes.set_ylim(0, 1.05)
         axes.set_ylabel("held-out accuracy (95% interval)")
-        # Beside the axes: with five probes, bars fill every corner inside them.
-        axes.legend(loc="center left", bbox_to_anchor=(1.01, 0.5))
+        # Beside the axes: with five probes, bars fill every corner inside them.  (A continuous attribute's
+        # regression probes have no bars here.)
+        if axes.get_legend_handles_labels()[0]:
+            axes.legend(loc="center left", bbox_to_anchor=(1.01, 0.5))
 
     return draw
 
@@ -227,10 +230,7 @@ def timeline_plot(checks: Sequence[dict[str, Any]], thresholds: dict[str, dict[s
                 axes.axhline(band["alert"], color=ALERT, linestyle="--", linewidth=1, label=f"alert {band['alert']:g}")
             if shown:
                 when, value = zip(*shown, strict=True)
-                levels = [
-                    "ok" if band is None else "alert" if v >= band["alert"] else "warn" if v >= band["warn"] else "ok"
-                    for v in value
-                ]
+                levels = ["ok" if band is None else Band(band["warn"], band["alert"]).level(v) for v in value]
                 axes.plot(when, value, color="#4a5568", linewidth=1)
                 axes.scatter(when, value, s=18, zorder=3, color=[_STATUS_COLOURS[level] for level in levels])
             else:

@@ -11,6 +11,7 @@ sees either the old or the new version, never a mix.
 from __future__ import annotations
 
 import logging
+import math
 import threading
 from collections import OrderedDict
 from dataclasses import dataclass, field
@@ -99,15 +100,17 @@ class ServedVersion:
                 "invalid_request",
                 f"{self.name} guards {', '.join(self.attributes)}: give a target for each, as a JSON object",
             )
+        target = dict(target)  # numbers are normalised below; the caller's mapping stays as given
         for block in self.artifact.moments.blocks:
             if block.joint:
                 continue
             wanted = target[block.name]
             if block.labels is None:
-                if isinstance(wanted, bool) or not isinstance(wanted, (int, float)) or not np.isfinite(wanted):
+                if isinstance(wanted, bool) or not isinstance(wanted, (int, float)) or not _finite_float(wanted):
                     raise ServiceError(
                         "invalid_request", f"the target of continuous attribute {block.name!r} must be a finite number"
                     )
+                target[block.name] = float(wanted)
             elif str(wanted) not in block.labels.astype(str).tolist():
                 classes = block.labels.astype(str).tolist()
                 raise ServiceError("unknown_class", f"{wanted!r} is not a class of {block.name!r}; classes: {classes}")
@@ -290,3 +293,11 @@ class Catalog:
         else:
             logger.info("registry readable", extra={"fields": {"registry": self.registry.url}})
         self.registry_problem = problem
+
+
+def _finite_float(value: float) -> bool:
+    """Whether ``value`` is a finite float64 (an integer too large for one is not: it would overflow)."""
+    try:
+        return math.isfinite(float(value))
+    except OverflowError:
+        return False
