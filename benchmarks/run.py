@@ -57,6 +57,7 @@ from veil.audit.readers import build_probe, fold_sizes
 from veil.audit.report import PROBES
 from veil.erasers.transport import GaussianTransport
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.maps.lowrank import AffineLowRankMap
 from veil.registry import Registry
 from veil.samples.harbourline import load_harbourline_profiles
@@ -152,7 +153,8 @@ def _registry_for_service(folder: Path) -> Path:
     labels = np.array([f"c{c}" for c in range(classes)])[codes]
     sample = LabelledSample(embeddings=x, attribute=labels, attribute_key="group", task=None, task_key=None, files={})
     registry = Registry(folder / "registry")
-    fit_version(sample, registry=registry, name="bench", method="leace", nonlinear=False, alias="live")
+    request = FitRequest(MethodSpec("leace"), StoreSpec("bench", alias="live"), audit=AuditSpec(nonlinear=False))
+    fit_version(sample, request, registry=registry)
     return folder / "registry"
 
 

@@ -26,6 +26,7 @@ from reliability.loadgen import LoadPlan, LoadResult, run_load
 from reliability.outcome import Outcome
 from reliability.workbench import PROFILES, ServiceRegistry, planted_population, sample_of
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
 from veil.samples.harbourline import load_harbourline_profiles
 
@@ -93,9 +94,17 @@ def prepare_versions(registry: ServiceRegistry) -> tuple[str, str]:
     store = Registry(registry.path)
     profiles = load_harbourline_profiles()
     sample = sample_of(profiles.embedding, profiles.pronoun, "pronoun")
-    following = fit_version(sample, registry=store, name=PROFILES, method="leace", nonlinear=False, seed=7)
+    following = fit_version(
+        sample,
+        FitRequest(MethodSpec("leace", seed=7), StoreSpec(PROFILES), audit=AuditSpec(nonlinear=False)),
+        registry=store,
+    )
     x, z = planted_population(3000, seed=3)
-    narrow = fit_version(sample_of(x, z, "pronoun"), registry=store, name=PROFILES, method="leace", nonlinear=False)
+    narrow = fit_version(
+        sample_of(x, z, "pronoun"),
+        FitRequest(MethodSpec("leace"), StoreSpec(PROFILES), audit=AuditSpec(nonlinear=False)),
+        registry=store,
+    )
     return following.version_id, narrow.version_id
 
 

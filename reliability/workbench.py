@@ -9,6 +9,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
 from veil.samples.harbourline import load_harbourline_profiles
 from veil.samples.sources import LabelledSample
@@ -56,10 +57,17 @@ def build_registry(path: Path) -> ServiceRegistry:
     registry = Registry(path)
     profiles = load_harbourline_profiles()
     sample = sample_of(profiles.embedding, profiles.pronoun, "pronoun")
-    leace = fit_version(sample, registry=registry, name=PROFILES, method="leace", nonlinear=False, alias=ALIAS)
-    meanproj = fit_version(sample, registry=registry, name=PROFILES, method="meanproj", nonlinear=False)
+    linear_only = AuditSpec(nonlinear=False)
+    leace = fit_version(
+        sample, FitRequest(MethodSpec("leace"), StoreSpec(PROFILES, alias=ALIAS), audit=linear_only), registry=registry
+    )
+    meanproj = fit_version(
+        sample, FitRequest(MethodSpec("meanproj"), StoreSpec(PROFILES), audit=linear_only), registry=registry
+    )
     x, z = planted_population(20000, seed=1)
     planted = fit_version(
-        sample_of(x, z, "region"), registry=registry, name=PLANTED, method="leace", nonlinear=False, alias=ALIAS
+        sample_of(x, z, "region"),
+        FitRequest(MethodSpec("leace"), StoreSpec(PLANTED, alias=ALIAS), audit=linear_only),
+        registry=registry,
     )
     return ServiceRegistry(path, leace.version_id, meanproj.version_id, planted.version_id)

@@ -25,6 +25,7 @@ from veil import LEACE, attribute_table
 from veil.checks.reference import ReferenceStatistics
 from veil.fitting.fresh_audit import audit_stored_version
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
 from veil.registry.card import format_card
 from veil.registry.evidence import version_evidence
@@ -68,7 +69,11 @@ def stored(tmp_path_factory: pytest.TempPathFactory) -> Stored:
     x, gender, bracket = _people(folder, seed=3)
     sample = load_labelled_sample(folder / "people-3.npz", attribute=["gender", "age_bracket"], joint=True)
     registry = Registry(folder / "registry")
-    outcome = fit_version(sample, registry=registry, name=NAME, method="leace", nonlinear=False, alias="live")
+    outcome = fit_version(
+        sample,
+        FitRequest(MethodSpec("leace"), StoreSpec(NAME, alias="live"), audit=AuditSpec(nonlinear=False)),
+        registry=registry,
+    )
     held = give_every_class_both_parts(holdout_mask(len(x), fraction=0.2, seed=0), split_strata(sample.attribute))
     return Stored(folder / "registry", outcome.version_id, x, gender, bracket, held)
 

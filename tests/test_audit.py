@@ -23,6 +23,7 @@ from veil.audit import AuditReport, ProbeScore, RegressionScore, audit, fit_and_
 from veil.audit.report import HELD_OUT_KFOLD, PROBES
 from veil.audit.stats import wilson_interval
 from veil.fitting.job import fit_version
+from veil.fitting.request import FitRequest, MethodSpec, ReadingSpec, StoreSpec
 from veil.progress import reporting
 from veil.registry import Registry
 from veil.registry.card import format_card
@@ -150,11 +151,15 @@ def test_every_probe_is_trained_and_tested_on_held_out_rows_only_and_the_card_sa
         np.save(tmp_path / "x.npy", x)
         np.save(tmp_path / "z.npy", labels)
         sample = open_stream(tmp_path / "x.npy", attribute="g", labels=tmp_path / "z.npy")
-        outcome = fit_version(sample, registry=registry, name="held", method="leace", chunk_rows=400)
+        outcome = fit_version(
+            sample,
+            FitRequest(MethodSpec("leace"), StoreSpec("held"), reading=ReadingSpec(chunk_rows=400)),
+            registry=registry,
+        )
     else:
         held = give_every_class_both_parts(held, codes)
         sample = LabelledSample(embeddings=x, attribute=labels, attribute_key="g", task=None, task_key=None, files={})
-        outcome = fit_version(sample, registry=registry, name="held", method="leace")
+        outcome = fit_version(sample, FitRequest(MethodSpec("leace"), StoreSpec("held")), registry=registry)
     erased = registry.read_version("held", outcome.version_id).artifact.apply(x)
     # Which row each probed row is, raw or erased: its nearest neighbour among both (scikit-learn's search).
     index = NearestNeighbors(n_neighbors=1).fit(np.concatenate([x, erased]).astype(np.float64))

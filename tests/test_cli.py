@@ -23,9 +23,12 @@ import veil
 from veil import LEACE
 from veil.cli import main
 from veil.defaults import METHOD_NAMES
+from veil.fitting.job import fit_version
 from veil.fitting.methods import METHODS
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import SEAL_FILE, Registry
 from veil.samples.harbourline import SAMPLE_FILE, load_harbourline_profiles
+from veil.samples.sources import load_labelled_sample
 from veil.samples.splitting import give_every_class_both_parts, holdout_mask
 
 SAMPLE = Path(veil.__file__).parent / "data" / SAMPLE_FILE
@@ -190,6 +193,30 @@ def test_the_card_holds_what_auditors_and_the_service_need(fitted: Fitted) -> No
     assert "live-check thresholds (warn / alert):" in human.out
     assert "audit thresholds (warn / alert):" in human.out
     assert human.out.splitlines()[1].startswith("verdict at fitting time: ")
+
+
+def test_the_card_records_the_request_and_the_python_api_makes_the_same_version(fitted: Fitted, tmp_path: Path) -> None:
+    """``veil fit`` builds a FitRequest; the same request through the Python API stores the same map."""
+    request = FitRequest(MethodSpec("meanproj"), StoreSpec(NAME), audit=AuditSpec(nonlinear=False))
+    outcome = fit_version(
+        load_labelled_sample(SAMPLE, attribute="pronoun"), request, registry=Registry(tmp_path / "registry")
+    )
+    by_cli = Registry(fitted.registry).read_version(NAME, fitted.ids["meanproj"])
+    by_python = Registry(tmp_path / "registry").read_version(NAME, outcome.version_id)
+    assert by_cli.card["request"] == by_python.card["request"] == request.to_dict()
+    assert by_cli.card["request"]["audit"]["probes"] == "linear"
+    # The same code on the same rows in one process: the stored factors are the same numbers.
+    for ours, theirs in zip(
+        by_cli.artifact.map.arrays().values(), by_python.artifact.map.arrays().values(), strict=True
+    ):
+        np.testing.assert_array_equal(ours, theirs)
+    rlace = Registry(fitted.registry).read_version(NAME, fitted.ids["rlace"]).card["request"]
+    assert rlace["fit"] == {
+        **request.to_dict()["fit"],
+        "method": "rlace",
+        "params": {"max_iter": 40},
+        "normalize": True,
+    }
 
 
 def test_versions_compare_and_verify(fitted: Fitted) -> None:

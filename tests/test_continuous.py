@@ -30,6 +30,7 @@ from veil.checks.thresholds import AuditThresholds
 from veil.checks.verdict import judge_audit
 from veil.errors import DataError
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
 from veil.registry.evidence import version_evidence
 from veil.reporting import REPORT_FILE
@@ -38,6 +39,9 @@ from veil.samples.splitting import holdout_mask
 from veil_client import VeilClient, VeilClientError
 
 from .service_fixtures import app_for
+
+# A linear-probe fit of the ages, pointed at by the alias live.
+LIVE_AGES = FitRequest(MethodSpec("leace"), StoreSpec("ages", alias="live"), audit=AuditSpec(nonlinear=False))
 
 
 def _ages(n: int, seed: int = 0) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.str_]]:
@@ -122,7 +126,7 @@ def test_fit_guards_a_continuous_attribute_beside_a_categorical_one(tmp_path: Pa
     path = _write(tmp_path, 1200)
     sample = load_labelled_sample(path, attribute=["gender", "age_years"], continuous=["age_years"])
     registry = Registry(tmp_path / "registry")
-    outcome = fit_version(sample, registry=registry, name="ages", method="leace", nonlinear=False, alias="live")
+    outcome = fit_version(sample, LIVE_AGES, registry=registry)
     entries = {entry["name"]: entry for entry in outcome.card["attributes"]}
     assert entries["age_years"]["kind"] == "continuous"
     ridge = entries["age_years"]["audit"]["leakage"]
@@ -164,7 +168,7 @@ def test_bad_continuous_attributes_are_refused_by_name(tmp_path: Path, age: NDAr
 
     def fit() -> None:
         sample = load_labelled_sample(path, attribute=["gender", "age_years"], continuous=["age_years"])
-        fit_version(sample, registry=Registry(tmp_path / "registry"), name="ages", method="leace", nonlinear=False)
+        fit_version(sample, LIVE_AGES, registry=Registry(tmp_path / "registry"))
 
     with pytest.raises(DataError, match=message):
         fit()
@@ -175,7 +179,7 @@ def test_a_version_may_guard_a_continuous_attribute_alone(tmp_path: Path) -> Non
     path = _write(tmp_path, 1200)
     sample = load_labelled_sample(path, attribute="age_years", continuous=["age_years"])
     registry = Registry(tmp_path / "registry")
-    outcome = fit_version(sample, registry=registry, name="ages", method="leace", nonlinear=False, alias="live")
+    outcome = fit_version(sample, LIVE_AGES, registry=registry)
     assert outcome.card["attribute"]["classes"] == []
     assert [entry["kind"] for entry in outcome.card["attributes"]] == ["continuous"]
     assert outcome.card["audit"]["leakage"]["linear_after"]["r2"] < 0.05

@@ -19,6 +19,7 @@ from veil import LEACE, MomentState
 from veil.errors import DataError
 from veil.fitting import job
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, ReadingSpec, StoreSpec
 from veil.maps.attribute import encode_attribute
 from veil.registry import Registry
 from veil.registry.artifact_files import ARRAYS_FILE, content_digest, decode_artifact, encode_artifact
@@ -250,10 +251,13 @@ def test_a_streamed_fit_equals_the_in_memory_fit_of_the_same_rows(tmp_path: Path
     np.save(tmp_path / "x.npy", x.astype(np.float32))
     np.save(tmp_path / "z.npy", labels)
     sample = open_stream(tmp_path / "x.npy", attribute="region", labels=tmp_path / "z.npy")
-    outcome = fit_version(
-        sample, registry=Registry(tmp_path / "r"), name="stream", method="leace",
-        params={"covariance_directions": 4}, nonlinear=False, chunk_rows=777,
-    )  # fmt: skip
+    request = FitRequest(
+        MethodSpec("leace", params={"covariance_directions": 4}),
+        StoreSpec("stream"),
+        audit=AuditSpec(nonlinear=False),
+        reading=ReadingSpec(chunk_rows=777),
+    )
+    outcome = fit_version(sample, request, registry=Registry(tmp_path / "r"))
     stored = Registry(tmp_path / "r").read_version("stream", outcome.version_id).artifact
     keep = ~holdout_mask(6000, fraction=0.2, seed=0)
     expected = LEACE(covariance_directions=4).fit(x.astype(np.float32)[keep], labels[keep])
@@ -287,6 +291,11 @@ def test_the_fitting_job_refuses_a_bad_setting_before_reading_rows(
     sample = open_stream(tmp_path / "x.npy", attribute="g", labels=tmp_path / "z.npy")
     with pytest.raises(DataError, match="covariance_directions must be a non-negative integer, got -1"):
         fit_version(
-            sample, registry=Registry(tmp_path / "r"), name="bad", method="leace",
-            params={"covariance_directions": -1}, nonlinear=False,
-        )  # fmt: skip
+            sample,
+            FitRequest(
+                MethodSpec("leace", params={"covariance_directions": -1}),
+                StoreSpec("bad"),
+                audit=AuditSpec(nonlinear=False),
+            ),
+            registry=Registry(tmp_path / "r"),
+        )

@@ -17,6 +17,7 @@ from numpy.typing import NDArray
 from veil import LEACE, attribute_table
 from veil.errors import DataError
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
 from veil.registry.artifact_files import decode_artifact, encode_artifact
 from veil.samples.attributes import split_strata
@@ -88,7 +89,11 @@ def test_a_fit_counts_each_attribute_s_rows(tmp_path: Path) -> None:
         load_labelled_sample(tmp_path / "people.npz", attribute=names)
     sample = load_labelled_sample(tmp_path / "people.npz", attribute=names, incomplete=True, joint=True)
     registry = Registry(tmp_path / "registry")
-    outcome = fit_version(sample, registry=registry, name="people", method="leace", nonlinear=False, alias="live")
+    outcome = fit_version(
+        sample,
+        FitRequest(MethodSpec("leace"), StoreSpec("people", alias="live"), audit=AuditSpec(nonlinear=False)),
+        registry=registry,
+    )
     held = give_every_class_both_parts(holdout_mask(1500, fraction=0.2, seed=0), split_strata(sample.attribute))
     entries = {entry["name"]: entry for entry in outcome.card["attributes"]}
     assert entries["gender"]["fit_rows"] == int(np.count_nonzero(~held))

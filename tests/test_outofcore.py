@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import tracemalloc
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -14,6 +15,7 @@ import pytest
 from veil import INLP, LEACE, MeanProjection, attribute_table
 from veil.errors import DataError
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, ReadingSpec, StoreSpec
 from veil.registry import Registry
 from veil.samples.sources import load_labelled_sample
 from veil.samples.splitting import holdout_mask
@@ -31,6 +33,16 @@ def data() -> tuple[np.ndarray, np.ndarray]:
     x = rng.normal(size=(N, D)) @ rng.normal(size=(D, D)) / np.sqrt(D)
     x += np.where(z == "south", 1.0, 0.0)[:, None] * rng.normal(size=D) + np.where(z == "west", 1.0, 0.0)[:, None]
     return x.astype(np.float32), z
+
+
+def _request(method: str, name: str, *, params: dict[str, Any] | None = None, **reading: Any) -> FitRequest:
+    """A fit of ``method`` stored as ``name``, audited by the linear probe alone, read as ``reading`` says."""
+    return FitRequest(
+        MethodSpec(method, params=params or {}),
+        StoreSpec(name),
+        audit=AuditSpec(nonlinear=False),
+        reading=ReadingSpec(**reading),
+    )
 
 
 def write_shards(folder: Path, x: np.ndarray, z: np.ndarray, pieces: int = 3) -> Path:
@@ -53,9 +65,7 @@ def test_streamed_moment_fits_equal_the_in_memory_fit_of_the_same_rows(
     labels = write_shards(tmp_path / "shards", x, z)
     sample = open_stream(tmp_path / "shards", attribute="region", labels=labels)
     assert (sample.rows, sample.dim) == (N, D)
-    outcome = fit_version(
-        sample, registry=Registry(tmp_path / "r"), name="stream", method=method, nonlinear=False, chunk_rows=777
-    )
+    outcome = fit_version(sample, _request(method, "stream", chunk_rows=777), registry=Registry(tmp_path / "r"))
     stored = Registry(tmp_path / "r").read_version("stream", outcome.version_id).artifact
     keep = fit_rows()
     expected = reference().fit(x[keep], z[keep])
@@ -73,9 +83,8 @@ def test_streamed_inlp_with_the_moments_classifier_equals_its_in_memory_fit(
     sample = open_stream(tmp_path / "x.npy", attribute="region", labels=tmp_path / "z.npy")
     params = {"classifier": "moments", "max_iter": 8}
     outcome = fit_version(
-        sample, registry=Registry(tmp_path / "r"), name="stream", method="inlp", params=params, nonlinear=False,
-        chunk_rows=1000,
-    )  # fmt: skip
+        sample, _request("inlp", "stream", params=params, chunk_rows=1000), registry=Registry(tmp_path / "r")
+    )
     stored = Registry(tmp_path / "r").read_version("stream", outcome.version_id).artifact
     keep = fit_rows()
     expected = INLP(classifier="moments", max_iter=8, random_state=0).fit(x[keep], z[keep])
@@ -91,10 +100,13 @@ def test_row_methods_fit_on_a_hash_sample_and_the_audit_on_a_bounded_sample(
     )
     pq.write_table(table, tmp_path / "s.parquet", row_group_size=1000)
     sample = open_stream(tmp_path / "s.parquet", attribute="region")
-    outcome = fit_version(
-        sample, registry=Registry(tmp_path / "r"), name="stream", method="rlace", params={"max_iter": 30},
-        nonlinear=False, chunk_rows=500, audit_rows=400, fit_sample_rows=1500,
-    )  # fmt: skip
+    request = FitRequest(
+        MethodSpec("rlace", params={"max_iter": 30}),
+        StoreSpec("stream"),
+        audit=AuditSpec(nonlinear=False, rows=400),
+        reading=ReadingSpec(chunk_rows=500, fit_sample_rows=1500),
+    )
+    outcome = fit_version(sample, request, registry=Registry(tmp_path / "r"))
     notes = " ".join(outcome.card["notes"])
     assert "rlace was fitted on a hash-drawn sample of" in notes
     drawn = int(notes.split("hash-drawn sample of ")[1].split()[0])
@@ -110,10 +122,13 @@ def _streamed_peak(folder: Path, rows: int, dim: int = 64) -> int:
     sample = open_stream(folder / "x.npy", attribute="g", labels=folder / "z.npy")
     tracemalloc.start()
     try:
-        fit_version(
-            sample, registry=Registry(folder / "r"), name="stream", method="leace", nonlinear=False, chunk_rows=2000,
-            audit_rows=500,
-        )  # fmt: skip
+        request = FitRequest(
+            MethodSpec("leace"),
+            StoreSpec("stream"),
+            audit=AuditSpec(nonlinear=False, rows=500),
+            reading=ReadingSpec(chunk_rows=2000),
+        )
+        fit_version(sample, request, registry=Registry(folder / "r"))
         return tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
@@ -170,7 +185,7 @@ def test_bad_streamed_input_is_refused(tmp_path: Path, data: tuple[np.ndarray, n
             attempt()
     one_class = open_stream(tmp_path / "x.npy", attribute="g", labels=tmp_path / "one.npy")
     with pytest.raises(DataError, match="single class"):
-        fit_version(one_class, registry=Registry(tmp_path / "r"), name="stream", method="leace")
+        fit_version(one_class, FitRequest(MethodSpec("leace"), StoreSpec("stream")), registry=Registry(tmp_path / "r"))
     assert not (tmp_path / "r").exists()
 
 
@@ -182,13 +197,10 @@ def test_the_dask_engine_equals_the_single_process_fit(
     x, z = data
     labels = write_shards(tmp_path / "shards", x, z, pieces=4)
     sample = open_stream(tmp_path / "shards", attribute="region", labels=labels)
-    local = fit_version(
-        sample, registry=Registry(tmp_path / "r"), name="local", method=method, nonlinear=False, chunk_rows=400
-    )
+    local = fit_version(sample, _request(method, "local", chunk_rows=400), registry=Registry(tmp_path / "r"))
     distributed = fit_version(
-        sample, registry=Registry(tmp_path / "r"), name="dask", method=method, nonlinear=False, chunk_rows=400,
-        engine="dask", workers=2,
-    )  # fmt: skip
+        sample, _request(method, "dask", chunk_rows=400, engine="dask", workers=2), registry=Registry(tmp_path / "r")
+    )
     registry = Registry(tmp_path / "r")
     one = registry.read_version("local", local.version_id).artifact
     many = registry.read_version("dask", distributed.version_id).artifact
@@ -229,12 +241,14 @@ def test_a_streamed_fit_refuses_or_drops_missing_labels_like_the_in_memory_fit(
         open_stream(tmp_path / "s.parquet", attribute="region")
     streamed = fit_version(
         open_stream(tmp_path / "s.parquet", attribute="region", drop_missing=True),
-        registry=Registry(tmp_path / "r"), name="streamed", method="leace", nonlinear=False, chunk_rows=700,
-    )  # fmt: skip
+        _request("leace", "streamed", chunk_rows=700),
+        registry=Registry(tmp_path / "r"),
+    )
     in_memory = fit_version(
         load_labelled_sample(tmp_path / "s.parquet", attribute="region", drop_missing=True),
-        registry=Registry(tmp_path / "r"), name="in-memory", method="leace", nonlinear=False,
-    )  # fmt: skip
+        _request("leace", "in-memory"),
+        registry=Registry(tmp_path / "r"),
+    )
     registry = Registry(tmp_path / "r")
     one = registry.read_version("streamed", streamed.version_id).artifact
     other = registry.read_version("in-memory", in_memory.version_id).artifact
@@ -285,9 +299,10 @@ def test_several_attributes_stream_from_shards_parquet_and_dask(
     for number, (sample, engine) in enumerate(sources):
         assert sample.attribute_table
         outcome = fit_version(
-            sample, registry=Registry(tmp_path / "r"), name=f"several-{number}", method="leace", nonlinear=False,
-            chunk_rows=777, engine=engine, workers=2,
-        )  # fmt: skip
+            sample,
+            _request("leace", f"several-{number}", chunk_rows=777, engine=engine, workers=2),
+            registry=Registry(tmp_path / "r"),
+        )
         stored = Registry(tmp_path / "r").read_version(f"several-{number}", outcome.version_id).artifact
         np.testing.assert_allclose(stored.apply(x), expected, rtol=1e-9, atol=1e-5)
         entries = {entry["name"]: entry for entry in outcome.card["attributes"]}

@@ -13,18 +13,20 @@ ROOT = Path(__file__).resolve().parents[1]
 
 def test_estimators_are_named_after_their_method() -> None:
     # scikit-learn's habit for estimators named after a method (PCA, NMF): the method's own name.
-    assert {cls.__name__ for cls in (veil.LEACE, veil.INLP, veil.RLACE, veil.MeanProjection)} == {
-        "LEACE",
-        "INLP",
-        "RLACE",
-        "MeanProjection",
-    }
-    assert {veil.LEACE.method, veil.INLP.method, veil.RLACE.method, veil.MeanProjection.method} == {
-        "leace",
-        "inlp",
-        "rlace",
-        "meanproj",
-    }
+    estimators = (veil.LEACE, veil.INLP, veil.RLACE, veil.MeanProjection, veil.GaussianTransport)
+    assert {cls.__name__ for cls in estimators} == {"LEACE", "INLP", "RLACE", "MeanProjection", "GaussianTransport"}
+    assert {cls.method for cls in estimators} == {"leace", "inlp", "rlace", "meanproj", "transport"}
+
+
+def test_every_public_name_is_at_the_top_level() -> None:
+    from veil.erasers.transport import GaussianTransport
+    from veil.fitting.job import fit_version
+    from veil.fitting.request import FitRequest
+
+    missing = [name for name in veil.__all__ if not hasattr(veil, name)]
+    assert missing == []
+    assert set(veil.__all__) <= set(dir(veil))
+    assert (veil.GaussianTransport, veil.fit_version, veil.FitRequest) == (GaussianTransport, fit_version, FitRequest)
 
 
 def test_no_class_and_no_alias_is_named_eraser() -> None:

@@ -16,6 +16,7 @@ import pytest
 from matplotlib import image
 
 from veil.fitting.job import fit_version
+from veil.fitting.request import FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
 from veil.reporting import REPORT_FILE
 from veil.samples.harbourline import load_harbourline_profiles
@@ -50,10 +51,8 @@ def report_page(tmp_path_factory: pytest.TempPathFactory) -> Path:
     registry = Registry(folder / "registry")
     outcome = fit_version(
         sample,
+        FitRequest(MethodSpec("inlp", params={"classifier": "moments", "max_iter": 15}), StoreSpec("profiles-minilm")),
         registry=registry,
-        name="profiles-minilm",
-        method="inlp",
-        params={"classifier": "moments", "max_iter": 15},
     )
     page = folder / "report.html"
     page.write_bytes(registry.read_version("profiles-minilm", outcome.version_id).files[REPORT_FILE])

@@ -15,6 +15,7 @@ from numpy.typing import NDArray
 from veil.defaults import FEW_CLASS_ROWS, MIN_CLASS_ROWS
 from veil.errors import DataError
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
 from veil.samples.attributes import split_strata
 from veil.samples.sources import load_labelled_sample
@@ -38,7 +39,11 @@ def _sample(folder: Path, rare: int, name: str = "people.npz") -> tuple[Path, ND
 
 def _fit(path: Path, registry: Path, **options: object) -> dict[str, object]:
     sample = load_labelled_sample(path, attribute=["gender", "age_bracket"], **options)  # type: ignore[arg-type]
-    outcome = fit_version(sample, registry=Registry(registry), name="people", method="leace", nonlinear=False)
+    outcome = fit_version(
+        sample,
+        FitRequest(MethodSpec("leace"), StoreSpec("people"), audit=AuditSpec(nonlinear=False)),
+        registry=Registry(registry),
+    )
     return outcome.card
 
 

@@ -11,6 +11,7 @@ from sklearn.linear_model import LogisticRegression
 
 from veil.erasers.transport import GaussianTransport
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
 from veil.registry.artifact_files import decode_artifact, encode_artifact
 from veil.samples.harbourline import load_harbourline_profiles
@@ -27,9 +28,14 @@ def stored(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
     path = tmp_path_factory.mktemp("transport") / "registry"
     profiles = load_harbourline_profiles()
     outcome = fit_version(
-        sample_of(profiles.embedding, profiles.pronoun, "pronoun"), registry=Registry(path), name=NAME,
-        method="transport", params={"rank": 64}, nonlinear=False, alias="live",
-    )  # fmt: skip
+        sample_of(profiles.embedding, profiles.pronoun, "pronoun"),
+        FitRequest(
+            MethodSpec("transport", params={"rank": 64}),
+            StoreSpec(NAME, alias="live"),
+            audit=AuditSpec(nonlinear=False),
+        ),
+        registry=Registry(path),
+    )
     return path, outcome.version_id
 
 

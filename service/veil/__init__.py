@@ -14,6 +14,9 @@ from veil.samples.attributes import attribute_table
 
 if TYPE_CHECKING:
     from veil.erasers import INLP, LEACE, RLACE, MeanProjection
+    from veil.erasers.transport import GaussianTransport
+    from veil.fitting.job import fit_version
+    from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, ReadingSpec, StoreSpec
 
 # The one version number is the distribution's (pyproject.toml).
 __version__ = metadata.version("veil")
@@ -23,18 +26,37 @@ __all__ = [
     "LEACE",
     "RLACE",
     "AffineLowRankMap",
+    "AuditSpec",
+    "FitRequest",
+    "GaussianTransport",
     "MapArtifact",
     "MeanProjection",
+    "MethodSpec",
     "MomentState",
+    "ReadingSpec",
     "SearchVectors",
+    "StoreSpec",
     "__version__",
     "attribute_table",
+    "fit_version",
     "search_vectors",
 ]
 
-# The estimators import scikit-learn (about a second): they load on first use, so that `import veil` (and every
-# `veil` command that fits nothing) stays fast.
-_LAZY = {"INLP": "veil.erasers", "LEACE": "veil.erasers", "RLACE": "veil.erasers", "MeanProjection": "veil.erasers"}
+# The estimators and the fitting job import scikit-learn (about a second): they load on first use, so that
+# `import veil` (and every `veil` command that fits nothing) stays fast.
+_LAZY = {
+    "INLP": "veil.erasers",
+    "LEACE": "veil.erasers",
+    "RLACE": "veil.erasers",
+    "MeanProjection": "veil.erasers",
+    "GaussianTransport": "veil.erasers.transport",
+    "fit_version": "veil.fitting.job",
+    "FitRequest": "veil.fitting.request",
+    "MethodSpec": "veil.fitting.request",
+    "AuditSpec": "veil.fitting.request",
+    "StoreSpec": "veil.fitting.request",
+    "ReadingSpec": "veil.fitting.request",
+}
 
 
 def __getattr__(name: str) -> Any:

@@ -43,6 +43,7 @@ from veil.cleaning.corpus import apply_to_file
 from veil.cleaning.index import read_index
 from veil.fitting.fresh_audit import audit_stored_version
 from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.patrol.loop import run_patrol
 from veil.registry import Registry
 from veil.registry.card import attributes_text, card_verdict
@@ -163,7 +164,9 @@ def main() -> None:
         f"1. Fit two erasers on the {sample.rows} profiles that signed up before March, each audited on 20% "
         "held-out rows"
     )
-    leace = fit_version(sample, registry=registry, name=NAME, method="leace", alias="live", reason="first eraser")
+    leace = fit_version(
+        sample, FitRequest(MethodSpec("leace"), StoreSpec(NAME, alias="live", reason="first eraser")), registry=registry
+    )
     print(leace.audit.format_table())
     print(f"verdict at fitting time: {card_verdict(leace.card).sentence()}")
     fresh = audit_stored_version(
@@ -174,16 +177,25 @@ def main() -> None:
         f"that signed up in March: {fresh.verdict.sentence()}"
     )
     inlp = fit_version(
-        sample, registry=registry, name=NAME, method="inlp", params={"classifier": "moments", "max_iter": 30},
-        nonlinear=False,
-    )  # fmt: skip
+        sample,
+        FitRequest(
+            MethodSpec("inlp", params={"classifier": "moments", "max_iter": 30}),
+            StoreSpec(NAME),
+            audit=AuditSpec(nonlinear=False),
+        ),
+        registry=registry,
+    )
     print(f"\nstored {leace.version_id} (LEACE, live) and {inlp.version_id} (INLP, {inlp.card['rank']} directions)")
     registry.promote(NAME, inlp.version_id, reason="demo: try INLP in production")
     print(f"promoted {inlp.version_id} to live\n")
 
     print(f"1b. Guard the pronoun and the age bracket together, and their intersection, in one eraser ({JOINT_NAME})")
     both = load_labelled_sample(before_march, attribute=["pronoun", "age_bracket"], joint=True, task="field")
-    joint = fit_version(both, registry=registry, name=JOINT_NAME, method="leace", alias="live", nonlinear=False)
+    joint = fit_version(
+        both,
+        FitRequest(MethodSpec("leace"), StoreSpec(JOINT_NAME, alias="live"), audit=AuditSpec(nonlinear=False)),
+        registry=registry,
+    )
     print(f"stored {joint.version_id} (LEACE, rank {joint.card['rank']}, linear probes only)")
     print("\n".join(attributes_text(joint.card)))
     print(f"verdict at fitting time: {card_verdict(joint.card).sentence()}\n")

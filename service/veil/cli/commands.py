@@ -67,46 +67,54 @@ def _audit_thresholds(bands: list[tuple[str, tuple[float, float]]]) -> Any:
         raise DataError(f"--audit-threshold: {error}") from None
 
 
+def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
+    """The :class:`~veil.fitting.request.FitRequest` ``veil fit``'s options describe.
+
+    A sample read whole is one chunk, audited and fitted on all its rows: the reading options and the audit's
+    row limit apply to a streamed sample.
+    """
+    from veil.fitting.methods import parse_parameters
+    from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, ReadingSpec, StoreSpec
+
+    method = MethodSpec(
+        args.method,
+        params=parse_parameters(args.method, args.option),
+        holdout=args.holdout,
+        seed=args.seed,
+        normalize=args.normalize,
+        sweep=args.sweep is not None,
+        sweep_values=None if not args.sweep else tuple(_sweep_values(args.sweep)),
+        targets=tuple(args.target),
+    )
+    audit = AuditSpec(
+        nonlinear=args.probes == "all",
+        rows=args.audit_rows if streamed else None,
+        thresholds=_audit_thresholds(args.audit_threshold),
+    )
+    reading = ReadingSpec()
+    if streamed:
+        reading = ReadingSpec(
+            chunk_rows=args.chunk_rows,
+            fit_sample_rows=args.fit_sample_rows,
+            engine=args.engine,
+            scheduler=args.scheduler,
+            workers=args.dask_workers,
+        )
+    store = StoreSpec(args.name, alias=args.alias, reason=args.reason)
+    return FitRequest(method, store, audit=audit, reading=reading)
+
+
 def fit(args: argparse.Namespace) -> int:
     from veil.audit.points import Sweep
     from veil.fitting.job import fit_version
-    from veil.fitting.methods import parse_parameters
     from veil.fitting.sweep import TargetsMissedError
 
-    params = parse_parameters(args.method, args.option)
-    sweep_values = None if not args.sweep else _sweep_values(args.sweep)
+    streamed = args.stream or args.engine == "dask" or Path(args.data).is_dir()
+    request = _fit_request(args, streamed=streamed)
     registry = Registry(args.registry)
     registry.storage.list("")  # a registry that cannot take the version fails now, not after the fit
-    common: dict[str, Any] = {
-        "registry": registry,
-        "name": args.name,
-        "method": args.method,
-        "params": params,
-        "holdout": args.holdout,
-        "seed": args.seed,
-        "normalize": args.normalize,
-        "nonlinear": args.probes == "all",
-        "alias": args.alias,
-        "reason": args.reason,
-        "sweep": args.sweep is not None,
-        "sweep_values": sweep_values,
-        "targets": args.target,
-        "audit_thresholds": _audit_thresholds(args.audit_threshold),
-    }
     try:
-        if args.stream or args.engine == "dask" or Path(args.data).is_dir():
-            outcome = fit_version(
-                _open_sample(args, streamed=True),
-                chunk_rows=args.chunk_rows,
-                audit_rows=args.audit_rows,
-                fit_sample_rows=args.fit_sample_rows,
-                engine=args.engine,
-                scheduler=args.scheduler,
-                workers=args.dask_workers,
-                **common,
-            )
-        else:
-            outcome = fit_version(_open_sample(args, streamed=False), **common)
+        outcome = fit_version(_open_sample(args, streamed=streamed), request, registry=registry)
     except TargetsMissedError as missed:
         # The points, so the targets can be set again with the figures in view; the error itself is one line.
         print(missed.sweep.format_table())

@@ -20,28 +20,23 @@ INLP (logistic, SVM), R-LACE        the rows                      a hash sample 
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 from functools import partial
 from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.checks.thresholds import AlertThresholds, AuditThresholds
-from veil.defaults import (
-    AUDIT_ROWS,
-    ENGINES,
-    FEW_CLASS_ROWS,
-    FIT_SAMPLE_ROWS,
-    MIN_CLASS_ROWS,
-    STREAM_CHUNK_ROWS,
-)
+from veil.audit.points import Sweep
+from veil.defaults import AUDIT_ROWS, FEW_CLASS_ROWS, FIT_SAMPLE_ROWS, MIN_CLASS_ROWS
 from veil.erasers import INLP, Erasure, MomentErasure
 from veil.errors import DataError
 from veil.fitting.methods import fit_collecting_notes, make_eraser
 from veil.fitting.plan import PartResult, PassPlan, concatenated
+from veil.fitting.request import FitRequest, MethodSpec, ReadingSpec
 from veil.fitting.store import FitOutcome, audit_and_store, audit_folds
-from veil.fitting.sweep import Value, parse_target, run_sweep
+from veil.fitting.sweep import Target, Value, parse_target, run_sweep
 from veil.fitting.sweep import sweep_values as strengths
 from veil.maps.moments import MomentState
 from veil.progress import advance, phase
@@ -52,250 +47,266 @@ from veil.samples.chunks import Partition, Sample
 MOMENT_METHODS = ("leace", "meanproj")
 
 
-def fit_version(
-    sample: Sample,
-    *,
-    registry: Registry,
-    name: str,
-    method: str,
-    params: Mapping[str, Any] | None = None,
-    holdout: float = 0.2,
-    seed: int = 0,
-    normalize: bool = False,
-    nonlinear: bool = True,
-    alias: str | None = None,
-    reason: str = "",
-    thresholds: AlertThresholds | None = None,
-    audit_thresholds: AuditThresholds | None = None,
-    chunk_rows: int = STREAM_CHUNK_ROWS,
-    audit_rows: int | None = None,
-    fit_sample_rows: int | None = None,
-    engine: str = "local",
-    scheduler: str | None = None,
-    workers: int = 2,
-    sweep: bool = False,
-    sweep_values: Sequence[Value] | None = None,
-    targets: Sequence[str] = (),
-) -> FitOutcome:
-    """Fit an eraser on part of ``sample``, audit it on the rest, and store it as a new version of ``name``.
+@dataclass(frozen=True)
+class _Setup:
+    """What the pass needs, decided and checked before it reads a row."""
+
+    eraser: Erasure
+    partitions: Sequence[Partition]
+    plan: PassPlan
+    targets: list[Target]
+    #: INLP's moments classifier on a sample of many partitions: fitted chunk by chunk during the pass.
+    streams_inlp: bool
+    audit_rows: int | None
+    fit_sample_rows: int | None
+
+    @property
+    def streamed(self) -> bool:
+        return len(self.partitions) > 1
+
+
+@dataclass(frozen=True)
+class _Rows:
+    """What the pass gave: the fitting rows' moments and counts, and hash-drawn rows of both sides of the split."""
+
+    total: PartResult
+    #: The fitted classes of a single categorical attribute (empty for an attribute table).
+    classes: NDArray[Any]
+    fit: tuple[NDArray[np.floating], NDArray[Any]]
+    held: tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None]
+
+
+def fit_version(sample: Sample, request: FitRequest, *, registry: Registry) -> FitOutcome:
+    """Fit an eraser on part of ``sample``, audit it on the rest, and store it as a new version.
 
     Parameters
     ----------
     sample : Sample
-        Embeddings with a categorical attribute (and optionally a task label):
-        a :class:`~veil.samples.sources.LabelledSample` in memory or a
-        :class:`~veil.samples.streaming.StreamedSample`.
+        Embeddings with a categorical attribute (or an attribute table), and optionally a task label: a
+        :class:`~veil.samples.sources.LabelledSample` in memory or a :class:`~veil.samples.streaming.StreamedSample`.
+    request : FitRequest
+        What to fit, how to audit it, where to store it and how to read the sample (see
+        :mod:`veil.fitting.request`); the card records it.
     registry : Registry
-    name : str
-        The eraser's name in the registry (one per embedding space and attribute).
-    method : {"leace", "meanproj", "inlp", "rlace"}
-    params : mapping, optional
-        Keyword arguments of the method's eraser (see :func:`veil.fitting.methods.parse_parameters`).
-    holdout : float, default=0.2
-        Share of rows held out for the audit, drawn by a seeded hash of the row index.
-    seed : int, default=0
-        Seeds the split, the probes and any randomised method.
-    normalize : bool, default=False
-        Re-normalise served vectors to unit length.
-    nonlinear : bool, default=True
-        Also audit with the nonlinear probes (quadratic, RBF kernel, boosted trees, MLP).
-    alias : str, optional
-        Point this alias at the new version once it is stored.
-    reason : str
-        Recorded in the history if an alias is moved.
-    thresholds : AlertThresholds, optional
-        Alert levels of the live checks (the defaults otherwise).
-    audit_thresholds : AuditThresholds, optional
-        Levels the verdict of this fit's audit and of later fresh audits is judged by (the defaults otherwise;
-        see :mod:`veil.checks.verdict`).
-    chunk_rows : int
-        Rows read at a time from a streamed sample (a sample in memory is one chunk).
-    audit_rows, fit_sample_rows : int, optional
-        At most about this many held-out rows are audited, and fitting rows
-        given to the methods that need rows, drawn by a hash.  Default: every
-        row for a sample of one partition, :data:`veil.defaults.AUDIT_ROWS` and
-        :data:`veil.defaults.FIT_SAMPLE_ROWS` for a streamed one, so that its
-        memory is O(d² + chunk_rows · d + audit_rows · d) whatever its size.
-    engine : {"local", "dask"}
-        Run the pass in this process, or on dask.distributed workers (each
-        partition read where it is processed, merged by a tree reduction, see
-        :mod:`veil.fitting.distributed`).
-    scheduler : str, optional
-        Address of a running Dask scheduler; None starts a local cluster of ``workers`` processes.
-    sweep : bool, default=False
-        Also fit the method at every strength of a grid and measure each
-        point on the held-out rows (see :mod:`veil.fitting.sweep`); the card
-        and the report hold the curves.
-    sweep_values : sequence, optional
-        The strengths (values of the method's strength parameter) instead of its default grid.
-    targets : sequence of str
-        Targets such as ``"nn-attribute <= base + 0.05"`` (they imply a sweep): the version stored is the
-        sweep's point of least distortion that meets every target.
 
     Raises
     ------
     DataError
-        The sample or the options cannot make a version; nothing is written.
+        The sample or the request cannot make a version; nothing is written.
     TargetsMissedError
         No point of the sweep meets every target (the sweep is attached); nothing is written.
     """
-    wanted = [parse_target(text) for text in targets]
-    sweep = sweep or bool(wanted)
-    if not 0.0 < holdout < 1.0:
-        raise DataError(f"the held-out share must be between 0 and 1, got {holdout}")
-    if chunk_rows < 1 or any(limit is not None and limit < 2 for limit in (audit_rows, fit_sample_rows)):
-        raise DataError("chunk_rows must be at least 1, and the sample sizes at least 2 rows")
-    if engine not in ENGINES:
-        raise DataError(f"unknown engine {engine!r}; choose one of {', '.join(ENGINES)}")
-    eraser = make_eraser(name, alias, method, params, seed=seed, normalize=normalize)
-    partitions = sample.partitions(chunk_rows)
+    setup = _prepare(sample, request)
+    notes: list[str] = []
+    total = _read(setup, request.reading, sample, notes)
+    rows = _checked_rows(sample, setup, total, notes)
+    eraser, operating_points = _fit(setup, request, rows, notes)
+    notes += _sampling_notes(setup, request.fit.method, rows, expected_held=_expected_held(sample, request))
+    streamed = ", streamed" if setup.streamed else ""
+    return audit_and_store(
+        eraser,
+        sample,
+        request,
+        registry=registry,
+        fit_rows=total.fit_rows,
+        fit_sample=rows.fit if sample.attribute_table else _coded(rows.fit, eraser),
+        held_out=rows.held,
+        reason=request.store.reason or f"fitted by veil fit ({request.fit.method}{streamed})",
+        notes=notes,
+        operating_points=operating_points,
+    )
+
+
+def _prepare(sample: Sample, request: FitRequest) -> _Setup:
+    """The eraser, the partitions and the pass plan; refuses, before any row is read, what cannot be fitted."""
+    spec, reading = request.fit, request.reading
+    targets = [parse_target(text) for text in spec.targets]
+    eraser = make_eraser(spec)
+    partitions = sample.partitions(reading.chunk_rows)
     streamed = len(partitions) > 1
-    exact_moments = method in MOMENT_METHODS
+    exact_moments = spec.method in MOMENT_METHODS
     # Several attributes (or a continuous one) come as a table, the labels read and checked before the pass.
-    table = sample.attribute_table
-    if table:
-        _check_table_options(method, eraser, sweep)
-    # A sweep's points are configured (and checked) before the pass too: the pass accumulates what any needs.
-    candidates = [eraser]
-    if sweep:
-        parameter, values = strengths(method, sweep_values)
-        candidates += [
-            make_eraser(name, alias, method, {**(params or {}), parameter: value}, seed=seed, normalize=normalize)
-            for value in values
-        ]
-    try:
-        # Checked before the pass: a parameter the fit would refuse must not cost a read of the whole sample.
-        by_class = exact_moments and any(
-            isinstance(candidate, MomentErasure) and candidate.needs_class_moments for candidate in candidates
-        )
-    except ValueError as error:
-        raise DataError(f"{method}: {error}") from None
-    # INLP's moments classifier streams through partial_fit; a sample of one partition is simply fitted.
+    if sample.attribute_table:
+        _check_table_options(spec.method, eraser, spec.sweeps)
+    by_class = exact_moments and _needs_class_moments(spec, eraser)
     streams_inlp = streamed and isinstance(eraser, INLP) and eraser.classifier == "moments"
-    if engine == "dask" and streams_inlp:
+    if reading.engine == "dask" and streams_inlp:
         raise DataError("INLP with the moments classifier fits sequentially; use the local engine (--stream)")
-    if sweep and streams_inlp:
+    if spec.sweeps and streams_inlp:
         raise DataError(
             "a sweep fits the method once per point, and INLP's moments classifier fits a streamed sample in its "
             "one pass: sweep the logistic classifier, or a sample in memory"
         )
+    audit_rows, fit_sample_rows = request.audit.rows, reading.fit_sample_rows
     if streamed:
         audit_rows = AUDIT_ROWS if audit_rows is None else audit_rows
         fit_sample_rows = FIT_SAMPLE_ROWS if fit_sample_rows is None else fit_sample_rows
-    expected_held = int(sample.labelled_rows * holdout)
+    expected_held = _expected_held(sample, request)
     # The reference probe needs a sample of the fitting rows: as large as the audit's where the fit needs none.
     fit_limit = audit_rows if exact_moments or streams_inlp else fit_sample_rows
     plan = PassPlan(
-        holdout=holdout,
-        seed=seed,
+        holdout=spec.holdout,
+        seed=spec.seed,
         held_fraction=_share(audit_rows, expected_held),
         fit_fraction=_share(fit_limit, sample.labelled_rows - expected_held),
         exact_moments=exact_moments,
         whole=not streamed,
         by_class=by_class,
     )
-    notes: list[str] = []
-    if engine == "dask":
+    return _Setup(eraser, partitions, plan, targets, streams_inlp, audit_rows, fit_sample_rows)
+
+
+def _needs_class_moments(spec: MethodSpec, eraser: Erasure) -> bool:
+    """Whether the eraser, or any point of its sweep, reads per-class co-moments (which the pass then gathers)."""
+    candidates = [eraser]
+    if spec.sweeps:
+        parameter, values = strengths(spec.method, spec.sweep_values)
+        candidates += [make_eraser(spec, **{parameter: value}) for value in values]
+    try:
+        # Checked before the pass: a parameter the fit would refuse must not cost a read of the whole sample.
+        return any(isinstance(candidate, MomentErasure) and candidate.needs_class_moments for candidate in candidates)
+    except ValueError as error:
+        raise DataError(f"{spec.method}: {error}") from None
+
+
+def _expected_held(sample: Sample, request: FitRequest) -> int:
+    return int(sample.labelled_rows * request.fit.holdout)
+
+
+def _read(setup: _Setup, reading: ReadingSpec, sample: Sample, notes: list[str]) -> PartResult:
+    """The one pass over the sample's partitions, here or on Dask workers."""
+    if reading.engine == "dask":
         from veil.fitting.distributed import run_pass
 
-        total = run_pass(plan, partitions, scheduler=scheduler, workers=workers)
-        if sample.attribute_dtype is not None:
-            total = total.with_attribute_dtype(sample.attribute_dtype)
-    else:
-        total = _local_pass(plan, partitions, eraser if streams_inlp else None, notes)
+        total = run_pass(setup.plan, setup.partitions, scheduler=reading.scheduler, workers=reading.workers)
+        # Dask's serialisation returns the attribute table without its dtype's metadata.
+        return total if sample.attribute_dtype is None else total.with_attribute_dtype(sample.attribute_dtype)
+    return _local_pass(setup.plan, setup.partitions, setup.eraser if setup.streams_inlp else None, notes)
 
-    x_sample, z_sample, _ = concatenated(total.fit_sample, "fit")
-    x_held, z_held, task_held = concatenated(total.held_sample, "audit")
+
+def _checked_rows(sample: Sample, setup: _Setup, total: PartResult, notes: list[str]) -> _Rows:
+    """The pass's rows, once the classes and the split are known to make a version; notes on small classes."""
+    x_fit, z_fit, _ = concatenated(total.fit_sample, "fit")
+    held = concatenated(total.held_sample, "audit")
     # Small classes first: a class too small to fit is refused with its remedy, before the audit's needs are checked.
-    if table:
-        if total.moments is None:
-            raise DataError("no rows are left to fit on; lower the held-out share")
-        blocks = total.moments.blocks
-        counted = [
-            (block.name, block.labels, total.moments.block(block.name).class_counts)
-            for block in blocks
-            if block.labels is not None
-        ]
+    if sample.attribute_table:
+        classes: NDArray[Any] = np.array([])
+        counted = _table_class_counts(total.moments)
     else:
-        if exact_moments:
-            fitted = _classes_of(total.moments)
-        elif streams_inlp:
-            fitted = _classes_of(getattr(eraser, "moments_", None))
-        else:
-            fitted = np.unique(z_sample)
-        source = total.moments if exact_moments else getattr(eraser, "moments_", None) if streams_inlp else None
-        counts = np.unique(z_sample, return_counts=True)[1] if source is None else source.class_counts
-        counted = [(sample.attribute_key, fitted, counts)] if fitted.size else []
-    for attribute, classes, counts in counted:
-        notes += _small_classes(attribute, classes, counts)
-    if table and total.moments is not None and total.moments.partial:
+        classes, counts = _fitted_classes(setup, total, z_fit)
+        counted = [(sample.attribute_key, classes, counts)] if classes.size else []
+    for attribute, labels, counts in counted:
+        notes += _small_classes(attribute, labels, counts)
+    if sample.attribute_table and total.moments is not None and total.moments.partial:
         rows = ", ".join(
             f"{block.name} {state.count}"
             for block, state in zip(total.moments.blocks, total.moments.partial, strict=True)
         )
         notes.append(f"incomplete labels: each attribute was fitted on the fitting rows that carry it ({rows})")
     notes += list(getattr(sample, "notes", ()))
-    if table:
-        _check_table_split(sample, total.fit_rows, total.moments, z_held)
+    if sample.attribute_table:
+        _check_table_split(sample, total.fit_rows, total.moments, held[1])
     else:
-        _check_split(sample, total.fit_rows, fitted, z_held, audit_sampled=audit_rows is not None)
+        _check_split(sample, total.fit_rows, classes, held[1], audit_sampled=setup.audit_rows is not None)
+    return _Rows(total, classes, (x_fit, z_fit), held)
+
+
+def _table_class_counts(moments: MomentState | None) -> list[tuple[str, NDArray[Any], NDArray[np.int64]]]:
+    """Each categorical attribute of a table with its classes and their fitting rows."""
+    if moments is None:
+        raise DataError("no rows are left to fit on; lower the held-out share")
+    return [
+        (block.name, block.labels, moments.block(block.name).class_counts)
+        for block in moments.blocks
+        if block.labels is not None
+    ]
+
+
+def _fitted_classes(setup: _Setup, total: PartResult, z_fit: NDArray[Any]) -> tuple[NDArray[Any], NDArray[np.int64]]:
+    """The classes of a single attribute and their fitting rows: from the moments where the pass kept them."""
+    if setup.plan.exact_moments:
+        source = total.moments
+    elif setup.streams_inlp:
+        source = getattr(setup.eraser, "moments_", None)
+    else:
+        classes, counts = np.unique(z_fit, return_counts=True)
+        return classes, counts.astype(np.int64)
+    if source is None or source.labels is None:
+        return np.array([]), np.zeros(0, dtype=np.int64)
+    return source.labels, source.class_counts
+
+
+def _fit(setup: _Setup, request: FitRequest, rows: _Rows, notes: list[str]) -> tuple[Erasure, Sweep | None]:
+    """The eraser fitted on the fitting rows: at the request's options, or at the point a sweep chose."""
+    spec = request.fit
+    moments = rows.total.moments
+    x_fit, z_fit = rows.fit
 
     def fit(candidate: Erasure) -> list[str]:
-        if exact_moments:
-            moments = total.moments
+        if spec.method in MOMENT_METHODS:
             assert moments is not None  # _check_split refuses a pass without fitting rows
-            return fit_collecting_notes(candidate, method, partial(candidate.fit_moments, moments))
-        return fit_collecting_notes(candidate, method, partial(candidate.fit, x_sample, z_sample))
+            return fit_collecting_notes(candidate, spec.method, partial(candidate.fit_moments, moments))
+        return fit_collecting_notes(candidate, spec.method, partial(candidate.fit, x_fit, z_fit))
 
-    operating_points = None
-    if sweep:
-        point_notes: list[list[str]] = []
-
-        def fit_at(parameter: str, value: Value) -> Erasure:
-            point = make_eraser(
-                name, alias, method, {**(params or {}), parameter: value}, seed=seed, normalize=normalize
-            )
-            with phase(f"sweep: fitting {method} at {parameter}={value}"):
-                point_notes.append(fit(point))
-            return point
-
-        codes_held = np.searchsorted(fitted, z_held).astype(np.intp)
-        task_codes = None if task_held is None else np.unique(task_held, return_inverse=True)[1].astype(np.intp)
-        with phase("sweep: measuring the points"):
-            operating_points, sweep_fits = run_sweep(
-                method, sweep_values, fit_at, x_held, codes_held, task_codes, targets=wanted,
-                folds=audit_folds(codes_held), nonlinear=nonlinear, random_state=seed,
-            )  # fmt: skip
-        if operating_points.chosen is not None:
-            eraser = sweep_fits[operating_points.chosen]
-            notes += point_notes[operating_points.chosen]
-    if (operating_points is None or operating_points.chosen is None) and not streams_inlp:
-        with phase(f"fitting {method}"):
+    eraser, operating_points = setup.eraser, None
+    if spec.sweeps:
+        operating_points, chosen, point_notes = _sweep(setup, request, rows, fit)
+        if chosen is not None:
+            eraser = chosen
+            notes += point_notes
+    if (operating_points is None or operating_points.chosen is None) and not setup.streams_inlp:
+        with phase(f"fitting {spec.method}"):
             notes += fit(eraser)
-    if fit_sample_rows is not None and not (exact_moments or streams_inlp):
+    return eraser, operating_points
+
+
+def _sweep(
+    setup: _Setup, request: FitRequest, rows: _Rows, fit: Callable[[Erasure], list[str]]
+) -> tuple[Sweep, Erasure | None, list[str]]:
+    """Every point of the method's sweep fitted and measured on the held-out rows; the chosen one and its notes."""
+    spec = request.fit
+    point_notes: list[list[str]] = []
+
+    def fit_at(parameter: str, value: Value) -> Erasure:
+        point = make_eraser(spec, **{parameter: value})
+        with phase(f"sweep: fitting {spec.method} at {parameter}={value}"):
+            point_notes.append(fit(point))
+        return point
+
+    x_held, z_held, task_held = rows.held
+    codes_held = np.searchsorted(rows.classes, z_held).astype(np.intp)
+    task_codes = None if task_held is None else np.unique(task_held, return_inverse=True)[1].astype(np.intp)
+    with phase("sweep: measuring the points"):
+        points, fitted = run_sweep(
+            spec.method, spec.sweep_values, fit_at, x_held, codes_held, task_codes, targets=setup.targets,
+            folds=audit_folds(codes_held), nonlinear=request.audit.nonlinear, random_state=spec.seed,
+        )  # fmt: skip
+    if points.chosen is None:
+        return points, None, []
+    return points, fitted[points.chosen], point_notes[points.chosen]
+
+
+def _coded(
+    rows: tuple[NDArray[np.floating], NDArray[Any]], eraser: Erasure
+) -> tuple[NDArray[np.floating], NDArray[np.intp]]:
+    """Fitting rows of a single attribute with their labels as the fitted eraser's class codes."""
+    x, z = rows
+    return x, np.searchsorted(eraser.classes_, z).astype(np.intp)
+
+
+def _sampling_notes(setup: _Setup, method: str, rows: _Rows, *, expected_held: int) -> list[str]:
+    """Notes for the card on the rows a hash drew for a method that needs rows, and for the audit."""
+    notes = []
+    if setup.fit_sample_rows is not None and not (setup.plan.exact_moments or setup.streams_inlp):
         notes.append(
-            f"{method} was fitted on a hash-drawn sample of {x_sample.shape[0]} of {total.fit_rows} fitting rows"
+            f"{method} was fitted on a hash-drawn sample of {rows.fit[0].shape[0]} of {rows.total.fit_rows} "
+            "fitting rows"
         )
-    if audit_rows is not None:
-        notes.append(f"audited on a hash-drawn sample of {x_held.shape[0]} of about {expected_held} held-out rows")
-    return audit_and_store(
-        eraser,
-        sample,
-        registry=registry,
-        name=name,
-        fit_rows=total.fit_rows,
-        fit_sample=(x_sample, z_sample if table else np.searchsorted(eraser.classes_, z_sample).astype(np.intp)),
-        held_out=(x_held, z_held, task_held),
-        holdout=holdout,
-        seed=seed,
-        nonlinear=nonlinear,
-        alias=alias,
-        reason=reason or f"fitted by veil fit ({method}{', streamed' if streamed else ''})",
-        thresholds=thresholds,
-        audit_thresholds=audit_thresholds,
-        notes=notes,
-        operating_points=operating_points,
-    )
+    if setup.audit_rows is not None:
+        notes.append(
+            f"audited on a hash-drawn sample of {rows.held[0].shape[0]} of about {expected_held} held-out rows"
+        )
+    return notes
 
 
 def _share(limit: int | None, rows: int) -> float:
@@ -353,10 +364,6 @@ def _check_table_split(sample: Sample, fit_rows: int, moments: MomentState | Non
         _check_split_classes(attribute, classes, values, audit_sampled=False)
     if fit_rows <= sample.dim // 10:
         raise DataError(f"only {fit_rows} rows are left to fit on; lower the held-out share")
-
-
-def _classes_of(moments: MomentState | None) -> NDArray[Any]:
-    return np.array([]) if moments is None or moments.labels is None else moments.labels
 
 
 def _check_split(

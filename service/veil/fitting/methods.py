@@ -4,13 +4,13 @@ from __future__ import annotations
 
 import json
 import warnings
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from veil.erasers import INLP, LEACE, RLACE, Erasure, MeanProjection
 from veil.erasers.transport import GaussianTransport
 from veil.errors import DataError
-from veil.registry.naming import check_name
+from veil.fitting.request import MethodSpec
 
 METHODS: dict[str, type[Erasure]] = {
     "leace": LEACE,
@@ -77,19 +77,15 @@ def parse_parameters(method: str, assignments: Sequence[str]) -> dict[str, Any]:
     return parsed
 
 
-def make_eraser(
-    name: str, alias: str | None, method: str, params: Mapping[str, Any] | None, *, seed: int, normalize: bool
-) -> Erasure:
-    check_name(name)
-    if alias is not None:
-        check_name(alias, what="alias")
-    options = dict(params or {})
-    unknown = sorted(set(options) - set(method_parameters(method)))
+def make_eraser(spec: MethodSpec, **overrides: Any) -> Erasure:
+    """The estimator ``spec`` describes, with ``overrides`` of its options (a sweep's strength)."""
+    options = {**spec.params, **overrides}
+    unknown = sorted(set(options) - set(method_parameters(spec.method)))
     if unknown:
-        raise DataError(f"{method} has no option {unknown[0]!r}")
-    if "random_state" in METHODS[method]().get_params():
-        options["random_state"] = seed
-    return METHODS[method](**options, normalize=normalize)
+        raise DataError(f"{spec.method} has no option {unknown[0]!r}")
+    if "random_state" in METHODS[spec.method]().get_params():
+        options["random_state"] = spec.seed
+    return METHODS[spec.method](**options, normalize=spec.normalize)
 
 
 def fit_collecting_notes(eraser: Erasure, method: str, fit: Callable[[], object]) -> list[str]:

@@ -15,8 +15,9 @@ from veil.audit.points import Sweep
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
 from veil.checks.reference import REFERENCE_FILE, AttributeReference, ContinuousReference, ReferenceStatistics
-from veil.checks.thresholds import AlertThresholds, AuditThresholds
+from veil.checks.thresholds import AlertThresholds
 from veil.erasers import Erasure
+from veil.fitting.request import FitRequest
 from veil.maps.artifact import MapArtifact
 from veil.progress import phase
 from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
@@ -48,28 +49,23 @@ def audit_folds(codes: NDArray[np.intp]) -> int:
 def audit_and_store(
     eraser: Erasure,
     sample: Sample,
+    request: FitRequest,
     *,
     registry: Registry,
-    name: str,
     fit_rows: int,
     fit_sample: tuple[NDArray[np.floating], NDArray[Any]],
     held_out: tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None],
-    holdout: float,
-    seed: int,
-    nonlinear: bool,
-    alias: str | None,
     reason: str,
-    thresholds: AlertThresholds | None,
     notes: list[str],
     operating_points: Sweep | None = None,
-    audit_thresholds: AuditThresholds | None = None,
 ) -> FitOutcome:
     """Audit a fitted eraser on held-out rows, build its card, reference and report, and store the version.
 
     ``fit_sample`` holds fitting rows with their attribute's class codes, or, for several attributes, their
     attribute table; each attribute is then audited on its own (the first categorical one's audit, reference
-    and plots are the version's headline figures).
+    and plots are the version's headline figures).  ``reason`` goes in the history if an alias is moved.
     """
+    seed, nonlinear = request.fit.seed, request.audit.nonlinear
     x_held, z_held, task_held = held_out
     artifact = eraser.export()
     attribute_audits: list[tuple[str, AuditReport]] = []
@@ -134,20 +130,21 @@ def audit_and_store(
     with phase("report plots"):
         plots = PlotData.from_heldout(x_plot, eraser.transform(x_plot), codes_held, seed=seed)
     card = build_card(
-        name=name,
+        name=request.store.name,
         artifact=artifact,
         sample=sample,
         fit_rows=fit_rows,
         split_seed=seed,
-        holdout=holdout,
+        holdout=request.fit.holdout,
         audit=report,
         reference=reference,
-        thresholds=thresholds or AlertThresholds(),
+        thresholds=request.audit.live_thresholds or AlertThresholds(),
         user=current_user(),
         notes=notes + list(report.notes),
         operating_points=None if operating_points is None else operating_points.to_dict(),
-        audit_thresholds=audit_thresholds,
+        audit_thresholds=request.audit.thresholds,
         attribute_audits=attribute_audits,
+        request=request.to_dict(),
     )
     files = encode_artifact(artifact)
     files[CARD_FILE] = json.dumps(card, indent=2, sort_keys=True, allow_nan=False).encode()
@@ -158,10 +155,9 @@ def audit_and_store(
         return {REPORT_FILE: render_report(version_id, card, artifact.history, plots).encode()}
 
     with phase("storing the version"):
+        name, alias = request.store.name, request.store.alias
         version_id = registry.add_version(name, files, derived=report_page)
-        promotion = None
-        if alias is not None:
-            promotion = registry.promote(name, version_id, alias=alias, reason=reason)
+        promotion = None if alias is None else registry.promote(name, version_id, alias=alias, reason=reason)
     return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion)
 
 

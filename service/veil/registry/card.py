@@ -80,8 +80,11 @@ def build_card(
     operating_points: dict[str, Any] | None = None,
     audit_thresholds: AuditThresholds | None = None,
     attribute_audits: Sequence[tuple[str, AuditReport]] = (),
+    request: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
     """The card of a freshly fitted version (a JSON-safe dict).
+
+    ``request`` is the fit's description as asked for (:meth:`veil.fitting.request.FitRequest.to_dict`).
 
     For several attributes, ``attribute_audits`` holds each one's audit (``audit`` is the first categorical
     one's, which heads the card); the card then lists them under ``attributes`` (see :func:`attributes_record`).
@@ -127,6 +130,8 @@ def build_card(
         "created_by": user,
         "notes": notes,
     }
+    if request is not None:
+        card["request"] = dict(request)
     if operating_points is not None:
         card["operating_points"] = operating_points
     if attribute_audits:
