@@ -170,7 +170,7 @@ class MomentErasure(LinearErasure):
         """
         return False
 
-    def fit(self, X: ArrayLike, z: object) -> MomentErasure:
+    def fit(self, X: ArrayLike, z: object, *, given: ArrayLike | None = None) -> MomentErasure:
         """Fit the eraser.
 
         Parameters
@@ -179,6 +179,10 @@ class MomentErasure(LinearErasure):
             Embeddings.
         z : array-like of shape (n_samples,) or (n_samples, m)
             Class labels of the attribute, or a numeric attribute matrix.
+        given : array-like of shape (n_samples,), optional
+            Each row's context value (a query's category, an opening): the
+            attribute is then also guarded within every value, where a ranker
+            compares items.
 
         Returns
         -------
@@ -186,13 +190,14 @@ class MomentErasure(LinearErasure):
         """
         by_class = self.needs_class_moments
         array, attribute = self._validate_fit_input(X, z, reset=True)
-        return self._fit_state(MomentState.from_batch(array, attribute, by_class=by_class))
+        context = self._validate_context(given, array.shape[0])
+        return self._fit_state(MomentState.from_batch(array, attribute, by_class=by_class, given=context))
 
-    def partial_fit(self, X: ArrayLike, z: object) -> MomentErasure:
+    def partial_fit(self, X: ArrayLike, z: object, *, given: ArrayLike | None = None) -> MomentErasure:
         """Add a chunk of rows; after each call the eraser is that of all rows so far.
 
-        Classes may appear in any chunk.  Until two classes (and more rows than
-        classes) have been seen, the eraser is not usable.
+        Classes and context values may appear in any chunk.  Until two classes
+        (and more rows than classes) have been seen, the eraser is not usable.
 
         Returns
         -------
@@ -201,7 +206,8 @@ class MomentErasure(LinearErasure):
         by_class = self.needs_class_moments
         first = not hasattr(self, "moments_")
         array, attribute = self._validate_fit_input(X, z, reset=first)
-        chunk = MomentState.from_batch(array, attribute, by_class=by_class)
+        context = self._validate_context(given, array.shape[0])
+        chunk = MomentState.from_batch(array, attribute, by_class=by_class, given=context)
         merged = chunk if first else self.moments_.merge(chunk)
         self.moments_ = merged
         try:
@@ -213,6 +219,14 @@ class MomentErasure(LinearErasure):
             return self
         self._set_fitted(self._map_from_moments(merged), merged)
         return self
+
+    def _validate_context(self, given: ArrayLike | None, n_rows: int) -> NDArray[np.generic] | None:
+        if given is None:
+            return None
+        values = np.asarray(given)
+        if values.shape != (n_rows,):
+            raise ValueError(f"given needs one context value per row: got shape {values.shape} for {n_rows} rows")
+        return values
 
     def fit_moments(self, moments: MomentState) -> MomentErasure:
         """Fit from precomputed (for example merged) moments.

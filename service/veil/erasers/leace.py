@@ -51,6 +51,17 @@ class LEACE(MomentErasure):
     Fitting needs per-class co-moments (one d×d float64 matrix per class),
     which are accumulated only when ``k > 0``.
 
+    **Within a context** (``fit(X, z, given=context)``): a ranker compares
+    items of one category, so the attribute must not be readable among
+    items of the same context value.  ``Q`` then spans every value's
+    ``W Cov(x, z | g)`` as well (see :mod:`veil.maps.context`), so that
+    ``Cov(r(x), z | g) = 0`` for every value ``g`` on the fitting rows, and
+    ``r`` is still the affine map with that property that moves the data
+    least (the least-squares argument holds for any fixed set of columns to
+    remove).  With ``guard_population=False`` only the within-value columns
+    are removed: what the context legitimately says about the attribute
+    (fields skewed by gender, say) then stays readable across values.
+
     Parameters
     ----------
     covariance_directions : int, default=0
@@ -63,6 +74,8 @@ class LEACE(MomentErasure):
         treated as zero (rank-deficient covariance: ``d > n``, dead or
         duplicated features).  Default: :data:`veil.maps.linalg.COVARIANCE_RTOL`
         (``1e-10``), far above rounding noise and far below any live spread.
+    guard_population : bool, default=True
+        With a context, also guard the population as a whole; without one the population is always guarded.
     normalize : bool, default=False
         Re-normalise erased rows to unit length.
 
@@ -94,10 +107,16 @@ class LEACE(MomentErasure):
     method = "leace"
 
     def __init__(
-        self, *, covariance_directions: int = 0, eigenvalue_rtol: float | None = None, normalize: bool = False
+        self,
+        *,
+        covariance_directions: int = 0,
+        eigenvalue_rtol: float | None = None,
+        guard_population: bool = True,
+        normalize: bool = False,
     ) -> None:
         self.covariance_directions = covariance_directions
         self.eigenvalue_rtol = eigenvalue_rtol
+        self.guard_population = guard_population
         self.normalize = normalize
 
     @property
@@ -112,8 +131,11 @@ class LEACE(MomentErasure):
         # W Cov(x, z̃) in the eigenbasis of Cov(x), with z̃ the whitened attribute: its singular values are the
         # canonical correlations of x and z, at most 1, and it has exactly as many columns as the attribute has
         # independent directions (C - 1 for C classes), so no direction of rounding noise can enter the basis.
-        correlations = scale[:, None] * (eigenvectors.T @ moments.standardized_cross_covariance())
-        in_basis = orthonormal_basis(correlations, reference=1.0)
+        # Within a context, each value's whitened attribute stacked (and the population's before them): the
+        # singular values are bounded all the same (see MomentState.guarded_cross_covariance).
+        guarded, bound = moments.guarded_cross_covariance(population=self.guard_population)
+        correlations = scale[:, None] * (eigenvectors.T @ guarded)
+        in_basis = orthonormal_basis(correlations, reference=bound)
         self.n_covariance_directions_ = 0
         if self.needs_class_moments:
             added = covariance_gap_directions(

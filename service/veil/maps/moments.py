@@ -22,6 +22,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.maps.attribute import AttributeBlock, EncodedAttribute, check_blocks, check_enough_rows
+from veil.maps.context import ContextMoments, check_context
 from veil.maps.linalg import whitening_factors
 from veil.samples.attributes import JOINT_LABEL_SEPARATOR
 
@@ -39,6 +40,10 @@ def _rows_of(attribute: EncodedAttribute, start: int, stop: int) -> EncodedAttri
 
 
 Float64Array = NDArray[np.float64]
+
+
+def _slice(given: NDArray[np.generic] | None, start: int) -> NDArray[np.generic] | None:
+    return None if given is None else given[start : start + BLOCK_ROWS]
 
 
 @dataclass(frozen=True, eq=False)
@@ -81,9 +86,17 @@ class MomentState:
     class_comoments: Float64Array | None = None
     blocks: tuple[AttributeBlock, ...] = ()
     partial: tuple[MomentState, ...] = ()
+    given: ContextMoments | None = None
 
     @classmethod
-    def from_batch(cls, x: NDArray[np.floating], attribute: EncodedAttribute, *, by_class: bool = False) -> MomentState:
+    def from_batch(
+        cls,
+        x: NDArray[np.floating],
+        attribute: EncodedAttribute,
+        *,
+        by_class: bool = False,
+        given: NDArray[np.generic] | None = None,
+    ) -> MomentState:
         """Moments of one batch of rows ``x`` (n, d) with their encoded attribute.
 
         Large batches are taken ``BLOCK_ROWS`` rows at a time and merged, so
@@ -96,24 +109,38 @@ class MomentState:
         attribute : EncodedAttribute
         by_class : bool, default=False
             Also accumulate each class's co-moments (a categorical attribute only).
+        given : ndarray of shape (n,), optional
+            Each row's context value: also accumulate the moments within each value
+            (:class:`~veil.maps.context.ContextMoments`, a categorical attribute only).
         """
         if by_class and not attribute.is_categorical:
             raise ValueError("per-class moments need 1-D class labels z, not a 2-D attribute matrix")
-        if x.shape[0] > BLOCK_ROWS:
-            state = cls._from_block(x[:BLOCK_ROWS], _rows_of(attribute, 0, BLOCK_ROWS), by_class)
-            for start in range(BLOCK_ROWS, x.shape[0], BLOCK_ROWS):
-                stop = min(start + BLOCK_ROWS, x.shape[0])
-                state = state.merge(cls._from_block(x[start:stop], _rows_of(attribute, start, stop), by_class))
-            return state
-        return cls._from_block(x, attribute, by_class)
+        if given is not None:
+            check_context(given, attribute)
+        state = cls._from_block(x[:BLOCK_ROWS], _rows_of(attribute, 0, BLOCK_ROWS), by_class, _slice(given, 0))
+        for start in range(BLOCK_ROWS, x.shape[0], BLOCK_ROWS):
+            stop = min(start + BLOCK_ROWS, x.shape[0])
+            block = cls._from_block(x[start:stop], _rows_of(attribute, start, stop), by_class, _slice(given, start))
+            state = state.merge(block)
+        return state
 
     @classmethod
-    def _from_block(cls, x: NDArray[np.floating], attribute: EncodedAttribute, by_class: bool) -> MomentState:
+    def _from_block(
+        cls, x: NDArray[np.floating], attribute: EncodedAttribute, by_class: bool, given: NDArray[np.generic] | None
+    ) -> MomentState:
+        state = cls._pooled(x, attribute, by_class)
+        if given is None:
+            return state
+        assert attribute.labels is not None  # check_context refuses a context beside an attribute matrix
+        return dataclasses.replace(state, given=ContextMoments.from_batch(x, attribute.labels[attribute.codes], given))
+
+    @classmethod
+    def _pooled(cls, x: NDArray[np.floating], attribute: EncodedAttribute, by_class: bool) -> MomentState:
         if attribute.present:
             # Incomplete labels: x over every row, and each attribute with x over the rows that carry it.
-            pooled = cls._from_block(x, EncodedAttribute(labels=None, matrix=np.zeros((x.shape[0], 0))), False)
+            pooled = cls._pooled(x, EncodedAttribute(labels=None, matrix=np.zeros((x.shape[0], 0))), False)
             partial = tuple(
-                cls._from_block(
+                cls._pooled(
                     x[rows],
                     EncodedAttribute(labels=block.labels, matrix=attribute.matrix[rows, block.start : block.stop]),
                     False,
@@ -270,6 +297,12 @@ class MomentState:
         """
         if self.partial or other.partial:
             return self._merged_partial(other)
+        if (self.given is None) != (other.given is None):
+            raise ValueError("cannot merge moments within a context with moments without one")
+        given = None if self.given is None or other.given is None else self.given.merge(other.given)
+        return dataclasses.replace(self._merged_pooled(other), given=given)
+
+    def _merged_pooled(self, other: MomentState) -> MomentState:
         a, b = self._aligned(other)
         if b.count == 0:
             return a
@@ -384,6 +417,23 @@ class MomentState:
             return np.hstack([self.block(block.name).standardized_cross_covariance() for block in self.blocks])
         eigenvectors, scale = self.attribute_whitening()
         return np.asarray(self.cross_covariance @ (eigenvectors * scale))
+
+    def guarded_cross_covariance(self, *, population: bool = True) -> tuple[Float64Array, float]:
+        """The columns an eraser must remove, and the bound on their singular values, shape (d, r).
+
+        Without a context: :meth:`standardized_cross_covariance` (bounded by 1).  With one
+        (:attr:`given`): each value's standardized within-value cross-covariance, weighted by its share of
+        rows (bounded by 1, see :meth:`ContextMoments.standardized_cross_covariances`), after the population's
+        own columns when ``population`` is true (the two parts together are bounded by sqrt(2)).
+        """
+        if self.given is None:
+            if not population:
+                raise ValueError("guarding within a context only needs a context: fit with given=...")
+            return self.standardized_cross_covariance(), 1.0
+        within = self.given.standardized_cross_covariances()
+        if not population:
+            return within, 1.0
+        return np.hstack([self.standardized_cross_covariance(), within]), float(np.sqrt(2.0))
 
     def conditional_mean(self, targets: Mapping[str, object]) -> Float64Array:
         """``E[x | z = t]`` under the linear model of ``x`` on the stacked attributes, shape (d,).
