@@ -139,14 +139,22 @@ def versions(args: argparse.Namespace) -> int:
     on: dict[str, list[str]] = {}
     for state in registry.aliases(args.name).values():
         on.setdefault(state.version, []).append(state.alias)
+    for alias, problem in sorted(registry.damaged_aliases(args.name).items()):
+        remedy = "point it again with veil promote, or remove it with veil remove-alias"
+        print(f"damaged alias {alias!r}: {problem}; {remedy}", file=sys.stderr)
     if args.json:
         print(json.dumps([{**asdict(s), "aliases": sorted(on.get(s.id, []))} for s in summaries], indent=2))
         return 0
     rows = [
         [s.id, s.created_at, s.created_by, s.method, str(s.rank), str(s.dim), ",".join(sorted(on.get(s.id, [])))]
+        if s.problem is None
+        else [s.id, "DAMAGED", "", "", "", "", ",".join(sorted(on.get(s.id, [])))]
         for s in summaries
     ]
     _print_table(["VERSION", "CREATED", "BY", "METHOD", "RANK", "DIM", "ALIASES"], rows)
+    for summary in summaries:
+        if summary.problem is not None:
+            print(f"damaged: {summary.problem} (veil verify lists every problem)")
     return 0
 
 
@@ -222,6 +230,12 @@ def rollback(args: argparse.Namespace) -> int:
     return 0
 
 
+def remove_alias(args: argparse.Namespace) -> int:
+    event = Registry(args.registry).remove_alias(args.name, args.alias, reason=args.reason)
+    print(f"{args.name}: alias {event.alias!r} removed (it pointed at {event.from_version or 'an unknown version'})")
+    return 0
+
+
 def history(args: argparse.Namespace) -> int:
     events = Registry(args.registry).history(args.name)
     if args.json:
@@ -235,7 +249,7 @@ def history(args: argparse.Namespace) -> int:
             e.alias,
             e.action if e.applied else f"{e.action} (unfinished)",
             e.from_version or "-",
-            e.to_version,
+            e.to_version or "(removed)",
             e.reason,
         ]
         for e in events
@@ -426,6 +440,7 @@ HANDLERS = {
     "compare": compare,
     "promote": promote,
     "rollback": rollback,
+    "remove_alias": remove_alias,
     "history": history,
     "verify": verify,
     "report": report,

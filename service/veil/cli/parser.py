@@ -311,7 +311,15 @@ def build_parser() -> VeilParser:
     rollback.add_argument("--allow-dimension-change", action="store_true")
     rollback.set_defaults(handler="rollback")
 
-    history = commands.add_parser("history", parents=common, help="every promote and rollback, in order")
+    remove_alias = commands.add_parser(
+        "remove-alias", parents=common, help="remove an alias (a damaged one too); its versions stay"
+    )
+    remove_alias.add_argument("name")
+    remove_alias.add_argument("alias")
+    remove_alias.add_argument("--reason", default="")
+    remove_alias.set_defaults(handler="remove_alias")
+
+    history = commands.add_parser("history", parents=common, help="every promote, rollback and alias removal, in order")
     history.add_argument("name")
     history.add_argument("--json", action="store_true", help="machine-readable output")
     history.set_defaults(handler="history")

@@ -71,6 +71,8 @@ class VersionSummary:
     method: str
     dim: int
     rank: int
+    #: Why the version's card cannot be read (listed all the same, as damaged); None for a sound card.
+    problem: str | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -94,7 +96,8 @@ class AliasState:
 
 @dataclass(frozen=True)
 class HistoryEvent:
-    """One promote or rollback; ``applied`` is False only for a move a crashed writer left unfinished."""
+    """One promote, rollback or removal of an alias (``to_version`` None); ``applied`` is False only for a move a
+    crashed writer left unfinished."""
 
     event: int
     time: str
@@ -102,7 +105,7 @@ class HistoryEvent:
     alias: str
     action: str
     from_version: str | None
-    to_version: str
+    to_version: str | None
     reason: str
     applied: bool = True
 
@@ -183,14 +186,19 @@ class Registry:
         return ids
 
     def versions(self, name: str) -> list[VersionSummary]:
-        """The visible versions of ``name``, oldest first (cards read, not verified)."""
+        """The visible versions of ``name``, oldest first (cards read, not verified; a damaged card says why)."""
         summaries = []
         for version_id in self._require_name(name):
-            card = self._read_card(name, version_id)
+            sequence = int(version_id[1:].split("-")[0])
+            try:
+                card = self._read_card(name, version_id)
+            except IntegrityError as error:
+                summaries.append(VersionSummary(version_id, sequence, "", "", "", 0, 0, problem=str(error)))
+                continue
             summaries.append(
                 VersionSummary(
                     id=version_id,
-                    sequence=int(version_id[1:].split("-")[0]),
+                    sequence=sequence,
                     created_at=str(card.get("created_at", "")),
                     created_by=str(card.get("created_by", "")),
                     method=str(card.get("method", "")),
@@ -258,7 +266,10 @@ class Registry:
         return StoredVersion(name=name, id=version_id, files=files, card=card, artifact=artifact)
 
     def verify(self, name: str | None = None) -> list[VerificationResult]:
-        """Verify every visible version of ``name`` (or of every eraser) with its records, and each alias."""
+        """Verify every visible version of ``name`` (or of every eraser) with its records, each alias and the history.
+
+        Every problem is reported and the check carries on: one damaged file never hides another.
+        """
         results = []
         for each in [name] if name is not None else self.names():
             good = set()
@@ -276,6 +287,13 @@ class Registry:
                     results.append(
                         VerificationResult(each, state.version, False, f"alias {state.alias!r} names a bad version")
                     )
+            results += [
+                VerificationResult(each, "-", False, problem) for problem in self.damaged_aliases(each).values()
+            ]
+            try:
+                self.history(each)
+            except IntegrityError as error:
+                results.append(VerificationResult(each, "-", False, str(error)))
         return results
 
     def _verify_records(self, name: str, version_id: str) -> list[VerificationResult]:
@@ -306,51 +324,97 @@ class Registry:
     # ----------------------------------------------------------------- aliases and history
 
     def alias(self, name: str, alias: str) -> AliasState | None:
+        """Where ``alias`` points (None: never set, or removed); :class:`IntegrityError` if its file is damaged."""
         check_name(alias, what="alias")
-        try:
-            data = json.loads(self.storage.read(f"{name}/aliases/{alias}.json"))
-            return AliasState(alias=alias, version=str(data["version"]), event=int(data["event"]), dim=int(data["dim"]))
-        except FileNotFoundError:
+        data = self._alias_data(name, alias)
+        if data is None or data.get("removed") is True:
             return None
+        try:
+            return AliasState(alias=alias, version=str(data["version"]), event=int(data["event"]), dim=int(data["dim"]))
         except (ValueError, KeyError, TypeError) as error:
             raise IntegrityError(f"{name}: alias {alias!r} is unreadable ({error})") from None
 
+    def _alias_data(self, name: str, alias: str) -> dict[str, Any] | None:
+        try:
+            data = json.loads(self.storage.read(f"{name}/aliases/{alias}.json"))
+        except FileNotFoundError:
+            return None
+        except ValueError as error:
+            raise IntegrityError(f"{name}: alias {alias!r} is unreadable ({error})") from None
+        if not isinstance(data, dict):
+            raise IntegrityError(f"{name}: alias {alias!r} is unreadable (not a JSON object)")
+        return data
+
+    def _alias_event(self, name: str, alias: str) -> int | None:
+        """The history event the alias's file reflects (a removal too); None without a file."""
+        data = self._alias_data(name, alias)
+        try:
+            return None if data is None else int(data["event"])
+        except (ValueError, KeyError, TypeError) as error:
+            raise IntegrityError(f"{name}: alias {alias!r} is unreadable ({error})") from None
+
+    def _alias_names(self, name: str) -> list[str]:
+        entries = self.storage.list(f"{name}/aliases")
+        return [
+            e.removesuffix(".json") for e in entries if e.endswith(".json") and self._is_name(e.removesuffix(".json"))
+        ]
+
     def aliases(self, name: str) -> dict[str, AliasState]:
+        """Every alias that points at a version; a damaged one is left out here (see :meth:`damaged_aliases`)."""
         found = {}
-        for entry in self.storage.list(f"{name}/aliases"):
-            alias = entry.removesuffix(".json")
-            if entry.endswith(".json") and self._is_name(alias):
+        for alias in self._alias_names(name):
+            try:
                 state = self.alias(name, alias)
-                if state is not None:
-                    found[alias] = state
+            except IntegrityError:
+                continue
+            if state is not None:
+                found[alias] = state
         return found
 
-    def history(self, name: str) -> list[HistoryEvent]:
-        """Every promote and rollback of ``name``, in order."""
-        check_name(name)
-        states = self.aliases(name)
-        events = []
-        for entry in self.storage.list(f"{name}/history"):
-            if not (entry.endswith(".json") and entry[:-5].isdigit()):
-                continue
+    def damaged_aliases(self, name: str) -> dict[str, str]:
+        """Each alias whose file cannot be read, with the problem (``veil promote`` or ``remove-alias`` repairs it)."""
+        problems = {}
+        for alias in self._alias_names(name):
             try:
-                data = json.loads(self.storage.read(f"{name}/history/{entry}"))
-                event = HistoryEvent(
-                    event=int(data["event"]),
-                    time=str(data["time"]),
-                    user=str(data["user"]),
-                    alias=str(data["alias"]),
-                    action=str(data["action"]),
-                    from_version=data["from_version"],
-                    to_version=str(data["to_version"]),
-                    reason=str(data["reason"]),
-                )
-            except (ValueError, KeyError, TypeError) as error:
-                raise IntegrityError(f"{name}: history event {entry} is unreadable ({error})") from None
-            state = states.get(event.alias)
-            applied = state is not None and state.event >= event.event
-            events.append(event if applied else HistoryEvent(**{**event.to_dict(), "applied": False}))
-        return sorted(events, key=lambda e: e.event)
+                self._alias_event(name, alias)
+                self.alias(name, alias)
+            except IntegrityError as error:
+                problems[alias] = str(error)
+        return problems
+
+    def history(self, name: str) -> list[HistoryEvent]:
+        """Every promote, rollback and alias removal of ``name``, in order.
+
+        Only an alias's latest event can be unfinished (moves hold the lock, and write the event before the
+        alias): it is when the alias's file does not reflect it yet.  A damaged alias's events count as applied.
+        """
+        check_name(name)
+        events = sorted((self._read_event(name, entry) for entry in self._event_files(name)), key=lambda e: e.event)
+        latest = {event.alias: event.event for event in events}
+        damaged = self.damaged_aliases(name)
+        reflected = {alias: self._alias_event(name, alias) for alias in latest if alias not in damaged}
+        out = []
+        for event in events:
+            done = reflected.get(event.alias)
+            unfinished = event.alias in reflected and event.event == latest[event.alias] and (done or 0) < event.event
+            out.append(HistoryEvent(**{**event.to_dict(), "applied": False}) if unfinished else event)
+        return out
+
+    def _read_event(self, name: str, entry: str) -> HistoryEvent:
+        try:
+            data = json.loads(self.storage.read(f"{name}/history/{entry}"))
+            return HistoryEvent(
+                event=int(data["event"]),
+                time=str(data["time"]),
+                user=str(data["user"]),
+                alias=str(data["alias"]),
+                action=str(data["action"]),
+                from_version=data["from_version"],
+                to_version=data["to_version"],
+                reason=str(data["reason"]),
+            )
+        except (ValueError, KeyError, TypeError) as error:
+            raise IntegrityError(f"{name}: history event {entry} is unreadable ({error})") from None
 
     # ----------------------------------------------------------------- writing
 
@@ -435,7 +499,8 @@ class Registry:
         with self._locked(name):
             self._finish_interrupted_moves(name)
             self._require_name(name)
-            if self.alias(name, alias) is None:
+            # A damaged alias rolls back by its history all the same (the move rewrites its file, and says so).
+            if alias not in self.damaged_aliases(name) and self.alias(name, alias) is None:
                 raise PromotionError(f"{name} has no alias {alias!r} to roll back")
             undo_stack: list[str | None] = []
             for event in self.history(name):
@@ -458,13 +523,18 @@ class Registry:
         user: str | None,
         allow_dimension_change: bool,
     ) -> HistoryEvent:
-        current = self.alias(name, alias)
+        current, problem = self._current(name, alias)
         dim = target.artifact.map.dim
         if current is not None and current.dim != dim and not allow_dimension_change:
             raise PromotionError(
                 f"{name} {target.id} has dimension {dim} but alias {alias!r} serves dimension {current.dim}; "
                 "pass the dimension-change flag if every caller is ready for it"
             )
+        from_version = None if current is None else current.version
+        if problem is not None:
+            # What the damaged file last held is the target of the alias's latest event in the history.
+            from_version = self._last_target(name, alias)
+            reason = f"{reason} (the alias's file was damaged and is rewritten: {problem})".lstrip()
         number = 1 + max((int(e[:-5]) for e in self._event_files(name)), default=0)
         event = HistoryEvent(
             event=number,
@@ -472,15 +542,65 @@ class Registry:
             user=user or current_user(),
             alias=alias,
             action=action,
-            from_version=None if current is None else current.version,
+            from_version=from_version,
             to_version=target.id,
             reason=reason,
         )
-        # The event first, then the alias: a crash in between leaves the alias on its old, complete target.
-        if not self.storage.create_once(self._event_path(name, number), json.dumps(event.to_dict()).encode()):
-            raise PromotionError(f"{name}: history event {number} appeared while the lock was held")
+        self._record(name, event)
         self._write_alias(name, AliasState(alias=alias, version=target.id, event=number, dim=dim))
         return event
+
+    def remove_alias(self, name: str, alias: str, *, reason: str = "", user: str | None = None) -> HistoryEvent:
+        """Remove ``alias`` (a damaged one too) and record the removal; the versions stay as they are.
+
+        Raises
+        ------
+        PromotionError
+            ``name`` has no such alias.
+        """
+        check_name(alias, what="alias")
+        with self._locked(name):
+            self._finish_interrupted_moves(name)
+            self._require_name(name)
+            current, problem = self._current(name, alias)
+            if current is None and problem is None:
+                raise PromotionError(f"{name} has no alias {alias!r} to remove")
+            number = 1 + max((int(e[:-5]) for e in self._event_files(name)), default=0)
+            if problem is not None:
+                reason = f"{reason} (the alias's file was damaged: {problem})".lstrip()
+            event = HistoryEvent(
+                event=number,
+                time=_now(),
+                user=user or current_user(),
+                alias=alias,
+                action="remove",
+                from_version=self._last_target(name, alias) if current is None else current.version,
+                to_version=None,
+                reason=reason,
+            )
+            self._record(name, event)
+            self._write_removal(name, alias, number)
+            return event
+
+    def _current(self, name: str, alias: str) -> tuple[AliasState | None, str | None]:
+        """Where ``alias`` points, or why its file cannot be read."""
+        try:
+            return self.alias(name, alias), None
+        except IntegrityError as error:
+            return None, str(error)
+
+    def _last_target(self, name: str, alias: str) -> str | None:
+        moves = [event for event in self.history(name) if event.alias == alias]
+        return moves[-1].to_version if moves else None
+
+    def _record(self, name: str, event: HistoryEvent) -> None:
+        # The event first, then the alias: a crash in between leaves the alias on its old, complete target.
+        if not self.storage.create_once(self._event_path(name, event.event), json.dumps(event.to_dict()).encode()):
+            raise PromotionError(f"{name}: history event {event.event} appeared while the lock was held")
+
+    def _write_removal(self, name: str, alias: str, event: int) -> None:
+        # A tombstone, written atomically like any alias: the storage backends replace files but delete none.
+        self.storage.replace(f"{name}/aliases/{alias}.json", json.dumps({"removed": True, "event": event}).encode())
 
     def _event_files(self, name: str) -> Iterator[str]:
         return (e for e in self.storage.list(f"{name}/history") if e.endswith(".json") and e[:-5].isdigit())
@@ -495,7 +615,9 @@ class Registry:
     def _finish_interrupted_moves(self, name: str) -> None:
         """Complete a move whose writer died after recording it and before moving the alias."""
         for event in self.history(name):
-            if not event.applied:
+            if not event.applied and event.to_version is None:
+                self._write_removal(name, event.alias, event.event)
+            elif not event.applied and event.to_version is not None:
                 dim = int(self._read_card(name, event.to_version).get("dim", 0))
                 state = AliasState(alias=event.alias, version=event.to_version, event=event.event, dim=dim)
                 self._write_alias(name, state)
