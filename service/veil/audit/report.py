@@ -48,9 +48,8 @@ class FigureRow:
 class ProbeScore:
     """Held-out accuracy of a probe predicting the attribute, against the majority baseline.
 
-    ``gap = |accuracy - majority|``: accuracy far *below* majority on held-out
-    data is leakage too (the probe has learned the attribute, inverted).
-    ``recall`` holds each class's recall in the order of the report's
+    ``gap = |accuracy - majority|`` describes the reading; what is judged is
+    :attr:`excess`, the reading *beyond* majority.  ``recall`` holds each class's recall in the order of the report's
     ``classes``; ``balanced_accuracy`` is their mean, whose chance level is
     ``1 / classes`` whatever the class shares.  Cards written before per-class
     figures have no ``recall``.
@@ -67,6 +66,17 @@ class ProbeScore:
     @property
     def gap(self) -> float:
         return abs(self.accuracy - self.majority)
+
+    @property
+    def excess(self) -> float:
+        """How far the probe reads the attribute beyond majority: its 95% interval's lower edge above majority.
+
+        0 when the interval reaches majority or lies below it.  One-sided: a
+        cross-validated probe with nothing to read scores at or below
+        majority (an overfit one on unequal classes about ``Σ p_c²``, not
+        ``max p_c``), and a reading below majority is no leakage.
+        """
+        return max(0.0, self.interval_low - self.majority)
 
     def with_interval(self) -> str:
         """``accuracy [low, high]`` to three decimals."""

@@ -14,8 +14,10 @@ a sample of that size, so a small quiet sample does not raise alarms:
 - ``prior_shift``: total-variation distance between the live class shares
   (labels, or the pre-erasure probe's pseudo-labels) and the fitted priors.
 - ``leakage_gap``: a probe trained by cross-validation on the erased live
-  sample to predict the labels (or pseudo-labels), at the edge of its 95%
-  interval nearest the majority baseline, as a distance from majority.
+  sample to predict the labels (or pseudo-labels): how far the lower edge
+  of its 95% interval lies above the majority baseline (0 at or below it:
+  an overfit probe with nothing to read scores below majority, which is
+  no leakage; see :attr:`veil.audit.report.ProbeScore.excess`).
 - ``ranking``: the ranking-fairness figures of :mod:`veil.audit.ranking`
   with (up to 500 of) the sample's rows querying the whole sample by cosine,
   raw and erased, against the sample's class shares (labels or
@@ -333,7 +335,7 @@ def _class_figures(
             "interval_high": score.interval_high,
             "n": float(score.n),
         }
-        leakage_gap = max(0.0, score.interval_low - score.majority, score.majority - score.interval_high)
+        leakage_gap = score.excess
         erased_white = (np.asarray(erased, dtype=np.float64) - mean) @ whitening
         overall = erased_white.mean(axis=0)
         class_mean_gap = max(

@@ -83,10 +83,9 @@ class AuditThresholds(_BandSet):
     ==========================  ===============================================================================
     figure                      meaning
     ==========================  ===============================================================================
-    ``linear_gap``              the linear probe after erasure, at the edge of its 95% interval nearest the
-                                majority baseline, as a distance from majority (0 when the interval holds it)
-    ``strongest_gap``           the same for the probe farthest from majority after erasure (a probe reliably
-                                below majority has learned the attribute too)
+    ``linear_gap``              the linear probe after erasure: how far the lower edge of its 95% interval lies
+                                above the majority baseline (0 when it reaches majority or lies below)
+    ``strongest_gap``           the same for the probe reading farthest beyond majority after erasure
     ``neighbour_excess``        share of each row's 10 nearest neighbours with its attribute, above the base
                                 rate (the share a neighbourhood blind to the attribute would have)
     ``task_loss``               task probe accuracy lost to erasure (raw minus erased)

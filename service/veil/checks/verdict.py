@@ -27,7 +27,7 @@ RULE = (
 # What each figure says, for the verdict's reasons and the report's explanations.
 MEANINGS = {
     "linear_gap": "how far a linear probe on the erased rows reads the attribute beyond the majority baseline "
-    "(the edge of its 95% interval nearest that baseline; chance is 0)",
+    "(the lower edge of its 95% interval above that baseline; 0 when the interval reaches it or lies below)",
     "strongest_gap": "the same for the probe farthest from majority of all that ran (linear, quadratic, RBF kernel, "
     "boosted trees, MLP)",
     "neighbour_excess": "how much more often a row's 10 nearest neighbours share its attribute than the base rate "
@@ -60,20 +60,17 @@ class Verdict:
 
 
 def _edge_gap(score: ProbeScore | RegressionScore) -> float:
-    """Distance from majority of the probe's 95% interval edge nearest it (0 when the interval holds majority).
+    """How far the probe reads beyond chance: :attr:`ProbeScore.excess` (one-sided, above majority).
 
     For a continuous attribute, the lower edge of the probe's R² interval above 0 (the mean predictor's R²).
     """
     if isinstance(score, RegressionScore):
         return max(0.0, score.r2_low if score.r2_low is not None else score.r2)
-    return max(0.0, score.interval_low - score.majority, score.majority - score.interval_high)
+    return score.excess
 
 
 def _widest(report: AuditReport) -> tuple[str, float] | None:
-    """The probe whose reading after erasure lies farthest from majority, and that distance (None: no probe).
-
-    Farthest, not most accurate: a probe reliably *below* majority has learned the attribute too.
-    """
+    """The probe whose reading after erasure lies farthest beyond majority, and that distance (None: no probe)."""
     gaps = [(name, _edge_gap(after)) for name, _, after in report.leakage.probes()]
     # Ties go to the probe listed first, so round-off in a tie cannot change the name reported.
     return max(gaps, key=lambda item: item[1], default=None)
