@@ -148,6 +148,14 @@ def test_fit_prints_the_audit_then_the_version_id_last(fitted: Fitted) -> None:
     assert "reading" not in fitted.outputs["meanproj"].err  # --progress auto, and stderr is no terminal
 
 
+def test_fit_prints_its_verdict_for_a_single_attribute(fitted: Fitted) -> None:
+    card = Registry(fitted.registry).read_version(NAME, fitted.ids["leace"]).card
+    lines = fitted.outputs["leace"].out.splitlines()
+    verdicts = [line for line in lines if line.startswith("verdict at fitting time: ")]
+    assert len(verdicts) == 1
+    assert verdicts[0].startswith(f"verdict at fitting time: {card['verdict']['status']}")
+
+
 def test_the_stored_leace_version_is_the_eraser_fitted_on_the_non_held_out_rows(fitted: Fitted) -> None:
     sample = load_harbourline_profiles()
     codes = np.unique(sample.pronoun, return_inverse=True)[1]

@@ -212,24 +212,43 @@ def test_a_streamed_fresh_sample_is_read_in_chunks_and_drawn_by_hash(
     assert f"audited on a hash-drawn sample of {audited['data']['audited_rows']} of the 2000 rows" in audited["notes"]
 
 
-def test_the_same_file_audited_for_another_attribute_is_another_audit(
+def test_an_attribute_the_version_does_not_guard_is_refused_and_show_names_each_audits_attribute(
     fitted: tuple[Path, str, Path], tmp_path: Path
 ) -> None:
-    registry, _, _ = fitted
+    registry, version, _ = fitted
     x, z, _ = _population(draw_seed=9)
     data = tmp_path / "two-columns.npz"
     np.savez(data, embedding=x.astype(np.float32), region=z, reshuffled=np.random.default_rng(0).permutation(z))
+    before = Registry(registry).records("planted", "1", "audits")
+    refused = run("audit", "planted", "1", "--data", data, "--attribute", "reshuffled", "--registry", registry)
+    assert refused.code == 2
+    assert f"planted {version} guards 'region', not 'reshuffled'" in refused.err
+    assert len(Registry(registry).records("planted", "1", "audits")) == len(before)  # nothing was recorded
+    audited = run(
+        "audit", "planted", "1", "--data", data, "--attribute", "region", "--registry", registry, "--probes", "linear"
+    )
+    assert audited.code == 0, audited.err
+    shown = run("show", "planted", "1", "--registry", registry).out
+    listed = [line for line in shown.splitlines() if line.startswith("  ") and " rows of " in line]
+    assert listed
+    assert all(": region on " in line for line in listed)
 
-    def audited(attribute: str) -> dict:
-        result = run(
-            "audit", "planted", "1", "--data", data, "--attribute", attribute, "--registry", registry, "--json",
-            "--probes", "linear",
-        )  # fmt: skip
-        assert result.code == 0, result.err
-        return dict(json.loads(result.out))
 
-    region, reshuffled = audited("region"), audited("reshuffled")
-    assert reshuffled["number"] != region["number"]
-    assert (region["data"]["attribute"], reshuffled["data"]["attribute"]) == ("region", "reshuffled")
-    # Labels shuffled away from the rows say nothing a probe can read (scikit-learn's logistic regression).
-    assert reshuffled["audit"]["leakage"]["linear_before"]["accuracy"] < 0.6
+@pytest.mark.parametrize("level", [None, "warn", "alert"])
+def test_fail_on_gates_a_ci_job_on_the_fresh_audits_verdict(
+    fitted: tuple[Path, str, Path], tmp_path: Path, level: str | None
+) -> None:
+    registry, _, _ = fitted
+    # A shifted population: the attribute also moves a direction the fit never saw, so the audit does not pass.
+    data = _save(tmp_path / "shifted.npz", *_population(draw_seed=11, shifted=True))
+    gate = () if level is None else ("--fail-on", level)
+    result = run(
+        "audit", "planted", "1", "--data", data, "--attribute", "region", "--registry", registry, "--probes",
+        "linear", *gate,
+    )  # fmt: skip
+    status = result.out.split("verdict: ", 1)[1].split(":", 1)[0]
+    assert status in ("warn", "alert"), result.out
+    reached = level is not None and ("ok", "warn", "alert").index(status) >= ("ok", "warn", "alert").index(level)
+    assert result.code == (3 if reached else 0)
+    assert ("at or above --fail-on" in result.err) == reached
+    assert "fresh audit" in result.out  # stored (or found stored) all the same

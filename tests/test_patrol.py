@@ -111,11 +111,11 @@ def _patrol_with(
         return dict(answer)
 
     monkeypatch.setattr(VeilClient, "drift", fake_drift)
-    recorded = run_patrol(
+    summary = run_patrol(
         registry, PROFILES, service="http://127.0.0.1:9", token=None, sample=None, every=SLOT, rounds=rounds,
         say=said.append, clock=clock.time, sleep=clock.sleep,
     )  # fmt: skip
-    return recorded, said
+    return summary.recorded, said
 
 
 def test_the_loop_skips_a_round_the_service_cannot_answer_and_records_the_others(

@@ -12,8 +12,11 @@ from typing import Any
 
 from veil.errors import DataError
 from veil.registry import DEFAULT_ALIAS, Registry
-from veil.registry.card import attributes_text, compare_cards, format_card, fresh_audits_text
+from veil.registry.card import attributes_text, card_verdict, compare_cards, format_card, fresh_audits_text
 from veil.registry.evidence import version_evidence
+
+#: Exit status when a verdict reaches ``--fail-on`` (what was asked is done and stored all the same).
+VERDICT_FAILED = 3
 
 # The commands that fit, render or clean import their modules when they run: scikit-learn, matplotlib and pyarrow
 # take a second to import, and `veil versions` or `veil show` need none of them.
@@ -65,6 +68,16 @@ def _audit_thresholds(bands: list[tuple[str, tuple[float, float]]]) -> Any:
         return AuditThresholds.from_dict({figure: {"warn": warn, "alert": alert} for figure, (warn, alert) in bands})
     except ValueError as error:
         raise DataError(f"--audit-threshold: {error}") from None
+
+
+def _gate(status: str, fail_on: str | None) -> int:
+    """The exit status for a CI job: :data:`VERDICT_FAILED` when ``status`` reaches ``--fail-on``, else 0."""
+    from veil.checks.verdict import LEVELS
+
+    if fail_on is not None and LEVELS.index(status) >= LEVELS.index(fail_on):
+        print(f"the verdict is {status}, at or above --fail-on {fail_on}", file=sys.stderr)
+        return VERDICT_FAILED
+    return 0
 
 
 def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
@@ -124,13 +137,14 @@ def fit(args: argparse.Namespace) -> int:
     print(outcome.audit.format_table())
     for line in attributes_text(outcome.card):
         print(line)
+    print(f"verdict at fitting time: {card_verdict(outcome.card).sentence()}")
     for note in outcome.card["notes"]:
         if note not in outcome.audit.notes:
             print(f"note: {note}")
     if outcome.promotion is not None:
         print(f"alias {outcome.promotion.alias!r} now points at {outcome.version_id}")
     print(outcome.version_id)
-    return 0
+    return _gate(card_verdict(outcome.card).status, args.fail_on)
 
 
 def versions(args: argparse.Namespace) -> int:
@@ -200,7 +214,7 @@ def audit(args: argparse.Namespace) -> int:
         print(f"this audit was stored before, as fresh audit {record.number} of {where}")
     else:
         print(f"stored as fresh audit {record.number} of {where}")
-    return 0
+    return _gate(outcome.verdict.status, args.fail_on)
 
 
 def compare(args: argparse.Namespace) -> int:
@@ -372,7 +386,7 @@ def patrol(args: argparse.Namespace) -> int:
     registry = Registry(args.registry)
     registry.versions(args.name)  # an unknown eraser fails before the first round
     try:
-        run_patrol(
+        summary = run_patrol(
             registry,
             args.name,
             service=args.service,
@@ -385,7 +399,7 @@ def patrol(args: argparse.Namespace) -> int:
     except VeilError as error:
         print(f"veil patrol: the service at {args.service} did not answer: {error}", file=sys.stderr)
         return 1
-    return 0
+    return _gate(summary.worst, args.fail_on)
 
 
 def _since(text: str | None) -> Any:

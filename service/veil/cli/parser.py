@@ -171,6 +171,15 @@ def _probes_option(command: argparse.ArgumentParser) -> None:
     )
 
 
+def _fail_on_option(command: argparse.ArgumentParser) -> None:
+    """``--fail-on``: the verdict at which ``fit``, ``audit`` and ``patrol`` exit 3, for a CI job to gate on."""
+    command.add_argument(
+        "--fail-on",
+        choices=("warn", "alert"),
+        help="exit 3 when the verdict reaches this level (what was fitted, audited or checked is stored all the same)",
+    )
+
+
 def _band(text: str) -> tuple[str, tuple[float, float]]:
     """``FIGURE=WARN,ALERT`` as ``(figure, (warn, alert))``."""
     figure, _, levels = text.partition("=")
@@ -209,6 +218,7 @@ def build_parser() -> VeilParser:
     fit.add_argument("--seed", type=int, default=0, help="seeds the split, probes and randomised methods")
     fit.add_argument("--normalize", action="store_true", help="re-normalise served vectors to unit length")
     _probes_option(fit)
+    _fail_on_option(fit)
     fit.add_argument(
         "--sweep",
         nargs="?",
@@ -265,6 +275,7 @@ def build_parser() -> VeilParser:
     audit.add_argument("version", help="a version id, its sequence number (3 or v3), or an alias")
     _sample_options(audit)
     _probes_option(audit)
+    _fail_on_option(audit)
     audit.add_argument("--seed", type=int, default=0, help="seeds the folds, the probes and the row draw")
     audit.add_argument("--rows", type=int, help="audit a hash-drawn share of about this many rows (default: all)")
     audit.add_argument("--json", action="store_true", help="print the stored record as JSON")
@@ -389,6 +400,7 @@ def build_parser() -> VeilParser:
         metavar="NAME",
         help="attribute NAME holds numbers (a continuous attribute; repeatable); every other holds class names",
     )
+    _fail_on_option(patrol)
     patrol.set_defaults(handler="patrol")
 
     checks = commands.add_parser("checks", parents=common, help="the recorded live checks of an eraser, in order")

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
@@ -133,6 +134,7 @@ def audit_stored_version(
         )
     if sample.dim != card["dim"]:
         raise DataError(f"the sample has {sample.dim} dimensions and {name} {stored.id} takes {card['dim']}")
+    _check_guarded(sample.attribute_key, card, f"{name} {stored.id}")
     settings = {"nonlinear": nonlinear, "seed": seed, "max_rows": max_rows}
     thresholds = card_thresholds(card)
     with phase("reading the fresh sample"):
@@ -167,8 +169,6 @@ def audit_stored_version(
         unseen = sorted({str(label) for label in labels} - fitted)
         if unseen:
             notes.append(f"classes the version was not fitted on: {', '.join(unseen)}")
-    if sample.attribute_key != card["attribute"]["key"]:
-        notes.append(f"the attribute is {sample.attribute_key!r} here and {card['attribute']['key']!r} in the card")
     judged = verdict_record(report, thresholds)
     entries = [
         {"name": attribute, "audit": one.to_dict(), "verdict": verdict_record(one, thresholds)}
@@ -199,6 +199,23 @@ def audit_stored_version(
     with phase("storing the audit"):
         record = registry.add_record(name, stored.id, AUDITS, body, key=key)
     return FreshAudit(record, report, Verdict.from_dict(judged), already_stored=False)
+
+
+def _guarded_attributes(card: Mapping[str, Any]) -> list[str]:
+    """The attributes a version guards, by name (each of several, or its one attribute)."""
+    return [entry["name"] for entry in card.get("attributes", [])] or [card["attribute"]["key"]]
+
+
+def _check_guarded(attribute_key: str, card: Mapping[str, Any], version: str) -> None:
+    """Refuse a fresh sample whose attribute the version does not guard: its verdict would judge nothing it does."""
+    guarded = _guarded_attributes(card)
+    # A sample of several attributes names them joined by ", " (see veil.samples.sources.AttributeSpec.key).
+    unguarded = [name for name in attribute_key.split(", ") if name not in guarded]
+    if unguarded:
+        raise DataError(
+            f"{version} guards {', '.join(repr(g) for g in guarded)}, not {unguarded[0]!r}: audit it for an "
+            "attribute it guards (--attribute), or fit a version for this one"
+        )
 
 
 def _audit_each(

@@ -4,8 +4,10 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any
 
+from veil.checks.verdict import LEVELS
 from veil.errors import DataError
 from veil.patrol.rounds import PostedSample, patrol_round, slot_start
 from veil.registry import Registry
@@ -13,6 +15,14 @@ from veil_client import VeilClient, VeilClientError, VeilServerError, VeilTransp
 
 #: Answers of the service that leave a round with nothing to record, rather than failing the patrol.
 _NOTHING_TO_CHECK = {"no_traffic"}
+
+
+@dataclass(frozen=True)
+class PatrolSummary:
+    """What a run of rounds recorded: how many checks, and the worst status among them (``ok`` for none)."""
+
+    recorded: int
+    worst: str
 
 
 def run_patrol(
@@ -27,10 +37,10 @@ def run_patrol(
     say: Callable[[str], None],
     clock: Callable[[], float] = time.time,
     sleep: Callable[[float], None] = time.sleep,
-) -> int:
+) -> PatrolSummary:
     """Run ``rounds`` rounds (None: until stopped), the first at once and each later one at a slot's start.
 
-    Returns how many rounds recorded a check (new or found stored).  A
+    Returns how many rounds recorded a check (new or found stored) and the worst status they recorded.  A
     service that cannot be reached, or answers 5xx, skips the round when
     more rounds follow and raises when it is the last; a 4xx other than "no
     traffic yet" (an unknown eraser, a refused token) raises at once.
@@ -39,7 +49,7 @@ def run_patrol(
         raise DataError(f"--every must be a positive number of seconds, got {every}")
     if rounds is not None and rounds < 1:
         raise DataError(f"--rounds must be at least 1, got {rounds}")
-    recorded = 0
+    recorded, worst = 0, LEVELS[0]
     with VeilClient(service, token=token) as client:
 
         def check(eraser: str, posted: PostedSample | None) -> dict[str, Any]:
@@ -64,6 +74,7 @@ def run_patrol(
             else:
                 recorded += 1
                 body = outcome.record.body
+                worst = max(worst, str(body["status"]), key=LEVELS.index)
                 state = "already recorded" if outcome.already_stored else "recorded"
                 say(
                     f"{body['checked_at']} {name} {body['version']}: {body['status']}"
@@ -72,5 +83,5 @@ def run_patrol(
                 )
             done += 1
             if last:
-                return recorded
+                return PatrolSummary(recorded, worst)
             sleep(max(0.0, slot_start(now, every) + every - clock()))

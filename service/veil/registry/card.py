@@ -347,8 +347,9 @@ def fresh_audits_text(records: list[tuple[int, dict[str, Any]]]) -> list[str]:
         data = body["data"]
         verdict = Verdict.from_dict(body["verdict"])
         lines.append(
-            f"  {number}. {body['audited_at']} by {body['audited_by']}: {data['audited_rows']} rows of "
-            f"{', '.join(data['files']) or 'a sample'} (sha256 {data['fingerprint_sha256'][:12]}), {verdict.sentence()}"
+            f"  {number}. {body['audited_at']} by {body['audited_by']}: {data['attribute']} on {data['audited_rows']} "
+            f"rows of {', '.join(data['files']) or 'a sample'} (sha256 {data['fingerprint_sha256'][:12]}), "
+            f"{verdict.sentence()}"
         )
     return lines
 

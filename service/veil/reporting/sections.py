@@ -112,7 +112,10 @@ def fresh_audits(audits: Sequence[tuple[int, dict[str, Any]]]) -> str:
             '<h2>Fresh audits</h2><p class="muted">None yet: <code>veil audit NAME VERSION --data FRESH</code> '
             "audits the version on a sample drawn after it and records the result beside it.</p>"
         )
-    head = "<tr><th>#</th><th>when, by whom</th><th>data</th><th>rows</th><th>status</th><th>why</th></tr>"
+    head = (
+        "<tr><th>#</th><th>when, by whom</th><th>attribute</th><th>data</th><th>rows</th><th>status</th>"
+        "<th>why</th></tr>"
+    )
     rows = []
     for number, body in audits:
         verdict = Verdict.from_dict(body["verdict"])
@@ -121,6 +124,7 @@ def fresh_audits(audits: Sequence[tuple[int, dict[str, Any]]]) -> str:
         why = "; ".join(verdict.reasons) or "every judged figure below its warn level"
         rows.append(
             f"<tr><td>{number}</td><td>{html.escape(body['audited_at'])} by {html.escape(body['audited_by'])}</td>"
+            f"<td>{html.escape(data['attribute'])}</td>"
             f"<td>{html.escape(files)} (sha256 {html.escape(data['fingerprint_sha256'][:12])})</td>"
             f'<td>{data["audited_rows"]}</td><td class="verdict-{html.escape(verdict.status)}">'
             f"{html.escape(verdict.status)}</td><td>{html.escape(why)}</td></tr>"
