@@ -250,9 +250,11 @@ def test_the_sync_client_in_any_batch_size_equals_the_in_process_transform(
     x, _ = planted_population(257, seed=8)
     artifact = Registry(service_registry.path).read_version(PLANTED, "live").artifact
     expected = artifact.apply(x)
-    with TestClient(app_for(service_registry.path)) as http:
-        with VeilClient(http_client=http, batch_size=batch_size, encoding=encoding) as veil:
-            result = veil.apply(PLANTED, x)
+    with (
+        TestClient(app_for(service_registry.path)) as http,
+        VeilClient(http_client=http, batch_size=batch_size, encoding=encoding) as veil,
+    ):
+        result = veil.apply(PLANTED, x)
     assert result.vectors.dtype == np.float32
     assert_same_answer(result.vectors, expected, apply_bound(artifact, x), f"batches of {batch_size}")
 

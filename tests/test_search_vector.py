@@ -29,7 +29,7 @@ from veil_client import VeilClient, VeilClientError
 from .conftest import Split
 from .service_fixtures import PROFILES, ServiceRegistry, app_for
 from .test_cli import run
-from .tolerances import apply_bound, gamma, assert_same_answer, assert_within, search_vectors_bound
+from .tolerances import apply_bound, assert_same_answer, assert_within, gamma, search_vectors_bound
 
 K = 10
 
@@ -208,13 +208,18 @@ BATCH_SIZES = [1, 7, 13, 30, 1024]
 
 
 @pytest.mark.parametrize("batch_size", BATCH_SIZES)
-def test_the_client_in_batches_gives_the_python_api_s_answer(service_registry: ServiceRegistry, batch_size: int) -> None:
+def test_the_client_in_batches_gives_the_python_api_s_answer(
+    service_registry: ServiceRegistry, batch_size: int
+) -> None:
     artifact = Registry(service_registry.path).read_version(PROFILES, "live").artifact
     queries = np.random.default_rng(3).normal(size=(30, 384)).astype(np.float32)
     live = search_vectors(artifact, queries)
     # Each batch shape takes its own BLAS path, so batches agree with the whole to float32 round-off only.
     vectors_bound, offsets_bound = search_vectors_bound(artifact, queries)
-    with TestClient(app_for(service_registry.path)) as http, VeilClient(http_client=http, batch_size=batch_size) as veil:
+    with (
+        TestClient(app_for(service_registry.path)) as http,
+        VeilClient(http_client=http, batch_size=batch_size) as veil,
+    ):
         batched = veil.search_vectors(PROFILES, queries, exact=True)
         assert (batched.version, batched.exact) == (service_registry.leace, True)
         assert batched.vectors.shape == live.vectors.shape
