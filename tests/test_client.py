@@ -24,6 +24,7 @@ from veil_client import (
 from veil_client._base import RetryPolicy
 
 from .service_fixtures import ADMIN_TOKEN, PLANTED, PROFILES, ServiceRegistry, app_for, client_for, planted_population
+from .tolerances import apply_bound, assert_same_answer
 
 VERSION = "v0007-0123456789ab"
 
@@ -216,13 +217,17 @@ async def test_the_async_client_on_the_real_app_equals_the_in_process_transform(
     service_registry: ServiceRegistry,
 ) -> None:
     x, z = planted_population(3000, seed=7)
-    expected = Registry(service_registry.path).read_version(PLANTED, "live").artifact.apply(x)
+    artifact = Registry(service_registry.path).read_version(PLANTED, "live").artifact
+    expected = artifact.apply(x)
+    # Each batch shape, and the service's single BLAS thread, sum in their own order: the client's answer equals
+    # the whole batch's to the float32 round-off bound (tests/tolerances.py), not bit for bit.
+    bound = apply_bound(artifact, x)
     async with client_for(app_for(service_registry.path)) as http:
         for encoding in ("npy", "json"):
             veil = AsyncVeilClient(http_client=http, batch_size=500, token=ADMIN_TOKEN, encoding=encoding)
             result = await veil.apply(PLANTED, x)
             assert result.version == service_registry.planted
-            np.testing.assert_allclose(result.vectors, expected, atol=1e-6)
+            assert_same_answer(result.vectors, expected, bound, encoding)
         report = await veil.drift(PLANTED, x[:1000], labels=list(z[:1000]))
         assert report["status"] == "ok"
         # Pinned to the version the live alias names, on the posted sample and on the traffic just cleaned.
@@ -236,19 +241,39 @@ async def test_the_async_client_on_the_real_app_equals_the_in_process_transform(
         assert raised.value.code == "wrong_dimension"
 
 
+@pytest.mark.parametrize("batch_size", [1, 7, 64, 257, 1024])
+@pytest.mark.parametrize("encoding", ["npy", "json"])
+def test_the_sync_client_in_any_batch_size_equals_the_in_process_transform(
+    service_registry: ServiceRegistry, batch_size: int, encoding: str
+) -> None:
+    # 257 rows: batches of one row, of sizes that leave a short last batch, and one batch of all (the default).
+    x, _ = planted_population(257, seed=8)
+    artifact = Registry(service_registry.path).read_version(PLANTED, "live").artifact
+    expected = artifact.apply(x)
+    with (
+        TestClient(app_for(service_registry.path)) as http,
+        VeilClient(http_client=http, batch_size=batch_size, encoding=encoding) as veil,
+    ):
+        result = veil.apply(PLANTED, x)
+    assert result.vectors.dtype == np.float32
+    assert_same_answer(result.vectors, expected, apply_bound(artifact, x), f"batches of {batch_size}")
+
+
 def test_the_sync_client_on_the_real_app(service_registry: ServiceRegistry) -> None:
     batch = np.asarray(
         Registry(service_registry.path).read_version(PROFILES, "live").artifact.map.mean[None, :].repeat(3, axis=0),
         dtype=np.float32,
     )
-    expected = Registry(service_registry.path).read_version(PROFILES, "2").artifact.apply(batch)
+    pinned_artifact = Registry(service_registry.path).read_version(PROFILES, "2").artifact
+    expected = pinned_artifact.apply(batch)
     with TestClient(app_for(service_registry.path)) as http, VeilClient(http_client=http) as veil:
         assert {e["name"] for e in veil.erasers()} == {PLANTED, PROFILES}
         assert veil.eraser(PROFILES)["card"]["method"] == "leace"
         assert veil.ready()["status"] == "ready"
         pinned = veil.apply(PROFILES, batch, version="2")
         assert pinned.version == service_registry.meanproj
-        np.testing.assert_allclose(pinned.vectors, expected, atol=1e-6)
+        # The service's single BLAS thread sums in its own order: equal to the float32 round-off bound.
+        assert_same_answer(pinned.vectors, expected, apply_bound(pinned_artifact, batch), "pinned")
         # Drift checks pin the same way: the live version by default, the pinned one when asked.
         sample = load_harbourline_profiles().embedding[:200]
         assert veil.drift(PROFILES, sample)["version"] == service_registry.leace
