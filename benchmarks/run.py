@@ -1,14 +1,18 @@
 """``make bench``: veil's speed, as ratios against baselines measured in the same run.
 
 Every figure is a median over repeats; every row prints its measured ratio
-and its target.  A missed target is reported, not fatal: the script exits
+and its target.  Where a target compares veil with a floor (B1, B2 at batch
+256, B3), the floor is the work the step cannot avoid, done in plain NumPy
+and timed in the same run, alternately with veil.  A missed target is reported, not fatal: the script exits
 non-zero only when a benchmark cannot run.  The table is also written as JSON
 under ``benchmarks/results/``.
 
-B1  apply in process: factored vs dense d×d product vs a plain copy (d=768, k=8, batch 1024, float32)
+B1  apply in process: factored vs its floor (the same products in plain NumPy), a dense d×d product and a copy
+    (d=768, k=8, batch 1024, float32, one BLAS thread)
 B2  `veil serve` vs a bare FastAPI echo app on the same uvicorn settings, loopback, a raw keep-alive load
-    generator: batch 1 at 1 and 8 connections, batch 256 at 4; .npy and JSON; the h11 fallback at batch 1
-B3  LEACE fit vs a bare NumPy Xᵀ X on the same data (n=200,000, d=768)
+    generator: batch 1 at 1 and 8 connections, batch 256 at 4 (also against a floor: the bare app plus the
+    erasure's arithmetic timed in process); .npy and JSON; the h11 fallback at batch 1
+B3  LEACE fit vs its floor, a float64 XᵀX of the same rows with the conversion, and a float32 one (n=200,000, d=768)
 B4  INLP: the moments classifier vs the logistic classifier (time, and final held-out leakage)
 B5  a streamed LEACE fit (`veil fit --stream`) of a 2,000,000 × 768 file: peak memory and wall time vs a bare
     chunked XᵀX pass
@@ -17,7 +21,8 @@ B8  apply cost of the class-conditional transport map (kind class-transport) vs 
     d×d product, on the committed sample (d=384, batch 1024, float32, one BLAS thread)
 B7  the default audit's probes (linear, quadratic, RBF kernel, boosted trees, MLP; raw and LEACE-erased, 5 folds)
     with BLAS and OpenMP on one thread, as veil runs them, vs the same probes through cross_val_predict on every
-    thread; and every probe vs the linear and MLP probes alone (what the audit ran before); sample and 5,000 rows
+    thread (wall time and the process's CPU time); and every probe vs the linear and MLP probes alone (what the
+    audit ran before); sample and 5,000 rows
 """
 
 from __future__ import annotations
@@ -106,7 +111,8 @@ def paired_seconds(
     """Median seconds of ``run`` and of ``base``, timed alternately, and the sorted ratios of each round.
 
     Timing the two seconds apart, round after round, and taking the median of the ratios keeps a change in
-    the other jobs' load out of the ratio: both sides of a round see the same machine.
+    the other jobs' load out of the ratio: both sides of a round see the same machine.  Each side's first call
+    in a round is not timed: it warms the caches the other side has just used.
     """
     run(), base()  # warm caches and lazy initialisation
     pairs = []
