@@ -14,8 +14,11 @@ a rank (``C - 1`` for ``C`` classes), callers pass that bound instead.
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 from numpy.typing import NDArray
+from threadpoolctl import ThreadpoolController
 
 Float64Array = NDArray[np.float64]
 
@@ -92,6 +95,25 @@ def extend_basis(q: Float64Array, new: Float64Array, *, max_rank: int | None = N
     return np.ascontiguousarray(np.column_stack([q, added]))
 
 
+@functools.cache
+def _threads() -> ThreadpoolController:
+    # Made once, on first use: a controller inspects the loaded libraries, which costs about a millisecond.
+    return ThreadpoolController()
+
+
+def _eigh(matrix: Float64Array) -> tuple[Float64Array, Float64Array]:
+    """``np.linalg.eigh`` with BLAS on one thread.
+
+    LAPACK's symmetric eigen-solver synchronises its threads at every step of the reduction to tridiagonal
+    form; on a machine whose other cores are busy, OpenBLAS's second thread spin-waits for a core and one
+    768 × 768 decomposition took 0.2-3.3 s on two threads against 0.11-0.19 s on one (docs/performance.md,
+    B3).  One thread is also the service's setting.
+    """
+    with _threads().limit(limits=1, user_api="blas"):
+        eigenvalues, eigenvectors = np.linalg.eigh(matrix)
+    return eigenvalues, eigenvectors
+
+
 def whitening_factors(
     covariance: Float64Array, *, rtol: float | None = None, rank: int | None = None
 ) -> tuple[Float64Array, Float64Array]:
@@ -120,7 +142,7 @@ def whitening_factors(
     scale : ndarray of shape (r,)
         ``1 / sqrt(λ)`` for each retained eigenvalue ``λ``.
     """
-    eigenvalues, eigenvectors = np.linalg.eigh(np.asarray(covariance, dtype=np.float64))
+    eigenvalues, eigenvectors = _eigh(np.asarray(covariance, dtype=np.float64))
     if rank is not None:
         keep = np.zeros(eigenvalues.size, dtype=bool)
         keep[max(eigenvalues.size - rank, 0) :] = True

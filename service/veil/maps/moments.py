@@ -148,15 +148,18 @@ class MomentState:
                 for block, rows in zip(attribute.blocks, attribute.present, strict=True)
             )
             return dataclasses.replace(pooled, blocks=attribute.blocks, partial=partial)
-        x64 = np.asarray(x, dtype=np.float64)
         z64 = attribute.matrix
-        count = x64.shape[0]
+        count = x.shape[0]
         if count == 0:
-            empty = cls.empty(x64.shape[1], z64.shape[1], attribute.labels, by_class=by_class)
+            empty = cls.empty(x.shape[1], z64.shape[1], attribute.labels, by_class=by_class)
             return dataclasses.replace(empty, blocks=attribute.blocks)
-        mean_x = x64.mean(axis=0)
+        # Always a copy (float64 input too), centred in place below: one block-sized float64 array instead of
+        # the cast and a centred copy of it; a fresh 400 MB array costs its page faults on every block.
+        xc = np.array(x, dtype=np.float64)
+        mean_x = xc.mean(axis=0)
         mean_z = z64.mean(axis=0)
-        xc = x64 - mean_x
+        class_comoments = _class_comoments(xc, attribute.codes, z64.shape[1]) if by_class else None
+        xc -= mean_x
         zc = z64 - mean_z
         return cls(
             count=count,
@@ -166,7 +169,7 @@ class MomentState:
             comoment_xz=xc.T @ zc,
             comoment_zz=zc.T @ zc,
             labels=attribute.labels,
-            class_comoments=_class_comoments(x64, attribute.codes, z64.shape[1]) if by_class else None,
+            class_comoments=class_comoments,
             blocks=attribute.blocks,
         )
 
