@@ -103,6 +103,12 @@ def timed(command: list[str]) -> float:
     return time.monotonic() - started
 
 
+def _not_live(registry: Registry) -> list[str]:
+    """The versions a promote of ``live`` can move to: every one but where it points (a no-op move is refused)."""
+    live = registry.alias(NAME, "live")
+    return [v.id for v in registry.versions(NAME) if live is None or v.id != live.version]
+
+
 def crash_loop(workdir: Path, *, trials: int, seed: int = 20261202) -> Outcome:
     """Half the trials kill a fit, half a promote or rollback; the registry is checked after each."""
     x, z = planted_population(600, seed=8, d=24)
@@ -128,8 +134,7 @@ def crash_loop(workdir: Path, *, trials: int, seed: int = 20261202) -> Outcome:
             kind, command, delay = "fit", fit, rng.uniform(0.3, 1.05) * fit_seconds
         else:
             kind = "rollback" if trial % 6 == 5 else "promote"
-            versions = [v.id for v in registry.versions(NAME)]
-            argv = ("rollback", NAME) if kind == "rollback" else ("promote", NAME, rng.choice(versions))
+            argv = ("rollback", NAME) if kind == "rollback" else ("promote", NAME, rng.choice(_not_live(registry)))
             command = veil_command(*argv, "--registry", registry_path, "--reason", f"trial {trial}")
             delay = rng.uniform(0.5, 1.05) * promote_seconds
         if (trial // 2) % 2 == 1:
@@ -148,7 +153,9 @@ def crash_loop(workdir: Path, *, trials: int, seed: int = 20261202) -> Outcome:
         _, found = consistency_problems(registry)
         problems += [f"after trial {trial} ({kind}): {p}" for p in found]
     # The registry still takes writes: an interrupted move is finished, a new promote works.
-    after = subprocess.run(veil_command("promote", NAME, "1", "--registry", registry_path), capture_output=True)
+    after = subprocess.run(
+        veil_command("promote", NAME, _not_live(registry)[0], "--registry", registry_path), capture_output=True
+    )
     if after.returncode != 0:
         problems.append(f"promote after the loop failed: {after.stderr.decode()[-300:]}")
     count, found = consistency_problems(registry)

@@ -108,7 +108,7 @@ def test_a_removal_a_writer_died_in_is_completed_by_the_next_move(shared: tuple[
     digits = len(events[-1].stem)  # the event files' own zero-padded numbering
     (root / NAME / "history" / f"{number:0{digits}d}.json").write_text(json.dumps(event))
     assert not registry.history(NAME)[-1].applied
-    registry.promote(NAME, ids[1], alias="live", reason="next move")
+    registry.promote(NAME, ids[0], alias="live", reason="next move")
     assert registry.alias(NAME, "canary") is None
     assert all(event.applied for event in registry.history(NAME))
 
@@ -128,3 +128,14 @@ def test_a_truncated_card_marks_its_version_damaged_and_lists_the_others(shared:
     assert checked.code == 1
     assert f"FAIL  {NAME} {ids[0]}" in checked.out
     assert f"ok    {NAME} {ids[1]}" in checked.out
+
+
+def test_promoting_the_version_an_alias_already_names_is_refused_and_records_nothing(
+    shared: tuple[Path, list[str]],
+) -> None:
+    root, ids = shared
+    events = len(Registry(root).history(NAME))
+    again = run("promote", NAME, ids[1], "--alias", "live", "--registry", root)
+    assert again.code == 2
+    assert f"alias 'live' of {NAME} already points at {ids[1]}; nothing to promote" in again.err
+    assert len(Registry(root).history(NAME)) == events

@@ -7,6 +7,7 @@ import pytest
 from veil.audit.report import AuditReport, Leakage, ProbeScore, Retrieval, Utility
 from veil.checks.thresholds import AuditThresholds, Band
 from veil.checks.verdict import judge_audit
+from veil.reporting.html import latest_live_verdict
 
 
 def _score(accuracy: float, low: float, high: float, majority: float = 0.5) -> ProbeScore:
@@ -97,3 +98,13 @@ def test_round_off_never_decides_which_side_of_a_level_a_figure_falls() -> None:
     assert verdict.figures["linear_gap"] == pytest.approx(0.05)
     assert verdict.reasons[0] == "the linear probe reads the attribute 0.050 beyond majority (alert at 0.05)"
     assert Band(0.02, 0.05).level(0.57 - 0.52) == "alert"
+
+
+def test_the_latest_live_checks_headline_counts_the_figures_it_was_judged_on() -> None:
+    quiet = {
+        "checked_at": "2027-01-16T07:00:00+00:00", "status": "ok", "reasons": [], "leakage_gap": 0.0,
+        "mean_shift": 0.1, "covariance_shift": 0.0, "erased_variance_ratio": 1.0, "prior_shift": None,
+    }  # fmt: skip
+    (paragraph,) = latest_live_verdict([quiet])
+    # Four figures had values to judge; the prior shift had none (no labels): it is not counted.
+    assert "All 4 judged figures are below their warn levels." in paragraph

@@ -476,13 +476,17 @@ class Registry:
         IntegrityError
             The version fails verification; the alias is left as it was.
         PromotionError
-            The version's dimension differs from the alias's current one and
-            ``allow_dimension_change`` is False.
+            The alias already points at the version, or the version's dimension differs from the alias's current
+            one and ``allow_dimension_change`` is False.
         """
         check_name(alias, what="alias")
         with self._locked(name):
             self._finish_interrupted_moves(name)
             target = self.read_version(name, reference)
+            current, _ = self._current(name, alias)
+            if current is not None and current.version == target.id:
+                # A move to where the alias already points changes nothing and would record an empty event.
+                raise PromotionError(f"alias {alias!r} of {name} already points at {target.id}; nothing to promote")
             return self._move(name, alias, "promote", target, reason, user, allow_dimension_change)
 
     def rollback(

@@ -11,8 +11,10 @@ from __future__ import annotations
 
 import html
 from collections.abc import Sequence
+from dataclasses import fields
 from typing import Any
 
+from veil.checks.thresholds import AlertThresholds
 from veil.checks.verdict import RULE, Verdict
 from veil.registry import Registry
 from veil.registry.card import card_audit, card_verdict, method_text, operating_points_text, protocol_text
@@ -51,14 +53,15 @@ _CAUTION = (
 )
 
 
-def _live_verdict(checks: Sequence[dict[str, Any]]) -> list[str]:
+def latest_live_verdict(checks: Sequence[dict[str, Any]]) -> list[str]:
+    """The report's verdict paragraph of the latest live check (none without checks)."""
     if not checks:
         return []
     latest = checks[-1]
-    why = "; ".join(latest["reasons"]) or "every figure below its warn level"
-    return [
-        sections.verdict_paragraph(f"Latest live check ({latest['checked_at']})", Verdict(latest["status"], {}, [why]))
-    ]
+    # The figures the check was judged on, as the record holds them (None where it had none to judge).
+    figures = {figure.name: latest.get(figure.name) for figure in fields(AlertThresholds)}
+    verdict = Verdict(latest["status"], figures, list(latest["reasons"]))
+    return [sections.verdict_paragraph(f"Latest live check ({latest['checked_at']})", verdict)]
 
 
 def render_report(
@@ -103,7 +106,7 @@ def render_report(
             if audits
             else []
         ),
-        *_live_verdict(checks),
+        *latest_live_verdict(checks),
         f'<p class="muted">{html.escape(RULE)}</p>',
         f'<p class="caution">{html.escape(_CAUTION)}</p>',
         "<h2>Version</h2>" + sections.table(summary),
