@@ -140,7 +140,7 @@ def test_json_encoding_tokens_and_counterfactual_targets() -> None:
 @pytest.mark.parametrize(
     ("vectors", "message"),
     [
-        (np.ones(4), "2-D"),
+        (np.ones((2, 2, 2)), "2-D"),
         (np.ones((0, 4)), "empty"),
         (np.array([[1.0, np.nan]]), "NaN"),
         (np.array([["a", "b"]]), "numbers"),
@@ -152,6 +152,14 @@ def test_bad_vectors_are_refused_before_any_request(vectors: object, message: st
     with pytest.raises(VeilValidationError, match=message):
         client(script).apply("e", vectors)  # type: ignore[arg-type]
     assert script.requests == []
+
+
+def test_one_1d_vector_is_sent_as_one_row_and_answered_as_a_1d_vector() -> None:
+    script = Script()
+    cleaned = client(script).apply("e", X[0])
+    assert len(script.requests) == 1
+    assert cleaned.vectors.shape == X[0].shape
+    np.testing.assert_allclose(cleaned.vectors, client(Script()).apply("e", X[:1]).vectors[0])
 
 
 def test_bad_options_and_drift_arguments_are_refused_before_any_request() -> None:
@@ -207,7 +215,7 @@ async def test_the_async_client_retries_and_batches_alike() -> None:
     ) as veil:
         result = await veil.apply("e", X)
         with pytest.raises(VeilValidationError):
-            await veil.apply("e", np.ones(3))
+            await veil.apply("e", np.ones((2, 2, 2)))
     np.testing.assert_array_equal(result.vectors, 2 * X)
     assert len(script.requests) == 2 + 4
 

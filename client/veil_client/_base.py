@@ -6,7 +6,7 @@ import io
 import json
 import random
 from collections.abc import Iterator, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import httpx
@@ -69,6 +69,28 @@ def as_matrix(vectors: ArrayLike) -> NDArray[np.floating]:
         row = int(np.flatnonzero(~np.isfinite(matrix).all(axis=1))[0])
         raise VeilValidationError(f"row {row} holds NaN or infinite values")
     return matrix
+
+
+def as_rows(vectors: ArrayLike) -> tuple[NDArray[np.floating], bool]:
+    """The vectors as a matrix of rows, and whether one 1-D vector was given (its answer is then 1-D too)."""
+    try:
+        single = np.ndim(vectors) == 1
+    except (ValueError, TypeError):
+        single = False  # ragged or not numbers: as_matrix says which
+    return as_matrix(np.asarray(vectors)[None, :] if single else vectors), single
+
+
+def one_vector(batch: CleanedBatch, single: bool) -> CleanedBatch:
+    """The answer to one 1-D vector as a 1-D vector; any other answer as it is."""
+    return replace(batch, vectors=batch.vectors[0]) if single else batch
+
+
+def one_query(answer: SearchVectors, single: bool) -> SearchVectors:
+    """The answer to one 1-D query as a 1-D vector (its offset a 0-d array); any other answer as it is."""
+    if not single:
+        return answer
+    offsets = None if answer.offsets is None else answer.offsets.reshape(())
+    return replace(answer, vectors=answer.vectors[0], offsets=offsets)
 
 
 def batches(matrix: NDArray[np.floating], size: int) -> Iterator[NDArray[np.floating]]:

@@ -25,9 +25,12 @@ from veil_client._base import (
     SearchVectors,
     Target,
     as_matrix,
+    as_rows,
     batches,
     decode,
     encode,
+    one_query,
+    one_vector,
     pin_headers,
     raise_for_error,
     search_vectors_of,
@@ -183,7 +186,7 @@ class VeilClient(_Requests):
     def _clean(
         self, path: str, vectors: ArrayLike, version: str | None, alias: str | None, params: dict[str, str]
     ) -> CleanedBatch:
-        matrix, pin = as_matrix(vectors), pin_headers(version, alias)
+        (matrix, single), pin = as_rows(vectors), pin_headers(version, alias)
         parts, responses = [], []
         for batch in batches(matrix, self.settings.batch_size):
             response = self._send("POST", path, params=params, **self._batch_request(batch, pin))
@@ -191,12 +194,12 @@ class VeilClient(_Requests):
             pin = {"X-Veil-Version": response.headers["x-veil-version"]}
             parts.append(decode(response))
             responses.append(response)
-        return _combine(parts, responses)
+        return one_vector(_combine(parts, responses), single)
 
     def apply(
         self, name: str, vectors: ArrayLike, *, version: str | None = None, alias: str | None = None
     ) -> CleanedBatch:
-        """Erase the attribute from ``vectors`` (shape (n, d)); the result keeps their order."""
+        """Erase the attribute from ``vectors`` (shape (n, d)), in order; one vector of shape (d,) gets one back."""
         return self._clean(f"/v1/erasers/{name}/apply", vectors, version, alias, {})
 
     def counterfactual(
@@ -240,14 +243,14 @@ class VeilClient(_Requests):
         SearchVectors
             ``vectors`` (n_queries, dim), ``offsets`` (n_queries,) or None, ``exact``, ``note``, ``version``.
         """
-        matrix, pin = as_matrix(queries), pin_headers(version, alias)
+        (matrix, single), pin = as_rows(queries), pin_headers(version, alias)
         answers = []
         for batch in batches(matrix, self.settings.batch_size):
             request = self._search_request(batch, pin, metric, exact)
             answer = self._send("POST", f"/v1/erasers/{name}/search-vector", **request)
             pin = {"X-Veil-Version": answer.headers["x-veil-version"]}
             answers.append(answer)
-        return search_vectors_of(answers)
+        return one_query(search_vectors_of(answers), single)
 
     def drift(
         self,
@@ -356,14 +359,14 @@ class AsyncVeilClient(_Requests):
     async def _clean(
         self, path: str, vectors: ArrayLike, version: str | None, alias: str | None, params: dict[str, str]
     ) -> CleanedBatch:
-        matrix, pin = as_matrix(vectors), pin_headers(version, alias)
+        (matrix, single), pin = as_rows(vectors), pin_headers(version, alias)
         parts, responses = [], []
         for batch in batches(matrix, self.settings.batch_size):
             response = await self._send("POST", path, params=params, **self._batch_request(batch, pin))
             pin = {"X-Veil-Version": response.headers["x-veil-version"]}
             parts.append(decode(response))
             responses.append(response)
-        return _combine(parts, responses)
+        return one_vector(_combine(parts, responses), single)
 
     async def apply(
         self, name: str, vectors: ArrayLike, *, version: str | None = None, alias: str | None = None
@@ -386,14 +389,14 @@ class AsyncVeilClient(_Requests):
         alias: str | None = None,
     ) -> SearchVectors:
         """As :meth:`VeilClient.search_vectors`."""
-        matrix, pin = as_matrix(queries), pin_headers(version, alias)
+        (matrix, single), pin = as_rows(queries), pin_headers(version, alias)
         answers = []
         for batch in batches(matrix, self.settings.batch_size):
             request = self._search_request(batch, pin, metric, exact)
             answer = await self._send("POST", f"/v1/erasers/{name}/search-vector", **request)
             pin = {"X-Veil-Version": answer.headers["x-veil-version"]}
             answers.append(answer)
-        return search_vectors_of(answers)
+        return one_query(search_vectors_of(answers), single)
 
     async def drift(
         self,
