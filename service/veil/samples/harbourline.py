@@ -1,22 +1,29 @@
-"""The committed sample of real sentence embeddings (an invented scenario, for demos and tests).
+"""The committed samples of real sentence embeddings (an invented scenario, for demos and tests).
 
 *Harbourline* is a fictional community job board for a coastal region.
 Each row is a member's short, template-written profile embedded with the
 open all-MiniLM-L6-v2 sentence model (384 dimensions, unit length), with
 the member's pronoun (``"she"``/``"he"``: the attribute to erase), an age
 bracket (a second attribute) and field of work (the task).  Fields are
-skewed by pronoun on purpose.  ``scripts/make_profile_sample.py`` made it.
+skewed by pronoun on purpose.  ``scripts/make_profile_sample.py`` made both
+samples: the small one (3,000 rows, float32) that the demo uses, and a large
+one (24,000 rows, every text distinct, a wider vocabulary) stored as float16
+and widened back to float32 on load, for effects that sampling error hides
+at a few thousand rows.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 from importlib import resources
+from typing import Literal
 
 import numpy as np
 from numpy.typing import NDArray
 
 SAMPLE_FILE = "harbourline_profiles.npz"
+LARGE_SAMPLE_FILE = "harbourline_profiles_large.npz"
+SAMPLE_FILES = {"small": SAMPLE_FILE, "large": LARGE_SAMPLE_FILE}
 
 
 @dataclass(frozen=True)
@@ -30,10 +37,22 @@ class ProfileSample:
     text: NDArray[np.str_]
 
 
-def load_harbourline_profiles() -> ProfileSample:
-    """Load the committed sample (3,000 rows × 384 float32) from the installed package."""
+def load_harbourline_profiles(size: Literal["small", "large"] = "small") -> ProfileSample:
+    """Load a committed sample from the installed package, embeddings as float32.
+
+    Parameters
+    ----------
+    size : {"small", "large"}
+        ``"small"``: 3,000 rows × 384, stored as float32.  ``"large"``: 24,000
+        rows × 384, stored as float16 (each value within half a float16 step
+        of the model's float32 output) and widened exactly to float32 here.
+    """
+    if size not in SAMPLE_FILES:
+        raise ValueError(f"size must be one of {sorted(SAMPLE_FILES)}, got {size!r}")
     with (
-        resources.files("veil").joinpath("data", SAMPLE_FILE).open("rb") as handle,
+        resources.files("veil").joinpath("data", SAMPLE_FILES[size]).open("rb") as handle,
         np.load(handle, allow_pickle=False) as data,
     ):
-        return ProfileSample(**{key: data[key] for key in ProfileSample.__dataclass_fields__})
+        columns = {key: data[key] for key in ProfileSample.__dataclass_fields__}
+    columns["embedding"] = columns["embedding"].astype(np.float32, copy=False)
+    return ProfileSample(**columns)
