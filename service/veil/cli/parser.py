@@ -147,8 +147,8 @@ def _sample_options(command: argparse.ArgumentParser) -> None:
     command.add_argument(
         "--drop-missing",
         action="store_true",
-        help="drop rows whose attribute or task label is missing (blank, NA, NaN, null) instead of refusing the "
-        "sample; the card records how many",
+        help="drop rows whose attribute, task or context (--given) label is missing (blank, NA, NaN, null) "
+        "instead of refusing the sample; the card records how many",
     )
     command.add_argument(
         "--embeddings", default=EMBEDDINGS_KEY, help="key (.npz) or column (.parquet) of the embeddings"

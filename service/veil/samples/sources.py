@@ -293,7 +293,7 @@ def load_labelled_sample(
         For ``.npy`` input: a ``.npy`` holding the attribute, or a ``.csv``
         with a header naming the attribute (and task) columns.
     drop_missing : bool, default=False
-        Drop the rows whose attribute or task label is missing (see
+        Drop the rows whose attribute, task or context label is missing (see
         :mod:`veil.samples.labels`) instead of refusing the sample.
     continuous : sequence of str
         The attributes that are continuous (age in years, a score); the others are categorical.
