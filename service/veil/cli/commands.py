@@ -57,6 +57,7 @@ def _open_sample(args: argparse.Namespace, *, streamed: bool) -> Any:
         "joint": args.joint,
         "merge_classes": args.merge_classes,
         "incomplete": args.incomplete_labels,
+        "given": getattr(args, "given", None),  # veil fit's option; veil audit reads no context
     }
     return open_stream(args.data, **source) if streamed else load_labelled_sample(args.data, **source)
 
@@ -98,7 +99,14 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
         sweep=args.sweep is not None,
         sweep_values=None if not args.sweep else tuple(_sweep_values(args.sweep)),
         targets=tuple(args.target),
+        given=args.given,
+        guard_population=not args.within_only,
     )
+    if args.given is not None and (len(args.attribute) > 1 or args.continuous):
+        # Refused before the sample is read: the within-value moments are those of one categorical attribute.
+        raise DataError(
+            "--given guards one categorical attribute within a context for now, not several or a continuous one"
+        )
     audit = AuditSpec(
         nonlinear=args.probes == "all",
         rows=args.audit_rows if streamed else None,

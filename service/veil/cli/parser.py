@@ -147,8 +147,8 @@ def _sample_options(command: argparse.ArgumentParser) -> None:
     command.add_argument(
         "--drop-missing",
         action="store_true",
-        help="drop rows whose attribute or task label is missing (blank, NA, NaN, null) instead of refusing the "
-        "sample; the card records how many",
+        help="drop rows whose attribute, task or context (--given) label is missing (blank, NA, NaN, null) "
+        "instead of refusing the sample; the card records how many",
     )
     command.add_argument(
         "--embeddings", default=EMBEDDINGS_KEY, help="key (.npz) or column (.parquet) of the embeddings"
@@ -217,6 +217,19 @@ def build_parser() -> VeilParser:
     fit.add_argument("--holdout", type=float, default=0.2, help="share of rows held out for the audit (default 0.2)")
     fit.add_argument("--seed", type=int, default=0, help="seeds the split, probes and randomised methods")
     fit.add_argument("--normalize", action="store_true", help="re-normalise served vectors to unit length")
+    fit.add_argument(
+        "--given",
+        metavar="COLUMN",
+        help="a categorical context (a field, a query's category) to guard the attribute within: the class means "
+        "coincide within every value of COLUMN on the fitting rows (leace, meanproj; one categorical attribute); "
+        "a missing value is refused or dropped like a missing label",
+    )
+    fit.add_argument(
+        "--within-only",
+        action="store_true",
+        help="with --given, guard within the context's values only, not the population as a whole: what the "
+        "context itself says about the attribute (a field skewed by it) then stays readable",
+    )
     _probes_option(fit)
     _fail_on_option(fit)
     fit.add_argument(

@@ -21,12 +21,16 @@ METHODS: dict[str, type[Erasure]] = {
 }
 
 
+#: Estimator parameters the request sets itself (:class:`MethodSpec`'s own fields), not method options.
+_SET_BY_REQUEST = ("normalize", "random_state", "guard_population")
+
+
 def method_parameters(method: str) -> dict[str, Any]:
-    """The parameters ``method`` accepts, with their defaults (``normalize`` and ``random_state`` excluded)."""
+    """The parameters ``method`` accepts, with their defaults (those the request sets itself excluded)."""
     if method not in METHODS:
         raise DataError(f"unknown method {method!r}; choose one of {', '.join(METHODS)}")
     defaults = METHODS[method]().get_params()
-    return {key: value for key, value in defaults.items() if key not in ("normalize", "random_state")}
+    return {key: value for key, value in defaults.items() if key not in _SET_BY_REQUEST}
 
 
 def _convert(method: str, key: str, text: str, default: Any) -> Any:
@@ -83,8 +87,11 @@ def make_eraser(spec: MethodSpec, **overrides: Any) -> Erasure:
     unknown = sorted(set(options) - set(method_parameters(spec.method)))
     if unknown:
         raise DataError(f"{spec.method} has no option {unknown[0]!r}")
-    if "random_state" in METHODS[spec.method]().get_params():
+    accepted = METHODS[spec.method]().get_params()
+    if "random_state" in accepted:
         options["random_state"] = spec.seed
+    if "guard_population" in accepted:
+        options["guard_population"] = spec.guard_population
     return METHODS[spec.method](**options, normalize=spec.normalize)
 
 

@@ -25,6 +25,9 @@ from veil.registry.naming import check_name
 #: A strength of a sweep: a count, or None for a method's full value (``all`` on the command line).
 SweepValue = int | None
 
+#: The methods that can guard an attribute within a context (they fit from moments, which merge by value).
+CONTEXT_METHODS = ("leace", "meanproj")
+
 
 @dataclass(frozen=True)
 class MethodSpec:
@@ -49,6 +52,13 @@ class MethodSpec:
     targets : tuple of str
         Targets such as ``"nn-attribute <= base + 0.05"``: the version stored is the sweep's point of least
         distortion that meets every one.
+    given : str, optional
+        A categorical context column (a field, a query's category): the attribute is also guarded within every
+        value of it, ``Cov(x', z | value) = 0`` on the fitting rows (leace and meanproj; the sample is read with
+        the same column, see :func:`veil.samples.sources.load_labelled_sample`).
+    guard_population : bool, default=True
+        With a context, also guard the population as a whole.  False guards within the values only: what the
+        context itself says about the attribute (fields skewed by it) then stays readable across values.
     """
 
     method: str
@@ -60,15 +70,33 @@ class MethodSpec:
     sweep: bool = False
     sweep_values: tuple[SweepValue, ...] | None = None
     targets: tuple[str, ...] = ()
+    given: str | None = None
+    guard_population: bool = True
 
     def __post_init__(self) -> None:
         if not 0.0 < self.holdout < 1.0:
             raise DataError(f"the held-out share must be between 0 and 1, got {self.holdout}")
+        self._check_context()
         # Frozen all the way down: a request is a record, and the card is written from it after the fit.
         object.__setattr__(self, "params", MappingProxyType(dict(self.params)))
         object.__setattr__(self, "targets", tuple(self.targets))
         if self.sweep_values is not None:
             object.__setattr__(self, "sweep_values", tuple(self.sweep_values))
+
+    def _check_context(self) -> None:
+        """Refuse a context the method or the rest of the request cannot go with, in one line."""
+        if self.given is None:
+            if not self.guard_population:
+                raise DataError("guarding within a context only (--within-only) needs a context column (--given)")
+            return
+        if self.method not in CONTEXT_METHODS:
+            raise DataError(
+                f"{self.method} cannot guard within a context (--given); use {' or '.join(CONTEXT_METHODS)}"
+            )
+        if self.sweeps:
+            raise DataError(
+                "a sweep measures the attribute over the whole population; fit --given without --sweep/--target"
+            )
 
     @property
     def sweeps(self) -> bool:
@@ -85,6 +113,8 @@ class MethodSpec:
             "sweep": self.sweeps,
             "sweep_values": None if self.sweep_values is None else list(self.sweep_values),
             "targets": list(self.targets),
+            "given": self.given,
+            "guard_population": self.guard_population,
         }
 
 

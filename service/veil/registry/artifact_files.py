@@ -6,7 +6,10 @@ parameters, shapes, history and the sha256 of the arrays file).
 
 Format 2 names the map's kind (``map_kind``) and stores the map's own arrays
 under a ``map.`` prefix; format 1, written before map kinds existed, holds
-an affine low-rank map as ``mean``, ``u`` and ``v`` and is still read.
+an affine low-rank map as ``mean``, ``u`` and ``v`` and is still read.  A
+version guarded within a context also stores the moments within each value
+(arrays ``given.*``, and ``"context": true`` in the description); one
+written before contexts existed has neither and reads as it always did.
 :func:`content_digest` hashes the arrays and description themselves, not
 the zip container, so the same eraser always has the same digest.
 """
@@ -25,6 +28,7 @@ from numpy.typing import NDArray
 
 from veil.maps.artifact import MapArtifact
 from veil.maps.attribute import AttributeBlock
+from veil.maps.context import ContextMoments
 from veil.maps.kinds import EmbeddingMap, map_from_arrays
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
@@ -40,6 +44,9 @@ _BLOCK_LABELS = "attribute_labels."
 _PARTIAL = "partial."
 
 _MOMENT_ARRAYS = ("mean_x", "mean_z", "comoment_xx", "comoment_xz", "comoment_zz")
+# The moments within each value of a context (see veil.maps.context.ContextMoments), by field.
+_CONTEXT = "given."
+_CONTEXT_ARRAYS = ("values", "labels", "class_counts", "mean_x", "comoment_xz")
 
 
 class ArtifactFormatError(ValueError):
@@ -70,6 +77,8 @@ def artifact_arrays(artifact: MapArtifact) -> dict[str, NDArray[Any]]:
     for position, state in enumerate(moments.partial):
         arrays[f"{_PARTIAL}{position}.count"] = np.array(state.count, dtype=np.int64)
         arrays.update({f"{_PARTIAL}{position}.{name}": getattr(state, name) for name in _MOMENT_ARRAYS})
+    if moments.given is not None:
+        arrays.update({_CONTEXT + name: getattr(moments.given, name) for name in _CONTEXT_ARRAYS})
     return arrays
 
 
@@ -106,6 +115,12 @@ def _stored_partial(description: Mapping[str, Any], arrays: Mapping[str, NDArray
     return tuple(states)
 
 
+def _stored_context(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> ContextMoments | None:
+    if not description.get("context"):
+        return None
+    return ContextMoments(**{name: arrays[_CONTEXT + name] for name in _CONTEXT_ARRAYS})
+
+
 def _stored_blocks(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> tuple[AttributeBlock, ...]:
     blocks = []
     for position, entry in enumerate(description.get("attributes", [])):
@@ -126,6 +141,8 @@ def artifact_description(artifact: MapArtifact) -> dict[str, Any]:
         **artifact.map.describe(),
         "categorical": artifact.moments.labels is not None,
         **_blocks_description(artifact.moments),
+        # Only where there is one: the descriptions (and digests) of other versions stay as they were.
+        **({"context": True} if artifact.moments.given is not None else {}),
         "history": _json_safe(artifact.history),
     }
 
@@ -207,6 +224,7 @@ def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> 
                 labels=arrays.get("labels"),
                 blocks=_stored_blocks(description, arrays),
                 partial=_stored_partial(description, arrays),
+                given=_stored_context(description, arrays),
                 **{name: arrays[name] for name in _MOMENT_ARRAYS},
             ),
             history=list(description["history"]),

@@ -132,6 +132,8 @@ def build_card(
     }
     if request is not None:
         card["request"] = dict(request)
+    if artifact.moments.given is not None:
+        card["given"] = given_record(artifact, str(sample.context_key))
     if operating_points is not None:
         card["operating_points"] = operating_points
     if attribute_audits:
@@ -139,6 +141,28 @@ def build_card(
         card["attributes"] = entries
         card["verdict"] = worst_verdict(verdict_record(audit, audit_thresholds or AuditThresholds()), entries)
     return dict(json_safe(card))
+
+
+def given_record(artifact: MapArtifact, column: str) -> dict[str, Any]:
+    """The context a version guards its attribute within: the column, each value with its fitting rows, and
+    whether the population as a whole is guarded too."""
+    moments = artifact.moments.given
+    assert moments is not None
+    return {
+        "column": column,
+        "values": [str(value) for value in moments.values],
+        "rows": moments.counts.tolist(),
+        "guard_population": bool(artifact.params.get("guard_population", True)),
+    }
+
+
+def given_text(record: Mapping[str, Any]) -> str:
+    """One line on the context a card records."""
+    population = "the population as a whole too" if record["guard_population"] else "not the population as a whole"
+    return (
+        f"within each of the {len(record['values'])} values of {record['column']!r} "
+        f"({sum(record['rows'])} fitting rows); {population}"
+    )
 
 
 def attributes_record(
@@ -320,6 +344,8 @@ def format_card(version_id: str, card: dict[str, Any]) -> str:
     lines += [f"  {label:{width}}  {text}" for label, text in _headline(card)]
     attribute = card["attribute"]
     lines.append(f"  {'attribute':{width}}  {attribute['key']}: {', '.join(attribute['classes'])}")
+    if card.get("given"):
+        lines.append(f"  {'context':{width}}  guarded {given_text(card['given'])}")
     if card.get("task"):
         lines.append(f"  {'task':{width}}  {card['task']['key']}")
     lines.append(f"  {'parameters':{width}}  " + ", ".join(f"{k}={v}" for k, v in sorted(card["params"].items())))

@@ -28,12 +28,15 @@ class Chunk:
     attribute : ndarray of shape (n,)
         Labels, or rows of an attribute table (see :mod:`veil.samples.attributes`).
     task : ndarray of shape (n,) or None
+    context : ndarray of shape (n,) or None
+        Each row's value of the context column the attribute is guarded within (``veil fit --given``).
     """
 
     index: NDArray[np.int64]
     embeddings: NDArray[np.floating]
     attribute: NDArray[Any]
     task: NDArray[Any] | None
+    context: NDArray[Any] | None = None
 
     @classmethod
     def of_rows(
@@ -43,18 +46,25 @@ class Chunk:
         attribute: NDArray[Any],
         task: NDArray[Any] | None,
         missing: NDArray[np.bool_] | None = None,
+        context: NDArray[Any] | None = None,
     ) -> Chunk:
         """Rows ``start, start + 1, …`` of the files, less those ``missing`` marks as lacking a label."""
         index = np.arange(start, start + embeddings.shape[0], dtype=np.int64)
         if missing is None or not missing.any():
-            return cls(index, embeddings, np.asarray(attribute), None if task is None else np.asarray(task))
+            return cls(index, embeddings, np.asarray(attribute), _array(task), _array(context))
         kept = ~missing
-        return cls(
-            index[kept], embeddings[kept], np.asarray(attribute)[kept], None if task is None else np.asarray(task)[kept]
-        )
+        return cls(index[kept], embeddings[kept], np.asarray(attribute)[kept], _rows(task, kept), _rows(context, kept))
 
     def __len__(self) -> int:
         return int(self.index.shape[0])
+
+
+def _array(values: NDArray[Any] | None) -> NDArray[Any] | None:
+    return None if values is None else np.asarray(values)
+
+
+def _rows(values: NDArray[Any] | None, kept: NDArray[np.bool_]) -> NDArray[Any] | None:
+    return None if values is None else np.asarray(values)[kept]
 
 
 class Partition(Protocol):
@@ -101,6 +111,11 @@ class Sample(Protocol):
     def attribute_key(self) -> str: ...
     @property
     def task_key(self) -> str | None: ...
+    @property
+    def context_key(self) -> str | None:
+        """The context column the attribute is guarded within (None: the population only)."""
+        ...
+
     @property
     def files(self) -> dict[str, str]: ...
     @property

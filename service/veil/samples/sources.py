@@ -61,6 +61,10 @@ class LabelledSample:
         index in the files, so dropping rows moves no other row across it.
     notes : tuple of str
         What was done to the labels as read (classes merged), for the card.
+    context : ndarray of shape (n,) or None
+        Each row's value of a context column (a field, a query's category): the attribute is then guarded within
+        every value too (``veil fit --given``).
+    context_key : str or None
     """
 
     embeddings: NDArray[np.floating]
@@ -71,6 +75,8 @@ class LabelledSample:
     files: dict[str, str]
     kept: NDArray[np.bool_] | None = None
     notes: tuple[str, ...] = ()
+    context: NDArray[Any] | None = None
+    context_key: str | None = None
 
     @property
     def rows(self) -> int:
@@ -114,7 +120,9 @@ class LabelledSample:
         protocol and does not apply.
         """
         index = np.arange(self.rows, dtype=np.int64) if self.kept is None else np.flatnonzero(self.kept)
-        chunk = Chunk(index=index, embeddings=self.embeddings, attribute=self.attribute, task=self.task)
+        chunk = Chunk(
+            index=index, embeddings=self.embeddings, attribute=self.attribute, task=self.task, context=self.context
+        )
         return [InMemoryPartition(chunk=chunk, stop=self.rows + self.dropped_rows)]
 
 
@@ -267,6 +275,7 @@ def load_labelled_sample(
     joint: bool = False,
     merge_classes: Sequence[str] = (),
     incomplete: bool = False,
+    given: str | None = None,
 ) -> LabelledSample:
     """Read embeddings and labels for a fit.
 
@@ -284,7 +293,7 @@ def load_labelled_sample(
         For ``.npy`` input: a ``.npy`` holding the attribute, or a ``.csv``
         with a header naming the attribute (and task) columns.
     drop_missing : bool, default=False
-        Drop the rows whose attribute or task label is missing (see
+        Drop the rows whose attribute, task or context label is missing (see
         :mod:`veil.samples.labels`) instead of refusing the sample.
     continuous : sequence of str
         The attributes that are continuous (age in years, a score); the others are categorical.
@@ -295,6 +304,9 @@ def load_labelled_sample(
     incomplete : bool, default=False
         Several attributes: keep the rows that lack some of them (not all);
         each attribute's statistics then come from the rows that carry it.
+    given : str, optional
+        Key or column of a categorical context (a field, a query's category) to guard the attribute within;
+        a missing value is refused, or its row dropped, like a missing label.
 
     Raises
     ------
@@ -307,8 +319,20 @@ def load_labelled_sample(
     spec = AttributeSpec(
         names=tuple(names), continuous=tuple(continuous), joint=joint, merges=merges, incomplete=incomplete
     )
+    check_context_key(given, spec)
     with phase(f"reading {Path(path).name}"):
-        return _read_sample(Path(path), spec, task, embeddings_key, labels, drop_missing)
+        return _read_sample(Path(path), spec, task, embeddings_key, labels, drop_missing, given)
+
+
+def check_context_key(given: str | None, spec: AttributeSpec) -> None:
+    """Refuse a context column that is one of the attributes it would guard."""
+    if given is not None and given in spec.names:
+        raise DataError(f"the context {given!r} is an attribute of this fit; guard within another column")
+
+
+def label_keys(spec: AttributeSpec, task: str | None, given: str | None) -> list[str]:
+    """Every label column a fit reads, each once: the attributes, the task and the context."""
+    return list(dict.fromkeys([*spec.names, *(key for key in (task, given) if key is not None)]))
 
 
 @dataclass(frozen=True)
@@ -423,9 +447,10 @@ def _read_sample(
     embeddings_key: str,
     labels: str | Path | None,
     drop_missing: bool,
+    given: str | None,
 ) -> LabelledSample:
     _check_file(data_path)
-    keys = [*spec.names] if task is None else [*spec.names, task]
+    keys = label_keys(spec, task, given)
     files = {str(data_path): file_sha256(data_path)}
     suffix = data_path.suffix.lower()
     absent: dict[str, NDArray[np.bool_]] | None = None
@@ -445,7 +470,7 @@ def _read_sample(
         if labels_path.suffix.lower() == ".csv":
             columns = csv_columns(labels_path, keys)
         elif labels_path.suffix.lower() == ".npy":
-            if task is not None or len(spec.names) > 1:
+            if len(keys) > 1:
                 raise DataError(f"{labels_path} holds one label array; put several labels in a .csv to use them")
             columns = {spec.names[0]: np.asarray(_npy_array(labels_path))}
         else:
@@ -459,7 +484,7 @@ def _read_sample(
     found = {key: _labels(np.asarray(columns[key]), key=key, rows=rows, source=str(data_path)) for key in keys}
     if absent is None:
         absent = {key: missing_labels(values) for key, values in found.items()}
-    read = labels_of(spec, found, absent, task, source=str(label_source), drop=drop_missing)
+    read = labels_of(spec, found, absent, task, source=str(label_source), drop=drop_missing, given=given)
     return LabelledSample(
         embeddings=embeddings if read.kept is None else embeddings[read.kept],
         notes=read.notes,
@@ -469,17 +494,20 @@ def _read_sample(
         task_key=task,
         files=files,
         kept=read.kept,
+        context=read.context,
+        context_key=given,
     )
 
 
 @dataclass(frozen=True, eq=False)
 class ReadLabels:
-    """The labels of a sample as a fit uses them: the rows kept, the attribute (or table) and task of those rows."""
+    """The labels of a sample as a fit uses them: the rows kept, and their attribute (or table), task and context."""
 
     kept: NDArray[np.bool_] | None
     attribute: NDArray[Any]
     task: NDArray[Any] | None
     notes: tuple[str, ...]
+    context: NDArray[Any] | None = None
 
 
 def labels_of(
@@ -490,17 +518,20 @@ def labels_of(
     *,
     source: str,
     drop: bool,
+    given: str | None = None,
 ) -> ReadLabels:
     """Refuse or drop the rows whose labels are missing, merge classes, and build the attribute (or its table).
 
-    ``found`` holds every label column read (attributes and task) and ``absent``
-    the masks of their missing labels, over every row of the files.
+    ``found`` holds every label column read (attributes, task and context) and ``absent``
+    the masks of their missing labels, over every row of the files.  A missing context value is refused or
+    dropped as a missing label is.
     """
     checked = [("attribute", name, absent[name]) for name in spec.names]
     if spec.incomplete:
         # A row may lack some attributes; one that lacks every one carries nothing to guard.
         checked = [("attribute", f"every attribute ({spec.key})", np.logical_and.reduce([m for _, _, m in checked]))]
     checked += [] if task is None else [("task", task, absent[task])]
+    checked += [] if given is None else [("context", given, absent[given])]
     kept = rows_to_keep(checked, source=source, drop=drop)
     if kept is not None:
         found = {key: values[kept] for key, values in found.items()}
@@ -511,4 +542,5 @@ def labels_of(
         attribute=spec.table(found, source=source, missing=absent if spec.incomplete else None),
         task=None if task is None else found[task],
         notes=tuple(notes),
+        context=None if given is None else found[given],
     )

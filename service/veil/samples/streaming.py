@@ -30,10 +30,12 @@ from veil.samples.sources import (
     PARQUET_SUFFIXES,
     AttributeSpec,
     ReadLabels,
+    check_context_key,
     check_embeddings,
     csv_columns,
     file_sha256,
     fingerprint_of,
+    label_keys,
     labels_of,
     parse_merge,
 )
@@ -63,6 +65,8 @@ class StreamedSample:
     notes: tuple[str, ...] = ()
     #: The dtype of the attribute table (None: one label column).
     attribute_dtype: np.dtype[Any] | None = None
+    #: The context column the attribute is guarded within (None: the population only).
+    context_key: str | None = None
 
     @property
     def labelled_rows(self) -> int:
@@ -142,7 +146,7 @@ def _label_columns(labels: Path, keys: list[str], rows: int) -> dict[str, NDArra
         columns = csv_columns(labels, keys)
     elif labels.suffix.lower() == ".npy":
         if len(keys) > 1:
-            raise DataError(f"{labels} holds one label array; put attribute and task in a .csv to use both")
+            raise DataError(f"{labels} holds one label array; put attribute, task and context in a .csv to use them")
         columns = {keys[0]: _memmap_labels(labels)}
     else:
         raise DataError(f"labels must be a .npy or .csv file, not {labels.name}")
@@ -162,30 +166,36 @@ class NpyPartition:
     start: int
     attribute: NDArray[Any]
     task: NDArray[Any] | None
-    #: Labels prepared whole (an attribute table): the rows kept; ``attribute`` and ``task`` hold only those.
+    #: Labels prepared whole (an attribute table): the rows kept; ``attribute``, ``task`` and ``context`` hold
+    #: only those.
     kept: NDArray[np.bool_] | None = None
+    context: NDArray[Any] | None = None
 
     def load(self) -> Chunk:
         block = check_embeddings(
             self.file.read(self.offset, self.rows), source=f"{self.file.path} rows {self.offset}.."
         )
         if self.kept is not None:
-            return _prepared_chunk(self.start, block, self.kept, self.attribute, self.task)
+            return _prepared_chunk(self.start, block, self.kept, (self.attribute, self.task, self.context))
         missing = missing_labels(self.attribute)
-        if self.task is not None:
-            missing |= missing_labels(self.task)
-        return Chunk.of_rows(self.start, block, self.attribute, self.task, missing)
+        for values in (self.task, self.context):
+            if values is not None:
+                missing |= missing_labels(values)
+        return Chunk.of_rows(self.start, block, self.attribute, self.task, missing, self.context)
 
     @property
     def stop(self) -> int:
         return self.start + self.rows
 
 
-def _prepared_chunk(
-    start: int, block: NDArray[np.floating], kept: NDArray[np.bool_], attribute: NDArray[Any], task: NDArray[Any] | None
-) -> Chunk:
+#: The kept rows' attribute (or table), task and context labels, prepared whole.
+PreparedLabels = tuple[NDArray[Any], NDArray[Any] | None, NDArray[Any] | None]
+
+
+def _prepared_chunk(start: int, block: NDArray[np.floating], kept: NDArray[np.bool_], labels: PreparedLabels) -> Chunk:
     index = np.arange(start, start + block.shape[0], dtype=np.int64)[kept]
-    return Chunk(index=index, embeddings=block[kept], attribute=attribute, task=task)
+    attribute, task, context = labels
+    return Chunk(index=index, embeddings=block[kept], attribute=attribute, task=task, context=context)
 
 
 class _Prepared:
@@ -197,10 +207,11 @@ class _Prepared:
         # Kept rows before each row of the files: where a range's rows start in the kept labels.
         self.before = np.concatenate([[0], np.cumsum(self.kept)])
 
-    def rows(self, start: int, stop: int) -> tuple[NDArray[np.bool_], NDArray[Any], NDArray[Any] | None]:
+    def rows(self, start: int, stop: int) -> tuple[NDArray[np.bool_], PreparedLabels]:
         first, last = int(self.before[start]), int(self.before[stop])
         task = None if self.read.task is None else self.read.task[first:last]
-        return self.kept[start:stop], self.read.attribute[first:last], task
+        context = None if self.read.context is None else self.read.context[first:last]
+        return self.kept[start:stop], (self.read.attribute[first:last], task, context)
 
 
 def _array_partitions(
@@ -209,6 +220,7 @@ def _array_partitions(
     attribute: str,
     task: str | None,
     prepared: _Prepared | None = None,
+    given: str | None = None,
 ) -> Any:
     def partitions(chunk_rows: int) -> list[NpyPartition]:
         found, start = [], 0
@@ -216,8 +228,8 @@ def _array_partitions(
             for offset in range(0, part.shape[0], chunk_rows):
                 rows = min(chunk_rows, part.shape[0] - offset)
                 if prepared is not None:
-                    kept, labels, tasks = prepared.rows(start, start + rows)
-                    found.append(NpyPartition(part, offset, rows, start, labels, tasks, kept))
+                    kept, (labels, tasks, context) = prepared.rows(start, start + rows)
+                    found.append(NpyPartition(part, offset, rows, start, labels, tasks, kept, context))
                 else:
                     found.append(
                         NpyPartition(
@@ -227,6 +239,7 @@ def _array_partitions(
                             start=start,
                             attribute=np.array(columns[attribute][start : start + rows]),
                             task=None if task is None else np.array(columns[task][start : start + rows]),
+                            context=None if given is None else np.array(columns[given][start : start + rows]),
                         )
                     )
                 start += rows
@@ -247,36 +260,51 @@ class ParquetPartition:
     attribute_key: str
     task_key: str | None
     dim: int
-    #: Labels prepared whole (an attribute table): the rows kept, and their attribute table and task labels.
-    prepared: tuple[NDArray[np.bool_], NDArray[Any], NDArray[Any] | None] | None = None
+    #: Labels prepared whole (an attribute table): the rows kept, and their attribute table, task and context.
+    prepared: tuple[NDArray[np.bool_], PreparedLabels] | None = None
+    context_key: str | None = None
 
     def load(self) -> Chunk:
         import pyarrow.parquet as pq
 
         keys = [self.embeddings_key]
         if self.prepared is None:
-            keys += [self.attribute_key] + ([] if self.task_key is None else [self.task_key])
+            extra = (key for key in (self.task_key, self.context_key) if key is not None)
+            keys += list(dict.fromkeys([self.attribute_key, *extra]))
         table = pq.ParquetFile(self.path).read_row_group(self.group, columns=keys)
         matrix = embedding_matrix(table.column(self.embeddings_key), name=self.embeddings_key, first_row=self.start)
         if matrix.shape[1] != self.dim:
             raise DataError(f"{self.path}: column {self.embeddings_key!r} mixes dimensions from row {self.start}")
         if self.prepared is not None:
-            kept, labels, tasks = self.prepared
+            kept, labels = self.prepared
             block = check_embeddings(matrix, source=f"{self.path} rows {self.start}..")
-            return _prepared_chunk(self.start, block, kept, labels, tasks)
+            return _prepared_chunk(self.start, block, kept, labels)
         source = str(self.path)
         attribute, missing = arrow_labels(table.column(self.attribute_key), key=self.attribute_key, source=source)
-        task = None
+        task = context = None
         if self.task_key is not None:
             task, task_missing = arrow_labels(table.column(self.task_key), key=self.task_key, source=source)
             missing = missing | task_missing
+        if self.context_key is not None:
+            context, absent = arrow_labels(table.column(self.context_key), key=self.context_key, source=source)
+            missing = missing | absent
         return Chunk.of_rows(
-            self.start, check_embeddings(matrix, source=f"{self.path} rows {self.start}.."), attribute, task, missing
+            self.start,
+            check_embeddings(matrix, source=f"{self.path} rows {self.start}.."),
+            attribute,
+            task,
+            missing,
+            context,
         )
 
 
 def _parquet_partitions(
-    path: Path, embeddings_key: str, attribute: str, task: str | None, prepared: _Prepared | None = None
+    path: Path,
+    embeddings_key: str,
+    attribute: str,
+    task: str | None,
+    prepared: _Prepared | None = None,
+    given: str | None = None,
 ) -> tuple[Any, int, int, Any]:
     import pyarrow as pa
     import pyarrow.parquet as pq
@@ -285,7 +313,7 @@ def _parquet_partitions(
         parquet = pq.ParquetFile(path)
     except (pa.ArrowInvalid, OSError) as error:
         raise DataError(f"{path} is not a readable Parquet file ({error})") from None
-    keys = [embeddings_key, attribute] + ([] if task is None else [task])
+    keys = [embeddings_key, attribute] + [key for key in (task, given) if key is not None]
     for key in keys:
         if key not in parquet.schema_arrow.names:
             raise DataError(f"{path} has no column {key!r}; its columns are {', '.join(parquet.schema_arrow.names)}")
@@ -303,6 +331,7 @@ def _parquet_partitions(
             ParquetPartition(
                 path, group, int(starts[group]), int(starts[group + 1]), embeddings_key, attribute, task,
                 first.shape[1], None if prepared is None else prepared.rows(int(starts[group]), int(starts[group + 1])),
+                context_key=given,
             )
             for group in range(parquet.num_row_groups)
         ]  # fmt: skip
@@ -318,9 +347,10 @@ def _prepare(
     source: str | Path,
     rows: int,
     drop: bool,
+    given: str | None,
 ) -> _Prepared:
     """The labels of every row, refused or dropped where missing, merged and tabled (see ``labels_of``)."""
-    return _Prepared(labels_of(spec, found, absent, task, source=str(source), drop=drop), rows)
+    return _Prepared(labels_of(spec, found, absent, task, source=str(source), drop=drop, given=given), rows)
 
 
 def _dropped(kept: NDArray[np.bool_] | None) -> int:
@@ -339,11 +369,14 @@ def open_stream(
     joint: bool = False,
     merge_classes: Sequence[str] = (),
     incomplete: bool = False,
+    given: str | None = None,
 ) -> StreamedSample:
     """Describe a large labelled sample without reading its embeddings (every file is hashed, in one pass each).
 
     The labels are read whole here (a few bytes a row), so that missing ones
-    are refused, or counted for dropping, before the long pass starts.
+    are refused, or counted for dropping, before the long pass starts.  The
+    options are :func:`veil.samples.sources.load_labelled_sample`'s; a context
+    column (``given``) travels with each partition like the task labels.
 
     Raises
     ------
@@ -356,14 +389,15 @@ def open_stream(
     spec = AttributeSpec(
         names=tuple(names), continuous=tuple(continuous), joint=joint, merges=merges, incomplete=incomplete
     )
+    check_context_key(given, spec)
     # Several attributes (or merged classes): the labels are read, checked and tabled once, before the pass.
     whole = spec.is_table or bool(merges)
     attribute = names[0]
     source = Path(path)
     if not source.exists():
         raise DataError(f"{source} does not exist")
-    keys = [*names] if task is None else [*names, task]
-    roles = [("attribute", attribute)] + ([] if task is None else [("task", task)])
+    keys = label_keys(spec, task, given)
+    roles = [("attribute", attribute)] + [(role, key) for role, key in (("task", task), ("context", given)) if key]
     if source.is_dir() or source.suffix.lower() == ".npy":
         shards = sorted(source.glob("*.npy")) if source.is_dir() else [source]
         if not shards:
@@ -383,12 +417,12 @@ def open_stream(
         if whole:
             found = {key: np.asarray(values) for key, values in columns.items()}
             absent = {key: missing_labels(values) for key, values in found.items()}
-            tabled = _prepare(spec, found, absent, task, labels, rows, drop_missing)
+            tabled = _prepare(spec, found, absent, task, labels, rows, drop_missing, given)
             return StreamedSample(
                 rows=rows, dim=dims.pop(), dtype=dtype, attribute_key=spec.key, task_key=task, files=files,
                 _partitions=_array_partitions(parts, columns, attribute, task, tabled),
                 dropped_rows=_dropped(tabled.read.kept), attribute_table=spec.is_table, notes=tabled.read.notes,
-                attribute_dtype=tabled.read.attribute.dtype,
+                attribute_dtype=tabled.read.attribute.dtype, context_key=given,
             )  # fmt: skip
         kept = rows_to_keep(
             [(role, key, missing_labels(np.asarray(columns[key]))) for role, key in roles],
@@ -397,7 +431,8 @@ def open_stream(
         )
         return StreamedSample(
             rows=rows, dim=dims.pop(), dtype=dtype, attribute_key=attribute, task_key=task, files=files,
-            _partitions=_array_partitions(parts, columns, attribute, task), dropped_rows=_dropped(kept),
+            _partitions=_array_partitions(parts, columns, attribute, task, given=given), dropped_rows=_dropped(kept),
+            context_key=given,
         )  # fmt: skip
     if source.suffix.lower() in PARQUET_SUFFIXES:
         if labels is not None:
@@ -421,14 +456,14 @@ def open_stream(
             read = {key: arrow_labels(table.column(key), key=key, source=str(source)) for key in keys}
             found = {key: values for key, (values, _) in read.items()}
             absent = {key: mask for key, (_, mask) in read.items()}
-            prepared = _prepare(spec, found, absent, task, source, table.num_rows, drop_missing)
-        partitions, rows, dim, dtype = _parquet_partitions(source, embeddings_key, attribute, task, prepared)
+            prepared = _prepare(spec, found, absent, task, source, table.num_rows, drop_missing, given)
+        partitions, rows, dim, dtype = _parquet_partitions(source, embeddings_key, attribute, task, prepared, given)
         if prepared is not None:
             return StreamedSample(
                 rows=rows, dim=dim, dtype=np.dtype(dtype), attribute_key=spec.key, task_key=task,
                 files={str(source): file_sha256(source)}, _partitions=partitions,
                 dropped_rows=_dropped(prepared.read.kept), attribute_table=spec.is_table, notes=prepared.read.notes,
-                attribute_dtype=prepared.read.attribute.dtype,
+                attribute_dtype=prepared.read.attribute.dtype, context_key=given,
             )  # fmt: skip
         table = pq.read_table(source, columns=list(dict.fromkeys(keys)))
         kept = rows_to_keep(
@@ -439,5 +474,6 @@ def open_stream(
         return StreamedSample(
             rows=rows, dim=dim, dtype=np.dtype(dtype), attribute_key=attribute, task_key=task,
             files={str(source): file_sha256(source)}, _partitions=partitions, dropped_rows=_dropped(kept),
+            context_key=given,
         )  # fmt: skip
     raise DataError(f"{source}: streaming reads a .npy file, a folder of .npy shards or Parquet, not {source.suffix}")
