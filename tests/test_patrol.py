@@ -190,6 +190,16 @@ def test_a_real_service_whose_traffic_drifts_halfway(service_registry: ServiceRe
     assert future.out.startswith(f"no recorded checks of {PROFILES} since 2099-01-01")
 
 
+def _check_files(registry: Path) -> list[str]:
+    """The complete check records of every version (a writer's temporary files start with a dot)."""
+    folders = [
+        registry / PROFILES / "records" / summary.id / CHECKS for summary in Registry(registry).versions(PROFILES)
+    ]
+    return [
+        path.name for folder in folders if folder.is_dir() for path in folder.glob("*") if not path.name.startswith(".")
+    ]
+
+
 def test_killed_patrols_leave_no_partial_record_and_the_next_run_completes_the_slot(
     service_registry: ServiceRegistry, tmp_path: Path
 ) -> None:
@@ -204,23 +214,22 @@ def test_killed_patrols_leave_no_partial_record_and_the_next_run_completes_the_s
         ]  # fmt: skip
         rng = random.Random(0)
         for _ in range(6):
+            before = len(_check_files(registry))
             process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-            time.sleep(rng.uniform(1.5, 3.0))
+            # Killed at a random moment once it has recorded a round, not after a fixed delay: on a loaded
+            # machine the interpreter's start-up alone can outlast any fixed delay, and the kill would prove nothing.
+            deadline = time.monotonic() + 120
+            while len(_check_files(registry)) == before and time.monotonic() < deadline:
+                time.sleep(0.05)
+            time.sleep(rng.uniform(0.0, 0.6))
             os.kill(process.pid, signal.SIGKILL)
             process.wait()
         final = run("patrol", PROFILES, "--service", live.base_url, "--registry", registry, "--sample", sample,
                     "--once", "--every", "0.2")  # fmt: skip
         assert final.code == 0, final.err
-    versions = Registry(registry).versions(PROFILES)
-    files = [
-        path.name
-        for summary in versions
-        for path in (registry / PROFILES / "records" / summary.id / CHECKS).glob("*")
-        if (registry / PROFILES / "records" / summary.id / CHECKS).is_dir()
-    ]
-    complete = [name for name in files if not name.startswith(".")]
+    complete = _check_files(registry)
     history = check_history(Registry(registry), PROFILES)  # every record reads and matches its sha256
-    assert len(history) == len(complete) >= 2
+    assert len(history) == len(complete) >= 6
     assert len({record.key for record in history}) == len(history)  # one record per slot
     assert run("verify", "--registry", registry).code == 0
 
