@@ -104,9 +104,14 @@ def timed(command: list[str]) -> float:
 
 
 def _not_live(registry: Registry) -> list[str]:
-    """The versions a promote of ``live`` can move to: every one but where it points (a no-op move is refused)."""
+    """The versions a promote of ``live`` can move to: every one but where it points (a no-op move is refused).
+
+    Where it points once a move a kill interrupted is finished, as the next writer finishes it first.
+    """
+    unfinished = [event for event in registry.history(NAME) if event.alias == "live" and not event.applied]
     live = registry.alias(NAME, "live")
-    return [v.id for v in registry.versions(NAME) if live is None or v.id != live.version]
+    target = unfinished[-1].to_version if unfinished else None if live is None else live.version
+    return [v.id for v in registry.versions(NAME) if v.id != target]
 
 
 def crash_loop(workdir: Path, *, trials: int, seed: int = 20261202) -> Outcome:
