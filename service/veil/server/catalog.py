@@ -167,12 +167,20 @@ class Catalog:
         return self._served
 
     def wanted_names(self) -> list[str]:
+        """The erasers this replica serves: those it is configured with, else every one with the served alias.
+
+        An eraser fitted but never pointed at by the alias is not served, and keeps no replica from being ready;
+        one whose alias file is damaged is wanted (and its failure reported).
+        """
         if self._configured:
             return list(self._configured)
         try:
-            return self.registry.names()
+            return [name for name in self.registry.names() if self._has_alias(name)]
         except (RegistryError, OSError):
             return sorted(self._served)
+
+    def _has_alias(self, name: str) -> bool:
+        return self.alias in self.registry.aliases(name) or self.alias in self.registry.damaged_aliases(name)
 
     def ready(self) -> tuple[bool, list[str]]:
         """True if every wanted eraser is loaded; otherwise the missing names."""
@@ -182,6 +190,10 @@ class Catalog:
 
     def current(self, name: str) -> ServedVersion:
         served = self._served.get(name)
+        if served is None and name in self.failures:
+            # Wanted, but its version could not be loaded (damaged, unreadable): a condition that a repair or a
+            # rollback ends, so the answer is one a client retries, not "no such eraser".
+            raise ServiceError("version_unavailable", f"{name}: {self.failures[name]}")
         if served is None:
             raise ServiceError("unknown_eraser", f"no eraser {name!r} is served here; served: {sorted(self._served)}")
         return served
@@ -266,7 +278,9 @@ class Catalog:
                 except (RegistryError, OSError, ValueError, KeyError) as error:
                     failed[name] = str(error)
                     self.metrics.reload_failures.labels(name).inc()
-                    logger.warning("reload refused", extra={"fields": {"eraser": name, "problem": str(error)}})
+                    # A lasting condition is logged when it appears or changes, not at every poll.
+                    if self.failures.get(name) != failed[name]:
+                        logger.warning("reload refused", extra={"fields": {"eraser": name, "problem": str(error)}})
                     continue
                 updated[name] = candidate
                 loaded.append(f"{name} {candidate.version_id}")
@@ -284,7 +298,8 @@ class Catalog:
         """Keep the registry's problem for ``/readyz``; log it once when it appears or changes, not every poll."""
         problem = self.registry.problem()
         if problem is None and not wanted:
-            problem = f"the registry {self.registry.url} holds no eraser"
+            aliased = f" with the alias {self.alias!r}" if self.registry.names() else ""
+            problem = f"the registry {self.registry.url} holds no eraser{aliased}"
         if problem == self.registry_problem:
             return
         fields = {"registry": self.registry.url, "problem": problem}

@@ -102,7 +102,7 @@ async def list_erasers(catalog: Annotated[Catalog, Depends(get_catalog)]) -> dic
     "/{name}",
     summary="One served eraser, with its version's card",
     dependencies=[Depends(require_data_token)],
-    responses=error_responses(*DATA_TOKEN_ERRORS, "unknown_eraser", "invalid_request"),
+    responses=error_responses(*DATA_TOKEN_ERRORS, "unknown_eraser", "version_unavailable", "invalid_request"),
 )
 async def show_eraser(name: EraserName, catalog: Annotated[Catalog, Depends(get_catalog)]) -> dict[str, Any]:
     served = catalog.current(name)
