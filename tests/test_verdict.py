@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import dataclasses
+
 import pytest
 
 from veil.audit.report import AuditReport, Leakage, ProbeScore, Retrieval, Utility
 from veil.checks.thresholds import AuditThresholds, Band
-from veil.checks.verdict import judge_audit
+from veil.checks.verdict import UNREADABLE, judge_audit
 from veil.reporting.html import latest_live_verdict
 
 
@@ -108,3 +110,17 @@ def test_the_latest_live_checks_headline_counts_the_figures_it_was_judged_on() -
     (paragraph,) = latest_live_verdict([quiet])
     # Four figures had values to judge; the prior shift had none (no labels): it is not counted.
     assert "All 4 judged figures are below their warn levels." in paragraph
+
+
+def test_an_audit_whose_raw_rows_show_no_attribute_is_not_a_pass() -> None:
+    # Labels that carry nothing (permuted, or a sample too small): the probes read nothing before erasure either.
+    blind = _score(0.49, 0.46, 0.52)
+    report = _report(_score(0.5, 0.47, 0.53), _score(0.5, 0.47, 0.53), 0.5, 0.95)
+    nothing = dataclasses.replace(
+        report, leakage=dataclasses.replace(report.leakage, linear_before=blind, trees_before=blind)
+    )
+    verdict = judge_audit(nothing, AuditThresholds())
+    assert verdict.status == "warn"
+    assert verdict.reasons == [UNREADABLE]
+    # The same figures after erasure, with an attribute the raw rows show plainly: a pass.
+    assert judge_audit(report, AuditThresholds()).status == "ok"

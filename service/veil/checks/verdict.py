@@ -21,7 +21,8 @@ LEVELS = ("ok", "warn", "alert")
 RULE = (
     "The rule: each figure is compared with the warn and alert levels the version's card records; the status is "
     "ok when every figure judged is below its warn level, warn when any reaches its warn level, and alert when any "
-    "reaches its alert level."
+    "reaches its alert level. An audit whose raw rows show no attribute to any probe is at least warn: it proves "
+    "nothing."
 )
 
 # What each figure says, for the verdict's reasons and the report's explanations.
@@ -127,4 +128,21 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds) -> Verdict:
             reasons.append(f"{labels[name]} {what[name].format(value=value)} ({level} at {getattr(band, level):g})")
         if LEVELS.index(level) > LEVELS.index(status):
             status = level
+    if _unreadable_before(report):
+        # Nothing to erase was seen, so nothing was shown erased: wrong labels or too small a sample look like this.
+        reasons.append(UNREADABLE)
+        status = max(status, "warn", key=LEVELS.index)
     return Verdict(status=status, figures=figures, reasons=reasons)
+
+
+#: The reason a verdict gives when no probe read the attribute before erasure either.
+UNREADABLE = (
+    "no probe reads the attribute before erasure either, so this audit cannot show that erasure works (check "
+    "the labels and the sample's size; this is not a pass)"
+)
+
+
+def _unreadable_before(report: AuditReport) -> bool:
+    """Whether every probe that ran read nothing beyond chance before erasure (the raw rows)."""
+    before = [_edge_gap(raw) for _, raw, _ in report.leakage.probes()]
+    return bool(before) and max(before) == 0.0
