@@ -12,6 +12,7 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 from veil import INLP, LEACE, MeanProjection
+from veil.registry.artifact_files import encode_artifact
 from veil.samples.harbourline import load_harbourline_profiles
 from veil.samples.splitting import holdout_mask
 
@@ -109,10 +110,15 @@ def test_chunks_and_merges_equal_the_fit_of_all_rows() -> None:
 
 def test_bad_contexts_are_refused_by_name() -> None:
     x, z, given = planted(n=200)
-    with pytest.raises(ValueError, match="one context value per row"):
+    with pytest.raises(ValueError, match="one value per row"):
         LEACE().fit(x, z, given=given[:-1])
-    with pytest.raises(ValueError, match="missing values"):
+    with pytest.raises(ValueError, match="context values contain NaN"):
         LEACE().fit(x, z, given=np.where(given == "nursing", np.nan, 1.0))
+    with pytest.raises(ValueError, match="context values must be all strings or all integers"):
+        LEACE().fit(x, z, given=np.array([*given[:-1].tolist(), None], dtype=object))
+    # A column of Python strings (as a data frame holds them) is taken, and the fitted eraser can be stored.
+    from_objects = LEACE().fit(x, z, given=given.astype(object))
+    assert encode_artifact(from_objects.export())
     with pytest.raises(TypeError, match="given"):  # INLP has no context to take
         INLP(classifier="moments").fit(x, z, given=given)  # type: ignore[call-arg]
     with pytest.raises(ValueError, match="needs a context"):

@@ -139,3 +139,20 @@ def test_promoting_the_version_an_alias_already_names_is_refused_and_records_not
     assert again.code == 2
     assert f"alias 'live' of {NAME} already points at {ids[1]}; nothing to promote" in again.err
     assert len(Registry(root).history(NAME)) == events
+
+
+def test_rewriting_a_damaged_alias_keeps_its_dimension_and_its_rollback(shared: tuple[Path, list[str]]) -> None:
+    root, ids = shared
+    registry = Registry(root)
+    wider = registry.add_version(NAME, version_files(3, d=8))
+    truncate(root / NAME / "aliases" / "live.json")
+    # The dimension the damaged file served is read from its last recorded move: a wider version is refused.
+    refused = run("promote", NAME, wider, "--alias", "live", "--registry", root)
+    assert refused.code == 2
+    assert "has dimension 8 but alias 'live' serves dimension 6" in refused.err
+    # Repaired onto the version it held: that move changes nothing, so one rollback still goes back a step.
+    assert run("promote", NAME, ids[1], "--alias", "live", "--registry", root).code == 0
+    assert run("rollback", NAME, "--alias", "live", "--registry", root).code == 0
+    state = Registry(root).alias(NAME, "live")
+    assert state is not None
+    assert state.version == ids[0]

@@ -81,3 +81,25 @@ async def test_a_damaged_live_version_answers_503_and_is_logged_once(
     assert other.status_code == 200  # the other eraser is served all the same
     refused = [record for record in server_log.records if record.getMessage() == "reload refused"]
     assert len(refused) == 1  # at start-up; three reloads found the same problem and said nothing
+
+
+async def test_an_eraser_whose_alias_is_removed_stops_being_served(copied: Path) -> None:
+    async with client_for(app_for(copied)) as client:
+        assert (await client.get(f"/v1/erasers/{PLANTED}")).status_code == 200
+        Registry(copied).remove_alias(PLANTED, "live", reason="retired")
+        await client.post("/v1/admin/reload", headers=AUTH)
+        gone = await client.get(f"/v1/erasers/{PLANTED}")
+        ready = await client.get("/readyz")
+    assert gone.status_code == 404
+    assert gone.json()["error"]["code"] == "unknown_eraser"
+    assert ready.status_code == 200
+    assert set(ready.json()["erasers"]) == {PROFILES}
+
+
+async def test_a_configured_name_the_registry_lacks_is_unknown_not_unavailable(copied: Path) -> None:
+    async with client_for(app_for(copied, names=[PROFILES, "no-such-eraser"])) as client:
+        answer = await client.get("/v1/erasers/no-such-eraser")
+        ready = await client.get("/readyz")
+    assert answer.status_code == 404  # not retried by the client: a typo in the settings does not heal itself
+    assert answer.json()["error"]["code"] == "unknown_eraser"
+    assert ready.status_code == 503

@@ -74,10 +74,11 @@ def as_matrix(vectors: ArrayLike) -> NDArray[np.floating]:
 def as_rows(vectors: ArrayLike) -> tuple[NDArray[np.floating], bool]:
     """The vectors as a matrix of rows, and whether one 1-D vector was given (its answer is then 1-D too)."""
     try:
-        single = np.ndim(vectors) == 1
+        array = np.asarray(vectors)
     except (ValueError, TypeError):
-        single = False  # ragged or not numbers: as_matrix says which
-    return as_matrix(np.asarray(vectors)[None, :] if single else vectors), single
+        return as_matrix(vectors), False  # ragged or not numbers: as_matrix says which
+    single = array.ndim == 1
+    return as_matrix(array[None, :] if single else array), single
 
 
 def one_vector(batch: CleanedBatch, single: bool) -> CleanedBatch:

@@ -14,6 +14,8 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
+import numpy as np
+
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.thresholds import AuditThresholds
 
@@ -145,4 +147,9 @@ UNREADABLE = (
 def _unreadable_before(report: AuditReport) -> bool:
     """Whether every probe that ran read nothing beyond chance before erasure (the raw rows)."""
     before = [_edge_gap(raw) for _, raw, _ in report.leakage.probes()]
-    return bool(before) and max(before) == 0.0
+    # The figures are shares and R² (at most 1): a few float64 ulps above 0 are round-off, not a reading.
+    return bool(before) and max(before) <= ROUND_OFF
+
+
+#: What a figure of at most 1 may carry of round-off: a few float64 epsilons.
+ROUND_OFF = 8 * float(np.finfo(np.float64).eps)

@@ -190,7 +190,7 @@ class MomentErasure(LinearErasure):
         """
         by_class = self.needs_class_moments
         array, attribute = self._validate_fit_input(X, z, reset=True)
-        context = self._validate_context(given, array.shape[0])
+        context = None if given is None else np.asarray(given)
         return self._fit_state(MomentState.from_batch(array, attribute, by_class=by_class, given=context))
 
     def partial_fit(self, X: ArrayLike, z: object, *, given: ArrayLike | None = None) -> MomentErasure:
@@ -206,7 +206,7 @@ class MomentErasure(LinearErasure):
         by_class = self.needs_class_moments
         first = not hasattr(self, "moments_")
         array, attribute = self._validate_fit_input(X, z, reset=first)
-        context = self._validate_context(given, array.shape[0])
+        context = None if given is None else np.asarray(given)
         chunk = MomentState.from_batch(array, attribute, by_class=by_class, given=context)
         merged = chunk if first else self.moments_.merge(chunk)
         self.moments_ = merged
@@ -219,14 +219,6 @@ class MomentErasure(LinearErasure):
             return self
         self._set_fitted(self._map_from_moments(merged), merged)
         return self
-
-    def _validate_context(self, given: ArrayLike | None, n_rows: int) -> NDArray[np.generic] | None:
-        if given is None:
-            return None
-        values = np.asarray(given)
-        if values.shape != (n_rows,):
-            raise ValueError(f"given needs one context value per row: got shape {values.shape} for {n_rows} rows")
-        return values
 
     def fit_moments(self, moments: MomentState) -> MomentErasure:
         """Fit from precomputed (for example merged) moments.

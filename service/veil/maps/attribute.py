@@ -92,18 +92,22 @@ class EncodedAttribute:
         return np.asarray(np.argmax(self.matrix, axis=1), dtype=np.intp)
 
 
-def _as_label_array(z: NDArray[np.generic]) -> NDArray[np.generic]:
+def as_label_array(z: NDArray[np.generic], *, what: str = "attribute labels") -> NDArray[np.generic]:
+    """Labels as strings or numbers NumPy can sort and store (object arrays of str or int converted); refuses the rest.
+
+    ``what`` names the labels in the message (``"context values"``, say).
+    """
     if z.dtype == object:
         values = list(z)
         if all(isinstance(v, str) for v in values):
             return np.asarray(values, dtype=str)
         if all(isinstance(v, (int, np.integer, bool, np.bool_)) for v in values):
             return np.asarray(values, dtype=np.int64)
-        raise ValueError("attribute labels must be all strings or all integers; got a mix or missing values")
+        raise ValueError(f"{what} must be all strings or all integers; got a mix or missing values")
     if z.dtype.kind == "f" and not np.all(np.isfinite(z)):
-        raise ValueError("attribute labels contain NaN or infinity")
+        raise ValueError(f"{what} contain NaN or infinity")
     if z.dtype.kind not in "biufUS":
-        raise ValueError(f"attribute labels must be integers or strings, not {z.dtype}")
+        raise ValueError(f"{what} must be integers or strings, not {z.dtype}")
     return z
 
 
@@ -143,7 +147,7 @@ def encode_attribute(z: object, n_rows: int, *, require_categorical: bool = Fals
     if array.ndim == 2 and array.shape[1] == 1 and require_categorical:
         array = array[:, 0]
     if array.ndim == 1:
-        labels, inverse = np.unique(_as_label_array(array), return_inverse=True)
+        labels, inverse = np.unique(as_label_array(array), return_inverse=True)
         matrix = np.zeros((n_rows, labels.size))
         matrix[np.arange(n_rows), inverse] = 1.0
         return EncodedAttribute(labels=labels, matrix=matrix)

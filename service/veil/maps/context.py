@@ -21,24 +21,23 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.maps.attribute import EncodedAttribute
+from veil.maps.attribute import EncodedAttribute, as_label_array
 from veil.maps.linalg import whitening_factors
 
 Float64Array = NDArray[np.float64]
 
 
-def check_context(given: NDArray[np.generic], attribute: EncodedAttribute) -> None:
-    """Refuse a context column that cannot go with these rows and this attribute (``ValueError`` naming why)."""
+def checked_context(given: NDArray[np.generic], attribute: EncodedAttribute) -> NDArray[np.generic]:
+    """The context values as labels NumPy can sort and store; ``ValueError`` naming why they cannot be used."""
     if not attribute.is_categorical:
         raise ValueError("guarding within a context needs one categorical attribute (1-D class labels z)")
     if given.ndim != 1 or given.shape[0] != attribute.matrix.shape[0]:
         raise ValueError(
             f"the context needs one value per row: got shape {given.shape} for {attribute.matrix.shape[0]} rows"
         )
-    if given.dtype.kind == "f" and bool(np.isnan(given).any()):
-        raise ValueError("the context has missing values (NaN); every row needs its context value")
-    if given.dtype == object and any(value is None for value in given):
-        raise ValueError("the context has missing values (None); every row needs its context value")
+    # Missing values (None, NaN) and mixed types are refused there; object arrays of text become text arrays,
+    # which the artifact stores without pickle.
+    return as_label_array(given, what="context values")
 
 
 @dataclass(frozen=True, eq=False)

@@ -22,7 +22,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.maps.attribute import AttributeBlock, EncodedAttribute, check_blocks, check_enough_rows
-from veil.maps.context import ContextMoments, check_context
+from veil.maps.context import ContextMoments, checked_context
 from veil.maps.linalg import whitening_factors
 from veil.samples.attributes import JOINT_LABEL_SEPARATOR
 
@@ -116,7 +116,7 @@ class MomentState:
         if by_class and not attribute.is_categorical:
             raise ValueError("per-class moments need 1-D class labels z, not a 2-D attribute matrix")
         if given is not None:
-            check_context(given, attribute)
+            given = checked_context(given, attribute)
         state = cls._from_block(x[:BLOCK_ROWS], _rows_of(attribute, 0, BLOCK_ROWS), by_class, _slice(given, 0))
         for start in range(BLOCK_ROWS, x.shape[0], BLOCK_ROWS):
             stop = min(start + BLOCK_ROWS, x.shape[0])
@@ -131,7 +131,7 @@ class MomentState:
         state = cls._pooled(x, attribute, by_class)
         if given is None:
             return state
-        assert attribute.labels is not None  # check_context refuses a context beside an attribute matrix
+        assert attribute.labels is not None  # checked_context refuses a context beside an attribute matrix
         return dataclasses.replace(state, given=ContextMoments.from_batch(x, attribute.labels[attribute.codes], given))
 
     @classmethod

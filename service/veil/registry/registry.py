@@ -504,11 +504,13 @@ class Registry:
             self._finish_interrupted_moves(name)
             self._require_name(name)
             # A damaged alias rolls back by its history all the same (the move rewrites its file, and says so).
-            if alias not in self.damaged_aliases(name) and self.alias(name, alias) is None:
+            current, problem = self._current(name, alias)
+            if current is None and problem is None:
                 raise PromotionError(f"{name} has no alias {alias!r} to roll back")
             undo_stack: list[str | None] = []
             for event in self.history(name):
-                if event.alias == alias and event.action == "promote":
+                # A promote that rewrote a damaged alias onto the version it held moved nothing: nothing to undo.
+                if event.alias == alias and event.action == "promote" and event.from_version != event.to_version:
                     undo_stack.append(event.from_version)
                 elif event.alias == alias and event.action == "rollback" and undo_stack:
                     undo_stack.pop()
@@ -528,20 +530,21 @@ class Registry:
         allow_dimension_change: bool,
     ) -> HistoryEvent:
         current, problem = self._current(name, alias)
-        dim = target.artifact.map.dim
-        if current is not None and current.dim != dim and not allow_dimension_change:
-            raise PromotionError(
-                f"{name} {target.id} has dimension {dim} but alias {alias!r} serves dimension {current.dim}; "
-                "pass the dimension-change flag if every caller is ready for it"
-            )
         from_version = None if current is None else current.version
+        served = None if current is None else current.dim
         if problem is not None:
             # What the damaged file last held is the target of the alias's latest event in the history.
             from_version = self._last_target(name, alias)
+            served = None if from_version is None else int(self._read_card(name, from_version).get("dim", 0))
             reason = f"{reason} (the alias's file was damaged and is rewritten: {problem})".lstrip()
-        number = 1 + max((int(e[:-5]) for e in self._event_files(name)), default=0)
+        dim = target.artifact.map.dim
+        if served is not None and served != dim and not allow_dimension_change:
+            raise PromotionError(
+                f"{name} {target.id} has dimension {dim} but alias {alias!r} serves dimension {served}; "
+                "pass the dimension-change flag if every caller is ready for it"
+            )
         event = HistoryEvent(
-            event=number,
+            event=self._next_event(name),
             time=_now(),
             user=user or current_user(),
             alias=alias,
@@ -551,7 +554,7 @@ class Registry:
             reason=reason,
         )
         self._record(name, event)
-        self._write_alias(name, AliasState(alias=alias, version=target.id, event=number, dim=dim))
+        self._write_alias(name, AliasState(alias=alias, version=target.id, event=event.event, dim=dim))
         return event
 
     def remove_alias(self, name: str, alias: str, *, reason: str = "", user: str | None = None) -> HistoryEvent:
@@ -569,11 +572,10 @@ class Registry:
             current, problem = self._current(name, alias)
             if current is None and problem is None:
                 raise PromotionError(f"{name} has no alias {alias!r} to remove")
-            number = 1 + max((int(e[:-5]) for e in self._event_files(name)), default=0)
             if problem is not None:
                 reason = f"{reason} (the alias's file was damaged: {problem})".lstrip()
             event = HistoryEvent(
-                event=number,
+                event=self._next_event(name),
                 time=_now(),
                 user=user or current_user(),
                 alias=alias,
@@ -583,7 +585,7 @@ class Registry:
                 reason=reason,
             )
             self._record(name, event)
-            self._write_removal(name, alias, number)
+            self._write_removal(name, alias, event.event)
             return event
 
     def _current(self, name: str, alias: str) -> tuple[AliasState | None, str | None]:
@@ -605,6 +607,9 @@ class Registry:
     def _write_removal(self, name: str, alias: str, event: int) -> None:
         # A tombstone, written atomically like any alias: the storage backends replace files but delete none.
         self.storage.replace(f"{name}/aliases/{alias}.json", json.dumps({"removed": True, "event": event}).encode())
+
+    def _next_event(self, name: str) -> int:
+        return 1 + max((int(e[:-5]) for e in self._event_files(name)), default=0)
 
     def _event_files(self, name: str) -> Iterator[str]:
         return (e for e in self.storage.list(f"{name}/history") if e.endswith(".json") and e[:-5].isdigit())

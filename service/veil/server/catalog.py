@@ -157,6 +157,10 @@ class Catalog:
         self._pinned_lock = threading.Lock()
         self._reload_lock = threading.Lock()
         self.failures: dict[str, str] = {}
+        #: The failures of erasers that exist but could not be loaded (not a name the registry lacks): 503, not 404.
+        self._unloadable: frozenset[str] = frozenset()
+        #: What the last reload wanted served, read by ``ready()`` without touching the registry.
+        self._wanted: list[str] = list(names)
         #: Why the registry gives this process nothing to serve (missing, unreadable, empty), from the last reload.
         self.registry_problem: str | None = None
 
@@ -180,17 +184,20 @@ class Catalog:
             return sorted(self._served)
 
     def _has_alias(self, name: str) -> bool:
-        return self.alias in self.registry.aliases(name) or self.alias in self.registry.damaged_aliases(name)
+        try:
+            return self.registry.alias(name, self.alias) is not None
+        except IntegrityError:
+            return True  # damaged: wanted, so that its failure is reported
 
     def ready(self) -> tuple[bool, list[str]]:
-        """True if every wanted eraser is loaded; otherwise the missing names."""
+        """True if every eraser the last reload wanted is loaded; otherwise the missing names (no registry read)."""
         served = self._served
-        missing = [name for name in self.wanted_names() if name not in served]
+        missing = [name for name in self._wanted if name not in served]
         return (not missing and bool(served)), missing
 
     def current(self, name: str) -> ServedVersion:
         served = self._served.get(name)
-        if served is None and name in self.failures:
+        if served is None and name in self._unloadable:
             # Wanted, but its version could not be loaded (damaged, unreadable): a condition that a repair or a
             # rollback ends, so the answer is one a client retries, not "no such eraser".
             raise ServiceError("version_unavailable", f"{name}: {self.failures[name]}")
@@ -258,8 +265,10 @@ class Catalog:
         with self._reload_lock:
             loaded: list[str] = []
             failed: dict[str, str] = {}
-            updated = dict(self._served)
+            absent: set[str] = set()
             wanted = self.wanted_names()
+            # An eraser no longer wanted (its alias removed) stops being served.
+            updated = {name: served for name, served in self._served.items() if name in wanted}
             self._note_registry_problem(wanted)
             for name in wanted:
                 old = updated.get(name)
@@ -277,6 +286,8 @@ class Catalog:
                     candidate = ServedVersion.from_stored(stored, threshold_overrides=self._overrides)
                 except (RegistryError, OSError, ValueError, KeyError) as error:
                     failed[name] = str(error)
+                    if isinstance(error, NotFoundError):
+                        absent.add(name)  # a name the registry lacks (a typo in the settings, say): 404, not 503
                     self.metrics.reload_failures.labels(name).inc()
                     # A lasting condition is logged when it appears or changes, not at every poll.
                     if self.failures.get(name) != failed[name]:
@@ -290,6 +301,8 @@ class Catalog:
             # One assignment: requests see the old dict or the new one.
             self._served = updated
             self.failures = failed
+            self._unloadable = frozenset(name for name in failed if name not in absent)
+            self._wanted = wanted
             for name in wanted:
                 self.metrics.reload_failing.labels(name).set(1 if name in failed else 0)
             return ReloadOutcome(loaded=loaded, failed=failed)
