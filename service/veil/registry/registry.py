@@ -501,12 +501,8 @@ class Registry:
         """Move ``alias`` back to the target it had before its latest promote that is not yet rolled back."""
         check_name(alias, what="alias")
         with self._locked(name):
-            self._finish_interrupted_moves(name)
-            self._require_name(name)
             # A damaged alias rolls back by its history all the same (the move rewrites its file, and says so).
-            current, problem = self._current(name, alias)
-            if current is None and problem is None:
-                raise PromotionError(f"{name} has no alias {alias!r} to roll back")
+            self._existing(name, alias, "roll back")
             undo_stack: list[str | None] = []
             for event in self.history(name):
                 # A promote that rewrote a damaged alias onto the version it held moved nothing: nothing to undo.
@@ -567,11 +563,7 @@ class Registry:
         """
         check_name(alias, what="alias")
         with self._locked(name):
-            self._finish_interrupted_moves(name)
-            self._require_name(name)
-            current, problem = self._current(name, alias)
-            if current is None and problem is None:
-                raise PromotionError(f"{name} has no alias {alias!r} to remove")
+            current, problem = self._existing(name, alias, "remove")
             if problem is not None:
                 reason = f"{reason} (the alias's file was damaged: {problem})".lstrip()
             event = HistoryEvent(
@@ -587,6 +579,15 @@ class Registry:
             self._record(name, event)
             self._write_removal(name, alias, event.event)
             return event
+
+    def _existing(self, name: str, alias: str, action: str) -> tuple[AliasState | None, str | None]:
+        """:meth:`_current` of an alias a rollback or removal needs (a damaged one too), after finishing moves."""
+        self._finish_interrupted_moves(name)
+        self._require_name(name)
+        current, problem = self._current(name, alias)
+        if current is None and problem is None:
+            raise PromotionError(f"{name} has no alias {alias!r} to {action}")
+        return current, problem
 
     def _current(self, name: str, alias: str) -> tuple[AliasState | None, str | None]:
         """Where ``alias`` points, or why its file cannot be read."""
