@@ -148,14 +148,18 @@ def test_rlace_of_rank_one_on_real_embeddings_leaves_what_mean_projection_leaves
 
 
 @pytest.mark.parametrize("eraser_name", ["leace", "meanproj", "inlp-moments", "rlace"])
-def test_dead_coordinates_of_real_embeddings_pass_through_untouched(eraser_name: str, profiles: Split) -> None:
+def test_dead_coordinates_of_real_embeddings_hold_the_fitting_mean(eraser_name: str, profiles: Split) -> None:
     make = {**ERASERS, "rlace": lambda: RLACE(random_state=0)}[eraser_name]
     # all-MiniLM-L6-v2 leaves three coordinates with values near 1e-33 and 1e-8 (numpy's variance: at most
-    # 1e-10 of the largest).  An eraser that wrote even rounding into them would leave a copy of the attribute
-    # that scikit-learn's boosted trees read, since a split threshold does not care about scale.
+    # 1e-10 of the largest).  Passed through, their rounding-level values carry the attribute, which a model that
+    # standardises its features reads back; every map writes the fitting mean there instead.
     eraser = make().fit(profiles.x_fit, profiles.z_fit)
-    variances = profiles.x_fit.astype(np.float64).var(axis=0)
+    x_fit = profiles.x_fit.astype(np.float64)
+    variances = x_fit.var(axis=0)
     dead = np.flatnonzero(variances <= 1e-10 * variances.max())
     assert dead.size == 3
+    np.testing.assert_array_equal(eraser.pins_.coordinates, dead)
     erased = eraser.transform(profiles.x_held)
-    np.testing.assert_array_equal(erased[:, dead], profiles.x_held[:, dead])
+    assert np.ptp(erased[:, dead], axis=0).max() == 0
+    # The fitting mean (numpy's mean as reference), rounded once to the rows' dtype.
+    np.testing.assert_allclose(erased[0, dead], x_fit[:, dead].mean(axis=0), rtol=np.finfo(erased.dtype).eps, atol=0)

@@ -7,8 +7,11 @@ import pytest
 from numpy.typing import NDArray
 from sklearn.datasets import load_wine
 from sklearn.ensemble import HistGradientBoostingClassifier
+from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import balanced_accuracy_score, recall_score
 from sklearn.model_selection import StratifiedKFold, train_test_split
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import StandardScaler
 
 from veil import LEACE
 from veil.audit import ProbeScore, audit, probes, readers
@@ -129,25 +132,31 @@ def test_the_strongest_probe_has_the_most_rows_right_after_erasure_and_ties_go_t
     assert leakage(quadratic=_score(700), trees=ProbeScore(7 * 0.1, 0.5, 0.5, 0, 1, 1000)).strongest == "quadratic"
 
 
-def test_the_trees_probe_does_not_read_rounding_level_copies_in_dead_coordinates() -> None:
+def test_the_probes_read_rounding_level_copies_in_dead_coordinates_as_a_standardising_model_does() -> None:
     # The committed sample (all-MiniLM-L6-v2) has coordinates with almost no spread.  A copy of the attribute
-    # written into them at 1e-18 (what an eraser leaves that writes rounding there; veil's erasers pass them
-    # through, see test_guardedness) is something a tree can split on although no dot product sees it.
+    # written into them at 1e-12 of the typical spread is something a tree splits on and a model that standardises
+    # its features reads, although no dot product sees it: the audit's probes must see it too (veil's maps pin
+    # those coordinates instead, see test_pins).
     sample = load_harbourline_profiles()
     held = train_test_split(np.arange(sample.pronoun.size), test_size=0.5, random_state=0, stratify=sample.pronoun)[1]
     raw = sample.embedding[held].astype(np.float64)
     codes = np.unique(sample.pronoun[held], return_inverse=True)[1].astype(np.intp)
-    dead = raw.std(axis=0) < probes.DEAD_SPREAD * np.sqrt(np.mean(raw.std(axis=0) ** 2))
+    dead = np.isin(np.arange(raw.shape[1]), probes.dead_features(raw))
     assert 1 <= dead.sum() <= 5
-    # Every live coordinate replaced by noise, and the copy added to the dead ones: whatever a probe reads now,
-    # it reads from the dead coordinates.
+    # Every live coordinate replaced by noise, and the copy written into the dead ones: whatever a probe reads
+    # now, it reads from the dead coordinates.
     noise = np.random.default_rng(0).normal(scale=0.05, size=raw.shape)
-    x = np.where(dead, raw + 1e-18 * codes[:, None], noise)
+    x = np.where(dead, 1e-14 * codes[:, None], noise)
     folds = StratifiedKFold(5, shuffle=True, random_state=0)
-    # Reference: scikit-learn's boosted trees on the same columns read the copy.
-    bare = probes.held_out_predictions(HistGradientBoostingClassifier(random_state=0), x, codes, folds)
-    assert np.mean(bare == codes) > 0.9
-    assert _misses(_scores(x, codes, ("trees",))["trees"])
+    # Reference: scikit-learn's boosted trees, and its standard scaler with logistic regression, read the copy.
+    for reference in (
+        HistGradientBoostingClassifier(random_state=0),
+        make_pipeline(StandardScaler(), LogisticRegression()),
+    ):
+        assert np.mean(probes.held_out_predictions(reference, x, codes, folds) == codes) > 0.9
+    scores = _scores(x, codes, ("linear", "trees"))
+    assert _reads(scores["linear"])
+    assert _reads(scores["trees"])
 
 
 def test_a_dozen_held_out_rows_are_enough_for_every_probe() -> None:

@@ -96,7 +96,8 @@ def test_missing_and_garbled_files_are_refused(encoded: dict[str, bytes]) -> Non
 def test_the_artifact_names_the_kind_of_map_it_holds(encoded: dict[str, bytes]) -> None:
     description = json.loads(encoded[DESCRIPTION_FILE])
     assert description["map_kind"] == "affine-lowrank"
-    assert description["format_version"] == 2
+    assert description["format_version"] == 3
+    assert description["pinned_coordinates"] == decode_artifact(encoded).pins.coordinates.tolist()
     assert decode_artifact(encoded).kind == "affine-lowrank"
 
 

@@ -41,6 +41,7 @@ from numpy.typing import DTypeLike, NDArray
 
 from veil.maps.artifact import MapArtifact
 from veil.maps.lowrank import AffineLowRankMap
+from veil.maps.pins import CoordinatePins
 from veil.maps.transport import ClassTransportMap
 
 Float64Array = NDArray[np.float64]
@@ -168,6 +169,26 @@ def _transported(transport: ClassTransportMap, x: Bounded, dtype: DTypeLike) -> 
     return Bounded(value, error + gamma(transport.n_classes + 2, dtype) * terms)
 
 
+def _pinned(y: Bounded, pins: CoordinatePins | None, dtype: DTypeLike) -> Bounded:
+    """The pinned coordinates hold the pinned value, rounded once to ``dtype``."""
+    if pins is None or not pins.coordinates.size:
+        return y
+    value, error = y.value.copy(), y.error.copy()
+    value[:, pins.coordinates] = pins.values
+    error[:, pins.coordinates] = np.abs(pins.values - pins.values.astype(dtype).astype(np.float64))
+    return Bounded(value, error)
+
+
+def _cleared(y: Bounded, pins: CoordinatePins | None) -> Bounded:
+    """``P y``: the pinned coordinates set to zero, exactly."""
+    if pins is None:
+        return y
+    value, error = y.value.copy(), y.error.copy()
+    value[:, pins.coordinates] = 0.0
+    error[:, pins.coordinates] = 0.0
+    return Bounded(value, error)
+
+
 def _map_bound(mapping: object, x: Bounded, dtype: DTypeLike) -> Bounded:
     if isinstance(mapping, AffineLowRankMap):
         return _lowrank_step(x, mapping.mean, mapping.u, mapping.v, None, dtype)
@@ -176,19 +197,19 @@ def _map_bound(mapping: object, x: Bounded, dtype: DTypeLike) -> Bounded:
     return moved if mapping.after is None else _map_bound(mapping.after, moved, dtype)
 
 
-def _unpack(fitted: MapArtifact | AffineLowRankMap | ClassTransportMap) -> tuple[object, bool]:
+def _unpack(fitted: MapArtifact | AffineLowRankMap | ClassTransportMap) -> tuple[object, bool, CoordinatePins | None]:
     if isinstance(fitted, MapArtifact):
-        return fitted.map, fitted.normalize
-    return fitted, False
+        return fitted.map, fitted.normalize, fitted.pins
+    return fitted, False, None
 
 
 def apply_bound(
     fitted: MapArtifact | AffineLowRankMap | ClassTransportMap, x: NDArray[np.floating], dtype: DTypeLike = np.float32
 ) -> Bounded:
     """``fitted.apply(x)`` computed in float64 from ``x``, and the round-off bound of computing it in ``dtype``."""
-    mapping, normalize = _unpack(fitted)
+    mapping, normalize, pins = _unpack(fitted)
     y = _map_bound(mapping, _input(x, dtype), dtype)
-    return _normalised(y, dtype) if normalize else y
+    return _pinned(_normalised(y, dtype) if normalize else y, pins, dtype)
 
 
 def counterfactual_bound(
@@ -203,7 +224,7 @@ def counterfactual_bound(
     the inferred class's move, then class ``t``'s inverse move ``x + (x − μ) D_t (1/(1+G_t) − 1) D_tᵀ + μ_t − μ``
     (``target_mean`` must then be one of the map's class means).
     """
-    mapping, normalize = _unpack(fitted)
+    mapping, normalize, pins = _unpack(fitted)
     x_in, target = _input(x, dtype), np.asarray(target_mean, dtype=np.float64)
     if isinstance(mapping, AffineLowRankMap):
         y = _lowrank_step(x_in, mapping.mean, mapping.u, mapping.v, mapping.shift_towards(target), dtype)
@@ -215,7 +236,7 @@ def counterfactual_bound(
         moved = _transported(mapping, x_in, dtype)
         directions, inverse = mapping.directions[t], 1.0 / (1.0 + mapping.gains[t]) - 1.0
         y = _lowrank_step(moved, mapping.mean, -directions * inverse, directions, target - mapping.mean, dtype)
-    return _normalised(y, dtype) if normalize else y
+    return _pinned(_normalised(y, dtype) if normalize else y, pins, dtype)
 
 
 def search_vectors_bound(
@@ -224,14 +245,16 @@ def search_vectors_bound(
     """``Aᵀ r(q)`` and the offsets ``⟨r(q), b⟩`` of :func:`veil.search_vectors`, with their round-off bounds.
 
     ``Aᵀ r = r − (r U) Vᵀ`` is the low-rank step with the factors swapped and no centring; the offsets are a
-    float64 d-term dot product of the served ``r(q)`` with ``b = (μ V) Uᵀ`` (itself formed in float64).
+    float64 d-term dot product of the served ``r(q)`` with ``b = (μ V) Uᵀ`` (itself formed in float64).  With
+    pins, the vectors start from ``P r(q)`` and ``b`` holds the pinned values (``veil.maps.pins``).
     """
     mapping = artifact.map
     assert isinstance(mapping, AffineLowRankMap), "exact search vectors exist for an affine map only"
     cleaned = apply_bound(artifact, queries, dtype)
     zero = np.zeros(mapping.dim)
-    vectors = _lowrank_step(cleaned, zero, mapping.v, mapping.u, None, dtype)
+    vectors = _lowrank_step(_cleared(cleaned, artifact.pins), zero, mapping.v, mapping.u, None, dtype)
     constant = _lowrank_step(Bounded(zero[None, :], zero[None, :]), mapping.mean, mapping.u, mapping.v, None, "f8")
+    constant = _pinned(constant, artifact.pins, "f8")
     b, b_error = constant.value[0], constant.error[0]
     magnitude = np.abs(cleaned.value) + cleaned.error
     offsets_error = cleaned.error @ np.abs(b) + magnitude @ b_error + gamma(mapping.dim, "f8") * magnitude @ np.abs(b)

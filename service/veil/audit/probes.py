@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from sklearn.base import BaseEstimator, TransformerMixin, clone
+from sklearn.base import clone
 from sklearn.dummy import DummyRegressor
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.linear_model import LogisticRegression, RidgeCV
@@ -18,11 +18,12 @@ from sklearn.metrics import mean_absolute_error, r2_score
 from sklearn.model_selection import BaseCrossValidator, KFold, StratifiedKFold
 from sklearn.neural_network import MLPClassifier
 from sklearn.pipeline import Pipeline, make_pipeline
+from sklearn.preprocessing import StandardScaler
 from threadpoolctl import threadpool_limits
 
 from veil.audit.report import ProbeScore, RegressionScore
 from veil.audit.stats import wilson_interval
-from veil.erasers.scaling import DEAD_SPREAD, FlooredScaler
+from veil.erasers.scaling import DEAD_SPREAD
 from veil.progress import advance
 
 # Resamples of the held-out rows behind a regression probe's intervals, drawn this many at a time.
@@ -30,38 +31,25 @@ BOOTSTRAP_ROUNDS = 1000
 BOOTSTRAP_BLOCK = 100
 
 
-class LiveFeatures(TransformerMixin, BaseEstimator):  # type: ignore[misc]
-    """Keep the coordinates whose spread is at least ``DEAD_SPREAD`` times the typical spread.
+def dead_features(x: NDArray[np.floating]) -> NDArray[np.intp]:
+    """The coordinates whose spread is below ``DEAD_SPREAD`` of the typical spread, in increasing order.
 
-    For models that ignore scale (trees split on thresholds): flooring a
-    dead coordinate's scale does not hide its rounding-level content from
-    them, so it is dropped instead.
+    The probes standardise every coordinate, as a downstream model would, so
+    they read whatever such a coordinate carries at rounding level: the audit
+    names these coordinates so that a reading there can be traced.
     """
-
-    def fit(self, X: NDArray[np.floating], y: object = None) -> LiveFeatures:
-        spread = np.asarray(X, dtype=np.float64).std(axis=0)
-        typical = float(np.sqrt(np.mean(spread**2)))
-        self.keep_ = np.flatnonzero(spread >= DEAD_SPREAD * typical)
-        return self
-
-    def transform(self, X: NDArray[np.floating]) -> NDArray[np.floating]:
-        return np.asarray(X)[:, self.keep_]
-
-
-def count_dead_features(x: NDArray[np.floating]) -> int:
-    """Number of coordinates whose spread is below ``DEAD_SPREAD`` of the typical spread."""
     spread = np.asarray(x, dtype=np.float64).std(axis=0)
     typical = float(np.sqrt(np.mean(spread**2)))
-    return int(np.count_nonzero(spread < DEAD_SPREAD * typical))
+    return np.flatnonzero(spread < DEAD_SPREAD * typical)
 
 
 def linear_probe(random_state: int) -> Pipeline:
-    return make_pipeline(FlooredScaler(), LogisticRegression(max_iter=3000, random_state=random_state))
+    return make_pipeline(StandardScaler(), LogisticRegression(max_iter=3000, random_state=random_state))
 
 
 def nonlinear_probe(random_state: int) -> Pipeline:
     return make_pipeline(
-        FlooredScaler(),
+        StandardScaler(),
         MLPClassifier(
             hidden_layer_sizes=(128,),
             alpha=1e-3,
@@ -208,7 +196,7 @@ def regression_score(
 
 def ridge_probe() -> Pipeline:
     """Ridge regression on standardised features, its strength chosen by efficient leave-one-out."""
-    return make_pipeline(FlooredScaler(), RidgeCV(alphas=np.logspace(-3, 3, 13)))
+    return make_pipeline(StandardScaler(), RidgeCV(alphas=np.logspace(-3, 3, 13)))
 
 
 def bootstrap_intervals(

@@ -23,9 +23,8 @@ from sklearn.model_selection import train_test_split
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import PolynomialFeatures, StandardScaler
 
-from veil.audit.probes import LiveFeatures, linear_probe, nonlinear_probe, probe_folds
+from veil.audit.probes import linear_probe, nonlinear_probe, probe_folds
 from veil.audit.report import PROBES
-from veil.erasers.scaling import FlooredScaler
 
 # Principal components the quadratic probe expands: 32 give 560 features (components and their pairwise
 # products), few enough for a logistic regression on a thousand rows.  On the committed sample after LEACE
@@ -107,7 +106,7 @@ def quadratic_probe(random_state: int, *, sizes: FoldSizes, features: int) -> Pi
     """Logistic regression on the leading principal components and all their pairwise products (degree 2)."""
     components = max(1, min(QUADRATIC_COMPONENTS, features, sizes.rows))
     return make_pipeline(
-        FlooredScaler(),
+        StandardScaler(),
         PCA(n_components=components, random_state=random_state),
         PolynomialFeatures(degree=2, include_bias=False),
         StandardScaler(),
@@ -118,14 +117,14 @@ def quadratic_probe(random_state: int, *, sizes: FoldSizes, features: int) -> Pi
 def kernel_probe(random_state: int, *, sizes: FoldSizes) -> Pipeline:
     """Logistic regression on a Nystroem approximation of the RBF kernel (``gamma = 1 / features``)."""
     return make_pipeline(
-        FlooredScaler(),
+        StandardScaler(),
         Nystroem(kernel="rbf", n_components=min(KERNEL_COMPONENTS, sizes.rows), random_state=random_state),
         LogisticRegression(C=KERNEL_C, max_iter=3000, random_state=random_state),
     )
 
 
 def trees_probe(random_state: int, *, sizes: FoldSizes) -> Pipeline:
-    """Gradient-boosted trees on histogram bins, on the coordinates that have spread (see :class:`LiveFeatures`).
+    """Gradient-boosted trees on histogram bins, on every coordinate (a split reads any scale, rounding included).
 
     They learn from at most :data:`TREE_TRAINING_ROWS` rows of a training fold.
     """
@@ -141,7 +140,7 @@ def trees_probe(random_state: int, *, sizes: FoldSizes) -> Pipeline:
         early_stopping=_can_stop_early(drawn),
         random_state=random_state,
     )
-    return make_pipeline(LiveFeatures(), CappedFit(trees, max_rows=TREE_TRAINING_ROWS, random_state=random_state))
+    return make_pipeline(CappedFit(trees, max_rows=TREE_TRAINING_ROWS, random_state=random_state))
 
 
 class CappedRegression(RegressorMixin, BaseEstimator):  # type: ignore[misc]
@@ -177,9 +176,7 @@ def trees_regression_probe(random_state: int) -> Pipeline:
         learning_rate=TREE_STEP, max_iter=TREE_ROUNDS, max_bins=TREE_BINS, early_stopping=False,
         random_state=random_state,
     )  # fmt: skip
-    return make_pipeline(
-        LiveFeatures(), CappedRegression(trees, max_rows=TREE_TRAINING_ROWS, random_state=random_state)
-    )
+    return make_pipeline(CappedRegression(trees, max_rows=TREE_TRAINING_ROWS, random_state=random_state))
 
 
 def build_probe(name: str, random_state: int, *, sizes: FoldSizes, features: int) -> Pipeline:

@@ -52,6 +52,22 @@ def _class_mean_noise_floor(codes: NDArray[np.intp], rank: int) -> float:
     return float(np.sqrt(rank * (1 / smallest - 1 / codes.size)))
 
 
+def _dead_coordinate_notes(raw: NDArray[np.floating], erased: NDArray[np.floating]) -> list[str]:
+    """What the audit says of coordinates without spread: pinned by the map, or passed through and readable."""
+    dead = probes.dead_features(raw)
+    if not dead.size:
+        return []
+    listed = ", ".join(map(str, dead.tolist()))
+    passed = [int(j) for j in dead if np.ptp(erased[:, j]) > 0]
+    if not passed:
+        return [f"coordinate(s) {listed} have almost no spread; the map writes one value there, so they carry nothing"]
+    return [
+        f"coordinate(s) {', '.join(map(str, passed))} have almost no spread and the map does not pin them (versions "
+        "stored before pinning pass them through): a model that rescales them to unit variance reads what they "
+        "carry at rounding level, and so do these probes"
+    ]
+
+
 def audit(
     eraser: Erasure,
     X: ArrayLike,
@@ -294,12 +310,7 @@ def _audit_map(
 
     ranking_fairness = None if codes is None else ranking.ranking_before_after(raw, erased, codes, NEIGHBOURS)
 
-    dead = probes.count_dead_features(raw)
-    if dead:
-        notes.append(
-            f"{dead} coordinate(s) have almost no spread; erasure leaves them as they are, and a model "
-            "that rescales them to unit variance may read attribute content at rounding level"
-        )
+    notes.extend(_dead_coordinate_notes(raw, erased))
     fitted_rows = int(audited.moments.count)
     if fitted_rows / raw.shape[1] < 25:
         notes.append(

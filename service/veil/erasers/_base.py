@@ -10,13 +10,13 @@ from numpy.typing import ArrayLike, NDArray
 from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import check_is_fitted, validate_data
 
-from veil.maps.artifact import MapArtifact
+from veil.maps.artifact import MapArtifact, finish_rows
 from veil.maps.attribute import EncodedAttribute, encode_attribute
 from veil.maps.kinds import EmbeddingMap
 from veil.maps.linalg import dead_coordinates
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
-from veil.maps.postprocess import unit_normalize
+from veil.maps.pins import CoordinatePins
 
 FLOAT_DTYPES = (np.float64, np.float32)
 
@@ -24,16 +24,18 @@ FLOAT_DTYPES = (np.float64, np.float32)
 class Erasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
     """Base class of every eraser: fitted on rows and their attribute, it holds a map of some kind.
 
-    Subclasses set, in ``fit``, ``map_`` (an :class:`~veil.maps.kinds.EmbeddingMap`),
-    ``moments_`` (raw-space statistics of the fitting data, which the live
-    checks compare traffic to), ``classes_`` and ``n_features_in_``, and
-    implement :meth:`counterfactual`.
+    Subclasses end ``fit`` with :meth:`_set_map` (which sets ``map_``, an
+    :class:`~veil.maps.kinds.EmbeddingMap`; ``moments_``, raw-space statistics
+    of the fitting data, which the live checks compare traffic to; and
+    ``pins_``), set ``classes_`` and ``n_features_in_``, and implement
+    :meth:`counterfactual`.
     """
 
     method: ClassVar[str]
     normalize: bool
     map_: EmbeddingMap
     moments_: MomentState
+    pins_: CoordinatePins
     _requires_categorical: ClassVar[bool] = False
 
     def __sklearn_tags__(self) -> Any:
@@ -49,6 +51,15 @@ class Erasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         array = validate_data(self, x, reset=reset, dtype=FLOAT_DTYPES, ensure_min_samples=1)
         return array, encode_attribute(z, array.shape[0], require_categorical=self._requires_categorical)
 
+    def _set_map(self, mapping: EmbeddingMap, moments: MomentState) -> None:
+        # Whatever the kind, coordinates the fitting data does not use leave as its mean (veil.maps.pins).
+        self.map_ = mapping
+        self.moments_ = moments
+        self.pins_ = CoordinatePins.of_moments(moments)
+
+    def _finish_rows(self, out: NDArray[np.floating]) -> NDArray[np.floating]:
+        return finish_rows(out, normalize=bool(self.normalize), pins=self.pins_)
+
     def transform(self, X: ArrayLike) -> NDArray[np.floating]:
         """Erase the attribute from each row.
 
@@ -60,12 +71,12 @@ class Erasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         -------
         X_erased : ndarray of shape (n_samples, n_features)
             float32 for float32 input, float64 otherwise; unit-length rows
-            when ``normalize=True``.
+            when ``normalize=True``; the coordinates without live spread in
+            the fitting data (``pins_.coordinates``) hold its mean.
         """
         check_is_fitted(self, "map_")
         array = validate_data(self, X, reset=False, dtype=FLOAT_DTYPES)
-        out = self.map_.apply(array)
-        return unit_normalize(out) if self.normalize else out
+        return self._finish_rows(self.map_.apply(array))
 
     @abstractmethod
     def counterfactual(self, X: ArrayLike, target: object) -> NDArray[np.floating]:
@@ -81,6 +92,7 @@ class Erasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
             normalize=bool(self.normalize),
             moments=self.moments_,
             history=list(getattr(self, "history_", [])),
+            pins=self.pins_,
         )
 
 
@@ -90,12 +102,11 @@ class LinearErasure(Erasure):
     map_: AffineLowRankMap
 
     def _set_fitted(self, mapping: AffineLowRankMap, moments: MomentState) -> None:
-        # A coordinate the fitting data does not use (an embedding model's dead coordinate) is passed through
-        # exactly: the factors' entries there are rounding or a correlation at 1e-8 scale, and written back they
-        # would put a copy of the attribute where the data had none, at 1e-18, which boosted trees read at 0.99
-        # on the committed sample although no dot product sees it.
-        self.map_ = mapping.leaving_untouched(dead_coordinates(moments.covariance_xx))
-        self.moments_ = moments
+        # A coordinate the fitting data does not use (an embedding model's dead coordinate) neither feeds nor
+        # receives the removed component: the factors' entries there are rounding or a correlation at 1e-8 scale,
+        # and they would mix that coordinate's rounding-level copy of the attribute into the others.  The pins
+        # then write the fitting mean there.
+        self._set_map(mapping.leaving_untouched(dead_coordinates(moments.covariance_xx)), moments)
         self.classes_ = moments.labels
 
     # -- the fitted map -------------------------------------------------
@@ -152,7 +163,7 @@ class LinearErasure(Erasure):
         array = validate_data(self, X, reset=False, dtype=FLOAT_DTYPES)
         out = self.map_.apply(array)
         out += self.map_.shift_towards(self._target_mean(target)).astype(out.dtype)
-        return unit_normalize(out) if self.normalize else out
+        return self._finish_rows(out)
 
 
 class MomentErasure(LinearErasure):

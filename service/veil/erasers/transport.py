@@ -18,7 +18,6 @@ from veil.maps.attribute import check_enough_rows, check_positive_int
 from veil.maps.gaussians import barycenter_covariance, monge_matrix, require_positive_definite
 from veil.maps.linalg import COVARIANCE_RTOL, dead_coordinates, whitening_factors
 from veil.maps.moments import MomentState
-from veil.maps.postprocess import unit_normalize
 from veil.maps.transport import ClassTransportMap
 
 Float64Array = NDArray[np.float64]
@@ -252,8 +251,7 @@ class GaussianTransport(Erasure):
         if self.then_leace:
             after = LEACE().fit(transport_map.apply(x), codes).map_
             transport_map = replace(transport_map, after=after)
-        self.map_ = transport_map
-        self.moments_ = moments
+        self._set_map(transport_map, moments)
         self.classes_ = labels
         self.class_means_ = transport_map.class_means
         self.barycenter_covariance_ = barycenter.covariance
@@ -281,5 +279,4 @@ class GaussianTransport(Erasure):
         matches = np.flatnonzero(self.classes_ == np.asarray(target))
         if matches.size != 1:
             raise ValueError(f"unknown target class {target!r}; the classes are {self.classes_.tolist()}")
-        out = self.map_.towards(array, int(matches[0]))
-        return unit_normalize(out) if self.normalize else out
+        return self._finish_rows(self.map_.towards(array, int(matches[0])))

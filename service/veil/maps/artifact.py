@@ -11,6 +11,7 @@ from numpy.typing import NDArray
 
 from veil.maps.kinds import EmbeddingMap
 from veil.maps.moments import MomentState
+from veil.maps.pins import CoordinatePins
 from veil.maps.postprocess import unit_normalize
 
 Float64Array = NDArray[np.float64]
@@ -36,6 +37,11 @@ class MapArtifact:
         and priors.  Drift and leakage checks compare live traffic to these.
     history : list of dict
         Per-iteration record of iterative methods (empty otherwise).
+    pins : CoordinatePins or None
+        Coordinates without live spread in the fitting data, written as its
+        mean into every served row (:mod:`veil.maps.pins`); None for a version
+        stored before pins existed, which passes them through and so carries
+        the attribute there at rounding level.
     """
 
     method: str
@@ -44,6 +50,11 @@ class MapArtifact:
     normalize: bool
     moments: MomentState
     history: list[dict[str, float]] = field(default_factory=list)
+    pins: CoordinatePins | None = None
+
+    def __post_init__(self) -> None:
+        if self.pins is not None:
+            self.pins.check_dimension(self.map.dim)
 
     @property
     def kind(self) -> str:
@@ -77,8 +88,7 @@ class MapArtifact:
             raise ValueError("counterfactuals by class need a categorical attribute")
         if not 0 <= target < class_means.shape[0]:
             raise ValueError(f"the target class index must lie in range({class_means.shape[0]}), got {target}")
-        out = self.map.counterfactual(x, class_means, target)
-        return unit_normalize(out) if self.normalize else out
+        return self._finish(self.map.counterfactual(x, class_means, target))
 
     def counterfactual_towards(self, x: NDArray[np.floating], target_mean: Float64Array) -> NDArray[np.floating]:
         """Clean a batch and give every row the component of a target mean ``E[x | z = t]`` (shape (d,)).
@@ -86,10 +96,24 @@ class MapArtifact:
         For a version of several attributes, whose target names each one
         (:meth:`veil.maps.moments.MomentState.conditional_mean`).
         """
-        out = self.map.counterfactual(x, np.asarray(target_mean, dtype=np.float64)[None, :], 0)
-        return unit_normalize(out) if self.normalize else out
+        return self._finish(self.map.counterfactual(x, np.asarray(target_mean, dtype=np.float64)[None, :], 0))
 
     def apply(self, x: NDArray[np.floating]) -> NDArray[np.floating]:
         """Erase a batch exactly as it is served (re-normalised if the artifact says so)."""
-        out = self.map.apply(x)
-        return unit_normalize(out) if self.normalize else out
+        return self._finish(self.map.apply(x))
+
+    def _finish(self, out: NDArray[np.floating]) -> NDArray[np.floating]:
+        return finish_rows(out, normalize=self.normalize, pins=self.pins)
+
+
+def finish_rows(out: NDArray[np.floating], *, normalize: bool, pins: CoordinatePins | None) -> NDArray[np.floating]:
+    """The steps after any map, in place: re-normalise if asked, then write the pinned coordinates.
+
+    Pinning comes last: a pinned value divided by each row's norm would hand
+    that norm (which erasure leaves uneven) to a reader that rescales the
+    coordinate.  A unit row then differs from unit length by ``Σ c_j²``, at
+    rounding level for the near-zero coordinates pins are for.
+    """
+    if normalize:
+        unit_normalize(out)
+    return out if pins is None else pins.apply(out)

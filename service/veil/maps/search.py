@@ -4,6 +4,9 @@ For an affine map ``r(x) = A x + b`` and a cleaned query ``r(q)``,
 
 ``⟨r(q), r(x)⟩ = ⟨Aᵀ r(q), x⟩ + ⟨r(q), b⟩``
 
+(with pinned coordinates, ``A`` and ``b`` are those of the map followed by
+the pins: see :func:`search_vectors`)
+
 and the second term is the same for every corpus row ``x``.  Ranking a raw
 inner-product index by ``⟨Aᵀ r(q), x⟩`` therefore gives exactly the ranking of
 the cleaned corpus, and adding the per-query offset ``⟨r(q), b⟩`` gives its
@@ -103,10 +106,13 @@ def search_vectors(
     if queries.ndim != 2 or queries.shape[1] != artifact.map.dim:
         raise ValueError(f"expected queries of shape (n, {artifact.map.dim}), got {queries.shape}")
     cleaned = artifact.apply(queries)
-    vectors = artifact.map.search_vector(cleaned)
+    pins = artifact.pins
+    # With pins r(x) = P (A x + b) + c, so ⟨r(q), r(x)⟩ = ⟨Aᵀ P r(q), x⟩ + ⟨r(q), P b + c⟩ (veil.maps.pins).
+    vectors = artifact.map.search_vector(cleaned if pins is None else pins.cleared(cleaned))
     offsets = None
     if artifact.map.affine:
-        # b = r(0) for an affine map r(x) = A x + b; in float64 so the offsets carry no extra round-off.
-        constant = artifact.map.apply(np.zeros((1, artifact.map.dim)))[0]
-        offsets = np.asarray(cleaned, dtype=np.float64) @ constant
+        # P b + c = r(0) for an affine map; in float64 so the offsets carry no extra round-off.
+        constant = artifact.map.apply(np.zeros((1, artifact.map.dim)))
+        constant = constant if pins is None else pins.apply(constant)
+        offsets = np.asarray(cleaned, dtype=np.float64) @ constant[0]
     return SearchVectors(vectors=vectors, offsets=offsets, exact=not note, note=note)

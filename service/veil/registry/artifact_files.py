@@ -4,9 +4,13 @@ An artifact is two files: ``arrays.npz`` (read with ``allow_pickle=False``,
 so loading never runs code) and ``artifact.json`` (method, the kind of map,
 parameters, shapes, history and the sha256 of the arrays file).
 
+Format 3 adds the pinned coordinates (arrays ``pins.*`` and their list,
+``pinned_coordinates``, in the description: see :mod:`veil.maps.pins`); a
+release that cannot pin refuses it rather than serve rows without the pins.
 Format 2 names the map's kind (``map_kind``) and stores the map's own arrays
 under a ``map.`` prefix; format 1, written before map kinds existed, holds
-an affine low-rank map as ``mean``, ``u`` and ``v`` and is still read.  A
+an affine low-rank map as ``mean``, ``u`` and ``v``.  Both are still read,
+without pins, and answer as they always did.  A
 version guarded within a context also stores the moments within each value
 (arrays ``given.*``, and ``"context": true`` in the description); one
 written before contexts existed has neither and reads as it always did.
@@ -32,12 +36,14 @@ from veil.maps.context import ContextMoments
 from veil.maps.kinds import EmbeddingMap, map_from_arrays
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
+from veil.maps.pins import CoordinatePins
 
 ARRAYS_FILE = "arrays.npz"
 DESCRIPTION_FILE = "artifact.json"
-FORMAT_VERSION = 2
-READABLE_FORMATS = (1, 2)
+FORMAT_VERSION = 3
+READABLE_FORMATS = (1, 2, 3)
 _MAP_PREFIX = "map."
+_PINS_PREFIX = "pins."
 # The classes of the categorical attributes of an artifact of several, by position.
 _BLOCK_LABELS = "attribute_labels."
 # Each attribute's own moments, by position, when the labels were incomplete.
@@ -79,6 +85,8 @@ def artifact_arrays(artifact: MapArtifact) -> dict[str, NDArray[Any]]:
         arrays.update({f"{_PARTIAL}{position}.{name}": getattr(state, name) for name in _MOMENT_ARRAYS})
     if moments.given is not None:
         arrays.update({_CONTEXT + name: getattr(moments.given, name) for name in _CONTEXT_ARRAYS})
+    if artifact.pins is not None:
+        arrays.update({_PINS_PREFIX + name: array for name, array in artifact.pins.arrays().items()})
     return arrays
 
 
@@ -130,10 +138,27 @@ def _stored_blocks(description: Mapping[str, Any], arrays: Mapping[str, NDArray[
     return tuple(blocks)
 
 
+def _pins_description(artifact: MapArtifact) -> dict[str, Any]:
+    # An artifact made in memory without pins (as decoded from format 1 or 2) keeps the format it came in.
+    if artifact.pins is None:
+        return {"format_version": 2}
+    return {"format_version": FORMAT_VERSION, "pinned_coordinates": artifact.pins.coordinates.tolist()}
+
+
+def _stored_pins(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> CoordinatePins | None:
+    if description["format_version"] < 3:
+        return None
+    own = {name.removeprefix(_PINS_PREFIX): array for name, array in arrays.items() if name.startswith(_PINS_PREFIX)}
+    pins = CoordinatePins.from_arrays(own)
+    if pins.coordinates.tolist() != description.get("pinned_coordinates"):
+        raise ValueError("the pinned coordinates of the arrays and of the description differ")
+    return pins
+
+
 def artifact_description(artifact: MapArtifact) -> dict[str, Any]:
     """The artifact's JSON-safe description (everything but the arrays)."""
     return {
-        "format_version": FORMAT_VERSION,
+        **_pins_description(artifact),
         "method": artifact.method,
         "map_kind": artifact.kind,
         "params": _json_safe(dict(artifact.params)),
@@ -228,6 +253,7 @@ def decode_artifact(files: Mapping[str, bytes], *, source: str = "artifact") -> 
                 **{name: arrays[name] for name in _MOMENT_ARRAYS},
             ),
             history=list(description["history"]),
+            pins=_stored_pins(description, arrays),
         )
     except (KeyError, ValueError, TypeError, OSError, zipfile.BadZipFile) as error:
         raise ArtifactFormatError(f"{source} holds an unreadable artifact: {error}") from None

@@ -132,6 +132,8 @@ def build_card(
     }
     if request is not None:
         card["request"] = dict(request)
+    if artifact.pins is not None:
+        card["pinned_coordinates"] = artifact.pins.coordinates.tolist()
     if artifact.moments.given is not None:
         card["given"] = given_record(artifact, str(sample.context_key))
     if operating_points is not None:
@@ -269,6 +271,19 @@ def method_text(card: dict[str, Any]) -> str:
     )
 
 
+def pins_text(card: Mapping[str, Any]) -> str:
+    """What the version writes into coordinates without spread; for one stored before pinning, that it carries them."""
+    if "pinned_coordinates" not in card:
+        return (
+            "nothing: stored before pinning, this version passes coordinates without spread through, where a model "
+            "that standardises its features can read the attribute at rounding level; refit to pin them"
+        )
+    coordinates = card["pinned_coordinates"]
+    if not coordinates:
+        return "no coordinate lacked spread in the fitting data"
+    return f"coordinate(s) {', '.join(map(str, coordinates))} hold the fitting mean (no spread in the fitting data)"
+
+
 def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
     """The figures people compare between versions, as (label, text) pairs."""
     audit = card_audit(card)
@@ -348,6 +363,7 @@ def format_card(version_id: str, card: dict[str, Any]) -> str:
         lines.append(f"  {'context':{width}}  guarded {given_text(card['given'])}")
     if card.get("task"):
         lines.append(f"  {'task':{width}}  {card['task']['key']}")
+    lines.append(f"  {'pinned':{width}}  {pins_text(card)}")
     lines.append(f"  {'parameters':{width}}  " + ", ".join(f"{k}={v}" for k, v in sorted(card["params"].items())))
     lines += ["", card_audit(card).format_table()]
     if "attributes" in card:
