@@ -5,9 +5,13 @@ from __future__ import annotations
 import json
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from veil.audit.glossary import MEANINGS, PROBE_MODELS, REGRESSION_MODELS
+
+if TYPE_CHECKING:
+    # The context's records hold ProbeScores, so they import this module; the report reads them lazily.
+    from veil.audit.context_report import ContextAudit
 
 #: Every probe the audit can run, in the order tables list them (and ties for the strongest are broken).
 PROBES = ("linear", "quadratic", "kernel", "trees", "mlp")
@@ -320,6 +324,8 @@ class AuditReport:
     ``recall``; ``protocol`` says how the probes were scored; ``ranking``
     holds the ranking-fairness figures.  Each is None in cards written before
     it was recorded (``ranking`` also for a continuous attribute).
+    ``context`` holds every reader within each value of a context, when the
+    audited rows carried one (see :mod:`veil.audit.context_report`).
     """
 
     method: str
@@ -333,6 +339,7 @@ class AuditReport:
     classes: tuple[str, ...] | None = None
     protocol: ProbeProtocol | None = None
     ranking: RankingFairness | None = None
+    context: ContextAudit | None = None
 
     @property
     def balanced_chance(self) -> float | None:
@@ -351,6 +358,11 @@ class AuditReport:
         classes = data.get("classes")
         protocol = data.get("protocol")
         ranking = data.get("ranking")
+        context = data.get("context")
+        if context is not None:
+            from veil.audit.context_report import ContextAudit
+
+            context = ContextAudit.from_dict(context)
         return cls(
             method=data["method"],
             rank=data["rank"],
@@ -363,6 +375,7 @@ class AuditReport:
             classes=None if classes is None else tuple(classes),
             protocol=None if protocol is None else ProbeProtocol(**protocol),
             ranking=None if ranking is None else RankingFairness.from_dict(ranking),
+            context=context,
         )
 
     @classmethod
@@ -467,6 +480,8 @@ class AuditReport:
             lines.append(f"strongest probe after erasure: {strongest}")
         lines.append(f"{'':{width}}  {'before':>{column}}  {'after':>{column}}")
         lines += [f"{name:{width}}  {b:>{column}}  {a:>{column}}" for name, b, a in rows]
+        if self.context is not None:
+            lines += self.context.lines()
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
 

@@ -292,6 +292,13 @@ def build_parser() -> VeilParser:
     audit.add_argument("--seed", type=int, default=0, help="seeds the folds, the probes and the row draw")
     audit.add_argument("--rows", type=int, help="audit a hash-drawn share of about this many rows (default: all)")
     audit.add_argument("--json", action="store_true", help="print the stored record as JSON")
+    audit.add_argument(
+        "--given",
+        metavar="COLUMN",
+        help="a categorical context column of the sample: every probe is then also trained and tested within each "
+        "of its values, against what the context alone tells (default: the column the version was fitted with, "
+        "--given, when the sample has it)",
+    )
     audit.set_defaults(handler="audit")
 
     versions = commands.add_parser(
