@@ -20,7 +20,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any
 
-from veil.audit.report import PROBE_LABELS, PROBES, ProbeScore
+from veil.audit.scores import PROBE_LABELS, PROBES, ProbeScore
 
 #: What the floor means, in one sentence (the report and ``veil show`` print it).
 FLOOR_MEANING = (

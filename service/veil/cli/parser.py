@@ -275,7 +275,8 @@ def build_parser() -> VeilParser:
         type=_band,
         metavar="FIGURE=WARN,ALERT",
         help="levels the verdict of this version's audits is judged by, e.g. strongest_gap=0.05,0.1 (repeatable; "
-        "figures: linear_gap, strongest_gap, neighbour_excess, task_loss)",
+        "figures: linear_gap, strongest_gap, neighbour_excess, task_loss, and within a context "
+        "context_linear_gap, context_strongest_gap, context_neighbour_excess)",
     )
     fit.set_defaults(handler="fit")
 
