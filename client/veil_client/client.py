@@ -5,7 +5,7 @@ from __future__ import annotations
 import asyncio
 import itertools
 import time
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from types import TracebackType
 from typing import Any, Self
 
@@ -84,30 +84,46 @@ class _Requests:
         return {**request, "params": {"metric": metric, "exact": "true" if exact else "false"}}
 
     def _drift_request(
-        self, vectors: ArrayLike | None, labels: Labels | None, version: str | None, alias: str | None
+        self,
+        vectors: ArrayLike | None,
+        labels: Labels | None,
+        version: str | None,
+        alias: str | None,
+        context: Sequence[object] | None = None,
     ) -> dict[str, Any]:
         pin = pin_headers(version, alias)
         if vectors is None:
-            if labels is not None:
-                raise VeilValidationError("labels go with the vectors they label")
+            if labels is not None or context is not None:
+                raise VeilValidationError("labels and context values go with the vectors they describe")
             return {"method": "GET", "headers": pin}
         matrix = as_matrix(vectors)
+        fields: dict[str, Any] = {}
         if labels is not None:
-            given = labels if isinstance(labels, Mapping) else {"": labels}
-            # By attribute, a continuous attribute's values travel as numbers; class labels always as text.
-            texts = {
-                attribute: [_as_number(label) if attribute and _is_number(label) else str(label) for label in column]
-                for attribute, column in given.items()
-            }
-            for attribute, column in texts.items():
-                if len(column) != matrix.shape[0]:
-                    of = f" of {attribute!r}" if attribute else ""
-                    raise VeilValidationError(f"got {len(column)} labels{of} for {matrix.shape[0]} vectors")
-            sent: Any = texts if isinstance(labels, Mapping) else texts[""]
-            body, media = encode(matrix, JSON, {"labels": sent})
-        else:
-            body, media = encode(matrix, self.settings.wire)
+            fields["labels"] = _drift_labels(labels, matrix.shape[0])
+        if context is not None:
+            if isinstance(context, (str, bytes)) or len(context) != matrix.shape[0]:
+                count = "a string of" if isinstance(context, (str, bytes)) else len(context)
+                raise VeilValidationError(f"got {count} context values for {matrix.shape[0]} vectors")
+            # Context values are compared as text by the service, as class labels are.
+            fields["context"] = [str(value) for value in context]
+        # Labels and context values travel in JSON; vectors alone in the client's wire format.
+        body, media = encode(matrix, JSON, fields) if fields else encode(matrix, self.settings.wire)
         return {"method": "POST", "content": body, "headers": {**pin, "Content-Type": media}}
+
+
+def _drift_labels(labels: Labels, rows: int) -> Any:
+    """Labels as the drift route takes them: a list of text, or by attribute (numbers for a continuous one)."""
+    given = labels if isinstance(labels, Mapping) else {"": labels}
+    # By attribute, a continuous attribute's values travel as numbers; class labels always as text.
+    texts = {
+        attribute: [_as_number(label) if attribute and _is_number(label) else str(label) for label in column]
+        for attribute, column in given.items()
+    }
+    for attribute, column in texts.items():
+        if len(column) != rows:
+            of = f" of {attribute!r}" if attribute else ""
+            raise VeilValidationError(f"got {len(column)} labels{of} for {rows} vectors")
+    return texts if isinstance(labels, Mapping) else texts[""]
 
 
 def _is_number(value: object) -> bool:
@@ -258,6 +274,7 @@ class VeilClient(_Requests):
         vectors: ArrayLike | None = None,
         labels: Labels | None = None,
         *,
+        context: Sequence[object] | None = None,
         version: str | None = None,
         alias: str | None = None,
     ) -> dict[str, Any]:
@@ -274,6 +291,10 @@ class VeilClient(_Requests):
             The attribute's class of each vector; without them the probe predicts pseudo-labels.  For a
             version of several attributes, a mapping gives each attribute's labels (the others get
             pseudo-labels); a list is the first attribute's.
+        context : sequence of length n_vectors, optional
+            Each vector's value of a context column (a field, a query's category): the leakage is then also
+            measured within each value, against what the context alone tells (the report's ``context`` and
+            ``context_leakage_gap``).  Without it, the population's figures only.
         version, alias : str, optional
             Check against this version (id or sequence number) or the version this alias names, instead of
             the one served; at most one of the two.
@@ -284,7 +305,7 @@ class VeilClient(_Requests):
             The report: ``status``, ``reasons``, the figures, ``rows`` (vectors checked), and the ``version``
             checked; on recent traffic also ``traffic_seen`` (every vector cleaned, repeats included).
         """
-        request = self._drift_request(vectors, labels, version, alias)
+        request = self._drift_request(vectors, labels, version, alias, context)
         result: dict[str, Any] = self._send(request.pop("method"), f"/v1/erasers/{name}/drift", **request).json()
         return result
 
@@ -404,11 +425,12 @@ class AsyncVeilClient(_Requests):
         vectors: ArrayLike | None = None,
         labels: Labels | None = None,
         *,
+        context: Sequence[object] | None = None,
         version: str | None = None,
         alias: str | None = None,
     ) -> dict[str, Any]:
         """As :meth:`VeilClient.drift`: a posted sample, or recent traffic; ``version`` or ``alias`` pins one."""
-        request = self._drift_request(vectors, labels, version, alias)
+        request = self._drift_request(vectors, labels, version, alias, context)
         response = await self._send(request.pop("method"), f"/v1/erasers/{name}/drift", **request)
         result: dict[str, Any] = response.json()
         return result

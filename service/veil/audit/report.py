@@ -7,17 +7,16 @@ from collections.abc import Iterator
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
+from veil.audit.context_report import ContextAudit
 from veil.audit.glossary import MEANINGS, PROBE_MODELS, REGRESSION_MODELS
+from veil.audit.scores import PROBE_LABELS, PROBES, ProbeScore
 
-#: Every probe the audit can run, in the order tables list them (and ties for the strongest are broken).
-PROBES = ("linear", "quadratic", "kernel", "trees", "mlp")
-PROBE_LABELS = {
-    "linear": "linear probe",
-    "quadratic": "quadratic probe",
-    "kernel": "RBF kernel probe",
-    "trees": "boosted-trees probe",
-    "mlp": "MLP probe",
-}
+__all__ = [
+    "FRESH_KFOLD", "HELD_OUT_KFOLD", "PROBES", "PROBE_LABELS", "RANKING_KEYS", "AuditReport", "ContextAudit",
+    "FigureRow", "Leakage", "ProbeProtocol", "ProbeScore", "RankingFairness", "RegressionScore", "Retrieval",
+    "Utility",
+]  # fmt: skip
+
 #: The keys of :meth:`RankingFairness.rows`, in order.
 RANKING_KEYS = ("ranking_share", "ranking_exposure", "max_skew", "absent_class", "ndkl")
 #: The protocol :func:`veil.audit.audit` follows.
@@ -42,55 +41,6 @@ class FigureRow:
     meaning: str
     chance: str
     group: str
-
-
-@dataclass(frozen=True)
-class ProbeScore:
-    """Held-out accuracy of a probe predicting the attribute, against the majority baseline.
-
-    ``gap = |accuracy - majority|`` describes the reading; what is judged is
-    :attr:`excess`, the reading *beyond* majority.  ``recall`` holds each class's recall in the order of the report's
-    ``classes``; ``balanced_accuracy`` is their mean, whose chance level is
-    ``1 / classes`` whatever the class shares.  Cards written before per-class
-    figures have no ``recall``.
-    """
-
-    accuracy: float
-    balanced_accuracy: float
-    majority: float
-    interval_low: float
-    interval_high: float
-    n: int
-    recall: tuple[float, ...] | None = None
-
-    @property
-    def gap(self) -> float:
-        return abs(self.accuracy - self.majority)
-
-    @property
-    def excess(self) -> float:
-        """How far the probe reads the attribute beyond majority: its 95% interval's lower edge above majority.
-
-        0 when the interval reaches majority or lies below it.  One-sided: a
-        cross-validated probe with nothing to read scores at or below
-        majority (an overfit one on unequal classes about ``Σ p_c²``, not
-        ``max p_c``), and a reading below majority is no leakage.
-        """
-        return max(0.0, self.interval_low - self.majority)
-
-    def with_interval(self) -> str:
-        """``accuracy [low, high]`` to three decimals."""
-        return f"{self.accuracy:.3f} [{self.interval_low:.3f}, {self.interval_high:.3f}]"
-
-    @property
-    def hits(self) -> int:
-        """Rows predicted right (an exact count: ``accuracy`` is ``hits / n``)."""
-        return round(self.accuracy * self.n)
-
-    @classmethod
-    def from_dict(cls, data: dict[str, Any]) -> ProbeScore:
-        recall = data.get("recall")
-        return cls(**{**data, "recall": None if recall is None else tuple(recall)})
 
 
 @dataclass(frozen=True)
@@ -320,6 +270,8 @@ class AuditReport:
     ``recall``; ``protocol`` says how the probes were scored; ``ranking``
     holds the ranking-fairness figures.  Each is None in cards written before
     it was recorded (``ranking`` also for a continuous attribute).
+    ``context`` holds every reader within each value of a context, when the
+    audited rows carried one (see :mod:`veil.audit.context_report`).
     """
 
     method: str
@@ -333,6 +285,7 @@ class AuditReport:
     classes: tuple[str, ...] | None = None
     protocol: ProbeProtocol | None = None
     ranking: RankingFairness | None = None
+    context: ContextAudit | None = None
 
     @property
     def balanced_chance(self) -> float | None:
@@ -351,6 +304,7 @@ class AuditReport:
         classes = data.get("classes")
         protocol = data.get("protocol")
         ranking = data.get("ranking")
+        context = data.get("context")
         return cls(
             method=data["method"],
             rank=data["rank"],
@@ -363,6 +317,7 @@ class AuditReport:
             classes=None if classes is None else tuple(classes),
             protocol=None if protocol is None else ProbeProtocol(**protocol),
             ranking=None if ranking is None else RankingFairness.from_dict(ranking),
+            context=None if context is None else ContextAudit.from_dict(context),
         )
 
     @classmethod
@@ -467,6 +422,8 @@ class AuditReport:
             lines.append(f"strongest probe after erasure: {strongest}")
         lines.append(f"{'':{width}}  {'before':>{column}}  {'after':>{column}}")
         lines += [f"{name:{width}}  {b:>{column}}  {a:>{column}}" for name, b, a in rows]
+        if self.context is not None:
+            lines += self.context.lines()
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
 

@@ -25,6 +25,7 @@ from veil.audit.report import (
     Retrieval,
     Utility,
 )
+from veil.audit.within import context_audit
 from veil.erasers._base import Erasure
 from veil.maps.artifact import MapArtifact
 from veil.maps.attribute import encode_attribute
@@ -74,6 +75,8 @@ def audit(
     z: object,
     *,
     task: object = None,
+    given: object = None,
+    given_name: str | None = None,
     folds: int = 5,
     nonlinear: bool = True,
     random_state: int = 0,
@@ -100,6 +103,13 @@ def audit(
     task : array-like of shape (n_heldout,), optional
         Task labels for utility figures (task probe accuracy, TPR gap,
         neighbour task share).
+    given : array-like of shape (n_heldout,), optional
+        Each row's value of a context (categorical attribute only): every
+        probe and the neighbour shares are then also measured within each
+        value, against what the context alone tells (the report's ``context``;
+        see :mod:`veil.audit.context_report`).
+    given_name : str, optional
+        The context column's name, for the report.
     folds : int, default=5
         Cross-validation folds of the probes.
     nonlinear : bool, default=True
@@ -118,6 +128,7 @@ def audit(
         X,
         z,
         task=task,
+        context=_Context(given, given_name),
         folds=folds,
         nonlinear=nonlinear,
         random_state=random_state,
@@ -130,6 +141,8 @@ def audit_artifact(
     z: object,
     *,
     task: object = None,
+    given: object = None,
+    given_name: str | None = None,
     folds: int = 5,
     nonlinear: bool = True,
     random_state: int = 0,
@@ -147,6 +160,9 @@ def audit_artifact(
     z : array-like of shape (n,)
         Attribute labels of the fresh rows (classes the map was not fitted on are allowed: they are what they are).
     task : array-like of shape (n,), optional
+    given : array-like of shape (n,), optional
+        Each row's context value: the probes are then also measured within each value (as :func:`audit`).
+    given_name : str, optional
 
     Returns
     -------
@@ -157,6 +173,7 @@ def audit_artifact(
         X,
         z,
         task=task,
+        context=_Context(given, given_name),
         folds=folds,
         nonlinear=nonlinear,
         random_state=random_state,
@@ -174,12 +191,21 @@ class _Audited:
     scheme: str
 
 
+@dataclass(frozen=True)
+class _Context:
+    """Each audited row's context value (None: the population only) and the context column's name."""
+
+    values: object
+    name: str | None
+
+
 def _audit_map(
     audited: _Audited,
     X: ArrayLike,
     z: object,
     *,
     task: object,
+    context: _Context,
     folds: int,
     nonlinear: bool,
     random_state: int,
@@ -309,6 +335,14 @@ def _audit_map(
         )
 
     ranking_fairness = None if codes is None else ranking.ranking_before_after(raw, erased, codes, NEIGHBOURS)
+    within = None
+    if context.values is not None:
+        if codes is None or attribute.labels is None:
+            raise ValueError("an audit within a context needs a categorical attribute (1-D class labels z)")
+        within = context_audit(
+            raw, erased, codes, context.values, classes=tuple(str(label) for label in attribute.labels),
+            column=context.name, folds=folds, nonlinear=nonlinear, random_state=random_state,
+        )  # fmt: skip
 
     notes.extend(_dead_coordinate_notes(raw, erased))
     fitted_rows = int(audited.moments.count)
@@ -343,6 +377,7 @@ def _audit_map(
         classes=None if attribute.labels is None else tuple(str(label) for label in attribute.labels),
         protocol=ProbeProtocol(scheme=audited.scheme, folds=used_folds, seed=random_state, eraser_rows=fitted_rows),
         ranking=ranking_fairness,
+        context=within,
     )
 
 

@@ -18,6 +18,11 @@ a sample of that size, so a small quiet sample does not raise alarms:
   of its 95% interval lies above the majority baseline (0 at or below it:
   an overfit probe with nothing to read scores below majority, which is
   no leakage; see :attr:`veil.audit.report.ProbeScore.excess`).
+- ``context_leakage_gap`` (when the sample carries a context column): the
+  same linear probe trained and tested within each value of the context,
+  pooled by rows, its interval's lower edge above the floor (what the
+  context alone tells); see :mod:`veil.audit.context_report`.  Without a
+  context the figures are the population's only.
 - ``ranking``: the ranking-fairness figures of :mod:`veil.audit.ranking`
   with (up to 500 of) the sample's rows querying the whole sample by cosine,
   raw and erased, against the sample's class shares (labels or
@@ -34,10 +39,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import probes
+from veil.audit.context_report import ContextAudit
 from veil.audit.ranking import ranking_before_after
 from veil.audit.report import ProbeScore, RankingFairness
+from veil.audit.within import context_audit
 from veil.checks.reference import ContinuousReference, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
+from veil.checks.verdict import context_figures
 from veil.maps.artifact import MapArtifact
 
 MIN_ROWS = 20
@@ -69,6 +77,9 @@ class DriftReport:
     ranking: RankingFairness | None = None
     #: For a version of several attributes: each categorical one's labels source and figures, by name.
     attributes: dict[str, dict[str, Any]] | None = None
+    #: The linear probe within each value of the posted context (None: no context was posted).
+    context: ContextAudit | None = None
+    context_leakage_gap: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -83,6 +94,7 @@ def check_drift(
     *,
     classes: list[str],
     labels: list[str] | dict[str, list[Any]] | None = None,
+    context: list[Any] | None = None,
     random_state: int = 0,
 ) -> DriftReport:
     """Drift and leakage figures of a sample of raw live vectors (shape (n, d)), optionally with attribute labels.
@@ -92,10 +104,15 @@ def check_drift(
     one); every attribute without them is checked with its pre-erasure
     probe's pseudo-labels (pseudo-values for a continuous one).
 
+    ``context`` gives each vector's value of a context column (a field, a
+    query's category): the first categorical attribute's leakage is then also
+    measured within each value (labels or pseudo-labels, as the headline's).
+
     Raises
     ------
     ValueError
-        Fewer than 20 rows, labels of the wrong length, or labels outside the fitted classes.
+        Fewer than 20 rows, labels or context values of the wrong length, labels outside the fitted classes,
+        or a context for a version without a categorical attribute.
     """
     x = np.asarray(raw, dtype=np.float64)
     n = x.shape[0]
@@ -162,6 +179,7 @@ def check_drift(
         )
     prior_shift = leakage_gap = class_mean_gap = None
     leakage = class_shares = ranking = None
+    within = _within_context(x, np.asarray(erased), headline, context, random_state)
     if headline is not None:
         prior_shift, leakage, leakage_gap = headline.prior_shift, headline.leakage, headline.leakage_gap
         class_mean_gap = headline.class_mean_gap
@@ -179,6 +197,7 @@ def check_drift(
         "erased_variance_ratio": ratio,
         "prior_shift": prior_shift,
         "leakage_gap": leakage_gap,
+        "context_leakage_gap": None if within is None else context_figures(within)["context_linear_gap"],
     }
     judged = [("", figure, value) for figure, value in figures.items()]
     # Every attribute of several is judged by the same bands (the first categorical one's figures are the headline's).
@@ -218,7 +237,32 @@ def check_drift(
         reasons=reasons,
         ranking=ranking,
         attributes=attribute_figures or None,
+        context=within,
+        context_leakage_gap=figures["context_leakage_gap"],
     )
+
+
+def _within_context(
+    x: NDArray[np.float64],
+    erased: NDArray[np.floating],
+    headline: _ClassFigures | None,
+    context: list[Any] | None,
+    random_state: int,
+) -> ContextAudit | None:
+    """The linear probe within each value of the posted context (None: no context posted)."""
+    if context is None:
+        return None
+    if headline is None:
+        raise ValueError("this version guards continuous attributes only: a context needs a categorical one")
+    if not isinstance(context, list) or len(context) != x.shape[0]:
+        count = len(context) if isinstance(context, list) else "no list of"
+        raise ValueError(f"got {count} context values for {x.shape[0]} vectors")
+    # Values are compared as text, however the caller wrote them (as class labels are).
+    values = np.asarray([str(value) for value in context])
+    return context_audit(
+        x, erased, headline.codes, values, classes=tuple(headline.classes), column=None,
+        folds=PROBE_FOLDS, nonlinear=False, random_state=random_state,
+    )  # fmt: skip
 
 
 def _continuous_figures(

@@ -14,6 +14,9 @@ figure                      meaning
 ``covariance_shift``        relative Frobenius distance of the whitened live covariance from identity
 ``erased_variance_ratio``   share of live variance in the erased directions ÷ the fit data's share
 ``prior_shift``             total-variation distance between live and fitted class priors
+``context_leakage_gap``     the leakage gap within a context: the probe trained and tested within each
+                            value of a posted context column, pooled by rows, its interval's lower edge
+                            above the floor (what the context alone tells)
 ==========================  ===========================================================================
 """
 
@@ -74,6 +77,7 @@ class AlertThresholds(_BandSet):
     covariance_shift: Band = Band(0.25, 0.5)
     erased_variance_ratio: Band = Band(2.0, 4.0)
     prior_shift: Band = Band(0.1, 0.2)
+    context_leakage_gap: Band = Band(0.02, 0.05)
 
 
 @dataclass(frozen=True)
@@ -89,12 +93,23 @@ class AuditThresholds(_BandSet):
     ``neighbour_excess``        share of each row's 10 nearest neighbours with its attribute, above the base
                                 rate (the share a neighbourhood blind to the attribute would have)
     ``task_loss``               task probe accuracy lost to erasure (raw minus erased)
+    ``context_linear_gap``      within a context: the linear probe, trained and tested within each value and
+                                pooled by rows, after erasure: the lower edge of its 95% interval above the
+                                floor (what the context alone tells; 0 when it reaches the floor or lies below)
+    ``context_strongest_gap``   the same for the probe reading farthest beyond the floor within the context
+    ``context_neighbour_excess`` within a context: the 10-NN attribute share among rows of the same value, above
+                                the same value's base rate, weighted by rows
     ==========================  ===============================================================================
 
-    The defaults are common-practice starting points, not derived values.
+    The ``context_*`` figures are judged only where the audited rows carried a
+    context.  The defaults are common-practice starting points, not derived
+    values; those within a context are the population's.
     """
 
     linear_gap: Band = Band(0.02, 0.05)
     strongest_gap: Band = Band(0.05, 0.10)
     neighbour_excess: Band = Band(0.05, 0.10)
     task_loss: Band = Band(0.02, 0.05)
+    context_linear_gap: Band = Band(0.02, 0.05)
+    context_strongest_gap: Band = Band(0.05, 0.10)
+    context_neighbour_excess: Band = Band(0.05, 0.10)

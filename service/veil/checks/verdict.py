@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 
+from veil.audit.context_report import ContextAudit
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.thresholds import AuditThresholds
 
@@ -36,6 +37,12 @@ MEANINGS = {
     "neighbour_excess": "how much more often a row's 10 nearest neighbours share its attribute than the base rate "
     "(chance is 0)",
     "task_loss": "task probe accuracy lost to erasure (raw minus erased; 0 is no loss)",
+    "context_linear_gap": "within a context: how far a linear probe trained and tested within each value reads the "
+    "attribute beyond the floor, what the context alone tells (pooled by rows; the lower edge of its 95% interval "
+    "above the floor)",
+    "context_strongest_gap": "the same for the probe farthest beyond the floor within the context",
+    "context_neighbour_excess": "within a context: how much more often a row's 10 nearest neighbours of the same "
+    "value share its attribute than that value's base rate (weighted by rows; chance is 0)",
 }
 
 
@@ -96,6 +103,23 @@ def audit_figures(report: AuditReport) -> dict[str, float | None]:
         if retrieval is None
         else retrieval.attribute_share_after - retrieval.attribute_base_rate,
         "task_loss": task_loss,
+        **context_figures(report.context),
+    }
+
+
+def context_figures(context: ContextAudit | None) -> dict[str, float | None]:
+    """The figures within a context a verdict judges (None without a context, or with no value read).
+
+    The same one-sided rule as the population's probes (:attr:`ProbeScore.excess`), the floor in place of majority.
+    """
+    linear = strongest = None
+    if context is not None and context.after:
+        linear = context.after["linear"].excess
+        strongest = max(score.excess for score in context.after.values())
+    return {
+        "context_linear_gap": linear,
+        "context_strongest_gap": strongest,
+        "context_neighbour_excess": None if context is None else context.neighbour_excess,
     }
 
 
@@ -109,6 +133,9 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds) -> Verdict:
         "strongest_gap": "the strongest probe" + ("" if widest is None else f" ({PROBE_LABELS[widest[0]]})"),
         "neighbour_excess": "the 10-NN attribute share",
         "task_loss": "the task probe",
+        "context_linear_gap": "within the context, the linear probe",
+        "context_strongest_gap": "within the context, the strongest probe" + _context_strongest(report),
+        "context_neighbour_excess": "within the context, the 10-NN attribute share",
     }
     reads = (
         "explains at least {value:.3f} of the attribute's variance (R²)"
@@ -120,6 +147,9 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds) -> Verdict:
         "strongest_gap": reads,
         "neighbour_excess": "lies {value:.3f} above its base rate",
         "task_loss": "lost {value:.3f} of accuracy",
+        "context_linear_gap": "reads the attribute {value:.3f} beyond the floor",
+        "context_strongest_gap": "reads the attribute {value:.3f} beyond the floor",
+        "context_neighbour_excess": "lies {value:.3f} above its base rate",
     }
     status = "ok"
     reasons = []
@@ -135,6 +165,12 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds) -> Verdict:
         reasons.append(UNREADABLE)
         status = max(status, "warn", key=LEVELS.index)
     return Verdict(status=status, figures=figures, reasons=reasons)
+
+
+def _context_strongest(report: AuditReport) -> str:
+    """`` (the probe's name)`` of the strongest probe within the context, or nothing."""
+    name = None if report.context is None else report.context.strongest()
+    return "" if name is None else f" ({PROBE_LABELS[name]})"
 
 
 #: The reason a verdict gives when no probe read the attribute before erasure either.

@@ -57,7 +57,7 @@ def _open_sample(args: argparse.Namespace, *, streamed: bool) -> Any:
         "joint": args.joint,
         "merge_classes": args.merge_classes,
         "incomplete": args.incomplete_labels,
-        "given": getattr(args, "given", None),  # veil fit's option; veil audit reads no context
+        "given": getattr(args, "given", None),
     }
     return open_stream(args.data, **source) if streamed else load_labelled_sample(args.data, **source)
 
@@ -197,13 +197,16 @@ def audit(args: argparse.Namespace) -> int:
     from veil.fitting.fresh_audit import audit_stored_version
 
     registry = Registry(args.registry)
-    registry.read_version(args.name, args.version)  # an unknown or damaged version fails before the sample is read
+    # An unknown or damaged version fails before the sample is read.
+    card = registry.read_version(args.name, args.version).card
     streamed = args.stream or Path(args.data).is_dir()
+    sample, context_note = _fresh_sample(args, card, streamed=streamed)
     outcome = audit_stored_version(
         registry,
         args.name,
         args.version,
-        _open_sample(args, streamed=streamed),
+        sample,
+        notes=[] if context_note is None else [context_note],
         nonlinear=args.probes == "all",
         seed=args.seed,
         max_rows=args.rows,
@@ -223,6 +226,24 @@ def audit(args: argparse.Namespace) -> int:
     else:
         print(f"stored as fresh audit {record.number} of {where}")
     return _gate(outcome.verdict.status, args.fail_on)
+
+
+def _fresh_sample(args: argparse.Namespace, card: Any, *, streamed: bool) -> tuple[Any, str | None]:
+    """``veil audit``'s sample, with the context ``--given`` names or the one the version was fitted with.
+
+    The version's own context column is read when the sample has it; a sample without it is audited on the
+    population only, and the note returned says so.
+    """
+    fitted_with = (card.get("given") or {}).get("column")
+    if args.given is not None or fitted_with is None:
+        return _open_sample(args, streamed=streamed), None
+    try:
+        return _open_sample(argparse.Namespace(**{**vars(args), "given": fitted_with}), streamed=streamed), None
+    except DataError as error:
+        # Read again without it: an error that remains is the sample's own, and is raised as such.
+        sample = _open_sample(args, streamed=streamed)
+        why = str(error)
+    return sample, f"not audited within the version's context {fitted_with!r} ({why}): audited as a whole"
 
 
 def compare(args: argparse.Namespace) -> int:

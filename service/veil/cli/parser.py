@@ -275,7 +275,8 @@ def build_parser() -> VeilParser:
         type=_band,
         metavar="FIGURE=WARN,ALERT",
         help="levels the verdict of this version's audits is judged by, e.g. strongest_gap=0.05,0.1 (repeatable; "
-        "figures: linear_gap, strongest_gap, neighbour_excess, task_loss)",
+        "figures: linear_gap, strongest_gap, neighbour_excess, task_loss, and within a context "
+        "context_linear_gap, context_strongest_gap, context_neighbour_excess)",
     )
     fit.set_defaults(handler="fit")
 
@@ -292,6 +293,13 @@ def build_parser() -> VeilParser:
     audit.add_argument("--seed", type=int, default=0, help="seeds the folds, the probes and the row draw")
     audit.add_argument("--rows", type=int, help="audit a hash-drawn share of about this many rows (default: all)")
     audit.add_argument("--json", action="store_true", help="print the stored record as JSON")
+    audit.add_argument(
+        "--given",
+        metavar="COLUMN",
+        help="a categorical context column of the sample: every probe is then also trained and tested within each "
+        "of its values, against what the context alone tells (default: the column the version was fitted with, "
+        "--given, when the sample has it)",
+    )
     audit.set_defaults(handler="audit")
 
     versions = commands.add_parser(

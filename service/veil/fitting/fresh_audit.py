@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import hashlib
 import json
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
@@ -30,7 +30,7 @@ from veil.audit.report import AuditReport
 from veil.checks.verdict import Verdict
 from veil.defaults import AUDIT_ROWS, STREAM_CHUNK_ROWS
 from veil.errors import DataError
-from veil.fitting.store import audit_each_attribute, audit_folds
+from veil.fitting.store import audit_each_attribute, audit_folds, within_context
 from veil.maps.artifact import MapArtifact
 from veil.progress import phase
 from veil.registry import Registry, current_user
@@ -55,10 +55,10 @@ class FreshAudit:
 
 def _rows(
     sample: Sample, *, max_rows: int | None, seed: int, chunk_rows: int
-) -> tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None]:
-    """The sample's rows, or a hash-drawn share of about ``max_rows`` of them."""
+) -> tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None, NDArray[Any] | None]:
+    """The sample's rows, or a hash-drawn share of about ``max_rows`` of them, with their task and context labels."""
     share = 1.0 if max_rows is None else min(1.0, max_rows / max(sample.labelled_rows, 1))
-    xs, zs, tasks = [], [], []
+    xs, zs, tasks, contexts = [], [], [], []
     for partition in sample.partitions(chunk_rows):
         chunk = partition.load()
         kept = np.ones(len(chunk), bool) if share >= 1.0 else held_out_rows(chunk.index, fraction=share, seed=seed)
@@ -66,9 +66,12 @@ def _rows(
         zs.append(chunk.attribute[kept])
         if chunk.task is not None:
             tasks.append(chunk.task[kept])
+        if chunk.context is not None:
+            contexts.append(chunk.context[kept])
     if not xs or sum(len(z) for z in zs) == 0:
         raise DataError("the fresh sample has no labelled rows to audit")
-    return np.concatenate(xs), np.concatenate(zs), np.concatenate(tasks) if tasks else None
+    task, context = (np.concatenate(parts) if parts else None for parts in (tasks, contexts))
+    return np.concatenate(xs), np.concatenate(zs), task, context
 
 
 def audit_key(version_id: str, settings: dict[str, Any], *arrays: NDArray[Any] | None) -> str:
@@ -98,6 +101,7 @@ def audit_stored_version(
     seed: int = 0,
     max_rows: int | None = None,
     chunk_rows: int = STREAM_CHUNK_ROWS,
+    notes: Sequence[str] = (),
 ) -> FreshAudit:
     """Audit version ``reference`` of ``name`` on ``sample`` and append the result to the version's audits.
 
@@ -107,7 +111,8 @@ def audit_stored_version(
     name, reference : str
         The eraser and its version (id, sequence number or alias).
     sample : Sample
-        Fresh labelled rows: embeddings of the version's dimension, the attribute, optionally the task.
+        Fresh labelled rows: embeddings of the version's dimension, the attribute, optionally the task and a
+        context column (``sample.context_key``): every probe is then also measured within each of its values.
     nonlinear : bool, default=True
         Run every probe (otherwise the linear one only).
     seed : int, default=0
@@ -115,6 +120,8 @@ def audit_stored_version(
     max_rows : int, optional
         Audit a hash-drawn share of about this many rows.  Default: every row of a sample in memory, about
         :data:`veil.defaults.AUDIT_ROWS` of a streamed one (whose rows may not fit in memory).
+    notes : sequence of str
+        Notes for the record (how the sample was read).
 
     Raises
     ------
@@ -138,19 +145,21 @@ def audit_stored_version(
     settings = {"nonlinear": nonlinear, "seed": seed, "max_rows": max_rows}
     thresholds = card_thresholds(card)
     with phase("reading the fresh sample"):
-        x, z, task = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows)
-    # Reading is cheap beside the probes: the key names the rows and labels themselves.
-    key = audit_key(stored.id, settings, x, z, task)
+        x, z, task, given = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows)
+    context = None if given is None else (str(sample.context_key), given)
+    # Reading is cheap beside the probes: the key names the rows and labels themselves (the context too, only
+    # when there is one, so that the key of an audit without one is what it was).
+    key = audit_key(stored.id, settings, x, z, task, *(() if given is None else (given,)))
     earlier = registry.record(name, stored.id, AUDITS, key)
     if earlier is not None:
         report = AuditReport.from_dict(earlier.body["audit"])
         return FreshAudit(earlier, report, Verdict.from_dict(earlier.body["verdict"]), already_stored=True)
     attributes: list[tuple[str, AuditReport]] = []
-    notes = []
+    kept_notes = list(notes)
     if x.shape[0] < sample.labelled_rows:
-        notes.append(f"audited on a hash-drawn sample of {x.shape[0]} of the {sample.labelled_rows} rows")
+        kept_notes.append(f"audited on a hash-drawn sample of {x.shape[0]} of the {sample.labelled_rows} rows")
     if is_table(z):
-        attributes = _audit_each(stored.artifact, x, z, task, nonlinear=nonlinear, seed=seed)
+        attributes = _audit_each(stored.artifact, x, z, task, context, nonlinear=nonlinear, seed=seed)
         report = attributes[0][1]
     else:
         labels, codes = np.unique(z, return_inverse=True)
@@ -161,6 +170,7 @@ def audit_stored_version(
             x,
             z,
             task=task,
+            **within_context(context, None, z),
             folds=audit_folds(codes.astype(np.intp)),
             nonlinear=nonlinear,
             random_state=seed,
@@ -168,7 +178,7 @@ def audit_stored_version(
         fitted = {str(label) for label in card["attribute"]["classes"]}
         unseen = sorted({str(label) for label in labels} - fitted)
         if unseen:
-            notes.append(f"classes the version was not fitted on: {', '.join(unseen)}")
+            kept_notes.append(f"classes the version was not fitted on: {', '.join(unseen)}")
     judged = verdict_record(report, thresholds)
     entries = [
         {"name": attribute, "audit": one.to_dict(), "verdict": verdict_record(one, thresholds)}
@@ -188,11 +198,12 @@ def audit_stored_version(
                 "missing_labels_dropped": sample.dropped_rows,
                 "attribute": sample.attribute_key,
                 "task": sample.task_key,
+                "context": sample.context_key,
             },
             "settings": settings,
             "audit": report.to_dict(),
             "verdict": judged,
-            "notes": notes,
+            "notes": kept_notes,
             **({"attributes": entries} if entries else {}),
         }
     )
@@ -223,6 +234,7 @@ def _audit_each(
     x: NDArray[np.floating],
     z: NDArray[Any],
     task: NDArray[Any] | None,
+    context: tuple[str, NDArray[Any]] | None,
     *,
     nonlinear: bool,
     seed: int,
@@ -238,6 +250,7 @@ def _audit_each(
             x[rows],
             target,
             task=None if task is None else task[rows],
+            **within_context(context, rows, target),
             folds=folds,
             nonlinear=nonlinear,
             random_state=seed,

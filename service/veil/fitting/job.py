@@ -112,10 +112,18 @@ def fit_version(sample: Sample, request: FitRequest, *, registry: Registry) -> F
         fit_rows=total.fit_rows,
         fit_sample=rows.fit if sample.attribute_table else _coded(rows.fit, eraser),
         held_out=rows.held,
+        held_context=_held_context(sample, rows.total),
         reason=request.store.reason or f"fitted by veil fit ({request.fit.method}{streamed})",
         notes=notes,
         operating_points=operating_points,
     )
+
+
+def _held_context(sample: Sample, total: PartResult) -> tuple[str, NDArray[Any]] | None:
+    """The context column and its values on the audited held-out rows (None: the sample has no context)."""
+    if sample.context_key is None or not total.held_context:
+        return None
+    return str(sample.context_key), np.concatenate(total.held_context)
 
 
 def _prepare(sample: Sample, request: FitRequest) -> _Setup:

@@ -11,7 +11,7 @@ result (the moments to rounding, see :class:`veil.maps.moments.MomentState`).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -33,12 +33,17 @@ Rows = tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None]
 
 @dataclass(frozen=True, eq=False)
 class PartResult:
-    """What one partition (or a merge of consecutive ones) contributes: fitting moments, counts and samples."""
+    """What one partition (or a merge of consecutive ones) contributes: fitting moments, counts and samples.
+
+    ``held_context`` holds the context values of ``held_sample``'s rows, part by part, when the sample has a
+    context (``--given``): the audit then also reads the attribute within each value.
+    """
 
     moments: MomentState | None
     fit_rows: int
     held_sample: list[Rows]
     fit_sample: list[Rows]
+    held_context: list[NDArray[Any]] = field(default_factory=list)
 
     @classmethod
     def empty(cls) -> PartResult:
@@ -55,7 +60,9 @@ class PartResult:
         def restored(parts: list[Rows]) -> list[Rows]:
             return [(x, z.view(dtype), task) for x, z, task in parts]
 
-        return PartResult(self.moments, self.fit_rows, restored(self.held_sample), restored(self.fit_sample))
+        return PartResult(
+            self.moments, self.fit_rows, restored(self.held_sample), restored(self.fit_sample), self.held_context
+        )
 
     def merge(self, later: PartResult) -> PartResult:
         if self.moments is None or later.moments is None:
@@ -67,6 +74,7 @@ class PartResult:
             fit_rows=self.fit_rows + later.fit_rows,
             held_sample=self.held_sample + later.held_sample,
             fit_sample=self.fit_sample + later.fit_sample,
+            held_context=self.held_context + later.held_context,
         )
 
 
@@ -119,13 +127,16 @@ class PassPlan:
                 # With a context, the moments within each of its values too (merged like the rest, by value).
                 given=None if chunk.context is None else chunk.context[fit],
             )
-        held_rows = _select(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
-        fit_rows = _select(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT)
+        held_kept = _kept(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
+        held_rows = _rows(chunk, held_kept)
+        fit_rows = _rows(chunk, _kept(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT))
+        context = [] if chunk.context is None or not held_kept.any() else [chunk.context[held_kept]]
         return PartResult(
             moments=moments,
             fit_rows=int(np.count_nonzero(fit)),
             held_sample=[held_rows] if held_rows[0].shape[0] else [],
             fit_sample=[fit_rows] if fit_rows[0].shape[0] else [],
+            held_context=context,
         )
 
     def process_partition(self, partition: Partition) -> PartResult:
@@ -134,11 +145,15 @@ class PassPlan:
         return self.process(chunk, self.split(chunk))
 
 
-def _select(chunk: Chunk, side: NDArray[np.bool_], fraction: float, seed: int) -> Rows:
+def _kept(chunk: Chunk, side: NDArray[np.bool_], fraction: float, seed: int) -> NDArray[np.bool_]:
     """The rows of one side of the split that a hash draws with probability ``fraction``."""
     keep = side.copy()
     if fraction < 1.0:
         keep &= held_out_rows(chunk.index, fraction=fraction, seed=seed)
+    return keep
+
+
+def _rows(chunk: Chunk, keep: NDArray[np.bool_]) -> Rows:
     task = None if chunk.task is None else chunk.task[keep]
     return chunk.embeddings[keep], chunk.attribute[keep], task
 

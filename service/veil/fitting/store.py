@@ -58,12 +58,15 @@ def audit_and_store(
     reason: str,
     notes: list[str],
     operating_points: Sweep | None = None,
+    held_context: tuple[str, NDArray[Any]] | None = None,
 ) -> FitOutcome:
     """Audit a fitted eraser on held-out rows, build its card, reference and report, and store the version.
 
     ``fit_sample`` holds fitting rows with their attribute's class codes, or, for several attributes, their
     attribute table; each attribute is then audited on its own (the first categorical one's audit, reference
     and plots are the version's headline figures).  ``reason`` goes in the history if an alias is moved.
+    ``held_context`` names the context column and gives its value on each held-out row (a ``--given`` fit):
+    every categorical attribute is then also audited within each value.
     """
     seed, nonlinear = request.fit.seed, request.audit.nonlinear
     x_held, z_held, task_held = held_out
@@ -79,6 +82,7 @@ def audit_and_store(
                 x_held[rows],
                 target,
                 task=None if task_held is None else task_held[rows],
+                **within_context(held_context, rows, target),
                 folds=folds,
                 nonlinear=nonlinear,
                 random_state=seed,
@@ -120,7 +124,10 @@ def audit_and_store(
         codes_held = np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp)
         folds = audit_folds(codes_held)
         # The audit reports each probe's folds as a stage of its own.
-        report = audit(eraser, x_held, z_held, task=task_held, folds=folds, nonlinear=nonlinear, random_state=seed)
+        report = audit(
+            eraser, x_held, z_held, task=task_held, **within_context(held_context, None, z_held), folds=folds,
+            nonlinear=nonlinear, random_state=seed,
+        )  # fmt: skip
         x_plot = x_held
         fit_codes = fit_sample[1]
     with phase("reference statistics"):
@@ -159,6 +166,17 @@ def audit_and_store(
         version_id = registry.add_version(name, files, derived=report_page)
         promotion = None if alias is None else registry.promote(name, version_id, alias=alias, reason=reason)
     return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion)
+
+
+def within_context(
+    context: tuple[str, NDArray[Any]] | None, rows: NDArray[np.bool_] | None, target: NDArray[Any]
+) -> dict[str, Any]:
+    """The audit's ``given`` and ``given_name`` for ``rows`` (all: None) of a categorical ``target``; else none."""
+    # A continuous attribute (a column of numbers) has no classes to read within a value.
+    if context is None or target.ndim != 1:
+        return {}
+    column, values = context
+    return {"given": values if rows is None else values[rows], "given_name": column}
 
 
 def _first_categorical(z: NDArray[Any]) -> str | None:

@@ -16,6 +16,7 @@ from datetime import UTC, datetime
 from importlib import metadata
 from typing import Any
 
+from veil.audit.context_report import ContextAudit
 from veil.audit.points import Sweep, value_text
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
@@ -328,11 +329,28 @@ def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
                 f"{rt.attribute_share_before:.3f} → {rt.attribute_share_after:.3f} (base {rt.attribute_base_rate:.3f})",
             )
         )
+    if audit.context is not None:
+        rows.append(("within the context", context_headline(audit.context)))
     if audit.ranking is not None:
         rk = audit.ranking
         rows.append((f"NDKL@{rk.k}", f"{rk.ndkl_before:.4f} → {rk.ndkl_after:.4f} (0: every prefix at the base rates)"))
         rows.append((f"MaxSkew@{rk.k}", f"{rk.max_skew_before:.3f} → {rk.max_skew_after:.3f}"))
     return rows
+
+
+def context_headline(context: ContextAudit) -> str:
+    """The audit within a context in one line: the linear probe and the strongest against the floor, the worst value."""
+    if not context.after:
+        return f"no value of {context.column or 'the context'} has the rows to cross-validate within"
+    linear = context.after["linear"]
+    text = (
+        f"linear probe {context.before['linear'].accuracy:.3f} → {linear.accuracy:.3f}, floor {context.floor:.3f}, "
+        f"beyond the context {linear.excess:.3f}"
+    )
+    strongest = context.strongest()
+    if strongest is not None and strongest != "linear":
+        text += f"; {PROBE_LABELS[strongest]} beyond it {context.after[strongest].excess:.3f}"
+    return text + ("" if context.worst is None else f"; worst value {context.worst!r}")
 
 
 def operating_points_text(record: dict[str, Any]) -> list[str]:

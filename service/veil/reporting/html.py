@@ -21,6 +21,7 @@ from veil.registry.card import card_audit, card_verdict, method_text, operating_
 from veil.reporting import plots as drawn
 from veil.reporting import sections
 from veil.reporting.attributes import attributes_section
+from veil.reporting.context import context_section
 from veil.reporting.plotdata import PLOT_DATA_FILE, PlotData
 
 REPORT_FILE = "report.html"
@@ -123,6 +124,7 @@ def render_report(
         sections.figures_table(audit),
         sections.figure("Leakage before and after erasure", drawn.leakage_plot(audit), (8, 3.6), ""),
         sections.probe_table(audit),
+        context_section(audit),
         attributes_section(card),
         sections.figure(
             "Retrieval: who the nearest neighbours are", drawn.retrieval_plot(audit), (7, 3.4), "No retrieval figures."

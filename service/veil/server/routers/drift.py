@@ -53,6 +53,13 @@ _DRIFT_BODY = {
                         "labels by attribute, numbers for a continuous one (attributes left out are checked with "
                         "pseudo-labels)",
                     },
+                    "context": {
+                        "type": "array",
+                        "items": {"oneOf": [{"type": "string"}, {"type": "number"}]},
+                        "description": "each vector's value of a context column (a field, a query's category): the "
+                        "leakage is then also measured within each value, against what the context alone tells "
+                        "(without it, the population's figures only)",
+                    },
                 },
             }
         },
@@ -64,6 +71,10 @@ _DRIFT_BODY = {
 
 def _class_names(value: object) -> bool:
     return isinstance(value, list) and all(isinstance(v, str) for v in value)
+
+
+def _context_values(value: object) -> bool:
+    return isinstance(value, list) and all(isinstance(v, (str, int, float)) and not isinstance(v, bool) for v in value)
 
 
 def _labels_by_attribute(value: object) -> bool:
@@ -79,6 +90,7 @@ async def _run(
     labels: list[str] | dict[str, list[Any]] | None,
     catalog: Catalog,
     metrics: ServiceMetrics,
+    context: list[Any] | None = None,
 ) -> dict[str, Any]:
     served.check_dim(raw)
     try:
@@ -92,6 +104,7 @@ async def _run(
             raw,
             classes=served.classes,
             labels=labels,
+            context=context,
         )
     except ValueError as error:
         raise ServiceError("invalid_request", str(error)) from None
@@ -118,7 +131,10 @@ async def drift_of_sample(name: EraserName, request: Request) -> dict[str, Any]:
             "invalid_request",
             '"labels" must be a list of class names (strings), or an object of lists of class names or numbers',
         )
-    return await _run(served, vectors, labels, catalog, request.app.state.metrics)
+    context = fields.get("context") if call.media == JSON_MEDIA_TYPE else None
+    if context is not None and not _context_values(context):
+        raise ServiceError("invalid_request", '"context" must be a list of values (strings or numbers), one per vector')
+    return await _run(served, vectors, labels, catalog, request.app.state.metrics, context)
 
 
 @router.get(
