@@ -301,3 +301,27 @@ def test_a_labelled_sample_posts_each_attributes_labels(
     assert sent[0] == pronoun.tolist()
     assert sent[1] == {"pronoun": pronoun.tolist(), "age": age.tolist()}
     assert len(check_history(registry, PROFILES)) == 2
+
+
+def test_a_sample_with_a_context_posts_it_and_is_another_check(
+    monkeypatch: pytest.MonkeyPatch, registry: Registry, service_registry: ServiceRegistry, tmp_path: Path
+) -> None:
+    sent: list[Any] = []
+
+    def fake_drift(client: Any, name: str, vectors: Any = None, labels: Any = None, **kwargs: Any) -> dict[str, Any]:
+        sent.append(kwargs.get("context"))
+        return _report(service_registry.leace)
+
+    monkeypatch.setattr(VeilClient, "drift", fake_drift)
+    sample = tmp_path / "s.npz"
+    field = np.array(["care", "trades", "care"] * 10)
+    np.savez(sample, embedding=np.zeros((30, 384), dtype=np.float32), pronoun=np.array(["he", "she"] * 15), field=field)
+    common = ("patrol", PROFILES, "--service", "http://veil", "--registry", registry.url, "--sample", sample, "--once")
+    assert run(*common, "--attribute", "pronoun").code == 0
+    assert run(*common, "--attribute", "pronoun", "--given", "field").code == 0
+    assert sent == [None, field.tolist()]
+    # The same file and labels with a context is another check, recorded beside the first.
+    assert len(check_history(registry, PROFILES)) == 2
+    refused = run(*common, "--given", "region")
+    assert refused.code == 2
+    assert "has no array 'region'" in refused.err

@@ -366,30 +366,41 @@ def _posted_sample(args: argparse.Namespace) -> Any:
     if unknown:
         raise DataError(f"--continuous {unknown[0]} names no --attribute")
     if args.sample is None:
-        if keys:
-            raise DataError("--attribute names labels inside a --sample file; give the sample too")
+        if keys or args.given:
+            raise DataError("--attribute and --given name columns inside a --sample file; give the sample too")
         return None
     path = Path(args.sample)
     if not path.is_file():
         raise DataError(f"{path} does not exist")
     columns: dict[str, Any] = {}
+    context_column: Any = None
     try:
         if path.suffix.lower() == ".npy":
-            if keys:
-                raise DataError(f"{path.name} holds vectors only; labels come with a .npz sample")
+            if keys or args.given:
+                raise DataError(f"{path.name} holds vectors only; labels come with a .npz sample, and so does a context")
             vectors = np.load(path, allow_pickle=False)
         elif path.suffix.lower() == ".npz":
             with np.load(path, allow_pickle=False) as arrays:
-                missing = [key for key in (args.embeddings, *keys) if key not in arrays]
+                wanted = (args.embeddings, *keys, *([args.given] if args.given else []))
+                missing = [key for key in wanted if key not in arrays]
                 if missing:
                     raise DataError(f"{path.name} has no array {missing[0]!r}; it has {', '.join(arrays.files)}")
                 vectors = arrays[args.embeddings]
                 columns = {key: arrays[key] for key in keys}
+                if args.given is not None:
+                    context_column = arrays[args.given]
         else:
             raise DataError(f"a --sample is a .npy or .npz file, not {path.suffix or 'a file without a suffix'}")
     except (ValueError, OSError) as error:
         raise DataError(f"{path} cannot be read as a sample ({error})") from None
     vectors = check_embeddings(vectors, source=str(path))
+    context = None
+    if args.given is not None:
+        if context_column.shape != (vectors.shape[0],):
+            raise DataError(
+                f"{path.name}: {args.given!r} holds {context_column.size} values for {vectors.shape[0]} vectors"
+            )
+        context = [str(v) for v in context_column]
     labels: dict[str, list[str] | list[float]] = {}
     for key, column in columns.items():
         if column.shape != (vectors.shape[0],):
@@ -405,7 +416,7 @@ def _posted_sample(args: argparse.Namespace) -> Any:
     posted: list[str] | dict[str, list[str] | list[float]] | None = labels or None
     if len(keys) == 1 and keys[0] not in args.continuous:
         posted = [str(v) for v in labels[keys[0]]]
-    return PostedSample(vectors=vectors, labels=posted, file=path.name, sha256=file_sha256(path))
+    return PostedSample(vectors=vectors, labels=posted, file=path.name, sha256=file_sha256(path), context=context)
 
 
 def patrol(args: argparse.Namespace) -> int:

@@ -415,6 +415,12 @@ def build_parser() -> VeilParser:
         help="key of an attribute's labels in a .npz sample (repeatable, for a version of several attributes)",
     )
     patrol.add_argument(
+        "--given",
+        metavar="COLUMN",
+        help="key of a context column in a .npz sample (a field, a query's category): the leakage is also measured "
+        "within each of its values, against what the context alone tells",
+    )
+    patrol.add_argument(
         "--continuous",
         action="append",
         default=[],

@@ -55,7 +55,7 @@ def run_patrol(
         def check(eraser: str, posted: PostedSample | None) -> dict[str, Any]:
             if posted is None:
                 return client.drift(eraser)
-            return client.drift(eraser, posted.vectors, posted.labels)
+            return client.drift(eraser, posted.vectors, posted.labels, context=posted.context)
 
         done = 0
         while True:

@@ -32,13 +32,16 @@ class PostedSample:
 
     ``labels``: none (the service predicts pseudo-labels), one categorical
     attribute's class names (the version's first attribute), or attributes'
-    labels by name (numbers for a continuous one).
+    labels by name (numbers for a continuous one).  ``context``: each row's
+    value of a context column, for leakage within each value (None: the
+    population only).
     """
 
     vectors: NDArray[np.floating]
     labels: list[str] | dict[str, list[str] | list[float]] | None
     file: str
     sha256: str
+    context: list[str] | None = None
 
     def describe(self) -> dict[str, Any]:
         return {"kind": "posted sample", "file": self.file, "sha256": self.sha256, "rows": int(self.vectors.shape[0])}
@@ -61,6 +64,9 @@ def round_key(name: str, service: str, sample: PostedSample | None, slot: float,
     """The record key of a round: the eraser, the service, what is checked and the slot (its start and length)."""
     # A posted sample is its file and the labels it posts (another attribute of the same file is another check).
     what = "recent traffic" if sample is None else f"{sample.sha256}\n{json.dumps(sample.labels, sort_keys=True)}"
+    if sample is not None and sample.context is not None:
+        # Only then: the keys of rounds without a context stay what they were.
+        what += "\n" + json.dumps(sample.context)
     return hashlib.sha256(f"{name}\n{service}\n{what}\n{slot!r}\n{every!r}".encode()).hexdigest()[:16]
 
 
