@@ -99,14 +99,13 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
         sweep=args.sweep is not None,
         sweep_values=None if not args.sweep else tuple(_sweep_values(args.sweep)),
         targets=tuple(args.target),
-        given=args.given,
+        given=None if args.given is None else tuple(args.given),
         guard_population=not args.within_only,
+        pool_small_values=args.pool_small_values,
     )
-    if args.given is not None and (len(args.attribute) > 1 or args.continuous):
-        # Refused before the sample is read: the within-value moments are those of one categorical attribute.
-        raise DataError(
-            "--given guards one categorical attribute within a context for now, not several or a continuous one"
-        )
+    if args.given is not None and args.continuous:
+        # Refused before the sample is read: the within-value moments are those of categorical attributes.
+        raise DataError(f"--given guards categorical attributes; {args.continuous[0]!r} is continuous")
     audit = AuditSpec(
         nonlinear=args.probes == "all",
         rows=args.audit_rows if streamed else None,

@@ -116,8 +116,8 @@ class PassPlan:
                 x_fit,
                 encode_attribute(z_fit, x_fit.shape[0], require_categorical=not is_table(z_fit)),
                 by_class=self.by_class,
-                # With a context, the moments within each of its values too (merged like the rest, by value).
-                given=None if chunk.context is None else chunk.context[fit],
+                # With contexts, the moments within each of their values too (merged like the rest, by value).
+                given={key: values[fit] for key, values in chunk.contexts.items()} or None,
             )
         held_rows = _select(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
         fit_rows = _select(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT)
