@@ -74,12 +74,10 @@ def test_a_stored_version_makes_the_class_means_coincide_within_every_field_on_i
     card = stored.card
     values, rows = np.unique(field, return_counts=True)
     assert card["given"] == {
-        "column": "field",
-        "values": values.tolist(),
-        "rows": rows.tolist(),
+        "columns": [{"column": "field", "values": values.tolist(), "rows": rows.tolist()}],
         "guard_population": not within_only,
     }
-    assert card["request"]["fit"]["given"] == "field"
+    assert card["request"]["fit"]["given"] == ["field"]
     assert card["request"]["fit"]["guard_population"] is not within_only
     # The evidence document validates against docs/version-evidence.schema.json (the jsonschema library).
     _validate(_evidence(registry, "profiles", "1"))
@@ -127,8 +125,8 @@ def test_streamed_and_dask_fits_equal_the_in_memory_fit(tmp_path: Path) -> None:
     fit = ~holdout_mask(x.shape[0], fraction=0.2, seed=0)
     classes = np.unique(z)
     for key, artifact in artifacts.items():
-        given = artifact.moments.given
-        assert given is not None, key
+        assert artifact.moments.given is not None, key
+        given = artifact.moments.given.of("field")
         assert given.values.tolist() == np.unique(field).tolist()
         assert given.labels.tolist() == classes.tolist()
         for g, value in enumerate(given.values):
@@ -152,7 +150,9 @@ def test_streamed_and_dask_fits_equal_the_in_memory_fit(tmp_path: Path) -> None:
     for key in ("streamed", "dask"):
         np.testing.assert_allclose(artifacts[key].apply(x), reference, rtol=0, atol=tolerance, err_msg=key)
     assert fits["dask"].card["given"] == fits["streamed"].card["given"] == fits["memory"].card["given"]
-    assert fits["memory"].card["given"]["rows"] == [int(np.count_nonzero(fit & (field == v))) for v in np.unique(field)]
+    assert fits["memory"].card["given"]["columns"][0]["rows"] == [
+        int(np.count_nonzero(fit & (field == v))) for v in np.unique(field)
+    ]
 
 
 def test_the_artifact_keeps_the_per_value_moments_and_older_artifacts_load_without_them() -> None:
@@ -163,8 +163,11 @@ def test_the_artifact_keeps_the_per_value_moments_and_older_artifacts_load_witho
     loaded = decode_artifact(encode_artifact(guarded))
     assert loaded.moments.given is not None
     assert guarded.moments.given is not None
+    assert loaded.moments.given.columns == guarded.moments.given.columns == ("given",)
     for name in ("values", "labels", "class_counts", "mean_x", "comoment_xz"):
-        np.testing.assert_array_equal(getattr(loaded.moments.given, name), getattr(guarded.moments.given, name))
+        np.testing.assert_array_equal(
+            getattr(loaded.moments.given.of("given"), name), getattr(guarded.moments.given.of("given"), name)
+        )
     np.testing.assert_array_equal(loaded.apply(x), guarded.apply(x))
     # Written without a context, as every version before contexts was: the description has no "context" entry.
     plain: MapArtifact = decode_artifact(encode_artifact(LEACE().fit(x, z).export()))
@@ -195,14 +198,14 @@ def test_small_cells_are_refused_or_noted_by_value_and_class(tmp_path: Path) -> 
         return card
 
     # The small-class rules (veil.defaults: MIN_CLASS_ROWS = 5, FEW_CLASS_ROWS = 30) applied per (value, class).
-    with pytest.raises(DataError, match=r"class 'she' of 'z' has 3 fitting row\(s\) where 'field' is 'welding'"):
+    with pytest.raises(DataError, match=r"of 'field' .* fewer than 5 fitting rows: 'welding' \(class 'she' of 'z'"):
         fitted(3)
     assert not (tmp_path / "r").exists()
     noted = fitted(12)["notes"]
     assert any("class 'she' of 'z' has only 12 fitting rows where 'field' is 'welding'" in note for note in noted)
     one_class = fitted(0)
     assert any("where 'field' is 'welding' has class 'he' of 'z'" in note for note in one_class["notes"])
-    assert one_class["given"]["values"] == ["nursing", "plumbing", "teaching", "welding"]
+    assert one_class["given"]["columns"][0]["values"] == ["nursing", "plumbing", "teaching", "welding"]
 
 
 def test_bad_contexts_are_refused_by_name(tmp_path: Path) -> None:
@@ -210,7 +213,9 @@ def test_bad_contexts_are_refused_by_name(tmp_path: Path) -> None:
     refusals = [
         (["--given", "shift", "--method", "leace"], "has no array 'shift'"),
         (["--given", "field", "--method", "inlp"], "inlp cannot guard within a context (--given)"),
-        (["--attribute", "age_bracket", "--given", "field", "--method", "leace"], "not several"),
+        (["--continuous", "age_bracket", "--given", "field", "--method", "leace"], "'age_bracket' is continuous"),
+        (["--given", "field", "--given", "field", "--method", "leace"], "the context 'field' is given twice"),
+        (["--pool-small-values", "--method", "leace"], "(--pool-small-values) needs a context column (--given)"),
         (["--given", "field", "--method", "leace", "--sweep"], "a sweep measures"),
         (["--within-only", "--method", "leace"], "(--within-only) needs a context column (--given)"),
         (["--given", "pronoun", "--method", "leace"], "the context 'pronoun' is an attribute"),
@@ -240,11 +245,11 @@ def test_bad_contexts_are_refused_by_name(tmp_path: Path) -> None:
     dropped = open_stream(tmp_path / "x.parquet", attribute="z", given="field", drop_missing=True)
     assert dropped.dropped_rows == gaps.size
     outcome = fit_version(dropped, _request("dropped", chunk_rows=400), registry=Registry(tmp_path / "r2"))
-    assert sum(outcome.card["given"]["rows"]) == outcome.card["data"]["fit_rows"]
+    assert sum(outcome.card["given"]["columns"][0]["rows"]) == outcome.card["data"]["fit_rows"]
     assert outcome.card["data"]["missing_labels_dropped"] == gaps.size
 
     # The request and the sample must agree on the context, before the pass.
     plain = load_labelled_sample(tmp_path / "x.npy", attribute="z", labels=tmp_path / "labels.csv", drop_missing=True)
-    with pytest.raises(DataError, match="read the sample with given='field'"):
+    with pytest.raises(DataError, match=r"read the sample with given=\('field',\)"):
         fit_version(plain, _request("mismatch"), registry=Registry(tmp_path / "r3"))
     assert not (tmp_path / "r3").exists()

@@ -240,7 +240,7 @@ def test_killed_patrols_leave_no_partial_record_and_the_next_run_completes_the_s
         ({}, ("--sample", "missing.npy"), "missing.npy does not exist"),
         ({"s.csv": b"1,2\n"}, ("--sample", "s.csv"), "a --sample is a .npy or .npz file, not .csv"),
         ({"s.npz": None}, ("--sample", "s.npz", "--attribute", "gender"), "has no array 'gender'"),
-        ({"s.npy": None}, ("--sample", "s.npy", "--attribute", "pronoun"), "labels come with a .npz sample"),
+        ({"s.npy": None}, ("--sample", "s.npy", "--attribute", "pronoun"), "come with a .npz sample"),
         ({}, ("--attribute", "pronoun"), "give the sample too"),
         (
             {"s.npz": None},

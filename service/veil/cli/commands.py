@@ -99,14 +99,13 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
         sweep=args.sweep is not None,
         sweep_values=None if not args.sweep else tuple(_sweep_values(args.sweep)),
         targets=tuple(args.target),
-        given=args.given,
+        given=None if args.given is None else tuple(args.given),
         guard_population=not args.within_only,
+        pool_small_values=args.pool_small_values,
     )
-    if args.given is not None and (len(args.attribute) > 1 or args.continuous):
-        # Refused before the sample is read: the within-value moments are those of one categorical attribute.
-        raise DataError(
-            "--given guards one categorical attribute within a context for now, not several or a continuous one"
-        )
+    if args.given is not None and args.continuous:
+        # Refused before the sample is read: the within-value moments are those of categorical attributes.
+        raise DataError(f"--given guards categorical attributes; {args.continuous[0]!r} is continuous")
     audit = AuditSpec(
         nonlinear=args.probes == "all",
         rows=args.audit_rows if streamed else None,
@@ -234,7 +233,10 @@ def _fresh_sample(args: argparse.Namespace, card: Any, *, streamed: bool) -> tup
     The version's own context column is read when the sample has it; a sample without it is audited on the
     population only, and the note returned says so.
     """
-    fitted_with = (card.get("given") or {}).get("column")
+    from veil.registry.card import given_columns
+
+    # The audit reads within one column: the first the version was fitted with.
+    fitted_with = given_columns(card["given"])[0]["column"] if card.get("given") else None
     if args.given is not None or fitted_with is None:
         return _open_sample(args, streamed=streamed), None
     try:
@@ -377,7 +379,7 @@ def _posted_sample(args: argparse.Namespace) -> Any:
     try:
         if path.suffix.lower() == ".npy":
             if keys or args.given:
-                raise DataError(f"{path.name} holds vectors only; labels come with a .npz sample, and so does a context")
+                raise DataError(f"{path.name} holds vectors only; labels and a context come with a .npz sample")
             vectors = np.load(path, allow_pickle=False)
         elif path.suffix.lower() == ".npz":
             with np.load(path, allow_pickle=False) as arrays:

@@ -220,9 +220,18 @@ def build_parser() -> VeilParser:
     fit.add_argument(
         "--given",
         metavar="COLUMN",
-        help="a categorical context (a field, a query's category) to guard the attribute within: the class means "
-        "coincide within every value of COLUMN on the fitting rows (leace, meanproj; one categorical attribute); "
-        "a missing value is refused or dropped like a missing label",
+        action="append",
+        help="a categorical context (a field, a query's category) to guard the attributes within: the class means "
+        "coincide within every value of COLUMN on the fitting rows (leace, meanproj; categorical attributes); "
+        "repeat it for several columns, each guarded on its own (not their combinations: for those, give one "
+        "column holding the combined value); a missing value is refused or dropped like a missing label",
+    )
+    fit.add_argument(
+        "--pool-small-values",
+        action="store_true",
+        help=f"with --given, pool the values of a column that have a class of fewer than {MIN_CLASS_ROWS} fitting "
+        "rows into one group (its guarantee holds for their rows together; the card lists them) instead of "
+        "refusing them",
     )
     fit.add_argument(
         "--within-only",

@@ -181,7 +181,7 @@ class MomentErasure(LinearErasure):
         """
         return False
 
-    def fit(self, X: ArrayLike, z: object, *, given: ArrayLike | None = None) -> MomentErasure:
+    def fit(self, X: ArrayLike, z: object, *, given: object = None) -> MomentErasure:
         """Fit the eraser.
 
         Parameters
@@ -190,10 +190,12 @@ class MomentErasure(LinearErasure):
             Embeddings.
         z : array-like of shape (n_samples,) or (n_samples, m)
             Class labels of the attribute, or a numeric attribute matrix.
-        given : array-like of shape (n_samples,), optional
-            Each row's context value (a query's category, an opening): the
-            attribute is then also guarded within every value, where a ranker
-            compares items.
+        given : array-like of shape (n_samples,), or mapping of str to such arrays, or 2-D table, optional
+            Each row's context value (a query's category, an opening), or its
+            value of each of several context columns (a mapping by name, a data
+            frame): every attribute is then also guarded within every value of
+            each column on its own, where a ranker compares items (see
+            :mod:`veil.maps.given`).
 
         Returns
         -------
@@ -201,10 +203,9 @@ class MomentErasure(LinearErasure):
         """
         by_class = self.needs_class_moments
         array, attribute = self._validate_fit_input(X, z, reset=True)
-        context = None if given is None else np.asarray(given)
-        return self._fit_state(MomentState.from_batch(array, attribute, by_class=by_class, given=context))
+        return self._fit_state(MomentState.from_batch(array, attribute, by_class=by_class, given=given))
 
-    def partial_fit(self, X: ArrayLike, z: object, *, given: ArrayLike | None = None) -> MomentErasure:
+    def partial_fit(self, X: ArrayLike, z: object, *, given: object = None) -> MomentErasure:
         """Add a chunk of rows; after each call the eraser is that of all rows so far.
 
         Classes and context values may appear in any chunk.  Until two classes
@@ -217,8 +218,7 @@ class MomentErasure(LinearErasure):
         by_class = self.needs_class_moments
         first = not hasattr(self, "moments_")
         array, attribute = self._validate_fit_input(X, z, reset=first)
-        context = None if given is None else np.asarray(given)
-        chunk = MomentState.from_batch(array, attribute, by_class=by_class, given=context)
+        chunk = MomentState.from_batch(array, attribute, by_class=by_class, given=given)
         merged = chunk if first else self.moments_.merge(chunk)
         self.moments_ = merged
         try:

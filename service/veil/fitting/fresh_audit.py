@@ -66,8 +66,9 @@ def _rows(
         zs.append(chunk.attribute[kept])
         if chunk.task is not None:
             tasks.append(chunk.task[kept])
-        if chunk.context is not None:
-            contexts.append(chunk.context[kept])
+        audited = next(iter(chunk.contexts.values()), None)
+        if audited is not None:
+            contexts.append(audited[kept])
     if not xs or sum(len(z) for z in zs) == 0:
         raise DataError("the fresh sample has no labelled rows to audit")
     task, context = (np.concatenate(parts) if parts else None for parts in (tasks, contexts))
@@ -146,7 +147,7 @@ def audit_stored_version(
     thresholds = card_thresholds(card)
     with phase("reading the fresh sample"):
         x, z, task, given = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows)
-    context = None if given is None else (str(sample.context_key), given)
+    context = None if given is None else (sample.context_keys[0], given)
     # Reading is cheap beside the probes: the key names the rows and labels themselves (the context too, only
     # when there is one, so that the key of an audit without one is what it was).
     key = audit_key(stored.id, settings, x, z, task, *(() if given is None else (given,)))
@@ -198,7 +199,7 @@ def audit_stored_version(
                 "missing_labels_dropped": sample.dropped_rows,
                 "attribute": sample.attribute_key,
                 "task": sample.task_key,
-                "context": sample.context_key,
+                "context": sample.context_keys[0] if sample.context_keys else None,
             },
             "settings": settings,
             "audit": report.to_dict(),

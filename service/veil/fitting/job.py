@@ -20,6 +20,7 @@ INLP (logistic, SVM), R-LACE        the rows                      a hash sample 
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from functools import partial
@@ -32,13 +33,13 @@ from veil.audit.points import Sweep
 from veil.defaults import AUDIT_ROWS, FEW_CLASS_ROWS, FIT_SAMPLE_ROWS, MIN_CLASS_ROWS
 from veil.erasers import INLP, Erasure, MomentErasure
 from veil.errors import DataError
+from veil.fitting.contexts import check_context_options, checked_contexts
 from veil.fitting.methods import fit_collecting_notes, make_eraser
 from veil.fitting.plan import PartResult, PassPlan, concatenated
 from veil.fitting.request import FitRequest, MethodSpec, ReadingSpec
 from veil.fitting.store import FitOutcome, audit_and_store, audit_folds
 from veil.fitting.sweep import Target, Value, parse_target, run_sweep
 from veil.fitting.sweep import sweep_values as strengths
-from veil.maps.context import ContextMoments
 from veil.maps.moments import MomentState
 from veil.progress import advance, phase
 from veil.registry import Registry
@@ -100,7 +101,7 @@ def fit_version(sample: Sample, request: FitRequest, *, registry: Registry) -> F
     setup = _prepare(sample, request)
     notes: list[str] = []
     total = _read(setup, request.reading, sample, notes)
-    rows = _checked_rows(sample, setup, total, notes)
+    rows = _checked_rows(sample, setup, total, notes, pool=request.fit.pool_small_values)
     eraser, operating_points = _fit(setup, request, rows, notes)
     notes += _sampling_notes(setup, request.fit.method, rows, expected_held=_expected_held(sample, request))
     streamed = ", streamed" if setup.streamed else ""
@@ -120,10 +121,10 @@ def fit_version(sample: Sample, request: FitRequest, *, registry: Registry) -> F
 
 
 def _held_context(sample: Sample, total: PartResult) -> tuple[str, NDArray[Any]] | None:
-    """The context column and its values on the audited held-out rows (None: the sample has no context)."""
-    if sample.context_key is None or not total.held_context:
+    """The first context column and its values on the audited held-out rows (None: the sample has no context)."""
+    if not sample.context_keys or not total.held_context:
         return None
-    return str(sample.context_key), np.concatenate(total.held_context)
+    return sample.context_keys[0], np.concatenate(total.held_context)
 
 
 def _prepare(sample: Sample, request: FitRequest) -> _Setup:
@@ -137,7 +138,7 @@ def _prepare(sample: Sample, request: FitRequest) -> _Setup:
     # Several attributes (or a continuous one) come as a table, the labels read and checked before the pass.
     if sample.attribute_table:
         _check_table_options(spec.method, eraser, spec.sweeps)
-    _check_context_options(sample, spec)
+    check_context_options(sample, spec)
     by_class = exact_moments and _needs_class_moments(spec, eraser)
     streams_inlp = streamed and isinstance(eraser, INLP) and eraser.classifier == "moments"
     if reading.engine == "dask" and streams_inlp:
@@ -164,24 +165,6 @@ def _prepare(sample: Sample, request: FitRequest) -> _Setup:
         by_class=by_class,
     )
     return _Setup(eraser, partitions, plan, targets, streams_inlp, audit_rows, fit_sample_rows)
-
-
-def _check_context_options(sample: Sample, spec: MethodSpec) -> None:
-    """Refuse, before the pass, a context the request and the sample do not agree on (the request checks the rest)."""
-    if spec.given is None and sample.context_key is not None:
-        raise DataError(
-            f"the sample was read with the context {sample.context_key!r} but the request guards no context "
-            f"(MethodSpec(given={sample.context_key!r}))"
-        )
-    if spec.given is None:
-        return
-    if sample.context_key != spec.given:
-        raise DataError(f"the request guards within {spec.given!r}: read the sample with given={spec.given!r}")
-    if sample.attribute_table:
-        raise DataError(
-            "guarding within a context (--given) takes one categorical attribute for now, not several or a "
-            "continuous one"
-        )
 
 
 def _needs_class_moments(spec: MethodSpec, eraser: Erasure) -> bool:
@@ -212,8 +195,11 @@ def _read(setup: _Setup, reading: ReadingSpec, sample: Sample, notes: list[str])
     return _local_pass(setup.plan, setup.partitions, setup.eraser if setup.streams_inlp else None, notes)
 
 
-def _checked_rows(sample: Sample, setup: _Setup, total: PartResult, notes: list[str]) -> _Rows:
-    """The pass's rows, once the classes and the split are known to make a version; notes on small classes."""
+def _checked_rows(sample: Sample, setup: _Setup, total: PartResult, notes: list[str], *, pool: bool) -> _Rows:
+    """The pass's rows, once the classes and the split are known to make a version; notes on small classes.
+
+    Context values with a small class are refused, or pooled when ``pool`` (see :mod:`veil.fitting.contexts`).
+    """
     x_fit, z_fit, _ = concatenated(total.fit_sample, "fit")
     held = concatenated(total.held_sample, "audit")
     # Small classes first: a class too small to fit is refused with its remedy, before the audit's needs are checked.
@@ -226,7 +212,10 @@ def _checked_rows(sample: Sample, setup: _Setup, total: PartResult, notes: list[
     for attribute, labels, counts in counted:
         notes += _small_classes(attribute, labels, counts)
     if total.moments is not None and total.moments.given is not None:
-        notes += _small_cells(sample.attribute_key, str(sample.context_key), total.moments.given)
+        # Small context values refused or pooled, on the merged moments: the fit reads the pooled ones.
+        moments, cell_notes = checked_contexts(total.moments, sample.attribute_key, pool=pool)
+        total = dataclasses.replace(total, moments=moments)
+        notes += cell_notes
     if sample.attribute_table and total.moments is not None and total.moments.partial:
         rows = ", ".join(
             f"{block.name} {state.count}"
@@ -420,37 +409,6 @@ def _small_classes(attribute: str, classes: NDArray[Any], counts: NDArray[np.int
         for label, count in zip(classes[present], counts[present], strict=True)
         if count < FEW_CLASS_ROWS
     ]
-
-
-def _small_cells(attribute: str, context: str, moments: ContextMoments) -> list[str]:
-    """The small-class rules within each value of the context: each (value, class) cell as a class of its own.
-
-    A value whose fitting rows all have one class adds nothing to the within-value guarantee (there is no
-    class mean to compare with); the card says so.
-    """
-    notes = []
-    for value, counts in zip(moments.values, moments.class_counts, strict=True):
-        present = counts > 0
-        for label, count in zip(moments.labels[present], counts[present], strict=True):
-            if count < MIN_CLASS_ROWS:
-                raise DataError(
-                    f"class {str(label)!r} of {attribute!r} has {int(count)} fitting row(s) where {context!r} is "
-                    f"{str(value)!r}; a class needs at least {MIN_CLASS_ROWS} within each value: merge the class "
-                    f"with another (--merge-classes {attribute}:{label},OTHER=NEW), merge or drop that value of "
-                    f"{context!r}, or add rows"
-                )
-            if count < FEW_CLASS_ROWS:
-                notes.append(
-                    f"class {str(label)!r} of {attribute!r} has only {int(count)} fitting rows where {context!r} is "
-                    f"{str(value)!r} (fewer than {FEW_CLASS_ROWS}): the within-value statistics there are uncertain"
-                )
-        if np.count_nonzero(present) == 1:
-            only = str(moments.labels[present][0])
-            notes.append(
-                f"every fitting row where {context!r} is {str(value)!r} has class {only!r} of {attribute!r}: that "
-                "value adds nothing to the guarantee within the context"
-            )
-    return notes
 
 
 def _check_split_classes(attribute: str, fitted: NDArray[Any], z_held: NDArray[Any], *, audit_sampled: bool) -> None:

@@ -124,13 +124,15 @@ class PassPlan:
                 x_fit,
                 encode_attribute(z_fit, x_fit.shape[0], require_categorical=not is_table(z_fit)),
                 by_class=self.by_class,
-                # With a context, the moments within each of its values too (merged like the rest, by value).
-                given=None if chunk.context is None else chunk.context[fit],
+                # With contexts, the moments within each of their values too (merged like the rest, by value).
+                given={key: values[fit] for key, values in chunk.contexts.items()} or None,
             )
         held_kept = _kept(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
         held_rows = _rows(chunk, held_kept)
         fit_rows = _rows(chunk, _kept(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT))
-        context = [] if chunk.context is None or not held_kept.any() else [chunk.context[held_kept]]
+        # The audit reads within the first context column (the first --given).
+        audited = next(iter(chunk.contexts.values()), None)
+        context = [] if audited is None or not held_kept.any() else [audited[held_kept]]
         return PartResult(
             moments=moments,
             fit_rows=int(np.count_nonzero(fit)),

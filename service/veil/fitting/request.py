@@ -52,13 +52,19 @@ class MethodSpec:
     targets : tuple of str
         Targets such as ``"nn-attribute <= base + 0.05"``: the version stored is the sweep's point of least
         distortion that meets every one.
-    given : str, optional
-        A categorical context column (a field, a query's category): the attribute is also guarded within every
-        value of it, ``Cov(x', z | value) = 0`` on the fitting rows (leace and meanproj; the sample is read with
-        the same column, see :func:`veil.samples.sources.load_labelled_sample`).
+    given : str or tuple of str, optional
+        Categorical context columns (a field, a query's category): every categorical attribute is also guarded
+        within every value of each column on its own, ``Cov(x', z | column = value) = 0`` on the fitting rows
+        (leace and meanproj; the sample is read with the same columns, see
+        :func:`veil.samples.sources.load_labelled_sample`).  Not within the combinations of several columns:
+        for those, give one column holding the combined value (see :mod:`veil.maps.given`).  Stored as a tuple.
     guard_population : bool, default=True
         With a context, also guard the population as a whole.  False guards within the values only: what the
         context itself says about the attribute (fields skewed by it) then stays readable across values.
+    pool_small_values : bool, default=False
+        A context value with a class of too few fitting rows (:data:`veil.defaults.MIN_CLASS_ROWS`) is refused,
+        naming it; with this, such values of a column are pooled into one group instead, whose guarantee holds
+        for their rows together (the card lists them).
     """
 
     method: str
@@ -70,12 +76,17 @@ class MethodSpec:
     sweep: bool = False
     sweep_values: tuple[SweepValue, ...] | None = None
     targets: tuple[str, ...] = ()
-    given: str | None = None
+    given: str | tuple[str, ...] | None = None
     guard_population: bool = True
+    pool_small_values: bool = False
 
     def __post_init__(self) -> None:
         if not 0.0 < self.holdout < 1.0:
             raise DataError(f"the held-out share must be between 0 and 1, got {self.holdout}")
+        if isinstance(self.given, str):
+            object.__setattr__(self, "given", (self.given,))
+        elif self.given is not None:
+            object.__setattr__(self, "given", tuple(self.given))
         self._check_context()
         # Frozen all the way down: a request is a record, and the card is written from it after the fit.
         object.__setattr__(self, "params", MappingProxyType(dict(self.params)))
@@ -88,7 +99,15 @@ class MethodSpec:
         if self.given is None:
             if not self.guard_population:
                 raise DataError("guarding within a context only (--within-only) needs a context column (--given)")
+            if self.pool_small_values:
+                raise DataError("pooling small context values (--pool-small-values) needs a context column (--given)")
             return
+        if not self.given:
+            raise DataError("given names no context column; leave it out to guard the population only")
+        keys = self.context_columns
+        twice = [key for position, key in enumerate(keys) if key in keys[:position]]
+        if twice:
+            raise DataError(f"the context {twice[0]!r} is given twice; give each context column once")
         if self.method not in CONTEXT_METHODS:
             raise DataError(
                 f"{self.method} cannot guard within a context (--given); use {' or '.join(CONTEXT_METHODS)}"
@@ -97,6 +116,11 @@ class MethodSpec:
             raise DataError(
                 "a sweep measures the attribute over the whole population; fit --given without --sweep/--target"
             )
+
+    @property
+    def context_columns(self) -> tuple[str, ...]:
+        """The context columns, in the order given (empty: the population only)."""
+        return () if self.given is None else tuple(self.given)
 
     @property
     def sweeps(self) -> bool:
@@ -113,8 +137,9 @@ class MethodSpec:
             "sweep": self.sweeps,
             "sweep_values": None if self.sweep_values is None else list(self.sweep_values),
             "targets": list(self.targets),
-            "given": self.given,
+            "given": None if self.given is None else list(self.context_columns),
             "guard_population": self.guard_population,
+            "pool_small_values": self.pool_small_values,
         }
 
 

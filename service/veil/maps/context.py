@@ -16,28 +16,28 @@ numbers): the whitening uses the pooled covariance of every row, which the
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.typing import NDArray
 
-from veil.maps.attribute import EncodedAttribute, as_label_array
+from veil.maps.attribute import as_label_array
 from veil.maps.linalg import whitening_factors
 
 Float64Array = NDArray[np.float64]
 
 
-def checked_context(given: NDArray[np.generic], attribute: EncodedAttribute) -> NDArray[np.generic]:
+def checked_context(given: NDArray[np.generic], n_rows: int, *, what: str = "context values") -> NDArray[np.generic]:
     """The context values as labels NumPy can sort and store; ``ValueError`` naming why they cannot be used."""
-    if not attribute.is_categorical:
-        raise ValueError("guarding within a context needs one categorical attribute (1-D class labels z)")
-    if given.ndim != 1 or given.shape[0] != attribute.matrix.shape[0]:
-        raise ValueError(
-            f"the context needs one value per row: got shape {given.shape} for {attribute.matrix.shape[0]} rows"
-        )
+    if given.ndim != 1 or given.shape[0] != n_rows:
+        raise ValueError(f"the context needs one value per row: got shape {given.shape} for {n_rows} rows")
     # Missing values (None, NaN) and mixed types are refused there; object arrays of text become text arrays,
     # which the artifact stores without pickle.
-    return as_label_array(given, what="context values")
+    return as_label_array(given, what=what)
+
+
+def _no_values() -> NDArray[np.generic]:
+    return np.array([], dtype=np.int64)
 
 
 @dataclass(frozen=True, eq=False)
@@ -55,6 +55,10 @@ class ContextMoments:
     mean_x : ndarray of shape (G, d)
     comoment_xz : ndarray of shape (G, d, C)
         Centred within each value, ``z`` the class indicators.
+    pooled : ndarray of shape (P,)
+        Values whose rows were pooled into one group (too few rows of some class to be guarded on their own,
+        see :meth:`pooled_values`).  When there are any, ``values`` holds the others and the arrays have one row
+        more, last: the pooled group's.  Empty otherwise.
     """
 
     values: NDArray[np.generic]
@@ -62,6 +66,7 @@ class ContextMoments:
     class_counts: NDArray[np.int64]
     mean_x: Float64Array
     comoment_xz: Float64Array
+    pooled: NDArray[np.generic] = field(default_factory=_no_values)
 
     @classmethod
     def from_batch(cls, x: NDArray[np.floating], z: NDArray[np.generic], given: NDArray[np.generic]) -> ContextMoments:
@@ -102,6 +107,8 @@ class ContextMoments:
 
     def merge(self, other: ContextMoments) -> ContextMoments:
         """The moments of the union of both sets of rows: Chan, Golub and LeVeque's update within each value."""
+        if self.pooled.size or other.pooled.size:
+            raise ValueError("moments with pooled context values are final: merge the moments before pooling")
         if self.mean_x.shape[1] != other.mean_x.shape[1]:
             raise ValueError(f"cannot merge moments of {self.mean_x.shape[1]} and {other.mean_x.shape[1]} features")
         values, labels = np.union1d(self.values, other.values), np.union1d(self.labels, other.labels)
@@ -124,6 +131,41 @@ class ContextMoments:
             comoment_xz,
         )
 
+    def pooled_values(self, members: NDArray[np.generic]) -> ContextMoments:
+        """The same moments with the rows of the values ``members`` pooled into one group (the last row).
+
+        The group's moments are those of the union of its values' rows (the
+        merge above), so a guarantee fitted from them holds for the pooled
+        rows together, not within each of their values.
+        """
+        if self.pooled.size:
+            raise ValueError("these moments are pooled already")
+        inside = np.isin(self.values, members)
+        if not inside.any():
+            return self
+        kept = ContextMoments(
+            self.values[~inside], self.labels, self.class_counts[~inside], self.mean_x[~inside],
+            self.comoment_xz[~inside],
+        )  # fmt: skip
+        group = ContextMoments(
+            self.values[inside][:1], self.labels, self.class_counts[inside][:1], self.mean_x[inside][:1],
+            self.comoment_xz[inside][:1],
+        )  # fmt: skip
+        for g in np.flatnonzero(inside)[1:]:
+            one = ContextMoments(
+                group.values, self.labels, self.class_counts[g : g + 1], self.mean_x[g : g + 1],
+                self.comoment_xz[g : g + 1],
+            )  # fmt: skip
+            group = group.merge(one)
+        return ContextMoments(
+            kept.values,
+            self.labels,
+            np.concatenate([kept.class_counts, group.class_counts]),
+            np.concatenate([kept.mean_x, group.mean_x]),
+            np.concatenate([kept.comoment_xz, group.comoment_xz]),
+            pooled=self.values[inside],
+        )
+
     def standardized_cross_covariances(self) -> Float64Array:
         """Every value's ``Cov(x, z̃ | g)``, weighted by ``sqrt(n_g / n)`` and stacked, shape (d, Σ_g (C_g - 1)).
 
@@ -139,7 +181,7 @@ class ContextMoments:
         """
         total = int(self.counts.sum())
         blocks = []
-        for g in range(self.values.size):
+        for g in range(self.class_counts.shape[0]):
             n_g = int(self.class_counts[g].sum())
             present = int(np.count_nonzero(self.class_counts[g]))
             if n_g == 0 or present < 2:

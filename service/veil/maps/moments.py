@@ -22,7 +22,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.maps.attribute import AttributeBlock, EncodedAttribute, check_blocks, check_enough_rows
-from veil.maps.context import ContextMoments, checked_context
+from veil.maps.given import GivenMoments, context_columns
 from veil.maps.linalg import whitening_factors
 from veil.samples.attributes import JOINT_LABEL_SEPARATOR
 
@@ -42,8 +42,8 @@ def _rows_of(attribute: EncodedAttribute, start: int, stop: int) -> EncodedAttri
 Float64Array = NDArray[np.float64]
 
 
-def _slice(given: NDArray[np.generic] | None, start: int) -> NDArray[np.generic] | None:
-    return None if given is None else given[start : start + BLOCK_ROWS]
+def _slice(given: Mapping[str, NDArray[np.generic]] | None, start: int) -> dict[str, NDArray[np.generic]] | None:
+    return None if given is None else {name: values[start : start + BLOCK_ROWS] for name, values in given.items()}
 
 
 @dataclass(frozen=True, eq=False)
@@ -74,6 +74,9 @@ class MomentState:
         Incomplete labels: each attribute's own state, of the rows that carry
         it (``x`` and its encoding); this state then holds the moments of
         ``x`` over every row and no columns of ``z``.  Empty otherwise.
+    given : GivenMoments or None
+        The moments within every value of each context column, for every
+        categorical attribute (:class:`~veil.maps.given.GivenMoments`); None without a context.
     """
 
     count: int
@@ -86,7 +89,7 @@ class MomentState:
     class_comoments: Float64Array | None = None
     blocks: tuple[AttributeBlock, ...] = ()
     partial: tuple[MomentState, ...] = ()
-    given: ContextMoments | None = None
+    given: GivenMoments | None = None
 
     @classmethod
     def from_batch(
@@ -95,7 +98,7 @@ class MomentState:
         attribute: EncodedAttribute,
         *,
         by_class: bool = False,
-        given: NDArray[np.generic] | None = None,
+        given: object = None,
     ) -> MomentState:
         """Moments of one batch of rows ``x`` (n, d) with their encoded attribute.
 
@@ -109,30 +112,33 @@ class MomentState:
         attribute : EncodedAttribute
         by_class : bool, default=False
             Also accumulate each class's co-moments (a categorical attribute only).
-        given : ndarray of shape (n,), optional
-            Each row's context value: also accumulate the moments within each value
-            (:class:`~veil.maps.context.ContextMoments`, a categorical attribute only).
+        given : array-like of shape (n,), mapping of str to array-like, or 2-D table, optional
+            Each row's value of one context column, or of several by name (see
+            :func:`~veil.maps.given.context_columns`): also accumulate the moments within
+            every value of each, for every categorical attribute (:class:`~veil.maps.given.GivenMoments`).
         """
         if by_class and not attribute.is_categorical:
             raise ValueError("per-class moments need 1-D class labels z, not a 2-D attribute matrix")
-        if given is not None:
-            given = checked_context(given, attribute)
-        state = cls._from_block(x[:BLOCK_ROWS], _rows_of(attribute, 0, BLOCK_ROWS), by_class, _slice(given, 0))
+        columns = None if given is None else context_columns(given, x.shape[0])
+        state = cls._from_block(x[:BLOCK_ROWS], _rows_of(attribute, 0, BLOCK_ROWS), by_class, _slice(columns, 0))
         for start in range(BLOCK_ROWS, x.shape[0], BLOCK_ROWS):
             stop = min(start + BLOCK_ROWS, x.shape[0])
-            block = cls._from_block(x[start:stop], _rows_of(attribute, start, stop), by_class, _slice(given, start))
+            block = cls._from_block(x[start:stop], _rows_of(attribute, start, stop), by_class, _slice(columns, start))
             state = state.merge(block)
         return state
 
     @classmethod
     def _from_block(
-        cls, x: NDArray[np.floating], attribute: EncodedAttribute, by_class: bool, given: NDArray[np.generic] | None
+        cls,
+        x: NDArray[np.floating],
+        attribute: EncodedAttribute,
+        by_class: bool,
+        given: Mapping[str, NDArray[np.generic]] | None,
     ) -> MomentState:
         state = cls._pooled(x, attribute, by_class)
         if given is None:
             return state
-        assert attribute.labels is not None  # checked_context refuses a context beside an attribute matrix
-        return dataclasses.replace(state, given=ContextMoments.from_batch(x, attribute.labels[attribute.codes], given))
+        return dataclasses.replace(state, given=GivenMoments.from_batch(x, attribute, given))
 
     @classmethod
     def _pooled(cls, x: NDArray[np.floating], attribute: EncodedAttribute, by_class: bool) -> MomentState:
@@ -424,19 +430,22 @@ class MomentState:
     def guarded_cross_covariance(self, *, population: bool = True) -> tuple[Float64Array, float]:
         """The columns an eraser must remove, and the bound on their singular values, shape (d, r).
 
-        Without a context: :meth:`standardized_cross_covariance` (bounded by 1).  With one
-        (:attr:`given`): each value's standardized within-value cross-covariance, weighted by its share of
-        rows (bounded by 1, see :meth:`ContextMoments.standardized_cross_covariances`), after the population's
-        own columns when ``population`` is true (the two parts together are bounded by sqrt(2)).
+        Without a context: :meth:`standardized_cross_covariance`.  With contexts (:attr:`given`): each value's
+        standardized within-value cross-covariance, weighted by its share of rows, for every pair of a context
+        column and an attribute (see :meth:`GivenMoments.standardized_cross_covariances`), after the
+        population's own columns when ``population`` is true.  Each attribute's population block and each
+        pair's stack has singular values at most 1, so the whole stack's are at most the square root of their
+        number: the bound returned.
         """
+        own = max(len(self.blocks), 1)
         if self.given is None:
             if not population:
                 raise ValueError("guarding within a context only needs a context: fit with given=...")
             return self.standardized_cross_covariance(), 1.0
-        within = self.given.standardized_cross_covariances()
+        within, pairs = self.given.standardized_cross_covariances()
         if not population:
-            return within, 1.0
-        return np.hstack([self.standardized_cross_covariance(), within]), float(np.sqrt(2.0))
+            return within, float(np.sqrt(pairs))
+        return np.hstack([self.standardized_cross_covariance(), within]), float(np.sqrt(own + pairs))
 
     def conditional_mean(self, targets: Mapping[str, object]) -> Float64Array:
         """``E[x | z = t]`` under the linear model of ``x`` on the stacked attributes, shape (d,).

@@ -11,9 +11,11 @@ Format 2 names the map's kind (``map_kind``) and stores the map's own arrays
 under a ``map.`` prefix; format 1, written before map kinds existed, holds
 an affine low-rank map as ``mean``, ``u`` and ``v``.  Both are still read,
 without pins, and answer as they always did.  A
-version guarded within a context also stores the moments within each value
-(arrays ``given.*``, and ``"context": true`` in the description); one
-written before contexts existed has neither and reads as it always did.
+version guarded within contexts also stores the moments within each value,
+one set per pair of a context column and an attribute (arrays
+``given.K.*``, and ``"contexts"`` naming the columns and attributes in the
+description); one written when a version had one context (arrays
+``given.*``, ``"context": true``) or none still reads as it always did.
 :func:`content_digest` hashes the arrays and description themselves, not
 the zip container, so the same eraser always has the same digest.
 """
@@ -33,6 +35,7 @@ from numpy.typing import NDArray
 from veil.maps.artifact import MapArtifact
 from veil.maps.attribute import AttributeBlock
 from veil.maps.context import ContextMoments
+from veil.maps.given import GivenMoments
 from veil.maps.kinds import EmbeddingMap, map_from_arrays
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
@@ -50,9 +53,12 @@ _BLOCK_LABELS = "attribute_labels."
 _PARTIAL = "partial."
 
 _MOMENT_ARRAYS = ("mean_x", "mean_z", "comoment_xx", "comoment_xz", "comoment_zz")
-# The moments within each value of a context (see veil.maps.context.ContextMoments), by field.
+# The moments within each value of a context (see veil.maps.context.ContextMoments), by field: of the one
+# pair of a version written with one context, or of pair K (given.K.*) of one written with several.
 _CONTEXT = "given."
 _CONTEXT_ARRAYS = ("values", "labels", "class_counts", "mean_x", "comoment_xz")
+# The column and attribute a version of one context read back with: its artifact named neither.
+_LEGACY_PAIR = ("",)
 
 
 class ArtifactFormatError(ValueError):
@@ -84,10 +90,36 @@ def artifact_arrays(artifact: MapArtifact) -> dict[str, NDArray[Any]]:
         arrays[f"{_PARTIAL}{position}.count"] = np.array(state.count, dtype=np.int64)
         arrays.update({f"{_PARTIAL}{position}.{name}": getattr(state, name) for name in _MOMENT_ARRAYS})
     if moments.given is not None:
-        arrays.update({_CONTEXT + name: getattr(moments.given, name) for name in _CONTEXT_ARRAYS})
+        arrays.update(_context_arrays(moments.given))
     if artifact.pins is not None:
         arrays.update({_PINS_PREFIX + name: array for name, array in artifact.pins.arrays().items()})
     return arrays
+
+
+def _is_legacy(given: GivenMoments) -> bool:
+    """Whether ``given`` was read from a version of one context, and is written back as it was."""
+    return given.columns == _LEGACY_PAIR and given.attributes == _LEGACY_PAIR and not given.moments[0].pooled.size
+
+
+def _context_arrays(given: GivenMoments) -> dict[str, NDArray[Any]]:
+    if _is_legacy(given):
+        return {_CONTEXT + name: getattr(given.moments[0], name) for name in _CONTEXT_ARRAYS}
+    arrays = {}
+    for position, moments in enumerate(given.moments):
+        prefix = f"{_CONTEXT}{position}."
+        arrays.update({prefix + name: getattr(moments, name) for name in _CONTEXT_ARRAYS})
+        if moments.pooled.size:
+            arrays[prefix + "pooled"] = moments.pooled
+    return arrays
+
+
+def _context_description(given: GivenMoments | None) -> dict[str, Any]:
+    # Only where there is one: the descriptions (and digests) of other versions stay as they were.
+    if given is None:
+        return {}
+    if _is_legacy(given):
+        return {"context": True}
+    return {"contexts": {"columns": list(given.columns), "attributes": list(given.attributes)}}
 
 
 def _blocks_description(moments: MomentState) -> dict[str, Any]:
@@ -123,10 +155,22 @@ def _stored_partial(description: Mapping[str, Any], arrays: Mapping[str, NDArray
     return tuple(states)
 
 
-def _stored_context(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> ContextMoments | None:
-    if not description.get("context"):
+def _stored_context(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> GivenMoments | None:
+    if description.get("context"):
+        legacy = ContextMoments(**{name: arrays[_CONTEXT + name] for name in _CONTEXT_ARRAYS})
+        return GivenMoments(_LEGACY_PAIR, _LEGACY_PAIR, (legacy,))
+    if "contexts" not in description:
         return None
-    return ContextMoments(**{name: arrays[_CONTEXT + name] for name in _CONTEXT_ARRAYS})
+    columns = tuple(str(name) for name in description["contexts"]["columns"])
+    attributes = tuple(str(name) for name in description["contexts"]["attributes"])
+    moments = []
+    for position in range(len(columns) * len(attributes)):
+        prefix = f"{_CONTEXT}{position}."
+        stored = {name: arrays[prefix + name] for name in _CONTEXT_ARRAYS}
+        if prefix + "pooled" in arrays:
+            stored["pooled"] = arrays[prefix + "pooled"]
+        moments.append(ContextMoments(**stored))
+    return GivenMoments(columns, attributes, tuple(moments))
 
 
 def _stored_blocks(description: Mapping[str, Any], arrays: Mapping[str, NDArray[Any]]) -> tuple[AttributeBlock, ...]:
@@ -166,8 +210,7 @@ def artifact_description(artifact: MapArtifact) -> dict[str, Any]:
         **artifact.map.describe(),
         "categorical": artifact.moments.labels is not None,
         **_blocks_description(artifact.moments),
-        # Only where there is one: the descriptions (and digests) of other versions stay as they were.
-        **({"context": True} if artifact.moments.given is not None else {}),
+        **_context_description(artifact.moments.given),
         "history": _json_safe(artifact.history),
     }
 

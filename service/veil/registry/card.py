@@ -23,6 +23,7 @@ from veil.checks.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceS
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
 from veil.checks.verdict import LEVELS, Verdict, judge_audit
 from veil.maps.artifact import MapArtifact
+from veil.maps.context import ContextMoments
 from veil.samples.chunks import Sample
 from veil.samples.labels import dropped_note
 
@@ -136,7 +137,7 @@ def build_card(
     if artifact.pins is not None:
         card["pinned_coordinates"] = artifact.pins.coordinates.tolist()
     if artifact.moments.given is not None:
-        card["given"] = given_record(artifact, str(sample.context_key))
+        card["given"] = given_record(artifact)
     if operating_points is not None:
         card["operating_points"] = operating_points
     if attribute_audits:
@@ -146,26 +147,50 @@ def build_card(
     return dict(json_safe(card))
 
 
-def given_record(artifact: MapArtifact, column: str) -> dict[str, Any]:
-    """The context a version guards its attribute within: the column, each value with its fitting rows, and
-    whether the population as a whole is guarded too."""
-    moments = artifact.moments.given
-    assert moments is not None
+def given_record(artifact: MapArtifact) -> dict[str, Any]:
+    """The contexts a version guards its attributes within: each column with its values and their fitting rows
+    (and the values pooled into one group, if any), and whether the population as a whole is guarded too."""
+    given = artifact.moments.given
+    assert given is not None
     return {
-        "column": column,
-        "values": [str(value) for value in moments.values],
-        "rows": moments.counts.tolist(),
+        "columns": [_column_record(column, given.of_column(column)[0]) for column in given.columns],
         "guard_population": bool(artifact.params.get("guard_population", True)),
     }
 
 
+def _column_record(column: str, moments: ContextMoments) -> dict[str, Any]:
+    counts = moments.counts.tolist()
+    record: dict[str, Any] = {"column": column, "values": [str(value) for value in moments.values]}
+    if not moments.pooled.size:
+        return {**record, "rows": counts}
+    pooled = {"values": [str(value) for value in moments.pooled], "rows": counts[-1]}
+    return {**record, "rows": counts[:-1], "pooled": pooled}
+
+
+def given_columns(record: Mapping[str, Any]) -> list[dict[str, Any]]:
+    """The columns of a card's ``given`` entry, each ``{column, values, rows[, pooled]}``.
+
+    Cards written when a version had one context hold that column's entry
+    itself (``column``, ``values``, ``rows``): read as a list of one.
+    """
+    if "columns" in record:
+        return [dict(entry) for entry in record["columns"]]
+    return [{"column": record["column"], "values": record["values"], "rows": record["rows"]}]
+
+
 def given_text(record: Mapping[str, Any]) -> str:
-    """One line on the context a card records."""
+    """One line on the contexts a card records."""
     population = "the population as a whole too" if record["guard_population"] else "not the population as a whole"
-    return (
-        f"within each of the {len(record['values'])} values of {record['column']!r} "
-        f"({sum(record['rows'])} fitting rows); {population}"
-    )
+    columns = given_columns(record)
+    parts = []
+    for entry in columns:
+        pooled = entry.get("pooled")
+        extra = "" if pooled is None else f" (and {len(pooled['values'])} small ones pooled into one group)"
+        parts.append(f"each of the {len(entry['values'])} values of {entry['column']!r}{extra}")
+    # Every column covers the same fitting rows.
+    rows = sum(columns[0]["rows"]) + int(columns[0].get("pooled", {}).get("rows", 0))
+    each = ", each column on its own" if len(columns) > 1 else ""
+    return f"within {' and within '.join(parts)}{each} ({rows} fitting rows); {population}"
 
 
 def attributes_record(

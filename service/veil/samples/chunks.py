@@ -8,8 +8,8 @@ worker.  An in-memory sample is one partition; a streamed one is many.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from dataclasses import dataclass
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 import numpy as np
@@ -28,15 +28,16 @@ class Chunk:
     attribute : ndarray of shape (n,)
         Labels, or rows of an attribute table (see :mod:`veil.samples.attributes`).
     task : ndarray of shape (n,) or None
-    context : ndarray of shape (n,) or None
-        Each row's value of the context column the attribute is guarded within (``veil fit --given``).
+    contexts : mapping of str to ndarray of shape (n,)
+        Each row's value of every context column the attribute is guarded within (``veil fit --given``), by
+        column; empty without one.
     """
 
     index: NDArray[np.int64]
     embeddings: NDArray[np.floating]
     attribute: NDArray[Any]
     task: NDArray[Any] | None
-    context: NDArray[Any] | None = None
+    contexts: Mapping[str, NDArray[Any]] = field(default_factory=dict)
 
     @classmethod
     def of_rows(
@@ -46,14 +47,21 @@ class Chunk:
         attribute: NDArray[Any],
         task: NDArray[Any] | None,
         missing: NDArray[np.bool_] | None = None,
-        context: NDArray[Any] | None = None,
+        contexts: Mapping[str, NDArray[Any]] | None = None,
     ) -> Chunk:
         """Rows ``start, start + 1, …`` of the files, less those ``missing`` marks as lacking a label."""
         index = np.arange(start, start + embeddings.shape[0], dtype=np.int64)
+        every = {} if contexts is None else {key: np.asarray(values) for key, values in contexts.items()}
         if missing is None or not missing.any():
-            return cls(index, embeddings, np.asarray(attribute), _array(task), _array(context))
+            return cls(index, embeddings, np.asarray(attribute), _array(task), every)
         kept = ~missing
-        return cls(index[kept], embeddings[kept], np.asarray(attribute)[kept], _rows(task, kept), _rows(context, kept))
+        return cls(
+            index[kept],
+            embeddings[kept],
+            np.asarray(attribute)[kept],
+            _rows(task, kept),
+            {key: values[kept] for key, values in every.items()},
+        )
 
     def __len__(self) -> int:
         return int(self.index.shape[0])
@@ -112,8 +120,8 @@ class Sample(Protocol):
     @property
     def task_key(self) -> str | None: ...
     @property
-    def context_key(self) -> str | None:
-        """The context column the attribute is guarded within (None: the population only)."""
+    def context_keys(self) -> tuple[str, ...]:
+        """The context columns the attribute is guarded within, each on its own (empty: the population only)."""
         ...
 
     @property

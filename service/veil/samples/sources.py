@@ -18,8 +18,8 @@ import csv
 import hashlib
 import io
 import zipfile
-from collections.abc import Sequence
-from dataclasses import dataclass
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -61,10 +61,11 @@ class LabelledSample:
         index in the files, so dropping rows moves no other row across it.
     notes : tuple of str
         What was done to the labels as read (classes merged), for the card.
-    context : ndarray of shape (n,) or None
-        Each row's value of a context column (a field, a query's category): the attribute is then guarded within
-        every value too (``veil fit --given``).
-    context_key : str or None
+    contexts : mapping of str to ndarray of shape (n,)
+        Each row's value of every context column (a field, a query's category), by column: the attribute is then
+        guarded within every value of each too (``veil fit --given``).  Empty without one.
+    context_keys : tuple of str
+        The context columns, in the order given.
     """
 
     embeddings: NDArray[np.floating]
@@ -75,8 +76,8 @@ class LabelledSample:
     files: dict[str, str]
     kept: NDArray[np.bool_] | None = None
     notes: tuple[str, ...] = ()
-    context: NDArray[Any] | None = None
-    context_key: str | None = None
+    contexts: Mapping[str, NDArray[Any]] = field(default_factory=dict)
+    context_keys: tuple[str, ...] = ()
 
     @property
     def rows(self) -> int:
@@ -121,7 +122,7 @@ class LabelledSample:
         """
         index = np.arange(self.rows, dtype=np.int64) if self.kept is None else np.flatnonzero(self.kept)
         chunk = Chunk(
-            index=index, embeddings=self.embeddings, attribute=self.attribute, task=self.task, context=self.context
+            index=index, embeddings=self.embeddings, attribute=self.attribute, task=self.task, contexts=self.contexts
         )
         return [InMemoryPartition(chunk=chunk, stop=self.rows + self.dropped_rows)]
 
@@ -275,7 +276,7 @@ def load_labelled_sample(
     joint: bool = False,
     merge_classes: Sequence[str] = (),
     incomplete: bool = False,
-    given: str | None = None,
+    given: str | Sequence[str] | None = None,
 ) -> LabelledSample:
     """Read embeddings and labels for a fit.
 
@@ -304,9 +305,10 @@ def load_labelled_sample(
     incomplete : bool, default=False
         Several attributes: keep the rows that lack some of them (not all);
         each attribute's statistics then come from the rows that carry it.
-    given : str, optional
-        Key or column of a categorical context (a field, a query's category) to guard the attribute within;
-        a missing value is refused, or its row dropped, like a missing label.
+    given : str or sequence of str, optional
+        Key or column of a categorical context (a field, a query's category) to guard the attribute within,
+        or of each of several (each guarded on its own, see :mod:`veil.maps.given`); a missing value is
+        refused, or its row dropped, like a missing label.
 
     Raises
     ------
@@ -319,20 +321,25 @@ def load_labelled_sample(
     spec = AttributeSpec(
         names=tuple(names), continuous=tuple(continuous), joint=joint, merges=merges, incomplete=incomplete
     )
-    check_context_key(given, spec)
+    keys = context_keys_of(given, spec)
     with phase(f"reading {Path(path).name}"):
-        return _read_sample(Path(path), spec, task, embeddings_key, labels, drop_missing, given)
+        return _read_sample(Path(path), spec, task, embeddings_key, labels, drop_missing, keys)
 
 
-def check_context_key(given: str | None, spec: AttributeSpec) -> None:
-    """Refuse a context column that is one of the attributes it would guard."""
-    if given is not None and given in spec.names:
-        raise DataError(f"the context {given!r} is an attribute of this fit; guard within another column")
+def context_keys_of(given: str | Sequence[str] | None, spec: AttributeSpec) -> tuple[str, ...]:
+    """The context columns as a tuple; refuses one named twice or one that is an attribute it would guard."""
+    keys = () if given is None else (given,) if isinstance(given, str) else tuple(given)
+    for position, key in enumerate(keys):
+        if key in spec.names:
+            raise DataError(f"the context {key!r} is an attribute of this fit; guard within another column")
+        if key in keys[:position]:
+            raise DataError(f"the context {key!r} is given twice; give each context column once")
+    return keys
 
 
-def label_keys(spec: AttributeSpec, task: str | None, given: str | None) -> list[str]:
-    """Every label column a fit reads, each once: the attributes, the task and the context."""
-    return list(dict.fromkeys([*spec.names, *(key for key in (task, given) if key is not None)]))
+def label_keys(spec: AttributeSpec, task: str | None, given: Sequence[str] = ()) -> list[str]:
+    """Every label column a fit reads, each once: the attributes, the task and the contexts."""
+    return list(dict.fromkeys([*spec.names, *([] if task is None else [task]), *given]))
 
 
 @dataclass(frozen=True)
@@ -447,7 +454,7 @@ def _read_sample(
     embeddings_key: str,
     labels: str | Path | None,
     drop_missing: bool,
-    given: str | None,
+    given: tuple[str, ...],
 ) -> LabelledSample:
     _check_file(data_path)
     keys = label_keys(spec, task, given)
@@ -494,20 +501,20 @@ def _read_sample(
         task_key=task,
         files=files,
         kept=read.kept,
-        context=read.context,
-        context_key=given,
+        contexts=read.contexts,
+        context_keys=given,
     )
 
 
 @dataclass(frozen=True, eq=False)
 class ReadLabels:
-    """The labels of a sample as a fit uses them: the rows kept, and their attribute (or table), task and context."""
+    """The labels of a sample as a fit uses them: the rows kept, and their attribute (or table), task and contexts."""
 
     kept: NDArray[np.bool_] | None
     attribute: NDArray[Any]
     task: NDArray[Any] | None
     notes: tuple[str, ...]
-    context: NDArray[Any] | None = None
+    contexts: Mapping[str, NDArray[Any]] = field(default_factory=dict)
 
 
 def labels_of(
@@ -518,7 +525,7 @@ def labels_of(
     *,
     source: str,
     drop: bool,
-    given: str | None = None,
+    given: Sequence[str] = (),
 ) -> ReadLabels:
     """Refuse or drop the rows whose labels are missing, merge classes, and build the attribute (or its table).
 
@@ -531,7 +538,7 @@ def labels_of(
         # A row may lack some attributes; one that lacks every one carries nothing to guard.
         checked = [("attribute", f"every attribute ({spec.key})", np.logical_and.reduce([m for _, _, m in checked]))]
     checked += [] if task is None else [("task", task, absent[task])]
-    checked += [] if given is None else [("context", given, absent[given])]
+    checked += [("context", key, absent[key]) for key in given]
     kept = rows_to_keep(checked, source=source, drop=drop)
     if kept is not None:
         found = {key: values[kept] for key, values in found.items()}
@@ -542,5 +549,5 @@ def labels_of(
         attribute=spec.table(found, source=source, missing=absent if spec.incomplete else None),
         task=None if task is None else found[task],
         notes=tuple(notes),
-        context=None if given is None else found[given],
+        contexts={key: found[key] for key in given},
     )

@@ -14,7 +14,7 @@ are read whole (a few bytes a row); ``.npy`` labels are memory-mapped.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -30,8 +30,8 @@ from veil.samples.sources import (
     PARQUET_SUFFIXES,
     AttributeSpec,
     ReadLabels,
-    check_context_key,
     check_embeddings,
+    context_keys_of,
     csv_columns,
     file_sha256,
     fingerprint_of,
@@ -65,8 +65,8 @@ class StreamedSample:
     notes: tuple[str, ...] = ()
     #: The dtype of the attribute table (None: one label column).
     attribute_dtype: np.dtype[Any] | None = None
-    #: The context column the attribute is guarded within (None: the population only).
-    context_key: str | None = None
+    #: The context columns the attribute is guarded within, each on its own (empty: the population only).
+    context_keys: tuple[str, ...] = ()
 
     @property
     def labelled_rows(self) -> int:
@@ -166,36 +166,36 @@ class NpyPartition:
     start: int
     attribute: NDArray[Any]
     task: NDArray[Any] | None
-    #: Labels prepared whole (an attribute table): the rows kept; ``attribute``, ``task`` and ``context`` hold
+    #: Labels prepared whole (an attribute table): the rows kept; ``attribute``, ``task`` and ``contexts`` hold
     #: only those.
     kept: NDArray[np.bool_] | None = None
-    context: NDArray[Any] | None = None
+    contexts: Mapping[str, NDArray[Any]] = field(default_factory=dict)
 
     def load(self) -> Chunk:
         block = check_embeddings(
             self.file.read(self.offset, self.rows), source=f"{self.file.path} rows {self.offset}.."
         )
         if self.kept is not None:
-            return _prepared_chunk(self.start, block, self.kept, (self.attribute, self.task, self.context))
+            return _prepared_chunk(self.start, block, self.kept, (self.attribute, self.task, self.contexts))
         missing = missing_labels(self.attribute)
-        for values in (self.task, self.context):
+        for values in (self.task, *self.contexts.values()):
             if values is not None:
                 missing |= missing_labels(values)
-        return Chunk.of_rows(self.start, block, self.attribute, self.task, missing, self.context)
+        return Chunk.of_rows(self.start, block, self.attribute, self.task, missing, self.contexts)
 
     @property
     def stop(self) -> int:
         return self.start + self.rows
 
 
-#: The kept rows' attribute (or table), task and context labels, prepared whole.
-PreparedLabels = tuple[NDArray[Any], NDArray[Any] | None, NDArray[Any] | None]
+#: The kept rows' attribute (or table), task and context labels (by column), prepared whole.
+PreparedLabels = tuple[NDArray[Any], NDArray[Any] | None, Mapping[str, NDArray[Any]]]
 
 
 def _prepared_chunk(start: int, block: NDArray[np.floating], kept: NDArray[np.bool_], labels: PreparedLabels) -> Chunk:
     index = np.arange(start, start + block.shape[0], dtype=np.int64)[kept]
-    attribute, task, context = labels
-    return Chunk(index=index, embeddings=block[kept], attribute=attribute, task=task, context=context)
+    attribute, task, contexts = labels
+    return Chunk(index=index, embeddings=block[kept], attribute=attribute, task=task, contexts=contexts)
 
 
 class _Prepared:
@@ -210,8 +210,8 @@ class _Prepared:
     def rows(self, start: int, stop: int) -> tuple[NDArray[np.bool_], PreparedLabels]:
         first, last = int(self.before[start]), int(self.before[stop])
         task = None if self.read.task is None else self.read.task[first:last]
-        context = None if self.read.context is None else self.read.context[first:last]
-        return self.kept[start:stop], (self.read.attribute[first:last], task, context)
+        contexts = {key: values[first:last] for key, values in self.read.contexts.items()}
+        return self.kept[start:stop], (self.read.attribute[first:last], task, contexts)
 
 
 def _array_partitions(
@@ -220,7 +220,7 @@ def _array_partitions(
     attribute: str,
     task: str | None,
     prepared: _Prepared | None = None,
-    given: str | None = None,
+    given: tuple[str, ...] = (),
 ) -> Any:
     def partitions(chunk_rows: int) -> list[NpyPartition]:
         found, start = [], 0
@@ -228,8 +228,8 @@ def _array_partitions(
             for offset in range(0, part.shape[0], chunk_rows):
                 rows = min(chunk_rows, part.shape[0] - offset)
                 if prepared is not None:
-                    kept, (labels, tasks, context) = prepared.rows(start, start + rows)
-                    found.append(NpyPartition(part, offset, rows, start, labels, tasks, kept, context))
+                    kept, (labels, tasks, contexts) = prepared.rows(start, start + rows)
+                    found.append(NpyPartition(part, offset, rows, start, labels, tasks, kept, contexts))
                 else:
                     found.append(
                         NpyPartition(
@@ -239,7 +239,7 @@ def _array_partitions(
                             start=start,
                             attribute=np.array(columns[attribute][start : start + rows]),
                             task=None if task is None else np.array(columns[task][start : start + rows]),
-                            context=None if given is None else np.array(columns[given][start : start + rows]),
+                            contexts={key: np.array(columns[key][start : start + rows]) for key in given},
                         )
                     )
                 start += rows
@@ -262,15 +262,15 @@ class ParquetPartition:
     dim: int
     #: Labels prepared whole (an attribute table): the rows kept, and their attribute table, task and context.
     prepared: tuple[NDArray[np.bool_], PreparedLabels] | None = None
-    context_key: str | None = None
+    context_keys: tuple[str, ...] = ()
 
     def load(self) -> Chunk:
         import pyarrow.parquet as pq
 
         keys = [self.embeddings_key]
         if self.prepared is None:
-            extra = (key for key in (self.task_key, self.context_key) if key is not None)
-            keys += list(dict.fromkeys([self.attribute_key, *extra]))
+            tasks = [] if self.task_key is None else [self.task_key]
+            keys += list(dict.fromkeys([self.attribute_key, *tasks, *self.context_keys]))
         table = pq.ParquetFile(self.path).read_row_group(self.group, columns=keys)
         matrix = embedding_matrix(table.column(self.embeddings_key), name=self.embeddings_key, first_row=self.start)
         if matrix.shape[1] != self.dim:
@@ -281,12 +281,13 @@ class ParquetPartition:
             return _prepared_chunk(self.start, block, kept, labels)
         source = str(self.path)
         attribute, missing = arrow_labels(table.column(self.attribute_key), key=self.attribute_key, source=source)
-        task = context = None
+        task = None
         if self.task_key is not None:
             task, task_missing = arrow_labels(table.column(self.task_key), key=self.task_key, source=source)
             missing = missing | task_missing
-        if self.context_key is not None:
-            context, absent = arrow_labels(table.column(self.context_key), key=self.context_key, source=source)
+        contexts: dict[str, NDArray[Any]] = {}
+        for key in self.context_keys:
+            contexts[key], absent = arrow_labels(table.column(key), key=key, source=source)
             missing = missing | absent
         return Chunk.of_rows(
             self.start,
@@ -294,7 +295,7 @@ class ParquetPartition:
             attribute,
             task,
             missing,
-            context,
+            contexts,
         )
 
 
@@ -304,7 +305,7 @@ def _parquet_partitions(
     attribute: str,
     task: str | None,
     prepared: _Prepared | None = None,
-    given: str | None = None,
+    given: tuple[str, ...] = (),
 ) -> tuple[Any, int, int, Any]:
     import pyarrow as pa
     import pyarrow.parquet as pq
@@ -313,7 +314,7 @@ def _parquet_partitions(
         parquet = pq.ParquetFile(path)
     except (pa.ArrowInvalid, OSError) as error:
         raise DataError(f"{path} is not a readable Parquet file ({error})") from None
-    keys = [embeddings_key, attribute] + [key for key in (task, given) if key is not None]
+    keys = [embeddings_key, attribute] + ([] if task is None else [task]) + list(given)
     for key in keys:
         if key not in parquet.schema_arrow.names:
             raise DataError(f"{path} has no column {key!r}; its columns are {', '.join(parquet.schema_arrow.names)}")
@@ -331,7 +332,7 @@ def _parquet_partitions(
             ParquetPartition(
                 path, group, int(starts[group]), int(starts[group + 1]), embeddings_key, attribute, task,
                 first.shape[1], None if prepared is None else prepared.rows(int(starts[group]), int(starts[group + 1])),
-                context_key=given,
+                context_keys=given,
             )
             for group in range(parquet.num_row_groups)
         ]  # fmt: skip
@@ -347,7 +348,7 @@ def _prepare(
     source: str | Path,
     rows: int,
     drop: bool,
-    given: str | None,
+    given: tuple[str, ...],
 ) -> _Prepared:
     """The labels of every row, refused or dropped where missing, merged and tabled (see ``labels_of``)."""
     return _Prepared(labels_of(spec, found, absent, task, source=str(source), drop=drop, given=given), rows)
@@ -369,14 +370,14 @@ def open_stream(
     joint: bool = False,
     merge_classes: Sequence[str] = (),
     incomplete: bool = False,
-    given: str | None = None,
+    given: str | Sequence[str] | None = None,
 ) -> StreamedSample:
     """Describe a large labelled sample without reading its embeddings (every file is hashed, in one pass each).
 
     The labels are read whole here (a few bytes a row), so that missing ones
     are refused, or counted for dropping, before the long pass starts.  The
-    options are :func:`veil.samples.sources.load_labelled_sample`'s; a context
-    column (``given``) travels with each partition like the task labels.
+    options are :func:`veil.samples.sources.load_labelled_sample`'s; the context
+    columns (``given``) travel with each partition like the task labels.
 
     Raises
     ------
@@ -389,15 +390,16 @@ def open_stream(
     spec = AttributeSpec(
         names=tuple(names), continuous=tuple(continuous), joint=joint, merges=merges, incomplete=incomplete
     )
-    check_context_key(given, spec)
+    contexts = context_keys_of(given, spec)
     # Several attributes (or merged classes): the labels are read, checked and tabled once, before the pass.
     whole = spec.is_table or bool(merges)
     attribute = names[0]
     source = Path(path)
     if not source.exists():
         raise DataError(f"{source} does not exist")
-    keys = label_keys(spec, task, given)
-    roles = [("attribute", attribute)] + [(role, key) for role, key in (("task", task), ("context", given)) if key]
+    keys = label_keys(spec, task, contexts)
+    roles = [("attribute", attribute)] + ([] if task is None else [("task", task)])
+    roles += [("context", key) for key in contexts]
     if source.is_dir() or source.suffix.lower() == ".npy":
         shards = sorted(source.glob("*.npy")) if source.is_dir() else [source]
         if not shards:
@@ -417,12 +419,12 @@ def open_stream(
         if whole:
             found = {key: np.asarray(values) for key, values in columns.items()}
             absent = {key: missing_labels(values) for key, values in found.items()}
-            tabled = _prepare(spec, found, absent, task, labels, rows, drop_missing, given)
+            tabled = _prepare(spec, found, absent, task, labels, rows, drop_missing, contexts)
             return StreamedSample(
                 rows=rows, dim=dims.pop(), dtype=dtype, attribute_key=spec.key, task_key=task, files=files,
                 _partitions=_array_partitions(parts, columns, attribute, task, tabled),
                 dropped_rows=_dropped(tabled.read.kept), attribute_table=spec.is_table, notes=tabled.read.notes,
-                attribute_dtype=tabled.read.attribute.dtype, context_key=given,
+                attribute_dtype=tabled.read.attribute.dtype, context_keys=contexts,
             )  # fmt: skip
         kept = rows_to_keep(
             [(role, key, missing_labels(np.asarray(columns[key]))) for role, key in roles],
@@ -431,8 +433,8 @@ def open_stream(
         )
         return StreamedSample(
             rows=rows, dim=dims.pop(), dtype=dtype, attribute_key=attribute, task_key=task, files=files,
-            _partitions=_array_partitions(parts, columns, attribute, task, given=given), dropped_rows=_dropped(kept),
-            context_key=given,
+            _partitions=_array_partitions(parts, columns, attribute, task, given=contexts), dropped_rows=_dropped(kept),
+            context_keys=contexts,
         )  # fmt: skip
     if source.suffix.lower() in PARQUET_SUFFIXES:
         if labels is not None:
@@ -456,14 +458,14 @@ def open_stream(
             read = {key: arrow_labels(table.column(key), key=key, source=str(source)) for key in keys}
             found = {key: values for key, (values, _) in read.items()}
             absent = {key: mask for key, (_, mask) in read.items()}
-            prepared = _prepare(spec, found, absent, task, source, table.num_rows, drop_missing, given)
-        partitions, rows, dim, dtype = _parquet_partitions(source, embeddings_key, attribute, task, prepared, given)
+            prepared = _prepare(spec, found, absent, task, source, table.num_rows, drop_missing, contexts)
+        partitions, rows, dim, dtype = _parquet_partitions(source, embeddings_key, attribute, task, prepared, contexts)
         if prepared is not None:
             return StreamedSample(
                 rows=rows, dim=dim, dtype=np.dtype(dtype), attribute_key=spec.key, task_key=task,
                 files={str(source): file_sha256(source)}, _partitions=partitions,
                 dropped_rows=_dropped(prepared.read.kept), attribute_table=spec.is_table, notes=prepared.read.notes,
-                attribute_dtype=prepared.read.attribute.dtype, context_key=given,
+                attribute_dtype=prepared.read.attribute.dtype, context_keys=contexts,
             )  # fmt: skip
         table = pq.read_table(source, columns=list(dict.fromkeys(keys)))
         kept = rows_to_keep(
@@ -474,6 +476,6 @@ def open_stream(
         return StreamedSample(
             rows=rows, dim=dim, dtype=np.dtype(dtype), attribute_key=attribute, task_key=task,
             files={str(source): file_sha256(source)}, _partitions=partitions, dropped_rows=_dropped(kept),
-            context_key=given,
+            context_keys=contexts,
         )  # fmt: skip
     raise DataError(f"{source}: streaming reads a .npy file, a folder of .npy shards or Parquet, not {source.suffix}")
