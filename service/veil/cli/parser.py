@@ -221,7 +221,8 @@ def build_parser() -> VeilParser:
         "--given",
         metavar="COLUMN",
         help="a categorical context (a field, a query's category) to guard the attribute within: the class means "
-        "coincide within every value of COLUMN on the fitting rows (leace, meanproj; one categorical attribute); "
+        "coincide within every value of COLUMN on the fitting rows (leace, meanproj; transport carries the classes "
+        "onto one Gaussian within every value and infers a row's value when serving; one categorical attribute); "
         "a missing value is refused or dropped like a missing label",
     )
     fit.add_argument(

@@ -11,7 +11,7 @@ result (the moments to rounding, see :class:`veil.maps.moments.MomentState`).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -39,6 +39,8 @@ class PartResult:
     fit_rows: int
     held_sample: list[Rows]
     fit_sample: list[Rows]
+    #: The context values of the fitting sample's rows, part by part (empty for a sample read without a context).
+    fit_context: list[NDArray[Any]] = field(default_factory=list)
 
     @classmethod
     def empty(cls) -> PartResult:
@@ -55,7 +57,9 @@ class PartResult:
         def restored(parts: list[Rows]) -> list[Rows]:
             return [(x, z.view(dtype), task) for x, z, task in parts]
 
-        return PartResult(self.moments, self.fit_rows, restored(self.held_sample), restored(self.fit_sample))
+        return PartResult(
+            self.moments, self.fit_rows, restored(self.held_sample), restored(self.fit_sample), self.fit_context
+        )
 
     def merge(self, later: PartResult) -> PartResult:
         if self.moments is None or later.moments is None:
@@ -67,6 +71,7 @@ class PartResult:
             fit_rows=self.fit_rows + later.fit_rows,
             held_sample=self.held_sample + later.held_sample,
             fit_sample=self.fit_sample + later.fit_sample,
+            fit_context=self.fit_context + later.fit_context,
         )
 
 
@@ -119,13 +124,17 @@ class PassPlan:
                 # With a context, the moments within each of its values too (merged like the rest, by value).
                 given=None if chunk.context is None else chunk.context[fit],
             )
-        held_rows = _select(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
-        fit_rows = _select(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT)
+        held_rows = _select(chunk, _drawn(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT))
+        fit_drawn = _drawn(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT)
+        fit_rows = _select(chunk, fit_drawn)
+        # The methods that fit on rows within a context (transport --given) need each drawn row's value.
+        fit_context = [] if chunk.context is None or not fit_drawn.any() else [chunk.context[fit_drawn]]
         return PartResult(
             moments=moments,
             fit_rows=int(np.count_nonzero(fit)),
             held_sample=[held_rows] if held_rows[0].shape[0] else [],
             fit_sample=[fit_rows] if fit_rows[0].shape[0] else [],
+            fit_context=fit_context,
         )
 
     def process_partition(self, partition: Partition) -> PartResult:
@@ -134,11 +143,16 @@ class PassPlan:
         return self.process(chunk, self.split(chunk))
 
 
-def _select(chunk: Chunk, side: NDArray[np.bool_], fraction: float, seed: int) -> Rows:
+def _drawn(chunk: Chunk, side: NDArray[np.bool_], fraction: float, seed: int) -> NDArray[np.bool_]:
     """The rows of one side of the split that a hash draws with probability ``fraction``."""
     keep = side.copy()
     if fraction < 1.0:
         keep &= held_out_rows(chunk.index, fraction=fraction, seed=seed)
+    return keep
+
+
+def _select(chunk: Chunk, keep: NDArray[np.bool_]) -> Rows:
+    """The embeddings, attribute and task labels of the rows ``keep`` marks."""
     task = None if chunk.task is None else chunk.task[keep]
     return chunk.embeddings[keep], chunk.attribute[keep], task
 

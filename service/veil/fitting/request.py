@@ -25,8 +25,9 @@ from veil.registry.naming import check_name
 #: A strength of a sweep: a count, or None for a method's full value (``all`` on the command line).
 SweepValue = int | None
 
-#: The methods that can guard an attribute within a context (they fit from moments, which merge by value).
-CONTEXT_METHODS = ("leace", "meanproj")
+#: The methods that can guard an attribute within a context: the first two fit from moments, which merge by
+#: value; transport fits one class transport per value on the fitting sample's rows.
+CONTEXT_METHODS = ("leace", "meanproj", "transport")
 
 
 @dataclass(frozen=True)
@@ -90,8 +91,11 @@ class MethodSpec:
                 raise DataError("guarding within a context only (--within-only) needs a context column (--given)")
             return
         if self.method not in CONTEXT_METHODS:
+            raise DataError(f"{self.method} cannot guard within a context (--given); use {', '.join(CONTEXT_METHODS)}")
+        if self.method == "transport" and not self.guard_population:
             raise DataError(
-                f"{self.method} cannot guard within a context (--given); use {' or '.join(CONTEXT_METHODS)}"
+                "transport --given moves the classes within each value only (then_leace=true adds LEACE guarding the "
+                "population too): --within-only applies to leace and meanproj"
             )
         if self.sweeps:
             raise DataError(

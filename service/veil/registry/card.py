@@ -61,6 +61,12 @@ KIND_CAUTIONS = {
         "and the row is moved by that class's map; it is not affine, so its figures are measured on the "
         "held-out rows, not guaranteed, and where the classifier errs a row is moved by another class's map"
     ),
+    "context-transport": (
+        "this map reads the attribute and the context in order to remove the attribute within each context value: "
+        "stored linear classifiers infer each row's context value, then its class, and the row is moved by that "
+        "value's class map; it is not affine, so its figures are measured on the held-out rows, not guaranteed, "
+        "and where a classifier errs a row is moved by another value's or class's map"
+    ),
 }
 
 
@@ -152,8 +158,15 @@ def given_record(artifact: MapArtifact, column: str) -> dict[str, Any]:
         "column": column,
         "values": [str(value) for value in moments.values],
         "rows": moments.counts.tolist(),
-        "guard_population": bool(artifact.params.get("guard_population", True)),
+        "guard_population": _guards_population(artifact),
     }
+
+
+def _guards_population(artifact: MapArtifact) -> bool:
+    # Transport within a context moves the classes within each value only; LEACE after it guards the population.
+    if artifact.kind == "context-transport":
+        return bool(artifact.params.get("then_leace", False))
+    return bool(artifact.params.get("guard_population", True))
 
 
 def given_text(record: Mapping[str, Any]) -> str:
