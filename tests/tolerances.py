@@ -40,6 +40,7 @@ import numpy as np
 from numpy.typing import DTypeLike, NDArray
 
 from veil.maps.artifact import MapArtifact
+from veil.maps.context_transport import ContextTransportMap
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.pins import CoordinatePins
 from veil.maps.transport import ClassTransportMap
@@ -101,13 +102,17 @@ def _normalised(y: Bounded, dtype: DTypeLike) -> Bounded:
 
 
 def _inferred_classes(transport: ClassTransportMap, x: Bounded, dtype: DTypeLike) -> NDArray[np.intp]:
-    """The class each row is moved as, refusing rows whose class round-off could flip.
+    """The class each row is moved as, refusing rows whose class round-off could flip (see :func:`_argmax`)."""
+    return _argmax(transport.classifier_coef, transport.classifier_intercept, x, dtype)
+
+
+def _argmax(coef: Float64Array, intercept: Float64Array, x: Bounded, dtype: DTypeLike) -> NDArray[np.intp]:
+    """The most probable class of a stored linear classifier, refusing rows whose choice round-off could flip.
 
     A logit is a d-term dot product plus an intercept: ``γ_{d+3} (|x| |W|ᵀ + |b|)`` besides the input's own
     error.  Where the two largest logits lie closer than both bounds together, the argmax is round-off's
     choice, and no tolerance on the cleaned values could make the comparison fair: the test must use other rows.
     """
-    coef, intercept = transport.classifier_coef, transport.classifier_intercept
     logits = x.value @ coef.T + intercept
     bound = gamma(x.value.shape[1] + 3, dtype) * ((np.abs(x.value) + x.error) @ np.abs(coef).T + np.abs(intercept))
     bound += x.error @ np.abs(coef).T
@@ -116,7 +121,7 @@ def _inferred_classes(transport: ClassTransportMap, x: Bounded, dtype: DTypeLike
     first, second = order[:, -1], order[:, -2]
     margin = logits[rows, first] - logits[rows, second]
     ambiguous = np.flatnonzero(margin <= bound[rows, first] + bound[rows, second])
-    assert ambiguous.size == 0, f"rows {ambiguous[:10].tolist()} lie within round-off of a class tie"
+    assert ambiguous.size == 0, f"rows {ambiguous[:10].tolist()} lie within round-off of a tie"
     return np.asarray(first, dtype=np.intp)
 
 
@@ -189,22 +194,41 @@ def _cleared(y: Bounded, pins: CoordinatePins | None) -> Bounded:
     return Bounded(value, error)
 
 
+def _within_context(mapping: ContextTransportMap, x: Bounded, dtype: DTypeLike) -> Bounded:
+    """Each row moved by the class transport of its inferred context value (refusing values round-off could flip)."""
+    values = _argmax(mapping.context_coef, mapping.context_intercept, x, dtype)
+    value, error = x.value.copy(), x.error.copy()
+    for g, value_map in enumerate(mapping.value_maps):
+        rows = np.flatnonzero(values == g)
+        if rows.size:
+            moved = _transported(value_map, Bounded(x.value[rows], x.error[rows]), dtype)
+            value[rows], error[rows] = moved.value, moved.error
+    return Bounded(value, error)
+
+
 def _map_bound(mapping: object, x: Bounded, dtype: DTypeLike) -> Bounded:
     if isinstance(mapping, AffineLowRankMap):
         return _lowrank_step(x, mapping.mean, mapping.u, mapping.v, None, dtype)
+    if isinstance(mapping, ContextTransportMap):
+        moved = _within_context(mapping, x, dtype)
+        return moved if mapping.after is None else _map_bound(mapping.after, moved, dtype)
     assert isinstance(mapping, ClassTransportMap), f"no round-off bound for a {type(mapping).__name__}"
     moved = _transported(mapping, x, dtype)
     return moved if mapping.after is None else _map_bound(mapping.after, moved, dtype)
 
 
-def _unpack(fitted: MapArtifact | AffineLowRankMap | ClassTransportMap) -> tuple[object, bool, CoordinatePins | None]:
+def _unpack(
+    fitted: MapArtifact | AffineLowRankMap | ClassTransportMap | ContextTransportMap,
+) -> tuple[object, bool, CoordinatePins | None]:
     if isinstance(fitted, MapArtifact):
         return fitted.map, fitted.normalize, fitted.pins
     return fitted, False, None
 
 
 def apply_bound(
-    fitted: MapArtifact | AffineLowRankMap | ClassTransportMap, x: NDArray[np.floating], dtype: DTypeLike = np.float32
+    fitted: MapArtifact | AffineLowRankMap | ClassTransportMap | ContextTransportMap,
+    x: NDArray[np.floating],
+    dtype: DTypeLike = np.float32,
 ) -> Bounded:
     """``fitted.apply(x)`` computed in float64 from ``x``, and the round-off bound of computing it in ``dtype``."""
     mapping, normalize, pins = _unpack(fitted)

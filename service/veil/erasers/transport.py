@@ -8,15 +8,17 @@ from typing import Literal
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from sklearn.covariance import ledoit_wolf_shrinkage
-from sklearn.linear_model import LogisticRegression
 from sklearn.utils.validation import check_is_fitted, validate_data
 
 from veil.erasers._base import FLOAT_DTYPES, Erasure
+from veil.erasers._context_transport import fit_within_context
+from veil.erasers._transport_parts import ClassFit, linear_classifier, transport_support
 from veil.erasers.leace import LEACE
-from veil.erasers.scaling import FlooredScaler
 from veil.maps.attribute import check_enough_rows, check_positive_int
+from veil.maps.context import checked_context
+from veil.maps.context_transport import ContextTransportMap
 from veil.maps.gaussians import barycenter_covariance, monge_matrix, require_positive_definite
-from veil.maps.linalg import COVARIANCE_RTOL, dead_coordinates, whitening_factors
+from veil.maps.linalg import COVARIANCE_RTOL
 from veil.maps.moments import MomentState
 from veil.maps.transport import ClassTransportMap
 
@@ -45,6 +47,14 @@ class GaussianTransport(Erasure):
     the wrong class's map; where the attribute is hard to infer linearly,
     the map removes correspondingly less.
 
+    **Within a context** (``fit(X, z, given=context)``), one such map is
+    fitted on the rows of each context value, so within every value the
+    classes coincide in mean and covariance, and a second stored classifier
+    infers a row's value when it is cleaned (the service is not told it):
+    a :class:`~veil.maps.context_transport.ContextTransportMap`.  The
+    parameters apply to every value's map; ``then_leace`` then fits LEACE
+    guarding within the context too.
+
     Parameters
     ----------
     shrinkage : "ledoit-wolf" or float, default="ledoit-wolf"
@@ -59,9 +69,10 @@ class GaussianTransport(Erasure):
         Applying costs about ``2·d·rank`` multiply-adds per row.
     then_leace : bool, default=False
         Fit LEACE on the transported fitting rows and apply it after the
-        transport (it removes the linear trace the inference leaves).
+        transport (it removes the linear trace the inference leaves); with
+        a context, LEACE guarding within it as well.
     classifier_c : float, default=1.0
-        Inverse L2 penalty of the stored logistic classifier (on standardised features).
+        Inverse L2 penalty of the stored logistic classifiers (on standardised features).
     max_iter : int, default=200
         Iterations of the barycenter's fixed point.
     tol : float, default=1e-10
@@ -73,11 +84,18 @@ class GaussianTransport(Erasure):
 
     Attributes
     ----------
-    map_ : ClassTransportMap
-        The fitted map.
+    map_ : ClassTransportMap or ContextTransportMap
+        The fitted map (the second with a context).
     moments_ : MomentState
         Statistics of the fitting data (for the live checks and the audit).
     classes_ : ndarray of shape (n_classes,)
+    context_values_ : ndarray of shape (n_values,)
+        With a context only: its values, in the order of the map's value maps.
+    fallback_values_ : ndarray
+        With a context only: the values moved by the population's map (too few rows of some class there).
+
+    Without a context only:
+
     class_means_ : ndarray of shape (n_classes, n_features)
     barycenter_covariance_ : ndarray of shape (r, r)
         ``S`` in the support basis ``support_``.
@@ -106,7 +124,7 @@ class GaussianTransport(Erasure):
 
     method = "transport"
     _requires_categorical = True
-    map_: ClassTransportMap
+    map_: ClassTransportMap | ContextTransportMap
 
     def __init__(
         self,
@@ -167,20 +185,47 @@ class GaussianTransport(Erasure):
         require_positive_definite(covariance, f"the covariance of class {label!r}", rtol=COVARIANCE_RTOL)
         return covariance, coefficient
 
-    def _classifier(self, x: Float64Array, codes: NDArray[np.intp]) -> tuple[Float64Array, Float64Array]:
-        scaler = FlooredScaler().fit(x)
-        model = LogisticRegression(C=float(self.classifier_c), max_iter=3000, random_state=self.random_state)
-        model.fit(scaler.transform(x), codes)
-        # Fold the standardisation into the coefficients, so applying is one product with the raw rows.
-        coef = np.asarray(model.coef_, dtype=np.float64) / scaler.scale_
-        intercept = np.asarray(model.intercept_, dtype=np.float64) - coef @ scaler.mean_
-        if coef.shape[0] == 1:
-            # Binary: logits (0, w·x + b) give the same probabilities as the sigmoid.
-            coef = np.vstack([np.zeros_like(coef), coef])
-            intercept = np.concatenate([[0.0], intercept])
-        return coef, intercept
+    def _class_directions(
+        self, covariances: list[Float64Array], barycenter: Float64Array, support: Float64Array
+    ) -> tuple[Float64Array, Float64Array]:
+        """Each class's kept directions of ``A_c - I`` in the embedding space (C, d, k), and their gains (C, k)."""
+        keep = support.shape[1] if self.rank is None else min(int(self.rank), support.shape[1])
+        directions, gains = [], []
+        for covariance in covariances:
+            eigenvalues, eigenvectors = np.linalg.eigh(monge_matrix(covariance, barycenter) - np.eye(len(covariance)))
+            # Order by how far each direction moves the class's rows: g² · Var_c along it.
+            moved = eigenvalues**2 * np.einsum("ij,ik,kj->j", eigenvectors, covariance, eigenvectors)
+            order = np.argsort(-moved, kind="stable")[:keep]
+            directions.append(support @ eigenvectors[:, order])
+            gains.append(eigenvalues[order])
+        return np.stack(directions), np.stack(gains)
 
-    def fit(self, X: ArrayLike, z: object) -> GaussianTransport:
+    def _fit_classes(self, x: Float64Array, codes: NDArray[np.intp], labels: NDArray[np.generic]) -> ClassFit:
+        """The class-transport map of rows ``x`` (float64) with class codes ``codes`` into ``labels``."""
+        mean = x.mean(axis=0)
+        support = transport_support(x)
+        inside = (x - mean) @ support
+        counts = np.bincount(codes, minlength=labels.size)
+        class_means = np.stack([inside[codes == c].mean(axis=0) for c in range(labels.size)])
+        fitted = [self._class_covariance(inside[codes == c], labels[c]) for c in range(labels.size)]
+        covariances = [covariance for covariance, _ in fitted]
+        barycenter = barycenter_covariance(covariances, counts / counts.sum(), max_iter=self.max_iter, tol=self.tol)
+        directions, gains = self._class_directions(covariances, barycenter.covariance, support)
+        coef, intercept = linear_classifier(x, codes, c=float(self.classifier_c), random_state=self.random_state)
+        transport_map = ClassTransportMap(
+            mean=mean,
+            class_means=mean + class_means @ support.T,
+            directions=directions,
+            gains=gains,
+            classifier_coef=coef,
+            classifier_intercept=intercept,
+            priors=counts / counts.sum(),
+            soft=self.inference == "soft",
+        )
+        shrinkage = np.array([coefficient for _, coefficient in fitted])
+        return ClassFit(transport_map, np.stack(covariances), shrinkage, barycenter, support)
+
+    def fit(self, X: ArrayLike, z: object, *, given: ArrayLike | None = None) -> GaussianTransport:
         """Fit the class Gaussians, their barycenter, the class maps and the classifier.
 
         Parameters
@@ -189,6 +234,12 @@ class GaussianTransport(Erasure):
             Embeddings.
         z : array-like of shape (n_samples,)
             Class labels of the attribute (integers or strings).
+        given : array-like of shape (n_samples,), optional
+            Each row's context value (a field, a query's category): the
+            classes are then transported within every value, by a map
+            fitted on that value's rows, and a stored classifier infers a
+            row's value when it is cleaned (see
+            :mod:`veil.erasers._context_transport`).
 
         Returns
         -------
@@ -205,61 +256,45 @@ class GaussianTransport(Erasure):
             smallest = labels[int(np.argmin(counts))]
             raise ValueError(f"every class needs at least 2 rows for a covariance; class {smallest!r} has 1")
         x = np.asarray(array, dtype=np.float64)
-        moments = MomentState.from_batch(array, attribute)
-        mean = moments.mean_x
-        centred = x - mean
-        # The same support cut as LEACE's whitening: no spread, no transport (and no rank decided by round-off).
-        # An embedding model's dead coordinates are left out of it exactly, so no class map writes into them
-        # (a rounding-level copy of the attribute there is what boosted trees read; see LinearErasure).
-        covariance = moments.covariance_xx * (x.shape[0] / (x.shape[0] - 1))
-        live = np.setdiff1d(np.arange(x.shape[1]), dead_coordinates(covariance))
-        support = np.zeros((x.shape[1], 0))
-        if live.size:
-            live_support, _ = whitening_factors(covariance[np.ix_(live, live)])
-            support = np.zeros((x.shape[1], live_support.shape[1]))
-            support[live] = live_support
-        if support.shape[1] == 0:
-            raise ValueError("the rows of X do not vary: there is nothing to transport")
-        inside = centred @ support
-        priors = counts / counts.sum()
-        class_means = np.stack([inside[codes == c].mean(axis=0) for c in range(labels.size)])
-        fitted = [self._class_covariance(inside[codes == c], labels[c]) for c in range(labels.size)]
-        covariances = [covariance for covariance, _ in fitted]
-        barycenter = barycenter_covariance(covariances, priors, max_iter=self.max_iter, tol=self.tol)
-        keep = support.shape[1] if self.rank is None else min(int(self.rank), support.shape[1])
-        directions, gains = [], []
-        for covariance in covariances:
-            eigenvalues, eigenvectors = np.linalg.eigh(
-                monge_matrix(covariance, barycenter.covariance) - np.eye(len(covariance))
-            )
-            # Order by how far each direction moves the class's rows: g² · Var_c along it.
-            moved = eigenvalues**2 * np.einsum("ij,ik,kj->j", eigenvectors, covariance, eigenvectors)
-            order = np.argsort(-moved, kind="stable")[:keep]
-            directions.append(support @ eigenvectors[:, order])
-            gains.append(eigenvalues[order])
-        coef, intercept = self._classifier(x, codes)
-        transport_map = ClassTransportMap(
-            mean=mean,
-            class_means=mean + class_means @ support.T,
-            directions=np.stack(directions),
-            gains=np.stack(gains),
-            classifier_coef=coef,
-            classifier_intercept=intercept,
-            priors=priors,
-            soft=self.inference == "soft",
-        )
+        self.classes_ = labels
+        if given is None:
+            self.moments_ = MomentState.from_batch(array, attribute)
+            self._set_population_fit(x, codes, labels)
+        else:
+            context = checked_context(np.asarray(given), array.shape[0])
+            # With the per-value moments too: the card records the context's values and rows from them.
+            self.moments_ = MomentState.from_batch(array, attribute, given=context)
+            self._set_context_fit(x, codes, labels, context)
+        return self
+
+    def _set_population_fit(self, x: Float64Array, codes: NDArray[np.intp], labels: NDArray[np.generic]) -> None:
+        fitted = self._fit_classes(x, codes, labels)
+        transport_map = fitted.map
         if self.then_leace:
             after = LEACE().fit(transport_map.apply(x), codes).map_
             transport_map = replace(transport_map, after=after)
-        self._set_map(transport_map, moments)
-        self.classes_ = labels
+        self._set_map(transport_map, self.moments_)
         self.class_means_ = transport_map.class_means
-        self.barycenter_covariance_ = barycenter.covariance
-        self.class_covariances_ = np.stack(covariances)
-        self.support_ = support
-        self.shrinkage_ = np.array([coefficient for _, coefficient in fitted])
-        self.n_iter_ = barycenter.n_iter
-        return self
+        self.barycenter_covariance_ = fitted.barycenter.covariance
+        self.class_covariances_ = fitted.covariances
+        self.support_ = fitted.support
+        self.shrinkage_ = fitted.shrinkage
+        self.n_iter_ = fitted.barycenter.n_iter
+
+    def _set_context_fit(
+        self, x: Float64Array, codes: NDArray[np.intp], labels: NDArray[np.generic], context: NDArray[np.generic]
+    ) -> None:
+        fitted = fit_within_context(
+            self._fit_classes, x, codes, labels, context, classifier_c=float(self.classifier_c),
+            random_state=self.random_state,
+        )  # fmt: skip
+        context_map = fitted.map
+        if self.then_leace:
+            after = LEACE().fit(context_map.apply(x), codes, given=context).map_
+            context_map = replace(context_map, after=after)
+        self._set_map(context_map, self.moments_)
+        self.context_values_ = context_map.values
+        self.fallback_values_ = fitted.fallback_values
 
     def counterfactual(self, X: ArrayLike, target: object) -> NDArray[np.floating]:
         """Carry each row from its inferred class onto the Gaussian of class ``target``.
@@ -279,4 +314,4 @@ class GaussianTransport(Erasure):
         matches = np.flatnonzero(self.classes_ == np.asarray(target))
         if matches.size != 1:
             raise ValueError(f"unknown target class {target!r}; the classes are {self.classes_.tolist()}")
-        return self._finish_rows(self.map_.towards(array, int(matches[0])))
+        return self._finish_rows(self.map_.counterfactual(array, self.moments_.class_means, int(matches[0])))

@@ -40,6 +40,7 @@ from veil.fitting.request import FitRequest, MethodSpec, ReadingSpec
 from veil.fitting.store import FitOutcome, audit_and_store, audit_folds
 from veil.fitting.sweep import Target, Value, parse_target, run_sweep
 from veil.fitting.sweep import sweep_values as strengths
+from veil.maps.attribute import encode_attribute
 from veil.maps.moments import MomentState
 from veil.progress import advance, phase
 from veil.registry import Registry
@@ -75,6 +76,8 @@ class _Rows:
     #: The fitted classes of a single categorical attribute (empty for an attribute table).
     classes: NDArray[Any]
     fit: tuple[NDArray[np.floating], NDArray[Any]]
+    #: The context value of each fitting-sample row, for a method that fits rows within a context.
+    fit_context: NDArray[Any] | None
     held: tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None]
 
 
@@ -211,11 +214,18 @@ def _checked_rows(sample: Sample, setup: _Setup, total: PartResult, notes: list[
         counted = [(sample.attribute_key, classes, counts)] if classes.size else []
     for attribute, labels, counts in counted:
         notes += _small_classes(attribute, labels, counts)
+    fit_context = np.concatenate(total.fit_context) if total.fit_context else None
     if total.moments is not None and total.moments.given is not None:
         # Small context values refused or pooled, on the merged moments: the fit reads the pooled ones.
         moments, cell_notes = checked_contexts(total.moments, sample.attribute_key, pool=pool)
         total = dataclasses.replace(total, moments=moments)
         notes += cell_notes
+    elif fit_context is not None:
+        # A method fitted on rows within a context (transport): the same cell rules, on the rows it is fitted on.
+        cells = MomentState.from_batch(
+            x_fit, encode_attribute(z_fit, z_fit.shape[0]), given={sample.context_keys[0]: fit_context}
+        )
+        notes += checked_contexts(cells, sample.attribute_key, pool=False)[1]
     if sample.attribute_table and total.moments is not None and total.moments.partial:
         rows = ", ".join(
             f"{block.name} {state.count}"
@@ -227,7 +237,7 @@ def _checked_rows(sample: Sample, setup: _Setup, total: PartResult, notes: list[
         _check_table_split(sample, total.fit_rows, total.moments, held[1])
     else:
         _check_split(sample, total.fit_rows, classes, held[1], audit_sampled=setup.audit_rows is not None)
-    return _Rows(total, classes, (x_fit, z_fit), held)
+    return _Rows(total, classes, (x_fit, z_fit), fit_context, held)
 
 
 def _table_class_counts(moments: MomentState | None) -> list[tuple[str, NDArray[Any], NDArray[np.int64]]]:
@@ -265,7 +275,8 @@ def _fit(setup: _Setup, request: FitRequest, rows: _Rows, notes: list[str]) -> t
         if spec.method in MOMENT_METHODS:
             assert moments is not None  # _check_split refuses a pass without fitting rows
             return fit_collecting_notes(candidate, spec.method, partial(candidate.fit_moments, moments))
-        return fit_collecting_notes(candidate, spec.method, partial(candidate.fit, x_fit, z_fit))
+        given = {} if spec.given is None else {"given": rows.fit_context}
+        return fit_collecting_notes(candidate, spec.method, partial(candidate.fit, x_fit, z_fit, **given))
 
     eraser, operating_points = setup.eraser, None
     if spec.sweeps:

@@ -44,6 +44,8 @@ class PartResult:
     held_sample: list[Rows]
     fit_sample: list[Rows]
     held_context: list[NDArray[Any]] = field(default_factory=list)
+    #: The context values of the fitting sample's rows, part by part (empty for a sample read without a context).
+    fit_context: list[NDArray[Any]] = field(default_factory=list)
 
     @classmethod
     def empty(cls) -> PartResult:
@@ -61,7 +63,12 @@ class PartResult:
             return [(x, z.view(dtype), task) for x, z, task in parts]
 
         return PartResult(
-            self.moments, self.fit_rows, restored(self.held_sample), restored(self.fit_sample), self.held_context
+            self.moments,
+            self.fit_rows,
+            restored(self.held_sample),
+            restored(self.fit_sample),
+            self.held_context,
+            self.fit_context,
         )
 
     def merge(self, later: PartResult) -> PartResult:
@@ -75,6 +82,7 @@ class PartResult:
             held_sample=self.held_sample + later.held_sample,
             fit_sample=self.fit_sample + later.fit_sample,
             held_context=self.held_context + later.held_context,
+            fit_context=self.fit_context + later.fit_context,
         )
 
 
@@ -129,16 +137,20 @@ class PassPlan:
             )
         held_kept = _kept(chunk, held, self.held_fraction, self.seed ^ _HELD_SAMPLE_SALT)
         held_rows = _rows(chunk, held_kept)
-        fit_rows = _rows(chunk, _kept(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT))
-        # The audit reads within the first context column (the first --given).
-        audited = next(iter(chunk.contexts.values()), None)
-        context = [] if audited is None or not held_kept.any() else [audited[held_kept]]
+        fit_drawn = _kept(chunk, fit, self.fit_fraction, self.seed ^ _FIT_SAMPLE_SALT)
+        fit_rows = _rows(chunk, fit_drawn)
+        # The audit reads within the first context column (the first --given), and the methods that fit on rows
+        # within a context (transport --given, one column) need each drawn row's value of it.
+        first = next(iter(chunk.contexts.values()), None)
+        context = [] if first is None or not held_kept.any() else [first[held_kept]]
+        fit_context = [] if first is None or not fit_drawn.any() else [first[fit_drawn]]
         return PartResult(
             moments=moments,
             fit_rows=int(np.count_nonzero(fit)),
             held_sample=[held_rows] if held_rows[0].shape[0] else [],
             fit_sample=[fit_rows] if fit_rows[0].shape[0] else [],
             held_context=context,
+            fit_context=fit_context,
         )
 
     def process_partition(self, partition: Partition) -> PartResult:

@@ -25,8 +25,9 @@ from veil.registry.naming import check_name
 #: A strength of a sweep: a count, or None for a method's full value (``all`` on the command line).
 SweepValue = int | None
 
-#: The methods that can guard an attribute within a context (they fit from moments, which merge by value).
-CONTEXT_METHODS = ("leace", "meanproj")
+#: The methods that can guard an attribute within a context: the first two fit from moments, which merge by
+#: value; transport fits one class transport per value on the fitting sample's rows.
+CONTEXT_METHODS = ("leace", "meanproj", "transport")
 
 
 @dataclass(frozen=True)
@@ -109,8 +110,17 @@ class MethodSpec:
         if twice:
             raise DataError(f"the context {twice[0]!r} is given twice; give each context column once")
         if self.method not in CONTEXT_METHODS:
+            raise DataError(f"{self.method} cannot guard within a context (--given); use {', '.join(CONTEXT_METHODS)}")
+        if self.method == "transport" and not self.guard_population:
             raise DataError(
-                f"{self.method} cannot guard within a context (--given); use {' or '.join(CONTEXT_METHODS)}"
+                "transport --given moves the classes within each value only (then_leace=true adds LEACE guarding the "
+                "population too): --within-only applies to leace and meanproj"
+            )
+        if self.method == "transport" and (len(keys) > 1 or self.pool_small_values):
+            raise DataError(
+                "transport --given moves the classes within the values of one context column, and a value short of a "
+                "class falls back to the population's transport: several --given columns and --pool-small-values "
+                "apply to leace and meanproj"
             )
         if self.sweeps:
             raise DataError(

@@ -3,7 +3,9 @@
 The linear methods end in an :class:`~veil.maps.lowrank.AffineLowRankMap`
 (kind ``"affine-lowrank"``); class-conditional transport ends in a
 :class:`~veil.maps.transport.ClassTransportMap` (kind ``"class-transport"``),
-which is not affine.  An artifact names its kind, and the storage format,
+which is not affine, and transport within each value of a context ends in a
+:class:`~veil.maps.context_transport.ContextTransportMap` (kind
+``"context-transport"``), which infers the value too.  An artifact names its kind, and the storage format,
 the service, ``veil apply`` and the live checks go through
 :class:`EmbeddingMap` only.
 """
@@ -16,6 +18,7 @@ from typing import Any, ClassVar, Protocol
 import numpy as np
 from numpy.typing import NDArray
 
+from veil.maps.context_transport import ContextTransportMap
 from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.transport import ClassTransportMap
 
@@ -70,6 +73,7 @@ class EmbeddingMap(Protocol):
 MAP_KINDS: dict[str, Callable[[Mapping[str, NDArray[Any]]], EmbeddingMap]] = {
     AffineLowRankMap.kind: AffineLowRankMap.from_arrays,
     ClassTransportMap.kind: ClassTransportMap.from_arrays,
+    ContextTransportMap.kind: ContextTransportMap.from_arrays,
 }
 
 

@@ -63,6 +63,12 @@ KIND_CAUTIONS = {
         "and the row is moved by that class's map; it is not affine, so its figures are measured on the "
         "held-out rows, not guaranteed, and where the classifier errs a row is moved by another class's map"
     ),
+    "context-transport": (
+        "this map reads the attribute and the context in order to remove the attribute within each context value: "
+        "stored linear classifiers infer each row's context value, then its class, and the row is moved by that "
+        "value's class map; it is not affine, so its figures are measured on the held-out rows, not guaranteed, "
+        "and where a classifier errs a row is moved by another value's or class's map"
+    ),
 }
 
 
@@ -154,7 +160,7 @@ def given_record(artifact: MapArtifact) -> dict[str, Any]:
     assert given is not None
     return {
         "columns": [_column_record(column, given.of_column(column)[0]) for column in given.columns],
-        "guard_population": bool(artifact.params.get("guard_population", True)),
+        "guard_population": _guards_population(artifact),
     }
 
 
@@ -176,6 +182,13 @@ def given_columns(record: Mapping[str, Any]) -> list[dict[str, Any]]:
     if "columns" in record:
         return [dict(entry) for entry in record["columns"]]
     return [{"column": record["column"], "values": record["values"], "rows": record["rows"]}]
+
+
+def _guards_population(artifact: MapArtifact) -> bool:
+    # Transport within a context moves the classes within each value only; LEACE after it guards the population.
+    if artifact.kind == "context-transport":
+        return bool(artifact.params.get("then_leace", False))
+    return bool(artifact.params.get("guard_population", True))
 
 
 def given_text(record: Mapping[str, Any]) -> str:
