@@ -224,8 +224,8 @@ def build_parser() -> VeilParser:
         help="a categorical context (a field, a query's category) to guard the attributes within: the class means "
         "coincide within every value of COLUMN on the fitting rows (leace, meanproj; categorical attributes; "
         "transport, one column, carries the classes onto one Gaussian within every value and infers a row's value "
-        "when serving); repeat it for several columns, each guarded on its own (not their combinations: for those, give one "
-        "column holding the combined value); a missing value is refused or dropped like a missing label",
+        "when serving); repeat it for several columns, each guarded on its own (not their combinations: for those, "
+        "give one column holding the combined value); a missing value is refused or dropped like a missing label",
     )
     fit.add_argument(
         "--pool-small-values",
