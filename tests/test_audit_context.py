@@ -18,12 +18,12 @@ import pytest
 from scipy import stats
 from sklearn.model_selection import train_test_split
 
-from veil.audit import audit
+from veil.audit import audit, fit_and_audit
 from veil.audit.context_report import FLOOR_MEANING, ContextAudit
 from veil.audit.report import ProbeScore
 from veil.checks.thresholds import AuditThresholds
 from veil.checks.verdict import context_figures, judge_audit
-from veil.erasers import LEACE
+from veil.erasers import INLP, LEACE
 from veil.registry import Registry
 from veil.registry.card import card_audit
 from veil.reporting import version_report
@@ -216,3 +216,21 @@ async def test_a_live_check_with_the_context_column_reads_within_each_value(fitt
     assert whole["context"] is None
     assert whole["context_leakage_gap"] is None
     assert whole["leakage"] == within["leakage"]
+
+
+def test_fit_and_audit_fits_and_reads_within_the_context() -> None:
+    sample = load_harbourline_profiles()
+    x, z, field = sample.embedding, sample.pronoun, sample.field
+    _, within = fit_and_audit(LEACE(), x, z, given=field, given_name="field", nonlinear=False)
+    eraser, plain = fit_and_audit(LEACE(), x, z, nonlinear=False)
+    assert plain.context is None
+    assert within.context is not None
+    assert within.context.column == "field"
+    # The same split (seeded), so the plain fit audited within the field is the comparison: guarding within
+    # the field reads less there.
+    held = train_test_split(np.arange(z.size), test_size=0.3, random_state=0, stratify=z)[1]
+    plain_within = audit(eraser, x[held], z[held], given=field[held], nonlinear=False).context
+    assert plain_within is not None
+    assert within.context.after["linear"].accuracy < plain_within.after["linear"].accuracy
+    with pytest.raises(ValueError, match="cannot be fitted within a context"):
+        fit_and_audit(INLP(classifier="moments", max_iter=2), x, z, given=field, nonlinear=False)

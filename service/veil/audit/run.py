@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import inspect
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import TypeVar
@@ -391,12 +392,23 @@ def fit_and_audit(
     z: object,
     *,
     task: object = None,
+    given: object = None,
+    given_name: str | None = None,
     holdout: float = 0.3,
     random_state: int = 0,
     folds: int = 5,
     nonlinear: bool = True,
 ) -> tuple[E, AuditReport]:
     """Split off a held-out part (stratified by the attribute), fit on the rest, audit on it.
+
+    Parameters
+    ----------
+    given : array-like of shape (n_samples,), optional
+        Each row's context value: the eraser is fitted within it (for the
+        methods that take ``given``) and the audit also reads within each
+        value, against what the context alone tells.
+    given_name : str, optional
+        The context column's name, for the report.
 
     Returns
     -------
@@ -410,12 +422,23 @@ def fit_and_audit(
     indices = np.arange(raw.shape[0])
     fit_rows, held_rows = train_test_split(indices, test_size=holdout, random_state=random_state, stratify=stratify)
     task_array = None if task is None else np.asarray(task)
-    eraser.fit(raw[fit_rows], z_array[fit_rows])
+    context = None if given is None else np.asarray(given)
+    if context is None:
+        eraser.fit(raw[fit_rows], z_array[fit_rows])
+    elif "given" in inspect.signature(eraser.fit).parameters:
+        eraser.fit(raw[fit_rows], z_array[fit_rows], given=context[fit_rows])
+    else:
+        raise ValueError(
+            f"{type(eraser).__name__} cannot be fitted within a context: fit it without given, then audit it "
+            "within the context with audit(eraser, X, z, given=...)"
+        )
     report = audit(
         eraser,
         raw[held_rows],
         z_array[held_rows],
         task=None if task_array is None else task_array[held_rows],
+        given=None if context is None else context[held_rows],
+        given_name=given_name,
         folds=folds,
         nonlinear=nonlinear,
         random_state=random_state,
