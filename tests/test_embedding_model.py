@@ -89,7 +89,8 @@ def test_a_sample_file_stating_its_model_is_the_default_and_the_card_says_so(tmp
     card = Registry(registry).read_version("fitted", "1").card
     assert card["embedding_model"]["stated_by"] == "sample file"
     assert card["request"]["store"]["embedding_model"] is None
-    assert "acme/encoder@2.1, dim 16 (from the sample file)" in run("show", "fitted", "1", "--registry", registry).out
+    shown = run("show", "fitted", "1", "--registry", registry).out
+    assert "acme/encoder@2.1, dim 16, named by the sample file; a caller stating another model" in shown
     # The same model named on the command line agrees (without a version, any version of the name does).
     assert _fit(registry, data, "--embedding-model", "acme/encoder").code == 0
     refused = _fit(registry, data, "--embedding-model", "other/encoder@1")

@@ -183,11 +183,11 @@ def embedding_model_text(card: Mapping[str, Any]) -> str:
     record = card.get("embedding_model")
     if record is not None:
         model = EmbeddingModel(record["name"], record.get("version"))
-        version = "" if model.version is not None else " (no version stated: any version of it is taken)"
-        source = " (from the sample file)" if record.get("stated_by") == "sample file" else ""
+        source = ", named by the sample file" if record.get("stated_by") == "sample file" else ""
+        versions = "" if model.version is not None else " (no model version recorded: any version of it is accepted)"
         return (
-            f"{model.text}, dim {record['dim']}{source}{version}; a caller stating another model "
-            "(X-Veil-Embedding-Model) is refused"
+            f"{model.text}, dim {record['dim']}{source}; a caller stating another model (X-Veil-Embedding-Model) "
+            f"is refused{versions}"
         )
     if "embedding_model" in card:
         why = "the fit named none (veil fit --embedding-model NAME@VERSION)"
