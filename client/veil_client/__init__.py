@@ -11,7 +11,9 @@ into batches of ``batch_size`` rows and put the results back in order, pin
 every later batch to the version the first one got (so one result never mixes
 versions), retry connection errors and 503 with exponential backoff and
 jitter (never a 4xx), and use explicit default timeouts (5 s connect, 30 s
-otherwise).
+otherwise).  ``embedding_model="NAME@VERSION"`` states the model that made
+your vectors on every request: a version fitted on another model refuses
+them (``VeilEmbeddingModelError``) instead of moving them meaninglessly.
 
 Exceptions (all subclasses of :class:`VeilError`)::
 
@@ -20,6 +22,7 @@ Exceptions (all subclasses of :class:`VeilError`)::
     ├── VeilTransportError      not reachable / timed out, after every retry
     └── VeilHTTPError           the service answered an error: .status, .code, .message
         ├── VeilClientError     4xx (wrong_dimension, unknown_eraser, ...): never retried
+        │   └── VeilEmbeddingModelError   409 embedding_model_mismatch: .stated, .recorded
         └── VeilServerError     5xx (a 503 only after every retry)
 """
 
@@ -27,6 +30,7 @@ from veil_client._base import DEFAULT_BATCH_SIZE, DEFAULT_TIMEOUT, CleanedBatch,
 from veil_client.client import AsyncVeilClient, VeilClient
 from veil_client.errors import (
     VeilClientError,
+    VeilEmbeddingModelError,
     VeilError,
     VeilHTTPError,
     VeilServerError,
@@ -42,6 +46,7 @@ __all__ = [
     "SearchVectors",
     "VeilClient",
     "VeilClientError",
+    "VeilEmbeddingModelError",
     "VeilError",
     "VeilHTTPError",
     "VeilServerError",

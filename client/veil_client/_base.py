@@ -5,6 +5,7 @@ from __future__ import annotations
 import io
 import json
 import random
+import re
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, replace
 from typing import Any
@@ -13,7 +14,13 @@ import httpx
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from veil_client.errors import VeilClientError, VeilHTTPError, VeilServerError, VeilValidationError
+from veil_client.errors import (
+    VeilClientError,
+    VeilEmbeddingModelError,
+    VeilHTTPError,
+    VeilServerError,
+    VeilValidationError,
+)
 
 NPY = "application/x-npy"
 JSON = "application/json"
@@ -21,6 +28,10 @@ JSON = "application/json"
 DEFAULT_TIMEOUT = httpx.Timeout(30.0, connect=5.0)
 DEFAULT_BATCH_SIZE = 1024
 RETRY_STATUSES = frozenset({503})
+#: The header the client states its embedding model in, and the form the service accepts in it.
+MODEL_HEADER = "X-Veil-Embedding-Model"
+_MODEL_PART = re.compile(r"[A-Za-z0-9][A-Za-z0-9._/:+-]*")
+MAX_MODEL_TEXT = 200
 
 
 @dataclass(frozen=True)
@@ -148,11 +159,15 @@ def raise_for_error(response: httpx.Response) -> None:
     if response.status_code < 400:
         return
     code, message = "unknown", response.text[:500]
+    error: Any = {}
     try:
         error = response.json()["error"]
         code, message = str(error["code"]), str(error["message"])
     except (ValueError, KeyError, TypeError):
         pass
+    if code == "embedding_model_mismatch":
+        stated, recorded = str(error.get("stated", "")), str(error.get("recorded", ""))
+        raise VeilEmbeddingModelError(response.status_code, code, message, stated=stated, recorded=recorded)
     kind: type[VeilHTTPError] = VeilClientError if response.status_code < 500 else VeilServerError
     raise kind(response.status_code, code, message)
 
@@ -179,15 +194,43 @@ def pin_headers(version: str | None, alias: str | None) -> dict[str, str]:
     return {}
 
 
-class ClientSettings:
-    """The configuration both clients carry."""
+def model_header(model: str | None) -> dict[str, str]:
+    """The header stating ``model`` (``NAME`` or ``NAME@VERSION``), checked as the service checks it; {} for None."""
+    if model is None:
+        return {}
+    form = (
+        "NAME or NAME@VERSION, each starting with a letter or digit and holding only letters, digits and . _ / : + - "
+        f"(at most {MAX_MODEL_TEXT} characters in all)"
+    )
+    if not isinstance(model, str):
+        raise VeilValidationError(f"embedding_model is {form}; got {type(model).__name__}")
+    text = model.strip()
+    name, at, version = text.partition("@")
+    parts = [name, version] if at else [name]
+    if not all(_MODEL_PART.fullmatch(part) for part in parts) or len(text) > MAX_MODEL_TEXT:
+        raise VeilValidationError(f"embedding_model is {form}; got {model!r}")
+    return {MODEL_HEADER: text}
 
-    def __init__(self, *, token: str | None, batch_size: int, wire: str, retry: RetryPolicy, seed: int | None) -> None:
+
+class ClientSettings:
+    """The configuration both clients carry: the headers of every request (token, embedding model) and more."""
+
+    def __init__(
+        self,
+        *,
+        token: str | None,
+        batch_size: int,
+        wire: str,
+        retry: RetryPolicy,
+        seed: int | None,
+        embedding_model: str | None = None,
+    ) -> None:
         if batch_size < 1:
             raise VeilValidationError(f"batch_size must be at least 1, got {batch_size}")
         if wire not in ("npy", "json"):
             raise VeilValidationError(f"format must be 'npy' or 'json', got {wire!r}")
         self.headers = {} if token is None else {"Authorization": f"Bearer {token}"}
+        self.headers.update(model_header(embedding_model))
         self.batch_size = batch_size
         self.wire = NPY if wire == "npy" else JSON
         self.retry = retry

@@ -48,7 +48,7 @@ class _Requests:
 
     def _configure(
         self, *, token: str | None, batch_size: int, encoding: str, retries: int, backoff: float, max_backoff: float,
-        seed: int | None,
+        seed: int | None, embedding_model: str | None,
     ) -> None:  # fmt: skip
         self.settings = ClientSettings(
             token=token,
@@ -56,6 +56,7 @@ class _Requests:
             wire=encoding,
             retry=RetryPolicy(retries, backoff, max_backoff),
             seed=seed,
+            embedding_model=embedding_model,
         )
 
     def _retry_after_error(self, method: str, path: str, attempt: int, error: httpx.TransportError) -> float:
@@ -161,6 +162,11 @@ class VeilClient(_Requests):
         Retries on connection errors and 503 only, with exponential backoff and jitter.
     transport, http_client
         An httpx transport (``MockTransport`` in tests) or a ready ``httpx.Client``.
+    embedding_model : str, optional
+        The embedding model that made your vectors, ``NAME`` or ``NAME@VERSION`` (e.g.
+        ``"sentence-transformers/all-MiniLM-L6-v2@2.2.0"``), sent as ``X-Veil-Embedding-Model`` on every request:
+        a version fitted on another model refuses the vectors with :class:`VeilEmbeddingModelError` (never
+        retried).  Without it, or for a version that records no model, only the dimension is checked.
     """
 
     def __init__(
@@ -177,10 +183,11 @@ class VeilClient(_Requests):
         transport: httpx.BaseTransport | None = None,
         http_client: httpx.Client | None = None,
         seed: int | None = None,
+        embedding_model: str | None = None,
     ) -> None:
         self._configure(
             token=token, batch_size=batch_size, encoding=encoding, retries=retries, backoff=backoff,
-            max_backoff=max_backoff, seed=seed,
+            max_backoff=max_backoff, seed=seed, embedding_model=embedding_model,
         )  # fmt: skip
         self._http = http_client or httpx.Client(base_url=base_url, timeout=timeout, transport=transport)
 
@@ -355,10 +362,11 @@ class AsyncVeilClient(_Requests):
         transport: httpx.AsyncBaseTransport | None = None,
         http_client: httpx.AsyncClient | None = None,
         seed: int | None = None,
+        embedding_model: str | None = None,
     ) -> None:
         self._configure(
             token=token, batch_size=batch_size, encoding=encoding, retries=retries, backoff=backoff,
-            max_backoff=max_backoff, seed=seed,
+            max_backoff=max_backoff, seed=seed, embedding_model=embedding_model,
         )  # fmt: skip
         self._http = http_client or httpx.AsyncClient(base_url=base_url, timeout=timeout, transport=transport)
 

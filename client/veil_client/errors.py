@@ -40,5 +40,23 @@ class VeilClientError(VeilHTTPError):
     """A 4xx: the request was wrong; retrying it unchanged cannot help."""
 
 
+class VeilEmbeddingModelError(VeilClientError):
+    """A 409 ``embedding_model_mismatch``: the version serving the request was fitted on another embedding model
+    than the one the client states (``embedding_model=``).  Permanent: never retried.
+
+    Attributes
+    ----------
+    stated : str
+        The model the request stated, ``NAME`` or ``NAME@VERSION``.
+    recorded : str
+        The model the version's card records.
+    """
+
+    def __init__(self, status: int, code: str, message: str, *, stated: str, recorded: str) -> None:
+        super().__init__(status, code, message)
+        self.stated = stated
+        self.recorded = recorded
+
+
 class VeilServerError(VeilHTTPError):
     """A 5xx (a 503 only after every retry)."""

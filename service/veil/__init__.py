@@ -11,6 +11,7 @@ from veil.maps.lowrank import AffineLowRankMap
 from veil.maps.moments import MomentState
 from veil.maps.search import SearchVectors, search_vectors
 from veil.samples.attributes import attribute_table
+from veil.samples.embedding_model import EmbeddingModel
 
 if TYPE_CHECKING:
     from veil.erasers import INLP, LEACE, RLACE, MeanProjection
@@ -27,6 +28,7 @@ __all__ = [
     "RLACE",
     "AffineLowRankMap",
     "AuditSpec",
+    "EmbeddingModel",
     "FitRequest",
     "GaussianTransport",
     "MapArtifact",

@@ -12,7 +12,14 @@ from typing import Any
 
 from veil.errors import DataError
 from veil.registry import DEFAULT_ALIAS, Registry
-from veil.registry.card import attributes_text, card_verdict, compare_cards, format_card, fresh_audits_text
+from veil.registry.card import (
+    attributes_text,
+    card_verdict,
+    compare_cards,
+    embedding_model_text,
+    format_card,
+    fresh_audits_text,
+)
 from veil.registry.evidence import version_evidence
 
 #: Exit status when a verdict reaches ``--fail-on`` (what was asked is done and stored all the same).
@@ -120,8 +127,20 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
             scheduler=args.scheduler,
             workers=args.dask_workers,
         )
-    store = StoreSpec(args.name, alias=args.alias, reason=args.reason)
+    store = StoreSpec(args.name, alias=args.alias, reason=args.reason, embedding_model=_embedding_model(args))
     return FitRequest(method, store, audit=audit, reading=reading)
+
+
+def _embedding_model(args: argparse.Namespace) -> Any:
+    """The model ``--embedding-model`` names (None without it), refused in one line if it does not read."""
+    from veil.samples.embedding_model import EmbeddingModel
+
+    if args.embedding_model is None:
+        return None
+    try:
+        return EmbeddingModel.parse(args.embedding_model)
+    except DataError as error:
+        raise DataError(f"--embedding-model: {error}") from None
 
 
 def fit(args: argparse.Namespace) -> int:
@@ -145,6 +164,7 @@ def fit(args: argparse.Namespace) -> int:
     for line in attributes_text(outcome.card):
         print(line)
     print(f"verdict at fitting time: {card_verdict(outcome.card).sentence()}")
+    print(f"embedding model: {embedding_model_text(outcome.card)}")
     for note in outcome.card["notes"]:
         if note not in outcome.audit.notes:
             print(f"note: {note}")

@@ -214,6 +214,14 @@ def build_parser() -> VeilParser:
     fit.add_argument("--name", required=True, help="the eraser's name in the registry, e.g. profiles-minilm")
     fit.add_argument("--alias", help="point this alias (e.g. live) at the new version")
     fit.add_argument("--reason", default="", help="recorded in the history when --alias moves")
+    fit.add_argument(
+        "--embedding-model",
+        metavar="NAME[@VERSION]",
+        help="the embedding model that made the sample's vectors, e.g. sentence-transformers/all-MiniLM-L6-v2@2.2.0: "
+        "the card records it with the dimension, and the service refuses a caller who states another model "
+        "(header X-Veil-Embedding-Model); default: the model an .npz states in its 'embedding_model' entry, if any, "
+        "else none is recorded and any caller is accepted",
+    )
     fit.add_argument("--holdout", type=float, default=0.2, help="share of rows held out for the audit (default 0.2)")
     fit.add_argument("--seed", type=int, default=0, help="seeds the split, probes and randomised methods")
     fit.add_argument("--normalize", action="store_true", help="re-normalise served vectors to unit length")

@@ -46,6 +46,7 @@ from veil.progress import advance, phase
 from veil.registry import Registry
 from veil.samples.attributes import attribute_columns, present_rows
 from veil.samples.chunks import Partition, Sample
+from veil.samples.embedding_model import fitted_model
 
 MOMENT_METHODS = ("leace", "meanproj")
 
@@ -101,6 +102,8 @@ def fit_version(sample: Sample, request: FitRequest, *, registry: Registry) -> F
     TargetsMissedError
         No point of the sweep meets every target (the sweep is attached); nothing is written.
     """
+    # A model the request names against another the sample file states is refused before any row is read.
+    fitted_model(request.store.embedding_model, sample.embedding_model)
     setup = _prepare(sample, request)
     notes: list[str] = []
     total = _read(setup, request.reading, sample, notes)

@@ -21,6 +21,7 @@ from veil.checks.thresholds import AlertThresholds, AuditThresholds
 from veil.defaults import ENGINES, STREAM_CHUNK_ROWS
 from veil.errors import DataError
 from veil.registry.naming import check_name
+from veil.samples.embedding_model import EmbeddingModel
 
 #: A strength of a sweep: a count, or None for a method's full value (``all`` on the command line).
 SweepValue = int | None
@@ -202,20 +203,31 @@ class StoreSpec:
         Point this alias at the new version once it is stored.
     reason : str
         Recorded in the history if the alias is moved (a sentence naming the method by default).
+    embedding_model : EmbeddingModel, optional
+        The model that made the sample's vectors (``EmbeddingModel.parse("NAME@VERSION")``).  The card records
+        it with the dimension, and the service refuses a caller who states another; None takes the sample
+        file's, if it states one (see :mod:`veil.samples.embedding_model`), else the version accepts any caller.
     """
 
     name: str
     _: KW_ONLY
     alias: str | None = None
     reason: str = ""
+    embedding_model: EmbeddingModel | None = None
 
     def __post_init__(self) -> None:
         check_name(self.name)
         if self.alias is not None:
             check_name(self.alias, what="alias")
+        if self.embedding_model is not None and not isinstance(self.embedding_model, EmbeddingModel):
+            raise DataError(
+                f"embedding_model is an EmbeddingModel (EmbeddingModel.parse('NAME@VERSION')), got "
+                f"{type(self.embedding_model).__name__}"
+            )
 
     def to_dict(self) -> dict[str, Any]:
-        return {"name": self.name, "alias": self.alias, "reason": self.reason}
+        model = None if self.embedding_model is None else self.embedding_model.text
+        return {"name": self.name, "alias": self.alias, "reason": self.reason, "embedding_model": model}
 
 
 @dataclass(frozen=True, kw_only=True)

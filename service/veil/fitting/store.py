@@ -152,6 +152,7 @@ def audit_and_store(
         audit_thresholds=request.audit.thresholds,
         attribute_audits=attribute_audits,
         request=request.to_dict(),
+        embedding_model=request.store.embedding_model,
     )
     files = encode_artifact(artifact)
     files[CARD_FILE] = json.dumps(card, indent=2, sort_keys=True, allow_nan=False).encode()

@@ -25,6 +25,7 @@ from veil.checks.verdict import LEVELS, Verdict, judge_audit
 from veil.maps.artifact import MapArtifact
 from veil.maps.context import ContextMoments
 from veil.samples.chunks import Sample
+from veil.samples.embedding_model import EmbeddingModel, fitted_model
 from veil.samples.labels import dropped_note
 
 CARD_FORMAT = 1
@@ -89,10 +90,13 @@ def build_card(
     audit_thresholds: AuditThresholds | None = None,
     attribute_audits: Sequence[tuple[str, AuditReport]] = (),
     request: Mapping[str, Any] | None = None,
+    embedding_model: EmbeddingModel | None = None,
 ) -> dict[str, Any]:
     """The card of a freshly fitted version (a JSON-safe dict).
 
     ``request`` is the fit's description as asked for (:meth:`veil.fitting.request.FitRequest.to_dict`).
+    ``embedding_model`` is the model the request names; the card records it, or else the one the sample file
+    states (see :func:`embedding_model_record`).
 
     For several attributes, ``attribute_audits`` holds each one's audit (``audit`` is the first categorical
     one's, which heads the card); the card then lists them under ``attributes`` (see :func:`attributes_record`).
@@ -113,6 +117,7 @@ def build_card(
         "map_kind": artifact.kind,
         **artifact.map.describe(),
         "dtype": str(sample.dtype),
+        "embedding_model": embedding_model_record(embedding_model, sample.embedding_model, artifact.map.dim),
         "attribute": {"key": sample.attribute_key, "classes": classes, "priors": reference.class_priors.tolist()},
         "task": None if sample.task_key is None else {"key": sample.task_key},
         "data": {
@@ -151,6 +156,44 @@ def build_card(
         card["attributes"] = entries
         card["verdict"] = worst_verdict(verdict_record(audit, audit_thresholds or AuditThresholds()), entries)
     return dict(json_safe(card))
+
+
+def embedding_model_record(
+    requested: EmbeddingModel | None, in_sample: EmbeddingModel | None, dim: int
+) -> dict[str, Any] | None:
+    """The model a version was fitted on: name, version (None if not stated), dimension and who named it.
+
+    None when neither the request nor the sample file names one: the version then accepts any caller's model.
+    """
+    fitted = fitted_model(requested, in_sample)
+    if fitted is None:
+        return None
+    model, stated_by = fitted
+    return {"name": model.name, "version": model.version, "dim": dim, "stated_by": stated_by}
+
+
+def card_model(card: Mapping[str, Any]) -> EmbeddingModel | None:
+    """The embedding model a card records; None for a version fitted without one or stored before cards had one."""
+    record = card.get("embedding_model")
+    return None if record is None else EmbeddingModel(record["name"], record.get("version"))
+
+
+def embedding_model_text(card: Mapping[str, Any]) -> str:
+    """The card's embedding model in a line: what it is and whose vectors the service takes."""
+    record = card.get("embedding_model")
+    if record is not None:
+        model = EmbeddingModel(record["name"], record.get("version"))
+        source = ", named by the sample file" if record.get("stated_by") == "sample file" else ""
+        versions = "" if model.version is not None else " (no model version recorded: any version of it is accepted)"
+        return (
+            f"{model.text}, dim {record['dim']}{source}; a caller stating another model (X-Veil-Embedding-Model) "
+            f"is refused{versions}"
+        )
+    if "embedding_model" in card:
+        why = "the fit named none (veil fit --embedding-model NAME@VERSION)"
+    else:
+        why = "stored before versions recorded their model"
+    return f"not recorded: {why}; any caller's model is accepted, only the dimension ({card['dim']}) is checked"
 
 
 def given_record(artifact: MapArtifact) -> dict[str, Any]:
@@ -419,6 +462,7 @@ def format_card(version_id: str, card: dict[str, Any]) -> str:
         lines.append(f"  {'context':{width}}  guarded {given_text(card['given'])}")
     if card.get("task"):
         lines.append(f"  {'task':{width}}  {card['task']['key']}")
+    lines.append(f"  {'embedding model':{width}}  {embedding_model_text(card)}")
     lines.append(f"  {'pinned':{width}}  {pins_text(card)}")
     lines.append(f"  {'parameters':{width}}  " + ", ".join(f"{k}={v}" for k, v in sorted(card["params"].items())))
     lines += ["", card_audit(card).format_table()]

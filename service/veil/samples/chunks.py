@@ -15,6 +15,8 @@ from typing import Any, Protocol
 import numpy as np
 from numpy.typing import NDArray
 
+from veil.samples.embedding_model import EmbeddingModel
+
 
 @dataclass(frozen=True, eq=False)
 class Chunk:
@@ -122,6 +124,11 @@ class Sample(Protocol):
     @property
     def context_keys(self) -> tuple[str, ...]:
         """The context columns the attribute is guarded within, each on its own (empty: the population only)."""
+        ...
+
+    @property
+    def embedding_model(self) -> EmbeddingModel | None:
+        """The embedding model the sample file states made its vectors (None: it states none)."""
         ...
 
     @property

@@ -9,7 +9,10 @@ skewed by pronoun on purpose.  ``scripts/make_profile_sample.py`` made both
 samples: the small one (3,000 rows, float32) that the demo uses, and a large
 one (24,000 rows, every text distinct, a wider vocabulary) stored as float16
 and widened back to float32 on load, for effects that sampling error hides
-at a few thousand rows.
+at a few thousand rows.  The committed files do not name the model in an
+``embedding_model`` entry (they predate it), so a version fitted on them records
+an embedding model only when ``veil fit --embedding-model`` names one; the
+script writes the entry when it regenerates them.
 """
 
 from __future__ import annotations

@@ -31,6 +31,7 @@ from veil.errors import DataError
 from veil.progress import advance, phase
 from veil.samples.attributes import attribute_table, is_table
 from veil.samples.chunks import Chunk, InMemoryPartition
+from veil.samples.embedding_model import EmbeddingModel, sample_model
 from veil.samples.labels import arrow_labels, missing_labels, rows_to_keep
 from veil.samples.tables import embedding_matrix
 
@@ -66,6 +67,9 @@ class LabelledSample:
         guarded within every value of each too (``veil fit --given``).  Empty without one.
     context_keys : tuple of str
         The context columns, in the order given.
+    embedding_model : EmbeddingModel or None
+        The model an ``.npz`` states made its vectors (its ``embedding_model`` entry, see
+        :mod:`veil.samples.embedding_model`); None when the file states none.
     """
 
     embeddings: NDArray[np.floating]
@@ -78,6 +82,7 @@ class LabelledSample:
     notes: tuple[str, ...] = ()
     contexts: Mapping[str, NDArray[Any]] = field(default_factory=dict)
     context_keys: tuple[str, ...] = ()
+    embedding_model: EmbeddingModel | None = None
 
     @property
     def rows(self) -> int:
@@ -503,6 +508,7 @@ def _read_sample(
         kept=read.kept,
         contexts=read.contexts,
         context_keys=given,
+        embedding_model=sample_model(data_path),
     )
 
 

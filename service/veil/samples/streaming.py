@@ -25,6 +25,7 @@ from numpy.typing import NDArray
 from veil.defaults import STREAM_CHUNK_ROWS
 from veil.errors import DataError
 from veil.samples.chunks import Chunk
+from veil.samples.embedding_model import EmbeddingModel
 from veil.samples.labels import arrow_labels, missing_labels, rows_to_keep
 from veil.samples.sources import (
     PARQUET_SUFFIXES,
@@ -67,6 +68,8 @@ class StreamedSample:
     attribute_dtype: np.dtype[Any] | None = None
     #: The context columns the attribute is guarded within, each on its own (empty: the population only).
     context_keys: tuple[str, ...] = ()
+    #: Streamed files (``.npy``, Parquet, shards) state no embedding model.
+    embedding_model: EmbeddingModel | None = None
 
     @property
     def labelled_rows(self) -> int:

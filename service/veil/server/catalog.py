@@ -22,10 +22,13 @@ from numpy.typing import NDArray
 
 from veil.checks.reference import REFERENCE_FILE, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
+from veil.errors import DataError
 from veil.maps.artifact import MapArtifact
 from veil.registry import IntegrityError, NotFoundError, Registry, RegistryError, StoredVersion
+from veil.registry.card import card_model
 from veil.registry.errors import InvalidReferenceError
 from veil.registry.naming import parse_version_id
+from veil.samples.embedding_model import EmbeddingModel
 from veil.server.errors import ServiceError
 from veil.server.metrics import ServiceMetrics
 
@@ -44,6 +47,8 @@ class ServedVersion:
     thresholds: AlertThresholds
     classes: list[str]
     whitening: NDArray[np.float64] = field(repr=False)
+    #: The embedding model the version was fitted on (None: its card records none, and any caller is accepted).
+    embedding_model: EmbeddingModel | None = None
 
     @property
     def dim(self) -> int:
@@ -61,6 +66,12 @@ class ServedVersion:
         values = reference.eigenvalues[: reference.eigenvectors.shape[1]]
         keep = values > values[0] * 1e-10 if values.size else values.astype(bool)
         whitening = reference.eigenvectors[:, keep] / np.sqrt(values[keep])
+        try:
+            model = card_model(card)
+        except (KeyError, TypeError, DataError) as error:
+            raise IntegrityError(
+                f"{stored.name} {stored.id}: the card's embedding model is unreadable ({error})"
+            ) from None
         return cls(
             name=stored.name,
             version_id=stored.id,
@@ -70,6 +81,23 @@ class ServedVersion:
             thresholds=thresholds,
             classes=[str(c) for c in card.get("attribute", {}).get("classes", [])],
             whitening=whitening,
+            embedding_model=model,
+        )
+
+    def check_model(self, stated: EmbeddingModel | None) -> None:
+        """Refuse a caller who states another embedding model than the one this version was fitted on.
+
+        No statement, or a version that records no model, is accepted (the dimension is still checked).
+        """
+        recorded = self.embedding_model
+        if stated is None or recorded is None or not stated.differs_from(recorded):
+            return
+        raise ServiceError(
+            "embedding_model_mismatch",
+            f"{self.name} {self.version_id} was fitted on embedding model {recorded.text!r}, and the request states "
+            f"{stated.text!r} (X-Veil-Embedding-Model): another model's vectors would be moved to meaningless places; "
+            f"embed with {recorded.text!r}, or use a version fitted on {stated.text!r}",
+            details={"stated": stated.text, "recorded": recorded.text},
         )
 
     def apply(self, x: NDArray[np.floating]) -> NDArray[np.floating]:

@@ -15,6 +15,8 @@ from fastapi import Depends, Header, Path, Request
 from pydantic import SecretStr
 from starlette.types import Scope
 
+from veil.errors import DataError
+from veil.samples.embedding_model import EmbeddingModel
 from veil.server.catalog import Catalog
 from veil.server.codecs import JSON_MEDIA_TYPE, NPY_MEDIA_TYPE
 from veil.server.errors import ServiceError
@@ -124,18 +126,25 @@ class Pin:
 
 @dataclass(frozen=True)
 class BatchCall:
-    """Everything a batch route needs from its request: body, formats in and out, and the version pin."""
+    """Everything a batch route needs from its request: body, formats in and out, the version pin, and the
+    embedding model the caller states (None: not stated)."""
 
     body: bytes
     media: str
     answer: str
     pin: Pin
+    model: EmbeddingModel | None = None
 
 
 #: The request headers a batch route reads (lower case, as ASGI gives them).
 _BATCH_HEADERS = frozenset(
-    (b"authorization", b"content-type", b"accept", b"content-length", b"x-veil-version", b"x-veil-alias")
-)
+    (
+        b"authorization", b"content-type", b"accept", b"content-length", b"x-veil-version", b"x-veil-alias",
+        b"x-veil-embedding-model",
+    )
+)  # fmt: skip
+#: The header a caller states the embedding model of its vectors in: ``NAME`` or ``NAME@VERSION``.
+MODEL_HEADER = "X-Veil-Embedding-Model"
 
 
 def batch_headers(scope: Scope) -> dict[bytes, str]:
@@ -166,8 +175,19 @@ async def batch_call(request: Request) -> BatchCall:
     media = request_media(headers.get(b"content-type"))
     answer = response_media(media, headers.get(b"accept"))
     pin = _pin(request, headers.get(b"x-veil-version"), headers.get(b"x-veil-alias"))
+    model = stated_model(headers.get(b"x-veil-embedding-model"))
     body = await _read_body(request, settings.max_body_bytes, headers.get(b"content-length"))
-    return BatchCall(body=body, media=media, answer=answer, pin=pin)
+    return BatchCall(body=body, media=media, answer=answer, pin=pin, model=model)
+
+
+def stated_model(header: str | None) -> EmbeddingModel | None:
+    """The model :data:`MODEL_HEADER` states (None when absent or empty); one that does not read is a 422."""
+    if not header or not header.strip():
+        return None
+    try:
+        return EmbeddingModel.parse(header)
+    except DataError as error:
+        raise ServiceError("invalid_request", f"{MODEL_HEADER}: {error}") from None
 
 
 def pin_of(request: Request) -> Pin:
@@ -199,6 +219,13 @@ PIN_PARAMETERS = [
 #: The OpenAPI description of what :func:`batch_call` reads.
 BATCH_PARAMETERS = [
     *PIN_PARAMETERS,
+    _parameter(
+        MODEL_HEADER,
+        "header",
+        "the embedding model that made the vectors, NAME or NAME@VERSION: refused with 409 "
+        "embedding_model_mismatch if the version was fitted on another (versions compared when both name one); "
+        "without it, or for a version that records no model, only the dimension is checked",
+    ),
     _parameter("Content-Type", "header", "application/json or application/x-npy"),
     _parameter("Accept", "header", "the response format; default: the request's"),
     _parameter("Authorization", "header", f"{_TOKEN_HEADER}, if VEIL_DATA_TOKEN is set"),

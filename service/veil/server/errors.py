@@ -7,6 +7,7 @@ none reaches the client as a 500 with a traceback.
 from __future__ import annotations
 
 import logging
+from collections.abc import Mapping
 from typing import Any
 
 import orjson
@@ -29,6 +30,11 @@ ERROR_CODES: dict[str, tuple[int, str]] = {
     "method_not_allowed": (405, "the route does not take this method"),
     "not_acceptable": (406, "the Accept header names no format the service writes"),
     "no_traffic": (409, "this replica has seen no traffic for the eraser yet"),
+    "embedding_model_mismatch": (
+        409,
+        "the request's X-Veil-Embedding-Model differs from the model the version was fitted on (both named; the "
+        "error's `stated` and `recorded` fields hold them)",
+    ),
     "body_too_large": (413, "the body is over the size limit"),
     "unsupported_media_type": (415, "send application/json or application/x-npy"),
     "invalid_vectors": (422, "the vectors are not a non-empty 2-D batch of finite numbers"),
@@ -70,17 +76,21 @@ def error_responses(*codes: str) -> dict[int | str, dict[str, Any]]:
 
 
 class ServiceError(Exception):
-    """A failure with a code from :data:`ERROR_CODES` and a message for people."""
+    """A failure with a code from :data:`ERROR_CODES`, a message for people, and any fields for programs."""
 
-    def __init__(self, code: str, message: str) -> None:
+    def __init__(self, code: str, message: str, details: Mapping[str, str] | None = None) -> None:
         super().__init__(message)
         self.code = code
         self.status = ERROR_CODES[code][0]
         self.message = message
+        self.details = dict(details or {})
 
 
-def error_response(code: str, message: str, status: int | None = None) -> Response:
-    body = orjson.dumps({"error": {"code": code, "message": message}})
+def error_response(
+    code: str, message: str, status: int | None = None, details: Mapping[str, str] | None = None
+) -> Response:
+    """The JSON error; ``details`` are further fields of the error object beside its code and message."""
+    body = orjson.dumps({"error": {**(details or {}), "code": code, "message": message}})
     return Response(body, status_code=status or ERROR_CODES[code][0], media_type="application/json")
 
 
@@ -90,7 +100,7 @@ _HTTP_CODES = {404: "not_found", 405: "method_not_allowed", 401: "unauthorized",
 def install_error_handlers(app: FastAPI) -> None:
     @app.exception_handler(ServiceError)
     async def service_error(request: Request, error: ServiceError) -> Response:
-        return error_response(error.code, error.message)
+        return error_response(error.code, error.message, details=error.details)
 
     @app.exception_handler(RequestValidationError)
     async def validation_error(request: Request, error: RequestValidationError) -> Response:

@@ -48,7 +48,7 @@ class ApplyHotPath:
         try:
             response = await self.endpoint(name, Request(scope, receive))
         except ServiceError as error:
-            response = error_response(error.code, error.message)
+            response = error_response(error.code, error.message, details=error.details)
         await response(scope, receive, send)
 
     @staticmethod

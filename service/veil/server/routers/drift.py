@@ -123,7 +123,7 @@ async def _run(
 async def drift_of_sample(name: EraserName, request: Request) -> dict[str, Any]:
     call = await batch_call(request)
     catalog: Catalog = request.app.state.catalog
-    served = await pick_version(catalog, name, call.pin)
+    served = await pick_version(catalog, name, call.pin, call.model)
     vectors, fields = decode_batch(call.body, call.media)
     labels = fields.get("labels") if call.media == JSON_MEDIA_TYPE else None
     if labels is not None and not (_class_names(labels) or _labels_by_attribute(labels)):

@@ -12,6 +12,7 @@ from fastapi.routing import APIRoute
 from numpy.typing import NDArray
 from starlette.responses import Response
 
+from veil.samples.embedding_model import EmbeddingModel
 from veil.server.catalog import Catalog, ServedVersion
 from veil.server.codecs import JSON_MEDIA_TYPE, json_bytes, load_json, npy_bytes, parse_json_vectors, parse_npy
 from veil.server.dependencies import BATCH_PARAMETERS, EraserName, Pin, batch_call, get_catalog, require_data_token
@@ -49,6 +50,7 @@ DATA_TOKEN_ERRORS = ("unauthorized", "forbidden")
 BATCH_ERRORS = (
     "malformed_body", *DATA_TOKEN_ERRORS, "unknown_eraser", "unknown_version", "not_acceptable", "body_too_large",
     "unsupported_media_type", "invalid_request", "invalid_vectors", "wrong_dimension", "version_unavailable",
+    "embedding_model_mismatch",
 )  # fmt: skip
 VERSION_HEADERS = {
     "X-Veil-Eraser": {"required": True, "schema": {"type": "string"}, "description": "the eraser applied"},
@@ -85,6 +87,7 @@ def summary(served: ServedVersion, alias: str) -> dict[str, Any]:
         **served.artifact.map.describe(),
         "normalize": served.artifact.normalize,
         "classes": served.classes,
+        "embedding_model": served.card.get("embedding_model"),
     }
 
 
@@ -128,11 +131,16 @@ def encode_batch(matrix: NDArray[np.floating], media: str, served: ServedVersion
     return Response(npy_bytes(matrix), media_type=media, headers=headers)
 
 
-async def pick_version(catalog: Catalog, name: str, pin: Pin) -> ServedVersion:
+async def pick_version(catalog: Catalog, name: str, pin: Pin, model: EmbeddingModel | None = None) -> ServedVersion:
+    """The version that serves the request: the current one, or the one pinned; refused if it was fitted on
+    another embedding model than the one ``model`` states."""
     if pin.version is None and pin.alias is None:
-        return catalog.current(name)
-    # A pinned version may need loading and verifying: off the event loop.
-    return await run_in_threadpool(catalog.resolve, name, version=pin.version, alias=pin.alias)
+        served = catalog.current(name)
+    else:
+        # A pinned version may need loading and verifying: off the event loop.
+        served = await run_in_threadpool(catalog.resolve, name, version=pin.version, alias=pin.alias)
+    served.check_model(model)
+    return served
 
 
 @router.post(
@@ -144,7 +152,7 @@ async def pick_version(catalog: Catalog, name: str, pin: Pin) -> ServedVersion:
 async def apply(name: EraserName, request: Request) -> Response:
     call = await batch_call(request)
     state = request.app.state
-    served = await pick_version(state.catalog, name, call.pin)
+    served = await pick_version(state.catalog, name, call.pin, call.model)
     vectors, _ = decode_batch(call.body, call.media)
     cleaned = served.apply(vectors)
     state.reservoirs.add(name, vectors)
@@ -178,7 +186,7 @@ async def counterfactual(
     ] = None,
 ) -> Response:
     call = await batch_call(request)
-    served = await pick_version(request.app.state.catalog, name, call.pin)
+    served = await pick_version(request.app.state.catalog, name, call.pin, call.model)
     vectors, fields = decode_batch(call.body, call.media)
     chosen = fields.get("target", target)
     if isinstance(chosen, str) and served.attributes and chosen.lstrip().startswith("{"):

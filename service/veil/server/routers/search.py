@@ -96,7 +96,7 @@ async def search_vector(name: EraserName, request: Request) -> Response:
     call = await batch_call(request)
     metric, require_exact = _options(request)
     state = request.app.state
-    served = await pick_version(state.catalog, name, call.pin)
+    served = await pick_version(state.catalog, name, call.pin, call.model)
     vectors, _ = decode_batch(call.body, call.media)
     served.check_dim(vectors)
     note = inexact_reason(served.artifact, metric)
