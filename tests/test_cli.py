@@ -267,7 +267,9 @@ def test_promote_rollback_and_history(fitted: Fitted, tmp_path: Path) -> None:
     ]
     assert history[1]["reason"] == "smaller leakage"
     table = run("history", NAME, "--registry", registry)
-    assert table.out.splitlines()[0].split()[:3] == ["EVENT", "TIME", "USER"]
+    # Read by time, in the same lower-case headings as every other table of the command.
+    assert table.out.splitlines()[0].split() == ["time", "user", "alias", "action", "from", "to", "reason"]
+    assert [line.split()[3] for line in table.out.splitlines()[1:]] == ["promote", "promote", "promote", "rollback"]
 
 
 def test_apply_cleans_npy_and_parquet_corpora_like_the_stored_version(fitted: Fitted, tmp_path: Path) -> None:

@@ -92,10 +92,11 @@ def test_the_same_population_keeps_the_fitting_verdict_and_a_shifted_one_gets_a_
     page_path = folder / "report.html"
     assert run("report", "planted", "1", "--registry", registry, "--out", page_path).code == 0
     page = page_path.read_text()
-    assert '<p class="verdict verdict-ok"><strong>Verdict at fitting time: ok</strong>' in page
-    assert '<p class="verdict verdict-alert"><strong>Latest fresh audit (2): alert</strong>' in page
-    assert page.index("Verdict at fitting time") < page.index("<h2>Version</h2>")
-    assert page.count('<td class="verdict-') == 2
+    assert '<li class="status-ok"><span class="shape" aria-hidden="true">○</span>' in page
+    assert "<strong>Audit at fitting time: ok</strong>" in page
+    assert "<strong>Latest fresh audit (2): alert</strong>" in page
+    assert page.index("Audit at fitting time") < page.index("<h2>Version</h2>")
+    assert page.count('<td class="status">') == 2
 
 
 def test_records_leave_the_version_alone_are_idempotent_and_verified(

@@ -192,7 +192,7 @@ def versions(args: argparse.Namespace) -> int:
         else [s.id, "DAMAGED", "", "", "", "", ",".join(sorted(on.get(s.id, [])))]
         for s in summaries
     ]
-    _print_table(["VERSION", "CREATED", "BY", "METHOD", "RANK", "DIM", "ALIASES"], rows)
+    _print_table(["version", "created", "by", "method", "rank", "dim", "aliases"], rows)
     for summary in summaries:
         if summary.problem is not None:
             print(f"damaged: {summary.problem} (veil verify lists every problem)")
@@ -306,9 +306,10 @@ def history(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps([asdict(e) for e in events], indent=2))
         return 0
+    # An audit log, read by time: the events' numbers order the files on disk and stay in --json; no command
+    # takes one, so the table does not lead with them.
     rows = [
         [
-            str(e.event),
             e.time,
             e.user,
             e.alias,
@@ -319,7 +320,7 @@ def history(args: argparse.Namespace) -> int:
         ]
         for e in events
     ]
-    _print_table(["EVENT", "TIME", "USER", "ALIAS", "ACTION", "FROM", "TO", "REASON"], rows)
+    _print_table(["time", "user", "alias", "action", "from", "to", "reason"], rows)
     return 0
 
 

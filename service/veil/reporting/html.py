@@ -10,16 +10,23 @@ split across pages.
 from __future__ import annotations
 
 import html
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import fields
 from typing import Any
 
 from veil.checks.thresholds import AlertThresholds
 from veil.checks.verdict import RULE, Verdict
 from veil.registry import Registry
-from veil.registry.card import card_audit, card_verdict, method_text, operating_points_text, protocol_text
+from veil.registry.card import (
+    card_audit,
+    card_thresholds,
+    card_verdict,
+    method_text,
+    operating_points_text,
+    protocol_text,
+)
+from veil.reporting import headline, sections
 from veil.reporting import plots as drawn
-from veil.reporting import sections
 from veil.reporting.attributes import attributes_section
 from veil.reporting.context import context_section
 from veil.reporting.plotdata import PLOT_DATA_FILE, PlotData
@@ -35,16 +42,12 @@ th { text-align: left; font-weight: 600; } .muted { color: #5b6575; } .strongest
 table.probes td { white-space: nowrap; } table.figures td:nth-child(5) { font-size: 13px; color: #3c4656; }
 .caution { background: #fff6e0; border-left: 4px solid #e0a800; padding: .6em 1em; margin: 1em 0; }
 figure { margin: 1em 0; } figure svg { max-width: 100%; height: auto; }
-pre { background: #f5f7fa; padding: .8em; overflow-x: auto; font-size: 13px; }
-.verdict { padding: .6em 1em; margin: 1em 0; border-left: 4px solid; }
-.verdict-ok { background: #e9f7ef; border-color: #2f855a; }
-.verdict-warn { background: #fff6e0; border-color: #e0a800; }
-.verdict-alert { background: #fdecec; border-color: #c53030; }
+pre { background: #f5f7fa; padding: .8em; font-size: 13px; white-space: pre-wrap; overflow-wrap: anywhere; }
 @media print {
   body { margin: 0; max-width: none; font-size: 12px; }
-  figure, table, pre, .verdict, .caution { break-inside: avoid; }
+  figure, table, pre, .caution { break-inside: avoid; }
   h2, h3 { break-after: avoid; }
-  pre { white-space: pre-wrap; }
+  pre { font-size: 10px; }
 }
 """
 _CAUTION = (
@@ -54,15 +57,46 @@ _CAUTION = (
 )
 
 
-def latest_live_verdict(checks: Sequence[dict[str, Any]]) -> list[str]:
-    """The report's verdict paragraph of the latest live check (none without checks)."""
+def latest_live_evidence(
+    checks: Sequence[dict[str, Any]], bands: Mapping[str, Mapping[str, float]]
+) -> list[headline.Evidence]:
+    """The latest live check as the headline's evidence (none without checks), judged by the card's ``bands``."""
     if not checks:
         return []
     latest = checks[-1]
-    # The figures the check was judged on, as the record holds them (None where it had none to judge).
-    figures = {figure.name: latest.get(figure.name) for figure in fields(AlertThresholds)}
+    # The figures the check was judged on, as the service's answer the record holds gives them (None where it
+    # had none to judge); a body without that answer holds them itself.
+    answer = latest.get("report", latest)
+    figures = {figure.name: answer.get(figure.name) for figure in fields(AlertThresholds)}
     verdict = Verdict(latest["status"], figures, list(latest["reasons"]))
-    return [sections.verdict_paragraph(f"Latest live check ({latest['checked_at']})", verdict)]
+    when = headline.utc_text(latest["checked_at"])
+    return [headline.Evidence(f"Latest live check ({when})", f"the latest live check, at {when},", verdict, bands)]
+
+
+def latest_live_verdict(
+    checks: Sequence[dict[str, Any]], bands: Mapping[str, Mapping[str, float]] | None = None
+) -> list[str]:
+    """The headline's entry of the latest live check (none without checks)."""
+    return [headline.evidence_item(item) for item in latest_live_evidence(checks, bands or {})]
+
+
+def evidence(
+    card: dict[str, Any], audits: Sequence[tuple[int, dict[str, Any]]], checks: Sequence[dict[str, Any]]
+) -> list[headline.Evidence]:
+    """The evidence the headline reads: the audit at fitting time, the latest fresh audit, the latest live check."""
+    audit_bands = card_thresholds(card).to_dict()
+    items = [headline.Evidence("Audit at fitting time", "the audit at fitting time", card_verdict(card), audit_bands)]
+    if audits:
+        number, body = audits[-1]
+        items.append(
+            headline.Evidence(
+                f"Latest fresh audit ({number})",
+                f"fresh audit {number}, the latest,",
+                Verdict.from_dict(body["verdict"]),
+                audit_bands,
+            )
+        )
+    return items + latest_live_evidence(checks, card["thresholds"])
 
 
 def render_report(
@@ -97,18 +131,7 @@ def render_report(
     iterations_missing = f"{card['method']} is fitted in closed form: there are no iterations to plot."
     parts = [
         f"<h1>veil report: {html.escape(card['name'])} {html.escape(version_id)}</h1>",
-        sections.verdict_paragraph("Verdict at fitting time", card_verdict(card)),
-        *(
-            [
-                sections.verdict_paragraph(
-                    f"Latest fresh audit ({audits[-1][0]})", Verdict.from_dict(audits[-1][1]["verdict"])
-                )
-            ]
-            if audits
-            else []
-        ),
-        *latest_live_verdict(checks),
-        f'<p class="muted">{html.escape(RULE)}</p>',
+        headline.headline(f"{card['name']} {version_id}", evidence(card, audits, checks), RULE),
         f'<p class="caution">{html.escape(_CAUTION)}</p>',
         "<h2>Version</h2>" + sections.table(summary),
         sections.figure(
@@ -158,7 +181,7 @@ def render_report(
     title = html.escape(f"veil report {card['name']} {version_id}")
     return (
         f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{title}</title>'
-        f"<style>{_STYLE}</style></head><body>{''.join(parts)}</body></html>"
+        f"<style>{_STYLE}{headline.STYLE}</style></head><body>{''.join(parts)}</body></html>"
     )
 
 

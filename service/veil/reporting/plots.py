@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import io
 from collections.abc import Callable, Sequence
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 import matplotlib
@@ -11,6 +12,8 @@ import matplotlib
 matplotlib.use("Agg")  # no display on servers; must precede pyplot
 import matplotlib.pyplot as plt
 import numpy as np
+from matplotlib import dates
+from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
 from veil.audit.points import Sweep, value_text
@@ -155,7 +158,8 @@ def retrieval_plot(audit: AuditReport) -> Draw | None:
         axes.set_xticks(range(len(groups)), [f"neighbours sharing the {g[0]}" for g in groups])
         axes.set_ylim(0, 1.05)
         axes.set_ylabel("share of 10 nearest neighbours (cosine)")
-        axes.legend(loc="lower right")
+        # Beside the axes, as in the leakage plot: inside, any corner can hold a bar that reaches it.
+        axes.legend(loc="center left", bbox_to_anchor=(1.01, 0.5))
 
     return draw
 
@@ -205,7 +209,42 @@ LIVE_FIGURES = {
     "erased_variance_ratio": "variance in erased directions (× fit)",
     "prior_shift": "class-share shift (total variation)",
 }
-_STATUS_COLOURS = {"ok": "#2f855a", "warn": WARN, "alert": ALERT}
+#: Each status drawn in its own colour and its own shape, so it reads without colour too (and in greyscale print).
+STATUS_MARKS = {"ok": ("#2f855a", "o"), "warn": (WARN, "^"), "alert": (ALERT, "s")}
+#: The narrowest time axis drawn: a single check, or checks seconds apart, still get hour-and-minute ticks.
+SHORTEST_SPAN = timedelta(hours=1)
+
+
+def check_times(checks: Sequence[dict[str, Any]]) -> list[datetime]:
+    """When each check ran, in UTC (records hold ISO times with an offset; one without is taken as UTC)."""
+    times = [datetime.fromisoformat(check["checked_at"]) for check in checks]
+    return [(t if t.tzinfo is not None else t.replace(tzinfo=UTC)).astimezone(UTC) for t in times]
+
+
+def time_axis(axes: Axes, times: Sequence[datetime]) -> None:
+    """A UTC date-and-time axis over ``times``: a few ticks, never finer than minutes.
+
+    Within a day the ticks read hours and minutes, and the axis label the date (or both dates, across
+    midnight); over longer spans the ticks read dates.  A span shorter than :data:`SHORTEST_SPAN` is widened
+    around its middle so the ticks never reach seconds.
+    """
+    first, last = min(times), max(times)
+    span = max(last - first, SHORTEST_SPAN)
+    middle = first + (last - first) / 2
+    # matplotlib's date helpers carry no annotations: each call below is typed by hand.
+    axes.set_xlim(middle - span * 0.55, middle + span * 0.55)  # type: ignore[arg-type]
+    locator = dates.AutoDateLocator(tz=UTC, minticks=2, maxticks=4)  # type: ignore[no-untyped-call]
+    axes.xaxis.set_major_locator(locator)
+    within_a_day = span <= timedelta(days=1)
+    pattern = "%H:%M" if within_a_day else "%Y-%m-%d"
+    axes.xaxis.set_major_formatter(dates.DateFormatter(pattern, tz=UTC))  # type: ignore[no-untyped-call]
+    if within_a_day:
+        days = sorted({first.date().isoformat(), last.date().isoformat()})
+        axes.set_xlabel("UTC, " + " to ".join(days), fontsize=7)
+    else:
+        axes.tick_params(axis="x", labelrotation=30)
+        axes.set_xlabel("UTC", fontsize=7)
+    axes.tick_params(axis="x", labelsize=7)
 
 
 def timeline_plot(checks: Sequence[dict[str, Any]], thresholds: dict[str, dict[str, float]]) -> Draw | None:
@@ -215,9 +254,7 @@ def timeline_plot(checks: Sequence[dict[str, Any]], thresholds: dict[str, dict[s
     """
     if not checks:
         return None
-    from datetime import datetime
-
-    times = [datetime.fromisoformat(check["checked_at"]) for check in checks]
+    times = check_times(checks)
 
     def draw(figure: Figure) -> None:
         panels = figure.subplots(1, len(LIVE_FIGURES), sharex=True)
@@ -227,17 +264,21 @@ def timeline_plot(checks: Sequence[dict[str, Any]], thresholds: dict[str, dict[s
             band = thresholds.get(name)
             if band is not None:
                 axes.axhline(band["warn"], color=WARN, linestyle="--", linewidth=1, label=f"warn {band['warn']:g}")
-                axes.axhline(band["alert"], color=ALERT, linestyle="--", linewidth=1, label=f"alert {band['alert']:g}")
+                axes.axhline(band["alert"], color=ALERT, linestyle=":", linewidth=1.2, label=f"alert {band['alert']:g}")
             if shown:
                 when, value = zip(*shown, strict=True)
                 levels = ["ok" if band is None else Band(band["warn"], band["alert"]).level(v) for v in value]
                 axes.plot(when, value, color="#4a5568", linewidth=1)
-                axes.scatter(when, value, s=18, zorder=3, color=[_STATUS_COLOURS[level] for level in levels])
+                for status, (colour, marker) in STATUS_MARKS.items():
+                    picked = [point for point, level in zip(shown, levels, strict=True) if level == status]
+                    if picked:
+                        at, level_values = zip(*picked, strict=True)
+                        axes.scatter(at, level_values, s=16, zorder=3, color=colour, marker=marker)
             else:
                 axes.text(0.5, 0.5, "not measured\n(no labels)", ha="center", va="center", transform=axes.transAxes)
             axes.set_title(label, fontsize=8)
-            axes.tick_params(axis="x", labelrotation=45, labelsize=7)
+            time_axis(axes, times)
             axes.set_ylim(bottom=0)
-            axes.legend(loc="upper left", fontsize=6)
+            axes.legend(loc="best", fontsize=6)
 
     return draw

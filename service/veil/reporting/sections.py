@@ -1,4 +1,4 @@
-"""The report's sections other than plots: verdicts, tables of figures, and what each figure means."""
+"""The report's sections other than plots and the headline: tables of figures, and what each figure means."""
 
 from __future__ import annotations
 
@@ -9,6 +9,7 @@ from typing import Any
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore
 from veil.checks.verdict import MEANINGS, Verdict
 from veil.registry.card import card_thresholds, protocol_text
+from veil.reporting.headline import status_mark, utc_text
 from veil.reporting.plots import Draw, svg
 
 
@@ -94,18 +95,6 @@ def figure(title: str, draw: Draw | None, size: tuple[float, float], missing: st
     return f'<h2>{html.escape(title)}</h2><figure class="plot">{body}</figure>'
 
 
-def _capitalized(text: str) -> str:
-    return text[:1].upper() + text[1:]
-
-
-def verdict_paragraph(title: str, verdict: Verdict) -> str:
-    detail = _capitalized(verdict.sentence().split(": ", 1)[1])
-    return (
-        f'<p class="verdict verdict-{html.escape(verdict.status)}"><strong>{html.escape(title)}: '
-        f"{html.escape(verdict.status)}</strong>. {html.escape(detail)}.</p>"
-    )
-
-
 def fresh_audits(audits: Sequence[tuple[int, dict[str, Any]]]) -> str:
     if not audits:
         return (
@@ -126,8 +115,8 @@ def fresh_audits(audits: Sequence[tuple[int, dict[str, Any]]]) -> str:
             f"<tr><td>{number}</td><td>{html.escape(body['audited_at'])} by {html.escape(body['audited_by'])}</td>"
             f"<td>{html.escape(data['attribute'])}</td>"
             f"<td>{html.escape(files)} (sha256 {html.escape(data['fingerprint_sha256'][:12])})</td>"
-            f'<td>{data["audited_rows"]}</td><td class="verdict-{html.escape(verdict.status)}">'
-            f"{html.escape(verdict.status)}</td><td>{html.escape(why)}</td></tr>"
+            f'<td>{data["audited_rows"]}</td><td class="status">{status_mark(verdict.status)}</td>'
+            f"<td>{html.escape(why)}</td></tr>"
         )
     return f"<h2>Fresh audits</h2><table>{head}{''.join(rows)}</table>"
 
@@ -164,16 +153,19 @@ def live_checks(checks: Sequence[dict[str, Any]]) -> str:
             "checks and records each answer; <code>veil checks NAME</code> lists them.</p>"
         )
     counts = {level: sum(check["status"] == level for check in checks) for level in ("ok", "warn", "alert")}
+    first, last = utc_text(checks[0]["checked_at"]), utc_text(checks[-1]["checked_at"])
+    span = f"1 check, at {first}" if len(checks) == 1 else f"{len(checks)} checks from {first} to {last}"
     summary = (
-        f"{len(checks)} checks from {checks[0]['checked_at']} to {checks[-1]['checked_at']}: "
+        f"{span}: "
         + ", ".join(f"{count} {level}" for level, count in counts.items())
-        + ". The dashed lines are the warn and alert levels the card records."
+        + ". In the plot, the dashed line is each figure's warn level and the dotted one its alert level, as the "
+        "card records them; a check's mark is a circle when ok, a triangle at warn and a square at alert."
     )
     head = "<tr><th>checked at</th><th>checked</th><th>rows</th><th>status</th><th>why</th></tr>"
     rows = "".join(
         f"<tr><td>{html.escape(check['checked_at'])}</td><td>{html.escape(check['checked']['kind'])}</td>"
-        f'<td>{check["report"].get("rows", "")}</td><td class="verdict-{html.escape(check["status"])}">'
-        f"{html.escape(check['status'])}</td><td>{html.escape('; '.join(check['reasons']))}</td></tr>"
+        f'<td>{check["report"].get("rows", "")}</td><td class="status">{status_mark(check["status"])}</td>'
+        f"<td>{html.escape('; '.join(check['reasons']))}</td></tr>"
         for check in checks[-LATEST_CHECKS:]
     )
     latest = f"The latest {min(len(checks), LATEST_CHECKS)}:"
