@@ -47,7 +47,7 @@ def test_a_request_is_a_record_its_card_entry_reads_back_as_json() -> None:
     assert recorded["fit"]["targets"] == ["linear <= majority + 0.02"]
     assert recorded["audit"]["probes"] == "linear"
     assert recorded["audit"]["thresholds"]["linear_gap"] == {"warn": 0.01, "alert": 0.02}
-    assert recorded["store"] == {"name": "profiles", "alias": "canary", "reason": "trial"}
+    assert recorded["store"] == {"name": "profiles", "alias": "canary", "reason": "trial", "force": False}
     assert recorded["reading"]["engine"] == "dask"
     with pytest.raises(TypeError):
         request.fit.params["max_iter"] = 2  # type: ignore[index]

@@ -98,6 +98,7 @@ def render_report(
     parts = [
         f"<h1>veil report: {html.escape(card['name'])} {html.escape(version_id)}</h1>",
         sections.verdict_paragraph("Verdict at fitting time", card_verdict(card)),
+        sections.threats_table(card_verdict(card)),
         *(
             [
                 sections.verdict_paragraph(

@@ -7,7 +7,7 @@ from collections.abc import Sequence
 from typing import Any
 
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore
-from veil.checks.verdict import MEANINGS, Verdict
+from veil.checks.verdict import MEANINGS, RULE_EVERY_FIGURE, THREATS, Verdict
 from veil.registry.card import card_thresholds, protocol_text
 from veil.reporting.plots import Draw, svg
 
@@ -104,6 +104,29 @@ def verdict_paragraph(title: str, verdict: Verdict) -> str:
         f'<p class="verdict verdict-{html.escape(verdict.status)}"><strong>{html.escape(title)}: '
         f"{html.escape(verdict.status)}</strong>. {html.escape(detail)}.</p>"
     )
+
+
+def threats_table(verdict: Verdict) -> str:
+    """Each threat the verdict measured or the version claims: claimed or not, its status, and why.
+
+    Nothing for a verdict judged on every figure (a card written before claims): its paragraph says so.
+    """
+    if verdict.claimed is None:
+        return f'<p class="muted">{html.escape(_capitalized(RULE_EVERY_FIGURE))}.</p>'
+    head = "<tr><th>threat</th><th>claimed</th><th>status</th><th>why</th></tr>"
+    rows = []
+    for name, threat in verdict.threats.items():
+        claimed = name in verdict.claimed
+        if not (claimed or threat.measured):
+            continue
+        status = threat.status if threat.measured else "not measured"
+        why = "; ".join(threat.reasons) or ("every figure below its warn level" if threat.measured else "")
+        rows.append(
+            f'<tr data-threat="{html.escape(name)}"><td>{html.escape(THREATS[name][0])}</td>'
+            f"<td>{'claimed' if claimed else 'not claimed (shown, not judged)'}</td>"
+            f'<td class="verdict-{html.escape(status)}">{html.escape(status)}</td><td>{html.escape(why)}</td></tr>'
+        )
+    return f'<table class="threats">{head}{"".join(rows)}</table>'
 
 
 def fresh_audits(audits: Sequence[tuple[int, dict[str, Any]]]) -> str:
