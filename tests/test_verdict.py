@@ -133,8 +133,9 @@ def _with_context(report: AuditReport, linear: ProbeScore, trees: ProbeScore, sh
     """``report`` with an audit within a context: floor 0.6 (the scores' majority), neighbours' base 0.6."""
     raw = _score(0.95, 0.93, 0.97, majority=0.6)
     context = ContextAudit(
-        column="field", rows=1000, floor=0.6, before={"linear": raw, "trees": raw}, after={"linear": linear, "trees": trees},
-        values=(), skipped=(), nn_share_before=0.9, nn_share_after=share_after, nn_base_rate=0.6,
+        column="field", rows=1000, floor=0.6, before={"linear": raw, "trees": raw},
+        after={"linear": linear, "trees": trees}, values=(), skipped=(), nn_share_before=0.9,
+        nn_share_after=share_after, nn_base_rate=0.6,
     )  # fmt: skip
     return dataclasses.replace(report, context=context)
 
@@ -173,7 +174,8 @@ def test_each_threat_is_at_the_worst_level_of_its_own_figures() -> None:
         "warn, neighbours within the context alert"
     )
     # The record reads back whole, as a card or an audit record stores it.
-    assert Verdict.from_dict(json.loads(json.dumps(linear.to_dict()))) == linear
+    assert Verdict.from_dict(json.loads(json.dumps(linear.to_dict(), sort_keys=True))) == linear
+    assert list(Verdict.from_dict(json.loads(json.dumps(linear.to_dict(), sort_keys=True))).threats) == list(THREATS)
 
 
 def test_a_linear_eraser_read_by_nonlinear_probes_is_judged_on_what_it_claims() -> None:
@@ -198,6 +200,13 @@ def test_a_linear_eraser_read_by_nonlinear_probes_is_judged_on_what_it_claims() 
     before = judge_audit(report, AuditThresholds())
     assert before.status == "alert"
     assert before.threat_lines() == [f"rule: {RULE_EVERY_FIGURE}"]
+    # The linear probe alone (--probes linear) measures no nonlinear reader: claimed, it judges nothing, and says so.
+    linear_only = dataclasses.replace(
+        report, leakage=dataclasses.replace(report.leakage, trees_before=None, trees_after=None)
+    )
+    blind = judge_audit(linear_only, AuditThresholds(), claims=("linear", "nonlinear"))
+    assert (blind.status, blind.threats["nonlinear"].measured) == ("ok", False)
+    assert "; claimed but not measured: nonlinear readers" in blind.sentence()
     # A threat claimed but not measured (a context, on rows without one) is said so, and judges nothing.
     unmeasured = judge_audit(report, AuditThresholds(), claims=("linear", "context-linear"))
     assert unmeasured.status == "ok"

@@ -117,9 +117,11 @@ class Verdict:
             figures=dict(data["figures"]),
             reasons=list(data.get("reasons", [])),
             claimed=None if claimed is None else tuple(claimed),
+            # In the order of THREATS: a card is written with its keys sorted.
             threats={
                 name: ThreatStatus(str(entry["status"]), list(entry["reasons"]), bool(entry["measured"]))
-                for name, entry in data.get("threats", {}).items()
+                for name in THREATS
+                if (entry := data.get("threats", {}).get(name)) is not None
             },
         )
 
@@ -135,6 +137,9 @@ class Verdict:
             text = f"ok: every figure of the claimed threats ({claimed}) and of the task is below its warn level"
         else:
             text = f"{self.status}: " + "; ".join(self.reasons)
+        unmeasured = [THREATS[name][0] for name in self.claimed if not self.threats[name].measured]
+        if unmeasured:
+            text += "; claimed but not measured: " + ", ".join(unmeasured)
         others = [
             f"{THREATS[name][0]} {threat.status}" for name, threat in self.threats.items() if self.unclaimed(name)
         ]
@@ -154,7 +159,7 @@ class Verdict:
         for name in shown:
             threat = self.threats[name]
             state = "claimed" if name in self.claimed else "not claimed"
-            level = threat.status if threat.measured else "not measured (the audited rows had no data for it)"
+            level = threat.status if threat.measured else "not measured (no probe or rows of the audit read it)"
             why = "" if not threat.reasons else ": " + "; ".join(threat.reasons)
             lines.append(f"{THREATS[name][0]:{width}}  {state}: {level}{why}")
         return lines
@@ -255,22 +260,43 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds, claims: tuple[
             band = bands[name]
             level = levels[name]
             why[name].append(f"{labels[name]} {what[name].format(value=value)} ({level} at {getattr(band, level):g})")
-    judged = list(figures) if claims is None else [*_claimed_figures(claims), *ALWAYS_JUDGED]
+    measured = _measured(report, figures)
+    threats = {
+        threat: ThreatStatus(
+            worst(levels[name] for name in names) if measured[threat] else "ok",
+            [reason for name in names for reason in why[name]] if measured[threat] else [],
+            measured=measured[threat],
+        )
+        for threat, (_, names) in THREATS.items()
+    }
+    if claims is None:
+        judged = list(figures)
+    else:
+        # A claimed threat the audit did not measure judges nothing; the verdict's lines say it was not measured.
+        claims = check_claims(claims)
+        judged = [name for claim in claims if measured[claim] for name in THREATS[claim][1]] + list(ALWAYS_JUDGED)
     status = worst(levels[name] for name in judged)
     reasons = [reason for name in figures if name in judged for reason in why[name]]
     if _unreadable_before(report):
         # Nothing to erase was seen, so nothing was shown erased: wrong labels or too small a sample look like this.
         reasons.append(UNREADABLE)
         status = max(status, "warn", key=LEVELS.index)
-    threats = {
-        threat: ThreatStatus(
-            worst(levels[name] for name in names),
-            [reason for name in names for reason in why[name]],
-            measured=any(figures[name] is not None for name in names),
-        )
+    return Verdict(status=status, figures=figures, reasons=reasons, claimed=claims, threats=threats)
+
+
+def _measured(report: AuditReport, figures: dict[str, float | None]) -> dict[str, bool]:
+    """Whether the audit measured each threat: data for its figures, and for the nonlinear ones a nonlinear probe.
+
+    With the linear probe only (``--probes linear``) the strongest probe is the linear one: that measures no
+    nonlinear reader.
+    """
+    nonlinear = any(name != "linear" for name, _, _ in report.leakage.probes())
+    within = report.context is not None and any(name != "linear" for name in report.context.after)
+    ran = {"nonlinear": nonlinear, "context-nonlinear": within}
+    return {
+        threat: ran.get(threat, True) and any(figures[name] is not None for name in names)
         for threat, (_, names) in THREATS.items()
     }
-    return Verdict(status=status, figures=figures, reasons=reasons, claimed=claims, threats=threats)
 
 
 def worst(levels: Iterable[str]) -> str:
@@ -285,10 +311,6 @@ def check_claims(claims: Iterable[str]) -> tuple[str, ...]:
     if unknown:
         raise ValueError(f"unknown threat {unknown[0]!r}; known: {', '.join(THREATS)}")
     return tuple(name for name in THREATS if name in given)
-
-
-def _claimed_figures(claims: tuple[str, ...]) -> list[str]:
-    return [figure for claim in check_claims(claims) for figure in THREATS[claim][1]]
 
 
 def _context_strongest(report: AuditReport) -> str:

@@ -124,7 +124,8 @@ def threats_table(verdict: Verdict) -> str:
         rows.append(
             f'<tr data-threat="{html.escape(name)}"><td>{html.escape(THREATS[name][0])}</td>'
             f"<td>{'claimed' if claimed else 'not claimed (shown, not judged)'}</td>"
-            f'<td class="verdict-{html.escape(status)}">{html.escape(status)}</td><td>{html.escape(why)}</td></tr>'
+            f'<td class="status verdict-{html.escape(status)}">{html.escape(status)}</td>'
+            f"<td>{html.escape(why)}</td></tr>"
         )
     return f'<table class="threats">{head}{"".join(rows)}</table>'
 
