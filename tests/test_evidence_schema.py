@@ -16,6 +16,7 @@ from typing import Any
 import jsonschema
 import pytest
 
+from veil.checks.verdict import THREATS
 from veil.patrol.rounds import patrol_round
 from veil.registry import Registry
 
@@ -61,6 +62,12 @@ def test_a_version_with_audits_and_checks_gives_a_valid_document(tmp_path: Path)
     assert [audit["number"] for audit in document["fresh_audits"]] == [1]
     assert [check["status"] for check in document["live_checks"]] == ["ok", "alert"]
     assert "judged_by_defaults" not in document["verdict"]
+    # The threats: the card's claims, the verdict's and the fresh audit's, each threat by name.
+    assert document["claims"] == document["verdict"]["claimed"] == document["fresh_audits"][0]["verdict"]["claimed"]
+    assert set(document["verdict"]["threats"]) == set(THREATS)
+    assert SCHEMA["$defs"]["threat"]["enum"] == list(THREATS)
+    with pytest.raises(jsonschema.ValidationError, match="'quadratic' is not one of"):
+        _validate({**document, "claims": ["quadratic"]})
     # The schema is not vacuous: the same document with a status veil never writes, or without its checks, fails.
     broken = {**document, "live_checks": [{**document["live_checks"][0], "status": "fine"}]}
     with pytest.raises(jsonschema.ValidationError, match="'fine' is not one of"):

@@ -72,6 +72,8 @@ def test_the_same_population_keeps_the_fitting_verdict_and_a_shifted_one_gets_a_
     assert card["verdict"]["status"] == "ok", card["verdict"]
     same = _audit(registry, _save(folder / "same.npz", *_population(draw_seed=2)))
     assert same["verdict"]["status"] == card["verdict"]["status"]
+    # A fresh audit is judged on the threats the card claims: LEACE's, linear readers.
+    assert same["verdict"]["claimed"] == card["claims"] == ["linear"]
     shifted = _audit(registry, _save(folder / "shifted.npz", *_population(draw_seed=3, shifted=True)))
     assert shifted["verdict"]["status"] == "alert"
     # The linear probe reads the new direction (scikit-learn's logistic regression, 5-fold on the fresh rows).
@@ -85,7 +87,7 @@ def test_the_same_population_keeps_the_fitting_verdict_and_a_shifted_one_gets_a_
     assert [audit["number"] for audit in shown["fresh_audits"]] == [1, 2]
     assert [audit["verdict"]["status"] for audit in shown["fresh_audits"]] == ["ok", "alert"]
     text = run("show", "planted", "1", "--registry", registry).out
-    assert "verdict at fitting time: ok: all 4 judged figures are below their warn levels" in text
+    assert "verdict at fitting time: ok: every figure of the claimed threats (linear readers) and of the task" in text
     assert "  2. " in text
     assert "shifted.npz" in text
     # The report opens with both verdicts and lists the fresh audits.

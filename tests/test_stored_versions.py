@@ -58,6 +58,8 @@ def test_cards_of_the_older_release_show_and_render_with_todays_probe_figures(
         # Three classes of `region`: the balanced accuracy's chance level comes from the card's classes.
         assert "linear probe balanced accuracy (chance 0.333)" in shown.out
         assert "strongest probe" not in shown.out  # one probe ran: there is nothing to rank
+        # Written before verdicts and claims: judged by the defaults on every figure, and said so.
+        assert "  rule: judged on every figure (the card was written before versions claimed" in shown.out
         page = tmp_path / f"{number}.html"
         rendered = run("report", "legacy", number, "--out", str(page), "--registry", str(registry_path))
         assert rendered.code == 0, rendered.err

@@ -2,15 +2,25 @@
 
 The rule, the same for the audit made at fitting time and for every fresh
 audit: each figure of :class:`~veil.checks.thresholds.AuditThresholds` is
-compared with its band, and the status is the worst level any figure reaches
-(``alert`` at or above the band's alert level, ``warn`` at or above its warn
-level, else ``ok``).  A figure the audit has no data for (no task, a
-continuous attribute) is not judged, and the verdict says so.  The live checks
-use the same three words with their own figures.
+compared with its band and reaches a level (``alert`` at or above the band's
+alert level, ``warn`` at or above its warn level, else ``ok``).  A figure the
+audit has no data for (no task, a continuous attribute) is not judged.
+
+The figures are grouped by threat (:data:`THREATS`: linear readers, nonlinear
+readers, neighbours, and the same three within a context), each threat at the
+worst level of its figures.  A version claims the threats it is built to
+guard (the card's ``claims``, see :mod:`veil.fitting.request`); the headline
+status is the worst level of its claimed threats and of the task's cost
+(always judged).  Threats not claimed are still measured and shown, as not
+claimed, with their status: a linear eraser read by an MLP is what it was
+built for, not a failure of it.  A verdict without claims (a card written
+before versions claimed threats) is judged on every figure, as it was then.
+The live checks use the same three words with their own figures.
 """
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
@@ -22,11 +32,34 @@ from veil.checks.thresholds import AuditThresholds
 
 LEVELS = ("ok", "warn", "alert")
 RULE = (
-    "The rule: each figure is compared with the warn and alert levels the version's card records; the status is "
-    "ok when every figure judged is below its warn level, warn when any reaches its warn level, and alert when any "
-    "reaches its alert level. An audit whose raw rows show no attribute to any probe is at least warn: it proves "
-    "nothing."
+    "The rule: each figure is compared with the warn and alert levels the version's card records; each threat "
+    "(linear readers, nonlinear readers, neighbours, and these within a context) is at the worst level of its "
+    "figures. The status is that of the threats the version claims to guard and of the task's cost: ok when every "
+    "figure judged there is below its warn level, warn when any reaches its warn level, and alert when any reaches "
+    "its alert level. Threats not claimed are measured and shown, not judged. An audit whose raw rows show no "
+    "attribute to any probe is at least warn: it proves nothing."
 )
+
+#: The rule of a verdict without claims (cards written before versions claimed threats).
+RULE_EVERY_FIGURE = (
+    "judged on every figure (the card was written before versions claimed the threats they guard): the status is "
+    "the worst level any figure reaches"
+)
+
+#: Each threat a version can claim to guard: its name as the card and ``veil fit --claim`` spell it, what it is,
+#: and the figures that measure it.  Rankings are drawn from the same neighbourhoods, so the neighbours' figure
+#: judges them; their own figures (NDKL, MaxSkew) are shown, without levels.
+THREATS: dict[str, tuple[str, tuple[str, ...]]] = {
+    "linear": ("linear readers", ("linear_gap",)),
+    "nonlinear": ("nonlinear readers", ("strongest_gap",)),
+    "neighbours": ("neighbours and rankings", ("neighbour_excess",)),
+    "context-linear": ("linear readers within the context", ("context_linear_gap",)),
+    "context-nonlinear": ("nonlinear readers within the context", ("context_strongest_gap",)),
+    "context-neighbours": ("neighbours within the context", ("context_neighbour_excess",)),
+}
+
+#: Figures judged whatever a version claims: what erasure costs the task.
+ALWAYS_JUDGED = ("task_loss",)
 
 # What each figure says, for the verdict's reasons and the report's explanations.
 MEANINGS = {
@@ -47,26 +80,89 @@ MEANINGS = {
 
 
 @dataclass(frozen=True)
+class ThreatStatus:
+    """One threat's level (the worst of its figures), why, and whether any of its figures had data."""
+
+    status: str
+    reasons: list[str] = field(default_factory=list)
+    measured: bool = True
+
+
+@dataclass(frozen=True)
 class Verdict:
-    """One audit's status, the figures it was judged on and, for each figure at warn or alert, why."""
+    """One audit's status, the figures it was judged on and, for each figure at warn or alert, why.
+
+    ``claimed`` names the threats the headline judges (with the task's cost); ``threats`` holds every threat's
+    own status.  ``claimed`` is None for a verdict judged on every figure (written before claims existed).
+    """
 
     status: str
     figures: dict[str, float | None]
     reasons: list[str] = field(default_factory=list)
+    claimed: tuple[str, ...] | None = None
+    threats: dict[str, ThreatStatus] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
-        return asdict(self)
+        data: dict[str, Any] = {"status": self.status, "figures": dict(self.figures), "reasons": list(self.reasons)}
+        if self.claimed is not None:
+            data["claimed"] = list(self.claimed)
+            data["threats"] = {name: asdict(threat) for name, threat in self.threats.items()}
+        return data
 
     @classmethod
     def from_dict(cls, data: dict[str, Any]) -> Verdict:
-        return cls(status=str(data["status"]), figures=dict(data["figures"]), reasons=list(data.get("reasons", [])))
+        claimed = data.get("claimed")
+        return cls(
+            status=str(data["status"]),
+            figures=dict(data["figures"]),
+            reasons=list(data.get("reasons", [])),
+            claimed=None if claimed is None else tuple(claimed),
+            # In the order of THREATS: a card is written with its keys sorted.
+            threats={
+                name: ThreatStatus(str(entry["status"]), list(entry["reasons"]), bool(entry["measured"]))
+                for name in THREATS
+                if (entry := data.get("threats", {}).get(name)) is not None
+            },
+        )
 
     def sentence(self) -> str:
-        """The verdict in one plain sentence."""
+        """The verdict in one plain sentence: the headline, then the threats measured but not claimed."""
+        if self.claimed is None:
+            if self.status == "ok":
+                judged = sum(value is not None for value in self.figures.values())
+                return f"ok: all {judged} judged figures are below their warn levels"
+            return f"{self.status}: " + "; ".join(self.reasons)
         if self.status == "ok":
-            judged = sum(value is not None for value in self.figures.values())
-            return f"ok: all {judged} judged figures are below their warn levels"
-        return f"{self.status}: " + "; ".join(self.reasons)
+            claimed = ", ".join(THREATS[name][0] for name in self.claimed) or "no threat"
+            text = f"ok: every figure of the claimed threats ({claimed}) and of the task is below its warn level"
+        else:
+            text = f"{self.status}: " + "; ".join(self.reasons)
+        unmeasured = [THREATS[name][0] for name in self.claimed if not self.threats[name].measured]
+        if unmeasured:
+            text += "; claimed but not measured: " + ", ".join(unmeasured)
+        others = [
+            f"{THREATS[name][0]} {threat.status}" for name, threat in self.threats.items() if self.unclaimed(name)
+        ]
+        return text + ("" if not others else "; not claimed: " + ", ".join(others))
+
+    def unclaimed(self, threat: str) -> bool:
+        """Whether ``threat`` was measured but is not one the version claims (shown, not judged)."""
+        return self.claimed is not None and threat not in self.claimed and self.threats[threat].measured
+
+    def threat_lines(self) -> list[str]:
+        """One line per threat measured or claimed: its name, whether it is claimed, its status and why."""
+        if self.claimed is None:
+            return [f"rule: {RULE_EVERY_FIGURE}"]
+        shown = [name for name, threat in self.threats.items() if name in self.claimed or threat.measured]
+        width = max((len(THREATS[name][0]) for name in shown), default=0)
+        lines = []
+        for name in shown:
+            threat = self.threats[name]
+            state = "claimed" if name in self.claimed else "not claimed"
+            level = threat.status if threat.measured else "not measured (no probe or rows of the audit read it)"
+            why = "" if not threat.reasons else ": " + "; ".join(threat.reasons)
+            lines.append(f"{THREATS[name][0]:{width}}  {state}: {level}{why}")
+        return lines
 
 
 def _edge_gap(score: ProbeScore | RegressionScore) -> float:
@@ -123,8 +219,12 @@ def context_figures(context: ContextAudit | None) -> dict[str, float | None]:
     }
 
 
-def judge_audit(report: AuditReport, thresholds: AuditThresholds) -> Verdict:
-    """The status of ``report`` under ``thresholds``, with a reason for each figure at warn or alert."""
+def judge_audit(report: AuditReport, thresholds: AuditThresholds, claims: tuple[str, ...] | None = None) -> Verdict:
+    """The status of ``report`` under ``thresholds``, with a reason for each figure at warn or alert.
+
+    ``claims`` names the threats (:data:`THREATS`) the headline judges, with the task's cost; every threat is
+    measured and given its own status all the same.  None judges every figure (the rule before claims).
+    """
     figures = audit_figures(report)
     bands = {name: getattr(thresholds, name) for name in figures}
     widest = _widest(report)
@@ -151,20 +251,66 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds) -> Verdict:
         "context_strongest_gap": "reads the attribute {value:.3f} beyond the floor",
         "context_neighbour_excess": "lies {value:.3f} above its base rate",
     }
-    status = "ok"
-    reasons = []
+    levels: dict[str, str] = {}
+    why: dict[str, list[str]] = {}
     for name, value in figures.items():
-        level = bands[name].level(value)
-        if level != "ok" and value is not None:
+        levels[name] = bands[name].level(value)
+        why[name] = []
+        if levels[name] != "ok" and value is not None:
             band = bands[name]
-            reasons.append(f"{labels[name]} {what[name].format(value=value)} ({level} at {getattr(band, level):g})")
-        if LEVELS.index(level) > LEVELS.index(status):
-            status = level
+            level = levels[name]
+            why[name].append(f"{labels[name]} {what[name].format(value=value)} ({level} at {getattr(band, level):g})")
+    measured = _measured(report, figures)
+    threats = {
+        threat: ThreatStatus(
+            worst(levels[name] for name in names) if measured[threat] else "ok",
+            [reason for name in names for reason in why[name]] if measured[threat] else [],
+            measured=measured[threat],
+        )
+        for threat, (_, names) in THREATS.items()
+    }
+    if claims is None:
+        judged = list(figures)
+    else:
+        # A claimed threat the audit did not measure judges nothing; the verdict's lines say it was not measured.
+        claims = check_claims(claims)
+        judged = [name for claim in claims if measured[claim] for name in THREATS[claim][1]] + list(ALWAYS_JUDGED)
+    status = worst(levels[name] for name in judged)
+    reasons = [reason for name in figures if name in judged for reason in why[name]]
     if _unreadable_before(report):
         # Nothing to erase was seen, so nothing was shown erased: wrong labels or too small a sample look like this.
         reasons.append(UNREADABLE)
         status = max(status, "warn", key=LEVELS.index)
-    return Verdict(status=status, figures=figures, reasons=reasons)
+    return Verdict(status=status, figures=figures, reasons=reasons, claimed=claims, threats=threats)
+
+
+def _measured(report: AuditReport, figures: dict[str, float | None]) -> dict[str, bool]:
+    """Whether the audit measured each threat: data for its figures, and for the nonlinear ones a nonlinear probe.
+
+    With the linear probe only (``--probes linear``) the strongest probe is the linear one: that measures no
+    nonlinear reader.
+    """
+    nonlinear = any(name != "linear" for name, _, _ in report.leakage.probes())
+    within = report.context is not None and any(name != "linear" for name in report.context.after)
+    ran = {"nonlinear": nonlinear, "context-nonlinear": within}
+    return {
+        threat: ran.get(threat, True) and any(figures[name] is not None for name in names)
+        for threat, (_, names) in THREATS.items()
+    }
+
+
+def worst(levels: Iterable[str]) -> str:
+    """The worst of some levels (``ok`` for none)."""
+    return max(levels, key=LEVELS.index, default="ok")
+
+
+def check_claims(claims: Iterable[str]) -> tuple[str, ...]:
+    """``claims`` as a tuple in :data:`THREATS`' order; ``ValueError`` naming an unknown one."""
+    given = list(claims)
+    unknown = [claim for claim in given if claim not in THREATS]
+    if unknown:
+        raise ValueError(f"unknown threat {unknown[0]!r}; known: {', '.join(THREATS)}")
+    return tuple(name for name in THREATS if name in given)
 
 
 def _context_strongest(report: AuditReport) -> str:

@@ -11,7 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from veil.errors import DataError
-from veil.registry import DEFAULT_ALIAS, Registry
+from veil.registry import DEFAULT_ALIAS, HistoryEvent, Registry
 from veil.registry.card import (
     attributes_text,
     card_verdict,
@@ -19,6 +19,8 @@ from veil.registry.card import (
     embedding_model_text,
     format_card,
     fresh_audits_text,
+    promotion_verdict,
+    verdict_text,
 )
 from veil.registry.evidence import version_evidence
 
@@ -117,6 +119,7 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
         nonlinear=args.probes == "all",
         rows=args.audit_rows if streamed else None,
         thresholds=_audit_thresholds(args.audit_threshold),
+        claims=None if args.claim is None else tuple(args.claim),
     )
     reading = ReadingSpec()
     if streamed:
@@ -127,7 +130,9 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
             scheduler=args.scheduler,
             workers=args.dask_workers,
         )
-    store = StoreSpec(args.name, alias=args.alias, reason=args.reason, embedding_model=_embedding_model(args))
+    store = StoreSpec(
+        args.name, alias=args.alias, reason=args.reason, embedding_model=_embedding_model(args), force=args.force
+    )
     return FitRequest(method, store, audit=audit, reading=reading)
 
 
@@ -163,14 +168,20 @@ def fit(args: argparse.Namespace) -> int:
     print(outcome.audit.format_table())
     for line in attributes_text(outcome.card):
         print(line)
-    print(f"verdict at fitting time: {card_verdict(outcome.card).sentence()}")
+    for line in verdict_text(outcome.card):
+        print(line)
     print(f"embedding model: {embedding_model_text(outcome.card)}")
     for note in outcome.card["notes"]:
         if note not in outcome.audit.notes:
             print(f"note: {note}")
     if outcome.promotion is not None:
-        print(f"alias {outcome.promotion.alias!r} now points at {outcome.version_id}")
+        forced = " (forced)" if outcome.promotion.forced else ""
+        print(f"alias {outcome.promotion.alias!r} now points at {outcome.version_id}{forced}")
     print(outcome.version_id)
+    if outcome.refused is not None:
+        # The version is stored and its id printed: the refusal is of the alias move only.
+        print(f"veil fit: stored {outcome.version_id}, but {outcome.refused}", file=sys.stderr)
+        return 2
     return _gate(card_verdict(outcome.card).status, args.fail_on)
 
 
@@ -282,16 +293,23 @@ def promote(args: argparse.Namespace) -> int:
         alias=args.alias,
         reason=args.reason,
         allow_dimension_change=args.allow_dimension_change,
+        force=args.force,
     )
-    print(f"{args.name}: alias {event.alias!r} {event.from_version or '(new)'} -> {event.to_version}")
+    forced = " (forced: the version's verdict is alert)" if event.forced else ""
+    print(f"{args.name}: alias {event.alias!r} {event.from_version or '(new)'} -> {event.to_version}{forced}")
     return 0
 
 
 def rollback(args: argparse.Namespace) -> int:
-    event = Registry(args.registry).rollback(
+    registry = Registry(args.registry)
+    event = registry.rollback(
         args.name, alias=args.alias, reason=args.reason, allow_dimension_change=args.allow_dimension_change
     )
     print(f"{args.name}: alias {event.alias!r} rolled back {event.from_version} -> {event.to_version}")
+    verdict = promotion_verdict(registry.read_version(args.name, event.to_version or "").card)
+    if verdict is not None and verdict.status == "alert":
+        # Rolling back is the emergency path and is never refused; the history notes the verdict too.
+        print(f"note: {event.to_version}'s verdict is {verdict.sentence()}", file=sys.stderr)
     return 0
 
 
@@ -313,7 +331,7 @@ def history(args: argparse.Namespace) -> int:
             e.time,
             e.user,
             e.alias,
-            e.action if e.applied else f"{e.action} (unfinished)",
+            _action_text(e),
             e.from_version or "-",
             e.to_version or "(removed)",
             e.reason,
@@ -322,6 +340,11 @@ def history(args: argparse.Namespace) -> int:
     ]
     _print_table(["time", "user", "alias", "action", "from", "to", "reason"], rows)
     return 0
+
+
+def _action_text(event: HistoryEvent) -> str:
+    """A history event's action as the table shows it: forced or unfinished said."""
+    return event.action + (" (forced)" if event.forced else "") + ("" if event.applied else " (unfinished)")
 
 
 def verify(args: argparse.Namespace) -> int:

@@ -7,6 +7,7 @@ import os
 from collections.abc import Callable
 from typing import Any, NoReturn
 
+from veil.checks.verdict import THREATS
 from veil.defaults import (
     APPLY_CHUNK_ROWS,
     AUDIT_ROWS,
@@ -180,6 +181,15 @@ def _fail_on_option(command: argparse.ArgumentParser) -> None:
     )
 
 
+def _force_option(command: argparse.ArgumentParser) -> None:
+    """``--force``: move an alias onto a version whose verdict is alert, for ``promote`` and ``fit --alias``."""
+    command.add_argument(
+        "--force",
+        action="store_true",
+        help="move the alias even if the version's verdict is alert (needs --reason; the history records both)",
+    )
+
+
 def _band(text: str) -> tuple[str, tuple[float, float]]:
     """``FIGURE=WARN,ALERT`` as ``(figure, (warn, alert))``."""
     figure, _, levels = text.partition("=")
@@ -212,7 +222,11 @@ def build_parser() -> VeilParser:
     fit.add_argument("--method", required=True, choices=sorted(METHOD_NAMES))
     fit.add_argument("--option", action="append", default=[], metavar="KEY=VALUE", help="a method option")
     fit.add_argument("--name", required=True, help="the eraser's name in the registry, e.g. profiles-minilm")
-    fit.add_argument("--alias", help="point this alias (e.g. live) at the new version")
+    fit.add_argument(
+        "--alias",
+        help="point this alias (e.g. live) at the new version; refused (the version stored, exit 2) when its "
+        "verdict is alert, unless --force",
+    )
     fit.add_argument("--reason", default="", help="recorded in the history when --alias moves")
     fit.add_argument(
         "--embedding-model",
@@ -221,6 +235,16 @@ def build_parser() -> VeilParser:
         "the card records it with the dimension, and the service refuses a caller who states another model "
         "(header X-Veil-Embedding-Model); default: the model an .npz states in its 'embedding_model' entry, if any, "
         "else none is recorded and any caller is accepted",
+    )
+    _force_option(fit)
+    fit.add_argument(
+        "--claim",
+        action="append",
+        choices=tuple(THREATS),
+        metavar="THREAT",
+        help="a threat the version claims to guard, judged by the verdict's headline (repeatable; replaces the "
+        "method's own claim: linear, with --given also context-linear); the others are measured and shown as not "
+        f"claimed. Threats: {', '.join(f'{name} ({label})' for name, (label, _) in THREATS.items())}",
     )
     fit.add_argument("--holdout", type=float, default=0.2, help="share of rows held out for the audit (default 0.2)")
     fit.add_argument("--seed", type=int, default=0, help="seeds the split, probes and randomised methods")
@@ -348,7 +372,8 @@ def build_parser() -> VeilParser:
     promote.add_argument("name")
     promote.add_argument("version")
     promote.add_argument("--alias", default=DEFAULT_ALIAS)
-    promote.add_argument("--reason", default="")
+    promote.add_argument("--reason", default="", help="recorded in the history (needed with --force)")
+    _force_option(promote)
     promote.add_argument(
         "--allow-dimension-change", action="store_true", help="accept a version of another dimension than the alias's"
     )

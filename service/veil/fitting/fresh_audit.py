@@ -34,7 +34,7 @@ from veil.fitting.store import audit_each_attribute, audit_folds, within_context
 from veil.maps.artifact import MapArtifact
 from veil.progress import phase
 from veil.registry import Registry, current_user
-from veil.registry.card import card_thresholds, json_safe, verdict_record, worst_verdict
+from veil.registry.card import card_claims, card_thresholds, json_safe, verdict_record, worst_verdict
 from veil.registry.records import Record
 from veil.samples.attributes import attribute_columns, is_table, present_rows
 from veil.samples.chunks import Sample
@@ -180,9 +180,11 @@ def audit_stored_version(
         unseen = sorted({str(label) for label in labels} - fitted)
         if unseen:
             kept_notes.append(f"classes the version was not fitted on: {', '.join(unseen)}")
-    judged = verdict_record(report, thresholds)
+    # Judged on the threats the version claims, as its own audit was (every figure for a card without claims).
+    claims = card_claims(card)
+    judged = verdict_record(report, thresholds, claims)
     entries = [
-        {"name": attribute, "audit": one.to_dict(), "verdict": verdict_record(one, thresholds)}
+        {"name": attribute, "audit": one.to_dict(), "verdict": verdict_record(one, thresholds, claims)}
         for attribute, one in attributes
     ]
     if entries:

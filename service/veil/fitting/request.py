@@ -18,6 +18,7 @@ from types import MappingProxyType
 from typing import Any
 
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
+from veil.checks.verdict import THREATS, check_claims
 from veil.defaults import ENGINES, STREAM_CHUNK_ROWS
 from veil.errors import DataError
 from veil.registry.naming import check_name
@@ -170,16 +171,34 @@ class AuditSpec:
         see :mod:`veil.checks.verdict`).
     live_thresholds : AlertThresholds, optional
         Levels of the version's live checks (the defaults otherwise).
+    claims : tuple of str, optional
+        The threats the version claims to guard (:data:`veil.checks.verdict.THREATS`), replacing those its method
+        is built to remove (see :meth:`FitRequest.claims`): the verdict's headline judges these and lists the
+        others, measured, as not claimed.  Widen a claim a method does not make only on evidence (a transport
+        version that nonlinear probes do not read on fresh samples), or narrow it.
     """
 
     nonlinear: bool = True
     rows: int | None = None
     thresholds: AuditThresholds | None = None
     live_thresholds: AlertThresholds | None = None
+    claims: tuple[str, ...] | None = None
 
     def __post_init__(self) -> None:
         if self.rows is not None and self.rows < 2:
             raise DataError(f"the audit sample needs at least 2 rows, got {self.rows}")
+        if self.claims is not None:
+            claims = tuple(self.claims)
+            twice = [claim for position, claim in enumerate(claims) if claim in claims[:position]]
+            if not claims or twice:
+                raise DataError(
+                    "claim each threat once, and at least one"
+                    + ("" if not twice else f" ({twice[0]!r} is claimed twice)")
+                )
+            try:
+                object.__setattr__(self, "claims", check_claims(claims))
+            except ValueError as error:
+                raise DataError(f"--claim: {error}") from None
 
     def to_dict(self) -> dict[str, Any]:
         """The audit as asked for, with the levels in force (the defaults where none were given)."""
@@ -188,6 +207,7 @@ class AuditSpec:
             "rows": self.rows,
             "thresholds": (self.thresholds or AuditThresholds()).to_dict(),
             "live_thresholds": (self.live_thresholds or AlertThresholds()).to_dict(),
+            "claims": None if self.claims is None else list(self.claims),
         }
 
 
@@ -207,6 +227,9 @@ class StoreSpec:
         The model that made the sample's vectors (``EmbeddingModel.parse("NAME@VERSION")``).  The card records
         it with the dimension, and the service refuses a caller who states another; None takes the sample
         file's, if it states one (see :mod:`veil.samples.embedding_model`), else the version accepts any caller.
+    force : bool, default=False
+        Move the alias even if the new version's verdict is alert (the alias is otherwise left as it was, the
+        version stored all the same); needs a ``reason``, which the history records with the fact it was forced.
     """
 
     name: str
@@ -214,6 +237,7 @@ class StoreSpec:
     alias: str | None = None
     reason: str = ""
     embedding_model: EmbeddingModel | None = None
+    force: bool = False
 
     def __post_init__(self) -> None:
         check_name(self.name)
@@ -225,9 +249,19 @@ class StoreSpec:
                 f"{type(self.embedding_model).__name__}"
             )
 
+        if self.force and (self.alias is None or not self.reason.strip()):
+            # Refused before the fit: a forced move is recorded with why, and forcing nothing is a slip.
+            raise DataError("--force moves an alias onto a version whose verdict is alert: give --alias and --reason")
+
     def to_dict(self) -> dict[str, Any]:
         model = None if self.embedding_model is None else self.embedding_model.text
-        return {"name": self.name, "alias": self.alias, "reason": self.reason, "embedding_model": model}
+        return {
+            "name": self.name,
+            "alias": self.alias,
+            "reason": self.reason,
+            "embedding_model": model,
+            "force": self.force,
+        }
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -284,6 +318,30 @@ class FitRequest:
     _: KW_ONLY
     audit: AuditSpec = field(default_factory=AuditSpec)
     reading: ReadingSpec = field(default_factory=ReadingSpec)
+
+    def __post_init__(self) -> None:
+        within = [claim for claim in self.audit.claims or () if claim.startswith("context-")]
+        if within and self.fit.given is None:
+            raise DataError(f"the threat {within[0]!r} is within a context: claim it for a fit with --given")
+
+    @property
+    def claims(self) -> tuple[str, ...]:
+        """The threats the version claims to guard: those asked for, else those its method is built to remove.
+
+        Every method here is built to leave nothing a linear model reads: ``linear`` (the population), and with a
+        context ``context-linear`` (within each value).  The population is not claimed where it is not guarded:
+        ``--within-only``, or transport within a context without LEACE after it.  None is built against
+        nonlinear readers or neighbourhoods (transport matches each class's mean and covariance through a
+        classifier that can err: measured, not guaranteed), so those are measured and shown, not claimed.
+        """
+        if self.audit.claims is not None:
+            return self.audit.claims
+        spec = self.fit
+        population = spec.guard_population
+        if spec.given is not None and spec.method == "transport":
+            population = bool(spec.params.get("then_leace", False))
+        claims = (["linear"] if population else []) + (["context-linear"] if spec.given is not None else [])
+        return tuple(name for name in THREATS if name in claims)
 
     def to_dict(self) -> dict[str, Any]:
         """The request as the card records it (JSON-safe)."""

@@ -20,7 +20,7 @@ from veil.erasers import Erasure
 from veil.fitting.request import FitRequest
 from veil.maps.artifact import MapArtifact
 from veil.progress import phase
-from veil.registry import CARD_FILE, HistoryEvent, Registry, current_user
+from veil.registry import CARD_FILE, AlertVerdictError, HistoryEvent, Registry, current_user
 from veil.registry.artifact_files import encode_artifact
 from veil.registry.card import build_card
 from veil.reporting import PLOT_DATA_FILE, REPORT_FILE, PlotData, render_report
@@ -33,12 +33,17 @@ AUDIT_FOLDS = 5
 
 @dataclass(frozen=True)
 class FitOutcome:
-    """What a fit stored: the new version's id, its audit and card, and the alias move if one was asked for."""
+    """What a fit stored: the new version's id, its audit and card, and the alias move if one was asked for.
+
+    ``refused`` says why the alias was not moved (the version's verdict is alert and the move was not forced);
+    the version is stored all the same.
+    """
 
     version_id: str
     audit: AuditReport
     card: dict[str, Any]
     promotion: HistoryEvent | None
+    refused: str | None = None
 
 
 def audit_folds(codes: NDArray[np.intp]) -> int:
@@ -153,6 +158,7 @@ def audit_and_store(
         attribute_audits=attribute_audits,
         request=request.to_dict(),
         embedding_model=request.store.embedding_model,
+        claims=request.claims,
     )
     files = encode_artifact(artifact)
     files[CARD_FILE] = json.dumps(card, indent=2, sort_keys=True, allow_nan=False).encode()
@@ -165,8 +171,13 @@ def audit_and_store(
     with phase("storing the version"):
         name, alias = request.store.name, request.store.alias
         version_id = registry.add_version(name, files, derived=report_page)
-        promotion = None if alias is None else registry.promote(name, version_id, alias=alias, reason=reason)
-    return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion)
+        promotion, refused = None, None
+        if alias is not None:
+            try:
+                promotion = registry.promote(name, version_id, alias=alias, reason=reason, force=request.store.force)
+            except AlertVerdictError as error:
+                refused = str(error)
+    return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion, refused=refused)
 
 
 def within_context(

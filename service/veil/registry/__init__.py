@@ -10,6 +10,7 @@ May import: ``veil.maps``, ``veil.audit`` (the report a card records),
 """
 
 from veil.registry.errors import (
+    AlertVerdictError,
     IntegrityError,
     InvalidReferenceError,
     LockTimeoutError,
@@ -35,6 +36,7 @@ __all__ = [
     "CARD_FILE",
     "DEFAULT_ALIAS",
     "SEAL_FILE",
+    "AlertVerdictError",
     "AliasState",
     "HistoryEvent",
     "IntegrityError",

@@ -21,7 +21,7 @@ from veil.audit.points import Sweep, value_text
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
-from veil.checks.verdict import LEVELS, Verdict, judge_audit
+from veil.checks.verdict import ThreatStatus, Verdict, judge_audit, worst
 from veil.maps.artifact import MapArtifact
 from veil.maps.context import ContextMoments
 from veil.samples.chunks import Sample
@@ -91,12 +91,15 @@ def build_card(
     attribute_audits: Sequence[tuple[str, AuditReport]] = (),
     request: Mapping[str, Any] | None = None,
     embedding_model: EmbeddingModel | None = None,
+    claims: tuple[str, ...] = ("linear",),
 ) -> dict[str, Any]:
     """The card of a freshly fitted version (a JSON-safe dict).
 
     ``request`` is the fit's description as asked for (:meth:`veil.fitting.request.FitRequest.to_dict`).
     ``embedding_model`` is the model the request names; the card records it, or else the one the sample file
     states (see :func:`embedding_model_record`).
+    ``claims`` are the threats the version claims to guard (:data:`veil.checks.verdict.THREATS`): its verdict's
+    headline judges them, and every later audit of it.
 
     For several attributes, ``attribute_audits`` holds each one's audit (``audit`` is the first categorical
     one's, which heads the card); the card then lists them under ``attributes`` (see :func:`attributes_record`).
@@ -137,7 +140,8 @@ def build_card(
             "pre_erasure_probe": "logistic regression on standardised raw embeddings, fitted on the fit rows",
         },
         "thresholds": thresholds.to_dict(),
-        "verdict": verdict_record(audit, audit_thresholds or AuditThresholds()),
+        "claims": list(claims),
+        "verdict": verdict_record(audit, audit_thresholds or AuditThresholds(), claims),
         "software": software_versions(),
         "created_at": datetime.now(UTC).isoformat(timespec="seconds"),
         "created_by": user,
@@ -152,9 +156,9 @@ def build_card(
     if operating_points is not None:
         card["operating_points"] = operating_points
     if attribute_audits:
-        entries = attributes_record(artifact, attribute_audits, audit_thresholds or AuditThresholds())
+        entries = attributes_record(artifact, attribute_audits, audit_thresholds or AuditThresholds(), claims)
         card["attributes"] = entries
-        card["verdict"] = worst_verdict(verdict_record(audit, audit_thresholds or AuditThresholds()), entries)
+        card["verdict"] = worst_verdict(card["verdict"], entries)
     return dict(json_safe(card))
 
 
@@ -250,7 +254,10 @@ def given_text(record: Mapping[str, Any]) -> str:
 
 
 def attributes_record(
-    artifact: MapArtifact, audits: Sequence[tuple[str, AuditReport]], thresholds: AuditThresholds
+    artifact: MapArtifact,
+    audits: Sequence[tuple[str, AuditReport]],
+    thresholds: AuditThresholds,
+    claims: tuple[str, ...] | None,
 ) -> list[dict[str, Any]]:
     """Each attribute of a version of several: its kind, classes and shares, fitting rows, audit and verdict."""
     kinds = {block.name: block.kind for block in artifact.moments.blocks}
@@ -265,17 +272,33 @@ def attributes_record(
                 "priors": None if state.labels is None else state.class_priors.tolist(),
                 "fit_rows": int(state.count),
                 "audit": report.to_dict(),
-                "verdict": verdict_record(report, thresholds),
+                "verdict": verdict_record(report, thresholds, claims),
             }
         )
     return entries
 
 
 def worst_verdict(headline: dict[str, Any], attributes: list[dict[str, Any]]) -> dict[str, Any]:
-    """The card's verdict over several attributes: the worst status any reaches, with every reason named."""
-    status = max((entry["verdict"]["status"] for entry in attributes), key=LEVELS.index)
+    """The card's verdict over several attributes: the worst status any reaches, with every reason named.
+
+    Each threat, too, is at the worst status it reaches for any attribute, measured where any attribute measured it.
+    """
+    status = worst(entry["verdict"]["status"] for entry in attributes)
     reasons = [f"{entry['name']}: {reason}" for entry in attributes for reason in entry["verdict"].get("reasons", [])]
-    return {**headline, "status": status, "reasons": reasons}
+    merged = {**headline, "status": status, "reasons": reasons}
+    if "threats" in headline:
+        verdicts = [(entry["name"], Verdict.from_dict(entry["verdict"])) for entry in attributes]
+        merged["threats"] = {
+            threat: dataclasses.asdict(
+                ThreatStatus(
+                    worst(verdict.threats[threat].status for _, verdict in verdicts),
+                    [f"{name}: {reason}" for name, verdict in verdicts for reason in verdict.threats[threat].reasons],
+                    measured=any(verdict.threats[threat].measured for _, verdict in verdicts),
+                )
+            )
+            for threat in headline["threats"]
+        }
+    return merged
 
 
 def attributes_text(card: Mapping[str, Any]) -> list[str]:
@@ -310,9 +333,18 @@ def card_audit(card: Mapping[str, Any]) -> AuditReport:
     return audit
 
 
-def verdict_record(audit: AuditReport, thresholds: AuditThresholds) -> dict[str, Any]:
-    """An audit's verdict with the thresholds it was judged by, as a card or an audit record stores it."""
-    return {"thresholds": thresholds.to_dict(), **judge_audit(audit, thresholds).to_dict()}
+def verdict_record(audit: AuditReport, thresholds: AuditThresholds, claims: tuple[str, ...] | None) -> dict[str, Any]:
+    """An audit's verdict with the thresholds it was judged by, as a card or an audit record stores it.
+
+    ``claims``: the threats the version claims (None: judged on every figure, for a card without claims).
+    """
+    return {"thresholds": thresholds.to_dict(), **judge_audit(audit, thresholds, claims).to_dict()}
+
+
+def card_claims(card: Mapping[str, Any]) -> tuple[str, ...] | None:
+    """The threats a card's version claims to guard (None: a card written before versions claimed threats)."""
+    claims = card.get("claims")
+    return None if claims is None else tuple(claims)
 
 
 def card_thresholds(card: Mapping[str, Any]) -> AuditThresholds:
@@ -327,6 +359,18 @@ def card_verdict(card: Mapping[str, Any]) -> Verdict:
     if recorded is None:
         return judge_audit(card_audit(card), AuditThresholds())
     return Verdict.from_dict(recorded)
+
+
+def promotion_verdict(card: Mapping[str, Any]) -> Verdict | None:
+    """The verdict a promotion of this version is judged by: the card's own (None: a card with no audit at all)."""
+    return None if "verdict" not in card and "audit" not in card else card_verdict(card)
+
+
+def verdict_text(card: Mapping[str, Any]) -> list[str]:
+    """The card's verdict as lines: the headline, then each threat, or the rule it was judged by."""
+    verdict = card_verdict(card)
+    headline = f"verdict at fitting time: {verdict.sentence()}" + ("" if "verdict" in card else _DEFAULTS_NOTE)
+    return [headline, *(f"  {line}" for line in verdict.threat_lines())]
 
 
 def protocol_text(audit: AuditReport) -> str:
@@ -451,9 +495,7 @@ _DEFAULTS_NOTE = " (judged by the default thresholds: the card was written befor
 
 def format_card(version_id: str, card: dict[str, Any]) -> str:
     """The card for a terminal: headline figures, the full audit table, thresholds and provenance."""
-    lines = [f"{card['name']} {version_id}"]
-    verdict = card_verdict(card)
-    lines.append(f"verdict at fitting time: {verdict.sentence()}" + ("" if "verdict" in card else _DEFAULTS_NOTE))
+    lines = [f"{card['name']} {version_id}", *verdict_text(card)]
     width = max(len(label) for label, _ in _headline(card))
     lines += [f"  {label:{width}}  {text}" for label, text in _headline(card)]
     attribute = card["attribute"]

@@ -23,6 +23,10 @@ class PromotionError(RegistryError):
     """A promote or rollback was refused (nothing to roll back to, a dimension change without the flag, ...)."""
 
 
+class AlertVerdictError(PromotionError):
+    """A promotion onto a version whose verdict is alert, refused because it was not forced."""
+
+
 class LockTimeoutError(RegistryError, TimeoutError):
     """Another process held the eraser's lock for longer than the timeout."""
 

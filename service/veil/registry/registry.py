@@ -29,7 +29,14 @@ from typing import Any
 
 from veil.maps.artifact import MapArtifact
 from veil.registry.artifact_files import ArtifactFormatError, decode_artifact
-from veil.registry.errors import IntegrityError, InvalidReferenceError, NotFoundError, PromotionError
+from veil.registry.card import promotion_verdict
+from veil.registry.errors import (
+    AlertVerdictError,
+    IntegrityError,
+    InvalidReferenceError,
+    NotFoundError,
+    PromotionError,
+)
 from veil.registry.naming import check_name, format_version_id, parse_sequence, parse_version_id
 from veil.registry.records import KINDS, Record, append_record, find_record, read_records
 from veil.registry.storage import Storage, open_storage
@@ -97,7 +104,8 @@ class AliasState:
 @dataclass(frozen=True)
 class HistoryEvent:
     """One promote, rollback or removal of an alias (``to_version`` None); ``applied`` is False only for a move a
-    crashed writer left unfinished."""
+    crashed writer left unfinished.  ``forced``: a promote onto a version whose verdict is alert, with the
+    reason it was forced (events written before promotions were judged hold False)."""
 
     event: int
     time: str
@@ -108,6 +116,7 @@ class HistoryEvent:
     to_version: str | None
     reason: str
     applied: bool = True
+    forced: bool = False
 
     def to_dict(self) -> dict[str, Any]:
         data = asdict(self)
@@ -412,6 +421,7 @@ class Registry:
                 from_version=data["from_version"],
                 to_version=data["to_version"],
                 reason=str(data["reason"]),
+                forced=data.get("forced", False) is True,
             )
         except (ValueError, KeyError, TypeError) as error:
             raise IntegrityError(f"{name}: history event {entry} is unreadable ({error})") from None
@@ -468,16 +478,22 @@ class Registry:
         reason: str = "",
         user: str | None = None,
         allow_dimension_change: bool = False,
+        force: bool = False,
     ) -> HistoryEvent:
         """Point ``alias`` at a version (verified first) and record the move.
+
+        A version whose verdict (its card's headline: the threats it claims) is ``alert`` is refused unless
+        ``force``, which needs a ``reason``; the event then records that it was forced.
 
         Raises
         ------
         IntegrityError
             The version fails verification; the alias is left as it was.
+        AlertVerdictError
+            The version's verdict is alert and ``force`` is False (a :class:`PromotionError`).
         PromotionError
-            The alias already points at the version, or the version's dimension differs from the alias's current
-            one and ``allow_dimension_change`` is False.
+            The alias already points at the version, the version's dimension differs from the alias's current
+            one and ``allow_dimension_change`` is False, or ``force`` overrides an alert without a reason.
         """
         check_name(alias, what="alias")
         with self._locked(name):
@@ -487,7 +503,25 @@ class Registry:
             if current is not None and current.version == target.id:
                 # A move to where the alias already points changes nothing and would record an empty event.
                 raise PromotionError(f"alias {alias!r} of {name} already points at {target.id}; nothing to promote")
-            return self._move(name, alias, "promote", target, reason, user, allow_dimension_change)
+            forced = self._check_verdict(name, alias, target, force=force, reason=reason)
+            return self._move(name, alias, "promote", target, reason, user, allow_dimension_change, forced=forced)
+
+    @staticmethod
+    def _check_verdict(name: str, alias: str, target: StoredVersion, *, force: bool, reason: str) -> bool:
+        """Refuse a promotion onto a version whose verdict is alert unless forced with a reason; whether forced."""
+        verdict = promotion_verdict(target.card)
+        if verdict is None or verdict.status != "alert":
+            return False
+        if not force:
+            raise AlertVerdictError(
+                f"{name} {target.id} has the verdict {verdict.sentence()}; alias {alias!r} is left as it was "
+                "(force it with a reason if this is known and accepted; the history records both)"
+            )
+        if not reason.strip():
+            raise PromotionError(
+                f"{name} {target.id}'s verdict is alert: a forced promotion needs a reason, which the history records"
+            )
+        return True
 
     def rollback(
         self,
@@ -513,6 +547,10 @@ class Registry:
             if not undo_stack or undo_stack[-1] is None:
                 raise PromotionError(f"{name}: alias {alias!r} has no earlier version to roll back to")
             target = self.read_version(name, undo_stack[-1])
+            # Rolling back is the emergency path, never refused for a verdict; the history says what it went to.
+            verdict = promotion_verdict(target.card)
+            if verdict is not None and verdict.status == "alert":
+                reason = f"{reason} (onto a version whose verdict is alert)".lstrip()
             return self._move(name, alias, "rollback", target, reason, user, allow_dimension_change)
 
     def _move(
@@ -524,6 +562,8 @@ class Registry:
         reason: str,
         user: str | None,
         allow_dimension_change: bool,
+        *,
+        forced: bool = False,
     ) -> HistoryEvent:
         current, problem = self._current(name, alias)
         from_version = None if current is None else current.version
@@ -548,6 +588,7 @@ class Registry:
             from_version=from_version,
             to_version=target.id,
             reason=reason,
+            forced=forced,
         )
         self._record(name, event)
         self._write_alias(name, AliasState(alias=alias, version=target.id, event=event.event, dim=dim))

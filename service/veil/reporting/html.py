@@ -171,6 +171,7 @@ def render_report(
             "Held-out embeddings, coloured by attribute", drawn.scatter_plot(plots, classes), (11, 4.4), ""
         ),
         sections.figure("Per-vector distortion", drawn.distortion_plot(plots), (7, 3.2), ""),
+        "<h2>Threats at fitting time</h2>" + sections.threats_table(card_verdict(card)),
         "<h2>Audit thresholds</h2>" + sections.audit_thresholds_table(card),
         "<h2>Alert thresholds of the live checks</h2>" + sections.table(live_bands),
         f"<h2>Full audit</h2><pre>{html.escape(audit.format_table())}</pre>",

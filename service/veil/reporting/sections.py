@@ -7,7 +7,7 @@ from collections.abc import Sequence
 from typing import Any
 
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore
-from veil.checks.verdict import MEANINGS, Verdict
+from veil.checks.verdict import MEANINGS, RULE_EVERY_FIGURE, THREATS, Verdict
 from veil.registry.card import card_thresholds, protocol_text
 from veil.reporting.headline import status_mark, utc_text
 from veil.reporting.plots import Draw, svg
@@ -93,6 +93,42 @@ def table(rows: Sequence[tuple[str, str]]) -> str:
 def figure(title: str, draw: Draw | None, size: tuple[float, float], missing: str) -> str:
     body = svg(draw, size) if draw is not None else f'<p class="muted">{html.escape(missing)}</p>'
     return f'<h2>{html.escape(title)}</h2><figure class="plot">{body}</figure>'
+
+
+def _capitalized(text: str) -> str:
+    return text[:1].upper() + text[1:]
+
+
+def verdict_paragraph(title: str, verdict: Verdict) -> str:
+    detail = _capitalized(verdict.sentence().split(": ", 1)[1])
+    return (
+        f'<p class="verdict verdict-{html.escape(verdict.status)}"><strong>{html.escape(title)}: '
+        f"{html.escape(verdict.status)}</strong>. {html.escape(detail)}.</p>"
+    )
+
+
+def threats_table(verdict: Verdict) -> str:
+    """Each threat the verdict measured or the version claims: claimed or not, its status, and why.
+
+    Nothing for a verdict judged on every figure (a card written before claims): its paragraph says so.
+    """
+    if verdict.claimed is None:
+        return f'<p class="muted">{html.escape(_capitalized(RULE_EVERY_FIGURE))}.</p>'
+    head = "<tr><th>threat</th><th>claimed</th><th>status</th><th>why</th></tr>"
+    rows = []
+    for name, threat in verdict.threats.items():
+        claimed = name in verdict.claimed
+        if not (claimed or threat.measured):
+            continue
+        status = threat.status if threat.measured else "not measured"
+        why = "; ".join(threat.reasons) or ("every figure below its warn level" if threat.measured else "")
+        rows.append(
+            f'<tr data-threat="{html.escape(name)}"><td>{html.escape(THREATS[name][0])}</td>'
+            f"<td>{'claimed' if claimed else 'not claimed (shown, not judged)'}</td>"
+            f'<td class="status verdict-{html.escape(status)}">{html.escape(status)}</td>'
+            f"<td>{html.escape(why)}</td></tr>"
+        )
+    return f'<table class="threats">{head}{"".join(rows)}</table>'
 
 
 def fresh_audits(audits: Sequence[tuple[int, dict[str, Any]]]) -> str:
