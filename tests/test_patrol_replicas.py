@@ -276,3 +276,25 @@ def test_three_real_replicas_checked_as_one_equal_a_check_of_the_same_vectors_on
     evidence = _evidence(registry, PROFILES, record.version)
     _validate(evidence)
     assert evidence["live_checks"][0]["replicas"]["unanswered"][0]["address"] == dead
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        ((), "give the service to check: --service URL (repeatable) or --replicas-of URL"),
+        (
+            ("--service", "http://a", "--service", "http://b", "--sample", "s.npy"),
+            "a posted --sample is checked by one",
+        ),
+        (("--replicas-of", "http://veil-replicas:8080", "--sample", "s.npy"), "a posted --sample is checked by one"),
+    ],
+)
+def test_what_a_patrol_of_replicas_cannot_do_is_refused_before_any_round(
+    registry: Registry, tmp_path: Path, argv: tuple[str, ...], message: str
+) -> None:
+    np.save(tmp_path / "s.npy", np.zeros((30, 384), dtype=np.float32))
+    argv = tuple(str(tmp_path / a) if a == "s.npy" else a for a in argv)
+    result = run("patrol", PROFILES, "--registry", registry.url, "--once", *argv)
+    assert result.code == 2, result.err
+    assert message in result.err
+    assert check_history(registry, PROFILES) == []
