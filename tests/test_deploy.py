@@ -34,6 +34,17 @@ def of_kind(kind: str) -> list[dict[str, Any]]:
     return [m for m in manifests() if m["kind"] == kind]
 
 
+def balanced_service() -> dict[str, Any]:
+    """The Service callers reach (one replica per request), not the headless one that names every replica."""
+    (service,) = [s for s in of_kind("Service") if s["spec"].get("clusterIP") != "None"]
+    return service
+
+
+def headless_service() -> dict[str, Any]:
+    (service,) = [s for s in of_kind("Service") if s["spec"].get("clusterIP") == "None"]
+    return service
+
+
 def app_routes() -> set[str]:
     """Every route the app documents (its OpenAPI paths); building the app loads nothing."""
     return set(create_app(ServiceSettings(registry="/nonexistent")).openapi()["paths"])
@@ -52,7 +63,8 @@ def dockerfile() -> str:
 def test_every_manifest_has_the_kinds_the_cluster_needs() -> None:
     kinds = sorted(m["kind"] for m in manifests())
     expected = [
-        "ConfigMap", "CronJob", "Deployment", "HorizontalPodAutoscaler", "Job", "PodDisruptionBudget", "Service"
+        "ConfigMap", "CronJob", "Deployment", "HorizontalPodAutoscaler", "Job", "PodDisruptionBudget", "Service",
+        "Service",
     ]  # fmt: skip
     assert kinds == expected
 
@@ -70,8 +82,8 @@ def test_probes_point_at_routes_the_app_has_and_ports_match() -> None:
         assert container[probe]["httpGet"]["port"] in ports
     assert parses_as_veil(container["command"]) == "serve"
     assert container["command"][container["command"].index("--port") + 1] == str(PORT)
-    (service,) = of_kind("Service")
-    assert service["spec"]["ports"][0]["targetPort"] == PORT
+    for service in of_kind("Service"):
+        assert service["spec"]["ports"][0]["targetPort"] == PORT
     assert deployment["spec"]["template"]["metadata"]["annotations"]["prometheus.io/path"] in routes
 
 
@@ -79,8 +91,8 @@ def test_selectors_and_targets_line_up() -> None:
     (deployment,) = of_kind("Deployment")
     pod_labels = deployment["spec"]["template"]["metadata"]["labels"]
     assert deployment["spec"]["selector"]["matchLabels"].items() <= pod_labels.items()
-    (service,) = of_kind("Service")
-    assert service["spec"]["selector"].items() <= pod_labels.items()
+    for service in of_kind("Service"):
+        assert service["spec"]["selector"].items() <= pod_labels.items()
     (budget,) = of_kind("PodDisruptionBudget")
     assert budget["spec"]["selector"]["matchLabels"].items() <= pod_labels.items()
     (autoscaler,) = of_kind("HorizontalPodAutoscaler")
@@ -106,7 +118,7 @@ def test_resources_settings_and_the_fit_job() -> None:
 def test_the_patrol_cronjob_checks_the_service_once_per_scheduled_slot() -> None:
     (cronjob,) = of_kind("CronJob")
     (configmap,) = of_kind("ConfigMap")
-    (service,) = of_kind("Service")
+    headless = headless_service()
     spec = cronjob["spec"]
     assert spec["concurrencyPolicy"] == "Forbid"
     (patrol,) = spec["jobTemplate"]["spec"]["template"]["spec"]["containers"]
@@ -116,9 +128,12 @@ def test_the_patrol_cronjob_checks_the_service_once_per_scheduled_slot() -> None
     # One record per slot: the slot is the schedule's interval ("*/5": every 300 s), so a retried job adds nothing.
     minutes = int(spec["schedule"].split()[0].removeprefix("*/"))
     assert arguments.every == minutes * 60
-    # It reaches the Service by name on its port, and the registry through the same settings as the service.
-    assert arguments.service == f"http://{service['metadata']['name']}"
-    assert service["spec"]["ports"][0]["port"] == 80
+    # It finds every replica through the headless Service's name, on the pods' own port (a headless name resolves to
+    # the pods, not to a proxy), and the registry through the same settings as the service.
+    assert arguments.service == []
+    assert arguments.replicas_of == [f"http://{headless['metadata']['name']}:{PORT}"]
+    assert headless["spec"]["ports"][0]["port"] == PORT
+    assert balanced_service()["spec"]["ports"][0]["port"] == 80
     assert patrol["envFrom"][0]["configMapRef"]["name"] == configmap["metadata"]["name"]
     assert "VEIL_REGISTRY" in configmap["data"]
     assert {"cpu", "memory"} <= patrol["resources"]["limits"].keys()
@@ -173,6 +188,13 @@ def test_compose_proxy_and_prometheus_reach_the_replicas() -> None:
     (job,) = prometheus["scrape_configs"]
     assert job["metrics_path"] in app_routes()
     assert job["dns_sd_configs"][0]["port"] == PORT
+    # The patrol finds every replica by the service's name, on the port they listen on, and writes the registry.
+    patrol = compose["services"]["patrol"]
+    arguments = build_parser().parse_args(patrol["command"])
+    assert patrol["entrypoint"] == ["veil"]
+    assert arguments.handler == "patrol"
+    assert arguments.replicas_of == [f"http://veil:{PORT}"]
+    assert "registry:/registry" in patrol["volumes"]
     fit = compose["services"]["fit"]
     assert fit["entrypoint"] == ["veil"]
     example = re.search(r"run --rm fit (fit .*?--alias live)", (DEPLOY / "compose.yaml").read_text(), re.DOTALL)

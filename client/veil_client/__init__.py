@@ -26,7 +26,7 @@ Exceptions (all subclasses of :class:`VeilError`)::
         └── VeilServerError     5xx (a 503 only after every retry)
 """
 
-from veil_client._base import DEFAULT_BATCH_SIZE, DEFAULT_TIMEOUT, CleanedBatch, SearchVectors
+from veil_client._base import DEFAULT_BATCH_SIZE, DEFAULT_TIMEOUT, CleanedBatch, RecentTraffic, SearchVectors
 from veil_client.client import AsyncVeilClient, VeilClient
 from veil_client.errors import (
     VeilClientError,
@@ -43,6 +43,7 @@ __all__ = [
     "DEFAULT_TIMEOUT",
     "AsyncVeilClient",
     "CleanedBatch",
+    "RecentTraffic",
     "SearchVectors",
     "VeilClient",
     "VeilClientError",

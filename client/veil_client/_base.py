@@ -235,3 +235,28 @@ class ClientSettings:
         self.wire = NPY if wire == "npy" else JSON
         self.retry = retry
         self.rng = random.Random(seed)
+
+
+@dataclass(frozen=True)
+class RecentTraffic:
+    """A replica's sample of the distinct raw vectors it has recently cleaned for an eraser.
+
+    ``traffic_seen`` is how many vectors the sample stands for (every vector
+    the replica cleaned since the sample began, repeats included): the weight
+    of this replica's share when samples of several replicas are merged.
+    """
+
+    vectors: NDArray[np.float32]
+    traffic_seen: int
+    version: str
+    eraser: str
+
+
+def recent_traffic_of(response: httpx.Response) -> RecentTraffic:
+    """The ``.npy`` answer of ``GET /v1/erasers/{name}/recent`` with what its headers say."""
+    return RecentTraffic(
+        vectors=np.asarray(decode(response), dtype=np.float32),
+        traffic_seen=int(response.headers["x-veil-traffic-seen"]),
+        version=response.headers["x-veil-version"],
+        eraser=response.headers["x-veil-eraser"],
+    )

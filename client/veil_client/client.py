@@ -17,10 +17,12 @@ from veil_client._base import (
     DEFAULT_BATCH_SIZE,
     DEFAULT_TIMEOUT,
     JSON,
+    NPY,
     RETRY_STATUSES,
     CleanedBatch,
     ClientSettings,
     Labels,
+    RecentTraffic,
     RetryPolicy,
     SearchVectors,
     Target,
@@ -33,6 +35,7 @@ from veil_client._base import (
     one_vector,
     pin_headers,
     raise_for_error,
+    recent_traffic_of,
     search_vectors_of,
     target_params,
 )
@@ -316,6 +319,17 @@ class VeilClient(_Requests):
         result: dict[str, Any] = self._send(request.pop("method"), f"/v1/erasers/{name}/drift", **request).json()
         return result
 
+    def recent(self, name: str) -> RecentTraffic:
+        """The replica's sample of the distinct raw vectors it has recently cleaned for ``name``.
+
+        Returns
+        -------
+        RecentTraffic
+            ``vectors`` (n, dim) float32 (no rows before any traffic), ``traffic_seen`` (every vector the
+            replica cleaned since the sample began, repeats included), the ``version`` it serves.
+        """
+        return recent_traffic_of(self._send("GET", f"/v1/erasers/{name}/recent", headers={"Accept": NPY}))
+
     def erasers(self) -> list[dict[str, Any]]:
         result: list[dict[str, Any]] = self._send("GET", "/v1/erasers").json()["erasers"]
         return result
@@ -442,6 +456,10 @@ class AsyncVeilClient(_Requests):
         response = await self._send(request.pop("method"), f"/v1/erasers/{name}/drift", **request)
         result: dict[str, Any] = response.json()
         return result
+
+    async def recent(self, name: str) -> RecentTraffic:
+        """As :meth:`VeilClient.recent`: the replica's sample of its recent raw vectors for ``name``."""
+        return recent_traffic_of(await self._send("GET", f"/v1/erasers/{name}/recent", headers={"Accept": NPY}))
 
     async def erasers(self) -> list[dict[str, Any]]:
         result: list[dict[str, Any]] = (await self._send("GET", "/v1/erasers")).json()["erasers"]

@@ -471,21 +471,35 @@ def patrol(args: argparse.Namespace) -> int:
 
     registry = Registry(args.registry)
     registry.versions(args.name)  # an unknown eraser fails before the first round
+    service, replicas = _patrolled(args)
     try:
         summary = run_patrol(
             registry,
             args.name,
-            service=args.service,
+            service=service,
             token=os.environ.get("VEIL_DATA_TOKEN"),
+            replicas=replicas,
             sample=_posted_sample(args),
             every=args.every,
             rounds=1 if args.once else args.rounds,
             say=lambda line: print(line, flush=True),
         )
     except VeilError as error:
-        print(f"veil patrol: the service at {args.service} did not answer: {error}", file=sys.stderr)
+        print(f"veil patrol: the service at {service} did not answer: {error}", file=sys.stderr)
         return 1
     return _gate(summary.worst, args.fail_on)
+
+
+def _patrolled(args: argparse.Namespace) -> tuple[str, Any]:
+    """What ``veil patrol`` asks: one service as it always has, or replicas whose samples each round merges."""
+    from veil.patrol.replicas import ReplicaSet
+
+    if not args.service and not args.replicas_of:
+        raise DataError("give the service to check: --service URL (repeatable) or --replicas-of URL")
+    if len(args.service) == 1 and not args.replicas_of:
+        return args.service[0], None
+    replicas = ReplicaSet(services=tuple(args.service), replicas_of=tuple(args.replicas_of))
+    return replicas.describe(), replicas
 
 
 def _since(text: str | None) -> Any:
@@ -522,7 +536,7 @@ def checks(args: argparse.Namespace) -> int:
             record.body["checked_at"],
             record.version,
             str(record.body["report"].get("rows", "")),
-            record.body["checked"]["kind"],
+            _checked_text(record.body),
             record.body["status"],
             "; ".join(record.body["reasons"]),
         ]
@@ -530,6 +544,15 @@ def checks(args: argparse.Namespace) -> int:
     ]
     _print_table(["checked at", "version", "rows", "checked", "status", "reasons"], rows)
     return 0
+
+
+def _checked_text(body: dict[str, Any]) -> str:
+    """The ``checked`` column: what was checked, and for a merged check its replicas."""
+    from veil.patrol.rounds import replicas_summary
+
+    if "replicas" not in body:
+        return str(body["checked"]["kind"])
+    return f"{body['checked']['kind']}: {replicas_summary(body['replicas'], body['checked'])}"
 
 
 HANDLERS = {

@@ -434,7 +434,22 @@ def build_parser() -> VeilParser:
         help="ask a running service for its drift and leakage checks and record each answer in the registry",
     )
     patrol.add_argument("name")
-    patrol.add_argument("--service", required=True, help="the service's base URL, e.g. http://veil.internal:8080")
+    patrol.add_argument(
+        "--service",
+        action="append",
+        default=[],
+        help="the service's base URL, e.g. http://veil.internal:8080; repeatable: each is a replica, and every "
+        "round checks their recent traffic merged, naming any that does not answer",
+    )
+    patrol.add_argument(
+        "--replicas-of",
+        action="append",
+        default=[],
+        metavar="URL",
+        help="a base URL whose host name resolves to every replica (a Kubernetes headless Service, a Compose "
+        "service), e.g. http://veil-replicas:8080: resolved at each round, every address is a replica "
+        "(repeatable, and may go with --service)",
+    )
     patrol.add_argument(
         "--every",
         type=float,

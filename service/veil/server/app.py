@@ -25,7 +25,7 @@ from veil.server.metrics import ServiceMetrics
 from veil.server.middleware import RequestRecorder
 from veil.server.poller import poll_aliases
 from veil.server.reservoir import ReservoirBank
-from veil.server.routers import admin, bench, drift, erasers, health, search
+from veil.server.routers import admin, bench, drift, erasers, health, search, traffic
 from veil.server.settings import ServiceSettings, load_settings
 
 
@@ -68,7 +68,7 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
     app.state.metrics = metrics
     app.state.reservoirs = ReservoirBank(settings.reservoir_size)
     install_error_handlers(app)
-    for router in (erasers.router, search.router, drift.router, health.router, admin.router):
+    for router in (erasers.router, search.router, drift.router, traffic.router, health.router, admin.router):
         app.include_router(router)
     if settings.benchmark_echo:
         app.include_router(bench.router)

@@ -100,6 +100,11 @@ class Reservoir:
         with self._lock:
             return self._rows[: self.held].copy()
 
+    def snapshot(self) -> tuple[NDArray[np.float32], int]:
+        """The distinct vectors held and how many vectors were offered, read together (no batch in between)."""
+        with self._lock:
+            return self._rows[: self.held].copy(), self.seen
+
 
 def _gather(
     batches: list[NDArray[np.floating]], sizes: list[int], rows: NDArray[np.int64], dim: int
