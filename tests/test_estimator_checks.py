@@ -13,8 +13,8 @@ from veil import INLP, LEACE, RLACE, MeanProjection
 # Checks that do not apply to an eraser supervised by an attribute, each with why.
 NOT_APPLICABLE = {
     # The attribute argument is named z, not y, on purpose (it is what gets
-    # erased, not a target to predict).  Pipelines, cross-validation and
-    # search all pass it positionally, which works.
+    # erased, not a target to predict).  A pipeline's y is its task, so there
+    # the attribute goes by keyword, routed (tests/test_pipeline_routing.py).
     "check_fit_score_takes_y": "the attribute argument is named z",
     # R-LACE removes rank < d directions; with one feature no rank is possible.
     "check_fit2d_1feature": "R-LACE needs rank < d; with one feature no rank is possible",

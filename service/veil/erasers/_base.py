@@ -7,7 +7,9 @@ from typing import Any, ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
+from sklearn import get_config
 from sklearn.base import BaseEstimator, TransformerMixin
+from sklearn.utils.metadata_routing import UNUSED
 from sklearn.utils.validation import check_is_fitted, validate_data
 
 from veil.maps.artifact import MapArtifact, finish_rows
@@ -29,7 +31,27 @@ class Erasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
     of the fitting data, which the live checks compare traffic to; and
     ``pins_``), set ``classes_`` and ``n_features_in_``, and implement
     :meth:`counterfactual`.
+
+    **In a scikit-learn pipeline** a step's ``fit`` receives the pipeline's
+    ``y`` (the task) as its second argument, which an eraser would take for
+    the attribute and erase.  Every eraser's ``fit`` (and ``partial_fit``)
+    therefore also takes the attribute by keyword, ``attribute=``, which
+    then wins over the second argument, and requests it (and ``given=``)
+    through scikit-learn's metadata routing::
+
+        with sklearn.config_context(enable_metadata_routing=True):
+            pipeline = make_pipeline(LEACE().set_fit_request(attribute=True), LogisticRegression())
+            cross_val_score(pipeline, X, task, params={"attribute": z})
+
+    Without routing, ``pipeline.fit(X, task, leace__attribute=z)`` passes it
+    as a step parameter.  An eraser that requested the attribute and gets
+    none refuses to fit; one that did not request it, in a pipeline given no
+    attribute, erases the pipeline's ``y``: nothing in the call tells a task
+    from an attribute.
     """
+
+    # The second argument is not metadata to route: it is where a pipeline puts its y.
+    __metadata_request__fit: ClassVar[dict[str, str]] = {"z": UNUSED}
 
     method: ClassVar[str]
     normalize: bool
@@ -44,6 +66,28 @@ class Erasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         tags.target_tags.required = True
         tags.transformer_tags.preserves_dtype = ["float64", "float32"]
         return tags
+
+    def _attribute_to_erase(self, z: object, attribute: object, *, method: str = "fit") -> object:
+        """The attribute a fit erases: ``attribute`` when given, else the positional ``z``.
+
+        Inside a scikit-learn pipeline the positional argument is the
+        pipeline's ``y``, the task: an attribute passed by keyword (routed by
+        ``set_fit_request(attribute=True)``) therefore wins, and ``z`` is not
+        read.  An eraser that requested the attribute by routing and did not
+        receive it is refused rather than left to erase what ``z`` holds.
+        """
+        if attribute is not None:
+            return attribute
+        if get_config()["enable_metadata_routing"]:
+            request = getattr(self.get_metadata_routing(), method).requests.get("attribute")
+            # True, or an alias (a name the caller routes under); None, False and the markers ($WARN$...) are not.
+            if request is True or (isinstance(request, str) and request.isidentifier()):
+                alias = "attribute" if request is True else request
+                raise ValueError(
+                    f"{type(self).__name__} requests the attribute by routing ({method}: attribute={request!r}) but "
+                    f"received none; pass it, e.g. params={{{alias!r}: z}}: the second argument is a pipeline's task"
+                )
+        return z
 
     def _validate_fit_input(
         self, x: ArrayLike, z: object, *, reset: bool
@@ -181,7 +225,9 @@ class MomentErasure(LinearErasure):
         """
         return False
 
-    def fit(self, X: ArrayLike, z: object, *, given: object = None) -> MomentErasure:
+    __metadata_request__partial_fit: ClassVar[dict[str, str]] = {"z": UNUSED}
+
+    def fit(self, X: ArrayLike, z: object = None, *, attribute: object = None, given: object = None) -> MomentErasure:
         """Fit the eraser.
 
         Parameters
@@ -190,6 +236,10 @@ class MomentErasure(LinearErasure):
             Embeddings.
         z : array-like of shape (n_samples,) or (n_samples, m)
             Class labels of the attribute, or a numeric attribute matrix.
+            Not read when ``attribute`` is given (in a pipeline it is the task).
+        attribute : array-like of shape (n_samples,) or (n_samples, m), optional
+            The attribute by keyword, as a pipeline routes it
+            (``set_fit_request(attribute=True)``); it then replaces ``z``.
         given : array-like of shape (n_samples,), or mapping of str to such arrays, or 2-D table, optional
             Each row's context value (a query's category, an opening), or its
             value of each of several context columns (a mapping by name, a data
@@ -202,14 +252,17 @@ class MomentErasure(LinearErasure):
         self
         """
         by_class = self.needs_class_moments
-        array, attribute = self._validate_fit_input(X, z, reset=True)
-        return self._fit_state(MomentState.from_batch(array, attribute, by_class=by_class, given=given))
+        array, encoded = self._validate_fit_input(X, self._attribute_to_erase(z, attribute), reset=True)
+        return self._fit_state(MomentState.from_batch(array, encoded, by_class=by_class, given=given))
 
-    def partial_fit(self, X: ArrayLike, z: object, *, given: object = None) -> MomentErasure:
+    def partial_fit(
+        self, X: ArrayLike, z: object = None, *, attribute: object = None, given: object = None
+    ) -> MomentErasure:
         """Add a chunk of rows; after each call the eraser is that of all rows so far.
 
         Classes and context values may appear in any chunk.  Until two classes
         (and more rows than classes) have been seen, the eraser is not usable.
+        ``z``, ``attribute`` and ``given`` as in :meth:`fit`.
 
         Returns
         -------
@@ -217,8 +270,10 @@ class MomentErasure(LinearErasure):
         """
         by_class = self.needs_class_moments
         first = not hasattr(self, "moments_")
-        array, attribute = self._validate_fit_input(X, z, reset=first)
-        chunk = MomentState.from_batch(array, attribute, by_class=by_class, given=given)
+        array, encoded = self._validate_fit_input(
+            X, self._attribute_to_erase(z, attribute, method="partial_fit"), reset=first
+        )
+        chunk = MomentState.from_batch(array, encoded, by_class=by_class, given=given)
         merged = chunk if first else self.moments_.merge(chunk)
         self.moments_ = merged
         try:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import warnings
 from collections.abc import Callable
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -13,6 +13,7 @@ from sklearn.exceptions import ConvergenceWarning
 from sklearn.linear_model import LogisticRegression
 from sklearn.svm import LinearSVC
 from sklearn.utils import check_random_state
+from sklearn.utils.metadata_routing import UNUSED
 from sklearn.utils.metaestimators import available_if
 
 from veil.erasers._base import LinearErasure
@@ -112,6 +113,8 @@ class INLP(LinearErasure):
 
     method = "inlp"
     _requires_categorical = True
+    # The second argument is where a pipeline puts its y, not metadata (as for fit, in Erasure).
+    __metadata_request__partial_fit: ClassVar[dict[str, str]] = {"z": UNUSED}
     training_moments_: MomentState
     validation_moments_: MomentState
 
@@ -155,19 +158,24 @@ class INLP(LinearErasure):
         return int(check_random_state(self.random_state).randint(0, 2**31 - 1))
 
     # -- fitting --------------------------------------------------------
-    def fit(self, X: ArrayLike, z: object) -> INLP:
+    def fit(self, X: ArrayLike, z: object = None, *, attribute: object = None) -> INLP:
         """Fit the eraser.
 
         Parameters
         ----------
         X : array-like of shape (n_samples, n_features)
         z : array-like of shape (n_samples,)
-            Class labels of the attribute.
+            Class labels of the attribute.  Not read when ``attribute`` is
+            given (in a pipeline it is the task).
+        attribute : array-like of shape (n_samples,), optional
+            The attribute by keyword, as a pipeline routes it
+            (``set_fit_request(attribute=True)``); it then replaces ``z``.
 
         Returns
         -------
         self
         """
+        z = self._attribute_to_erase(z, attribute)
         self._check_params()
         for stale in ("moments_", "validation_moments_", "training_moments_", "map_"):
             self.__dict__.pop(stale, None)
@@ -188,16 +196,18 @@ class INLP(LinearErasure):
         return self
 
     @available_if(_uses_moments)  # type: ignore[untyped-decorator]
-    def partial_fit(self, X: ArrayLike, z: object) -> INLP:
+    def partial_fit(self, X: ArrayLike, z: object = None, *, attribute: object = None) -> INLP:
         """Add a chunk of rows (``classifier="moments"`` only).
 
         Rows are assigned to the held-out part by their global index, so the
-        result does not depend on how the rows are chunked.
+        result does not depend on how the rows are chunked.  ``z`` and
+        ``attribute`` as in :meth:`fit`.
 
         Returns
         -------
         self
         """
+        z = self._attribute_to_erase(z, attribute, method="partial_fit")
         self._check_params()
         first = not hasattr(self, "moments_")
         if first:

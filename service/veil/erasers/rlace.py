@@ -138,24 +138,28 @@ class RLACE(LinearErasure):
             if isinstance(value, bool) or not isinstance(value, (int, float)) or not np.isfinite(value) or value <= 0:
                 raise ValueError(f"{name} must be a positive number, got {value!r}")
 
-    def fit(self, X: ArrayLike, z: object) -> RLACE:
+    def fit(self, X: ArrayLike, z: object = None, *, attribute: object = None) -> RLACE:
         """Fit the eraser.
 
         Parameters
         ----------
         X : array-like of shape (n_samples, n_features)
         z : array-like of shape (n_samples,)
-            Class labels of the attribute.
+            Class labels of the attribute.  Not read when ``attribute`` is
+            given (in a pipeline it is the task).
+        attribute : array-like of shape (n_samples,), optional
+            The attribute by keyword, as a pipeline routes it
+            (``set_fit_request(attribute=True)``); it then replaces ``z``.
 
         Returns
         -------
         self
         """
-        array, attribute = self._validate_fit_input(X, z, reset=True)
-        check_enough_rows(array.shape[0], attribute.labels)
+        array, encoded = self._validate_fit_input(X, self._attribute_to_erase(z, attribute), reset=True)
+        check_enough_rows(array.shape[0], encoded.labels)
         d = array.shape[1]
         self._check_params(d)
-        moments = MomentState.from_batch(array, attribute)
+        moments = MomentState.from_batch(array, encoded)
         rng = check_random_state(self.random_state)
 
         centred = np.asarray(array, dtype=np.float64) - moments.mean_x
@@ -168,7 +172,7 @@ class RLACE(LinearErasure):
         # Every product in the game is thin (d × (classes - 1)): BLAS threads
         # waiting on each other cost more than they give, many times over on a busy machine.
         with threadpool_limits(limits=1, user_api="blas"):
-            point, history = self._play(centred, attribute.matrix, moments.class_priors, largest_variance, rng)
+            point, history = self._play(centred, encoded.matrix, moments.class_priors, largest_variance, rng)
 
         q = restrict_to_support(point.top(self.rank), moments.covariance_xx)
         self.history_ = history

@@ -225,7 +225,9 @@ class GaussianTransport(Erasure):
         shrinkage = np.array([coefficient for _, coefficient in fitted])
         return ClassFit(transport_map, np.stack(covariances), shrinkage, barycenter, support)
 
-    def fit(self, X: ArrayLike, z: object, *, given: ArrayLike | None = None) -> GaussianTransport:
+    def fit(
+        self, X: ArrayLike, z: object = None, *, attribute: object = None, given: ArrayLike | None = None
+    ) -> GaussianTransport:
         """Fit the class Gaussians, their barycenter, the class maps and the classifier.
 
         Parameters
@@ -233,7 +235,11 @@ class GaussianTransport(Erasure):
         X : array-like of shape (n_samples, n_features)
             Embeddings.
         z : array-like of shape (n_samples,)
-            Class labels of the attribute (integers or strings).
+            Class labels of the attribute (integers or strings).  Not read
+            when ``attribute`` is given (in a pipeline it is the task).
+        attribute : array-like of shape (n_samples,), optional
+            The attribute by keyword, as a pipeline routes it
+            (``set_fit_request(attribute=True)``); it then replaces ``z``.
         given : array-like of shape (n_samples,), optional
             Each row's context value (a field, a query's category): the
             classes are then transported within every value, by a map
@@ -246,11 +252,11 @@ class GaussianTransport(Erasure):
         self
         """
         self._check_params()
-        array, attribute = self._validate_fit_input(X, z, reset=True)
-        labels = attribute.labels
+        array, encoded = self._validate_fit_input(X, self._attribute_to_erase(z, attribute), reset=True)
+        labels = encoded.labels
         assert labels is not None  # require_categorical guarantees class labels
         check_enough_rows(array.shape[0], labels)
-        codes = attribute.codes
+        codes = encoded.codes
         counts = np.bincount(codes, minlength=labels.size)
         if counts.min() < 2:
             smallest = labels[int(np.argmin(counts))]
@@ -258,12 +264,12 @@ class GaussianTransport(Erasure):
         x = np.asarray(array, dtype=np.float64)
         self.classes_ = labels
         if given is None:
-            self.moments_ = MomentState.from_batch(array, attribute)
+            self.moments_ = MomentState.from_batch(array, encoded)
             self._set_population_fit(x, codes, labels)
         else:
             context = checked_context(np.asarray(given), array.shape[0])
             # With the per-value moments too: the card records the context's values and rows from them.
-            self.moments_ = MomentState.from_batch(array, attribute, given=context)
+            self.moments_ = MomentState.from_batch(array, encoded, given=context)
             self._set_context_fit(x, codes, labels, context)
         return self
 

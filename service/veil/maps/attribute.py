@@ -138,7 +138,10 @@ def encode_attribute(z: object, n_rows: int, *, require_categorical: bool = Fals
         return _encode_table(z)
     if z is None:
         # The parenthesis is scikit-learn's wording, which its tooling looks for.
-        raise ValueError("this eraser needs the attribute z (requires y to be passed, but the target y is None)")
+        raise ValueError(
+            "this eraser needs the attribute z, or attribute= by keyword (requires y to be passed, but the target y "
+            "is None)"
+        )
     array = np.asarray(z)
     if array.ndim == 0 or array.ndim > 2:
         raise ValueError(f"z must be 1-D labels or a 2-D attribute matrix; got {array.ndim}-D")
