@@ -1,209 +1,274 @@
-"""The within-context figures of docs/methods.md: ``.venv/bin/python scripts/measure_within_context.py [NAME ...]``.
+"""The within-context figures of docs/methods.md, measured on stored versions.
 
-Protocol.  The large committed sample (24,000 rows of 384-d embeddings;
-attribute ``pronoun``, context ``field``).  The fitting rows are drawn by the
-row-index hash the fitting job uses (held-out share 0.25, seed 0: 17,923
-rows); each method is fitted on them only.  Every reader is trained and tested
-on the 6,077 other rows only: within each context value, stratified 5-fold
-cross-validation (seed 0), each row predicted by a reader trained on the
-other folds, accuracies weighted by the value's rows; the floor is each
-value's majority share weighted the same way.  Readers: standardised logistic
-regression (linear), scikit-learn's HistGradientBoostingClassifier (the
-audit's settings: 100 rounds, step 0.2, 32 bins, early stopping) and an MLP
-(128 hidden units, alpha 1e-3, early stopping), each on the coordinates whose
-spread is at least 1e-6 of the typical one.  Also: the share of a row's 10
-nearest held-out neighbours of the same value with its class (and that
-share's base rate), the share of its 10 nearest held-out neighbours with its
-field, a linear reader of the field (5-fold over the held-out rows), and the
-mean Euclidean distance a row moves.  One core; about 2 minutes per line.
+Usage: ``.venv/bin/python scripts/measure_within_context.py [--sample small|large] [--holdout SHARE] [--pins-only]
+[--json FILE] [--registry DIR] [NAME ...]`` (every method of ``CONFIGS`` when no NAME is given).  docs/methods.md
+quotes three runs: the default (the large sample, held-out share 0.25); ``--sample small --holdout 0.5`` (the
+small sample's within-field figures); ``--sample small --holdout 0.3 --pins-only`` (the channel the pins close, in
+the small sample's float32 embeddings; the large sample's float16 storage rounds it away).
 
-Names (all when none is given): see ``CONFIGS``.  ``noisy`` contexts replace
-the field of a seeded 30% of the rows by a field drawn uniformly: a context
-only partly readable from the embeddings, measured within that noisy context.
-``age`` contexts are the age bracket (three values), which the profiles'
-texts carry less plainly than the field; the 10-NN field share and the task
-reader still read the field.
+Protocol.  The large committed sample (24,000 rows of 384-d all-MiniLM-L6-v2
+embeddings; attribute ``pronoun``, context and task ``field``).  Each method
+is fitted and stored by :func:`veil.fitting.job.fit_version`, exactly as
+``veil fit --holdout 0.25 --seed 0 --task field [--given field]`` does
+(17,923 fitting rows drawn by the job's row-index hash); its own audit is the
+linear one.  Every figure is then measured on the 6,077 held-out rows, cleaned
+by the stored artifact's ``apply`` (what the service serves: a transport
+within the field infers the field):
+
+- within the field: the audit's own within-context measurement
+  (:func:`veil.audit.within.context_audit`, every reader: linear, quadratic,
+  RBF kernel, boosted trees, MLP; 5 stratified folds within each field,
+  seed 0, pooled by rows), the floor, and the 10-NN pronoun share within the
+  field against its base rate;
+- over the population, from the stored card: the linear probe against the
+  majority, the task (field) probe, the relative distortion
+  ``E‖x' − x‖² / E‖x − μ‖²``, the rank and the map kind;
+- pins: scikit-learn's standardised logistic regression reads the pronoun
+  over the held-out rows (5 stratified folds, seed 0) with every coordinate
+  and without the coordinates without spread in the fitting rows (three), for
+  the stored artifact and for the same artifact without its pins.
+
+One core (other jobs share the machine).  The versions go to a temporary
+registry, or to ``--registry DIR``, which keeps them for ``veil show``.
 """
 
 from __future__ import annotations
 
+import argparse
+import dataclasses
+import json
 import sys
+import tempfile
 import time
-from collections.abc import Callable
-from dataclasses import dataclass
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any, Literal
 
 import numpy as np
 from numpy.typing import NDArray
-from sklearn.base import ClassifierMixin, clone
-from sklearn.ensemble import HistGradientBoostingClassifier
 from sklearn.linear_model import LogisticRegression
-from sklearn.model_selection import StratifiedKFold, cross_val_predict
-from sklearn.neighbors import NearestNeighbors
-from sklearn.neural_network import MLPClassifier
-from sklearn.pipeline import Pipeline, make_pipeline
+from sklearn.model_selection import StratifiedKFold, cross_val_score
+from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from threadpoolctl import threadpool_limits
 
-from veil.audit.probes import LiveFeatures
-from veil.erasers import LEACE, MeanProjection
-from veil.erasers.transport import GaussianTransport
+from veil.audit.context_report import ContextAudit
+from veil.audit.within import context_audit
+from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
+from veil.maps.artifact import MapArtifact
 from veil.maps.context_transport import ContextTransportMap
-from veil.samples.harbourline import load_harbourline_profiles
-from veil.samples.splitting import holdout_mask
+from veil.maps.linalg import dead_coordinates
+from veil.registry import Registry
+from veil.registry.card import method_text
+from veil.samples.harbourline import SAMPLE_FILES, load_harbourline_profiles
+from veil.samples.sources import LabelledSample
+from veil.samples.splitting import give_every_class_both_parts, holdout_mask
 
-FloatArray = NDArray[np.floating]
-NOISE_SHARE = 0.3
-K = 10
-#: The audit's boosted trees (veil.audit.readers).
-TREES = {"learning_rate": 0.2, "max_iter": 100, "max_bins": 32, "early_stopping": True}
+HOLDOUT = 0.25
+SEED = 0
+FOLDS = 5
+NONLINEAR = ("quadratic", "kernel", "trees", "mlp")
 
-
-@dataclass(frozen=True)
-class Data:
-    x_fit: FloatArray
-    z_fit: NDArray[np.str_]
-    g_fit: NDArray[np.str_]
-    x_held: FloatArray
-    z_held: NDArray[np.str_]
-    g_held: NDArray[np.str_]
-    field_held: NDArray[np.str_]
-
-
-def _load(column: str) -> Data:
-    sample = load_harbourline_profiles(size="large")
-    context = (sample.age_bracket if column == "age" else sample.field).copy()
-    if column == "noisy":
-        rng = np.random.default_rng(0)
-        replaced = rng.random(context.size) < NOISE_SHARE
-        context[replaced] = rng.choice(np.unique(sample.field), size=int(replaced.sum()))
-    held = holdout_mask(sample.embedding.shape[0], fraction=0.25, seed=0)
-    x, z = sample.embedding, sample.pronoun
-    return Data(x[~held], z[~held], context[~held], x[held], z[held], context[held], sample.field[held])
-
-
-def _readers() -> dict[str, Pipeline]:
-    return {
-        "linear": make_pipeline(LiveFeatures(), StandardScaler(), LogisticRegression(max_iter=3000, random_state=0)),
-        "trees": make_pipeline(LiveFeatures(), HistGradientBoostingClassifier(**TREES, random_state=0)),
-        "mlp": make_pipeline(
-            LiveFeatures(),
-            StandardScaler(),
-            MLPClassifier(hidden_layer_sizes=(128,), alpha=1e-3, early_stopping=True, max_iter=300, random_state=0),
-        ),
-    }
-
-
-def _cv_correct(reader: ClassifierMixin, x: FloatArray, y: NDArray[np.str_]) -> int:
-    folds = StratifiedKFold(n_splits=5, shuffle=True, random_state=0)
-    return int(np.count_nonzero(cross_val_predict(clone(reader), x, y, cv=folds) == y))
-
-
-def within_readers(x: FloatArray, z: NDArray[np.str_], g: NDArray[np.str_]) -> dict[str, float]:
-    """Each reader's accuracy within every value of ``g``, weighted by rows; and the floor."""
-    out = {name: 0 for name in _readers()}
-    floor = 0
-    for value in np.unique(g):
-        rows = g == value
-        counts = np.unique(z[rows], return_counts=True)[1]
-        floor += int(counts.max())
-        for name, reader in _readers().items():
-            # A value with one class, or a class too small for 5 folds, is read at its majority.
-            fits = counts.size > 1 and counts.min() >= 5
-            out[name] += _cv_correct(reader, x[rows], z[rows]) if fits else int(counts.max())
-    result = {name: correct / z.size for name, correct in out.items()}
-    result["floor"] = floor / z.size
-    return result
-
-
-def _neighbour_share(x: FloatArray, label: NDArray[np.str_]) -> float:
-    nearest = NearestNeighbors(n_neighbors=K + 1).fit(x).kneighbors(x, return_distance=False)[:, 1:]
-    return float(np.mean(label[nearest] == label[:, None]))
-
-
-def neighbours(x: FloatArray, z: NDArray[np.str_], g: NDArray[np.str_], field: NDArray[np.str_]) -> dict[str, float]:
-    """10-NN class share within each value (and its base rate), and 10-NN field share over all held-out rows."""
-    share = base = 0.0
-    for value in np.unique(g):
-        rows = g == value
-        share += _neighbour_share(x[rows], z[rows]) * rows.sum()
-        counts = np.unique(z[rows], return_counts=True)[1]
-        base += float(np.sum(counts * (counts - 1)) / (rows.sum() - 1))
-    return {"nn_within": share / z.size, "nn_base": base / z.size, "nn_field": _neighbour_share(x, field)}
-
-
-def task_accuracy(x: FloatArray, field: NDArray[np.str_]) -> float:
-    return _cv_correct(_readers()["linear"], x, field) / field.size
-
-
-Method = Callable[[Data], tuple[FloatArray, str]]
-
-
-def _context_transport(*, then_leace: bool, true_context: bool) -> Method:
-    def run(data: Data) -> tuple[FloatArray, str]:
-        model = GaussianTransport(random_state=0, then_leace=then_leace).fit(data.x_fit, data.z_fit, given=data.g_fit)
-        mapping = model.map_
-        assert isinstance(mapping, ContextTransportMap)
-        known = np.searchsorted(mapping.values, data.g_held).astype(np.intp)
-        inferred = mapping.inferred_values(data.x_held)
-        note = f"context inferred right on {np.mean(inferred == known):.4f} of held-out rows"
-        cleaned = mapping.apply_within(data.x_held, known) if true_context else mapping.apply(data.x_held)
-        return cleaned, note
-
-    return run
-
-
-def _linear(make: Callable[[], LEACE | MeanProjection], given: bool) -> Method:
-    def run(data: Data) -> tuple[FloatArray, str]:
-        model = make().fit(data.x_fit, data.z_fit, given=data.g_fit if given else None)
-        return model.transform(data.x_held), f"rank {model.rank_}"
-
-    return run
-
-
-def _population_transport(data: Data) -> tuple[FloatArray, str]:
-    return GaussianTransport(random_state=0).fit(data.x_fit, data.z_fit).transform(data.x_held), ""
-
-
-CONFIGS: dict[str, tuple[str, Method]] = {
-    "raw": ("field", lambda data: (data.x_held, "")),
-    "leace": ("field", _linear(LEACE, given=False)),
-    "leace-given": ("field", _linear(LEACE, given=True)),
-    "meanproj-given": ("field", _linear(MeanProjection, given=True)),
-    "transport": ("field", _population_transport),
-    "transport-given-true": ("field", _context_transport(then_leace=False, true_context=True)),
-    "transport-given-inferred": ("field", _context_transport(then_leace=False, true_context=False)),
-    "transport-given-leace-true": ("field", _context_transport(then_leace=True, true_context=True)),
-    "transport-given-leace-inferred": ("field", _context_transport(then_leace=True, true_context=False)),
-    "noisy-raw": ("noisy", lambda data: (data.x_held, "")),
-    "noisy-leace-given": ("noisy", _linear(LEACE, given=True)),
-    "noisy-transport-given-true": ("noisy", _context_transport(then_leace=False, true_context=True)),
-    "noisy-transport-given-inferred": ("noisy", _context_transport(then_leace=False, true_context=False)),
-    "age-raw": ("age", lambda data: (data.x_held, "")),
-    "age-leace-given": ("age", _linear(LEACE, given=True)),
-    "age-transport-given-true": ("age", _context_transport(then_leace=False, true_context=True)),
-    "age-transport-given-inferred": ("age", _context_transport(then_leace=False, true_context=False)),
+#: Each method as ``veil fit`` is asked for it (None: the raw rows).
+CONFIGS: dict[str, MethodSpec | None] = {
+    "raw": None,
+    "leace": MethodSpec("leace"),
+    "leace-given": MethodSpec("leace", given="field"),
+    "leace-given-within-only": MethodSpec("leace", given="field", guard_population=False),
+    "meanproj-given": MethodSpec("meanproj", given="field"),
+    "inlp": MethodSpec("inlp"),
+    "rlace": MethodSpec("rlace"),
+    "transport": MethodSpec("transport"),
+    "transport-given": MethodSpec("transport", given="field"),
+    "transport-given-leace": MethodSpec("transport", given="field", params={"then_leace": True}),
 }
 
 
-def measure(name: str) -> str:
-    column, method = CONFIGS[name]
-    data = _load(column)
+@dataclasses.dataclass(frozen=True)
+class Rows:
+    sample: str
+    holdout: float
+    x: NDArray[np.float32]
+    z: NDArray[np.str_]
+    field: NDArray[np.str_]
+    held: NDArray[np.bool_]
+
+
+def _rows(size: Literal["small", "large"], holdout: float) -> Rows:
+    profiles = load_harbourline_profiles(size=size)
+    codes = np.unique(profiles.pronoun, return_inverse=True)[1]
+    # The fitting job's split (veil.fitting.plan): the row-index hash, repaired so each class is on both sides.
+    held = give_every_class_both_parts(holdout_mask(codes.size, fraction=holdout, seed=SEED), codes)
+    return Rows(size, holdout, profiles.embedding, profiles.pronoun, profiles.field, held)
+
+
+def _sample(rows: Rows, *, given: bool) -> LabelledSample:
+    contexts = {"field": rows.field} if given else {}
+    return LabelledSample(
+        embeddings=rows.x, attribute=rows.z, attribute_key="pronoun", task=rows.field, task_key="field",
+        files={SAMPLE_FILES[rows.sample]: "committed"}, contexts=contexts, context_keys=tuple(contexts),
+    )  # fmt: skip
+
+
+def _fit(name: str, spec: MethodSpec, rows: Rows, registry: Registry) -> tuple[MapArtifact, Mapping[str, Any], float]:
+    spec = dataclasses.replace(spec, holdout=rows.holdout, seed=SEED)
+    request = FitRequest(spec, StoreSpec(name), audit=AuditSpec(nonlinear=False))
     start = time.perf_counter()
-    cleaned, note = method(data)
-    cleaned = np.asarray(cleaned, dtype=np.float64)
-    figures = within_readers(cleaned, data.z_held, data.g_held)
-    figures.update(neighbours(cleaned, data.z_held, data.g_held, data.field_held))
-    figures["task"] = task_accuracy(cleaned, data.field_held)
-    figures["distortion"] = float(np.mean(np.linalg.norm(cleaned - data.x_held, axis=1)))
-    strongest = max(figures["trees"], figures["mlp"])
-    cells = " | ".join(f"{key} {value:.3f}" for key, value in figures.items())
-    return f"{name} | {cells} | strongest nonlinear {strongest:.3f} | {note} | {time.perf_counter() - start:.0f} s"
+    outcome = fit_version(_sample(rows, given=spec.given is not None), request, registry=registry)
+    seconds = time.perf_counter() - start
+    stored = registry.read_version(name, outcome.version_id)
+    if stored.card["data"]["fit_rows"] != np.count_nonzero(~rows.held):
+        raise RuntimeError("the script's split is not the fitting job's")
+    return stored.artifact, stored.card, seconds
 
 
-def main(names: list[str]) -> None:
-    with threadpool_limits(limits=1):
-        for name in names or list(CONFIGS):
-            print(measure(name), flush=True)
+def _standardised_linear(x: NDArray[np.floating], z: NDArray[np.str_]) -> float:
+    reader = make_pipeline(StandardScaler(), LogisticRegression(max_iter=3000))
+    folds = StratifiedKFold(FOLDS, shuffle=True, random_state=SEED)
+    return float(cross_val_score(reader, x, z, cv=folds).mean())
+
+
+def _pins(x: NDArray[np.floating], z: NDArray[np.str_], dead: NDArray[np.intp]) -> dict[str, float]:
+    """The standardised linear reader with every coordinate, and without the coordinates without spread."""
+    live = np.setdiff1d(np.arange(x.shape[1]), dead)
+    every, without = _standardised_linear(x, z), _standardised_linear(x[:, live], z)
+    return {"with": every, "without": without, "added": every - without}
+
+
+def _within(raw: NDArray[np.floating], erased: NDArray[np.floating], rows: Rows) -> ContextAudit:
+    z = rows.z[rows.held]
+    classes, codes = np.unique(z, return_inverse=True)
+    return context_audit(
+        raw, erased, codes.astype(np.intp), rows.field[rows.held], classes=tuple(map(str, classes)),
+        column="field", folds=FOLDS, nonlinear=True, random_state=SEED,
+    )  # fmt: skip
+
+
+def _dead(rows: Rows) -> NDArray[np.intp]:
+    """The coordinates without spread in the fitting rows (the pins' rule, :func:`dead_coordinates`)."""
+    return dead_coordinates(np.cov(rows.x[~rows.held].astype(np.float64), rowvar=False))
+
+
+def _worst(within: ContextAudit) -> dict[str, Any] | None:
+    """The field read farthest beyond its own floor: its rows, floor and readings."""
+    worst = within.worst_value()
+    if worst is None:
+        return None
+    readings = {reader: score.accuracy for reader, score in worst.after.items()}
+    return {"value": worst.value, "rows": worst.rows, "floor": worst.floor, "after": readings}
+
+
+def measure_pins(name: str, rows: Rows, registry: Registry) -> dict[str, Any]:
+    """The pins alone: the standardised linear reader with and without those coordinates, pinned and not."""
+    spec = CONFIGS[name]
+    raw, z_held, dead = rows.x[rows.held], rows.z[rows.held], _dead(rows)
+    figures: dict[str, Any] = {"name": name, "sample": rows.sample, "dead_coordinates": dead.tolist()}
+    if spec is None:
+        return {**figures, "pins": _pins(raw, z_held, dead)}
+    artifact, _, _ = _fit(f"{rows.sample}-{name}", spec, rows, registry)
+    figures["pins"] = _pins(artifact.apply(raw), z_held, dead)
+    figures["pins_removed"] = _pins(dataclasses.replace(artifact, pins=None).apply(raw), z_held, dead)
+    return figures
+
+
+def measure(name: str, rows: Rows, registry: Registry) -> dict[str, Any]:
+    spec = CONFIGS[name]
+    raw = rows.x[rows.held]
+    z_held = rows.z[rows.held]
+    dead = _dead(rows)
+    figures: dict[str, Any] = {"name": name, "fit_rows": int(np.count_nonzero(~rows.held)), "held_rows": raw.shape[0]}
+    if spec is None:
+        erased: NDArray[np.floating] = raw
+        figures["pins"] = _pins(raw, z_held, dead)
+    else:
+        artifact, card, seconds = _fit(name, spec, rows, registry)
+        erased = artifact.apply(raw)
+        audit = card["audit"]
+        figures.update(
+            fit_seconds=seconds,
+            map=method_text(dict(card)),
+            population_linear=audit["leakage"]["linear_after"]["accuracy"],
+            majority=audit["leakage"]["linear_after"]["majority"],
+            raw_population_linear=audit["leakage"]["linear_before"]["accuracy"],
+            task=audit["utility"]["task_accuracy_after"],
+            raw_task=audit["utility"]["task_accuracy_before"],
+            distortion=audit["utility"]["relative_distortion"],
+            nn_population=audit["retrieval"]["attribute_share_after"],
+            nn_population_base=audit["retrieval"]["attribute_base_rate"],
+            pinned=[] if artifact.pins is None else artifact.pins.coordinates.tolist(),
+        )
+        figures["pins"] = _pins(erased, z_held, dead)
+        figures["pins_removed"] = _pins(dataclasses.replace(artifact, pins=None).apply(raw), z_held, dead)
+        if isinstance(artifact.map, ContextTransportMap):
+            known = np.searchsorted(artifact.map.values, rows.field[rows.held])
+            figures["context_inferred_right"] = float(np.mean(artifact.map.inferred_values(raw) == known))
+    within = _within(raw, erased, rows)
+    strongest = max(NONLINEAR, key=lambda reader: within.after[reader].accuracy)
+    figures.update(
+        dead_coordinates=dead.tolist(),
+        floor=within.floor,
+        within={reader: score.accuracy for reader, score in within.after.items()},
+        strongest_nonlinear=strongest,
+        nn_within=within.nn_share_after,
+        nn_within_base=within.nn_base_rate,
+        worst_value=_worst(within),
+    )
+    return figures
+
+
+def _line(f: dict[str, Any]) -> str:
+    if "within" not in f:
+        pins = [
+            f"{f['name']} ({f['sample']})",
+            f"pins: with {f['pins']['with']:.3f}, without {f['pins']['without']:.3f}",
+        ]
+        if "pins_removed" in f:
+            removed = f["pins_removed"]
+            pins.append(f"pins removed: with {removed['with']:.3f}, without {removed['without']:.3f}")
+        return " | ".join(pins)
+    w = f["within"]
+    cells = [
+        f["name"],
+        f"linear {w['linear']:.3f}",
+        f"{f['strongest_nonlinear']} {w[f['strongest_nonlinear']]:.3f}",
+        f"floor {f['floor']:.3f}",
+        f"10-NN {f['nn_within']:.3f} (base {f['nn_within_base']:.3f})",
+        f"pins {f['pins']['added']:+.3f}",
+    ]
+    if "task" in f:
+        cells += [
+            f"population {f['population_linear']:.3f} (majority {f['majority']:.3f})",
+            f"task {f['task']:.3f}",
+            f"distortion {f['distortion']:.3f}",
+            f"no pins {f['pins_removed']['added']:+.3f}",
+            f"{f['fit_seconds']:.0f} s",
+        ]
+    return " | ".join(cells)
+
+
+def main(argv: list[str]) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("names", nargs="*", metavar="NAME", help=f"any of {', '.join(CONFIGS)} (default: all)")
+    parser.add_argument("--json", type=Path, help="append each method's figures to this file, one JSON line each")
+    parser.add_argument("--registry", type=Path, help="store the versions here (default: a temporary registry)")
+    parser.add_argument("--sample", choices=("large", "small"), default="large", help="the committed sample")
+    parser.add_argument("--holdout", type=float, default=HOLDOUT, help=f"held-out share (default {HOLDOUT})")
+    parser.add_argument("--pins-only", action="store_true", help="measure the pins alone")
+    args = parser.parse_args(argv)
+    unknown = [name for name in args.names if name not in CONFIGS]
+    if unknown:
+        parser.error(f"unknown method {unknown[0]!r}; choose from {', '.join(CONFIGS)}")
+    rows = _rows(args.sample, args.holdout)
+    run = measure_pins if args.pins_only else measure
+    with tempfile.TemporaryDirectory() as scratch, threadpool_limits(limits=1):
+        registry = Registry(args.registry or Path(scratch) / "registry")
+        for name in args.names or list(CONFIGS):
+            figures = run(name, rows, registry)
+            print(_line(figures), flush=True)
+            if args.json is not None:
+                with args.json.open("a") as out:
+                    out.write(json.dumps(figures) + "\n")
 
 
 if __name__ == "__main__":
