@@ -55,8 +55,13 @@ def _check_table(dtype: np.dtype[Any]) -> None:
         raise DataError("guarding within a context (--given) needs every attribute on every row, not incomplete labels")
 
 
-def checked_contexts(moments: MomentState, attribute_key: str, *, pool: bool) -> tuple[MomentState, list[str]]:
-    """The moments to fit from, with small values refused or pooled, and the card's notes on small cells."""
+def checked_contexts(
+    moments: MomentState, attribute_key: str, *, pool: bool, poolable: bool = True
+) -> tuple[MomentState, list[str]]:
+    """The moments to fit from, with small values refused or pooled, and the card's notes on small cells.
+
+    ``poolable``: whether the method can pool small values (the refusal then suggests it).
+    """
     given = moments.given
     if given is None:
         return moments, []
@@ -64,7 +69,7 @@ def checked_contexts(moments: MomentState, attribute_key: str, *, pool: bool) ->
     for column in given.columns:
         small = _small_values(given, column, attribute_key)
         if small and not pool:
-            raise DataError(_refusal(column, small))
+            raise DataError(_refusal(column, small, poolable=poolable))
         if small:
             given = given.pooled(column, np.array(list(small)))
             pooled = given.of_column(column)[0]
@@ -98,7 +103,7 @@ def _small_values(given: GivenMoments, column: str, attribute_key: str) -> dict[
     return small
 
 
-def _refusal(column: str, small: dict[str, str], *, pooled: bool = False) -> str:
+def _refusal(column: str, small: dict[str, str], *, pooled: bool = False, poolable: bool = True) -> str:
     listed = "; ".join(f"{name!r} ({what})" for name, what in small.items())
     if pooled:
         return (
@@ -108,9 +113,10 @@ def _refusal(column: str, small: dict[str, str], *, pooled: bool = False) -> str
         )
     return (
         f"{len(small)} value(s) of {column!r} have a class with fewer than {MIN_CLASS_ROWS} fitting rows: {listed}; "
-        f"a class needs at least {MIN_CLASS_ROWS} within each value: pool such values into one group "
-        "(--pool-small-values), merge classes (--merge-classes ATTRIBUTE:CLASS,OTHER=NEW), merge or drop those "
-        f"values of {column!r}, or add rows"
+        f"a class needs at least {MIN_CLASS_ROWS} within each value: "
+        + ("pool such values into one group (--pool-small-values), " if poolable else "")
+        + f"merge classes (--merge-classes ATTRIBUTE:CLASS,OTHER=NEW), merge or drop those values of {column!r}, "
+        "or add rows"
     )
 
 

@@ -228,7 +228,7 @@ def _checked_rows(sample: Sample, setup: _Setup, total: PartResult, notes: list[
         cells = MomentState.from_batch(
             x_fit, encode_attribute(z_fit, z_fit.shape[0]), given={sample.context_keys[0]: fit_context}
         )
-        notes += checked_contexts(cells, sample.attribute_key, pool=False)[1]
+        notes += checked_contexts(cells, sample.attribute_key, pool=False, poolable=False)[1]
     if sample.attribute_table and total.moments is not None and total.moments.partial:
         rows = ", ".join(
             f"{block.name} {state.count}"
