@@ -154,7 +154,7 @@ def check_fault(client: httpx.Client, fault: Fault, registry: ServiceRegistry, *
     good = registry.leace
     steps = _Steps()
     if fault.target is not None:
-        store.promote(PROFILES, fault.target, reason=fault.description, allow_dimension_change=True)
+        store.promote(PROFILES, fault.target, reason=fault.description, allow_dimension_change=True, force=True)
     repair = fault.inject()
     try:
         reload = client.post("/v1/admin/reload")

@@ -101,7 +101,9 @@ def rollback_under_load(
                 for target in (registry.meanproj, registry.leace):
                     moment = time.perf_counter()
                     if target == registry.meanproj:
-                        await asyncio.to_thread(store.promote, PROFILES, target, reason=f"load cycle {cycle}")
+                        await asyncio.to_thread(
+                            store.promote, PROFILES, target, reason=f"load cycle {cycle}", force=True
+                        )
                     else:
                         await asyncio.to_thread(store.rollback, PROFILES, reason=f"load cycle {cycle}")
                     moves += 1

@@ -170,8 +170,13 @@ def test_the_verdict_judges_the_figures_beyond_the_context_by_the_cards_threshol
     assert verdict["thresholds"]["context_neighbour_excess"] == {"warn": 0.0, "alert": 0.0}
     assert {key: verdict["figures"][key] for key in figures} == figures
     # At the card's band (0, 0) the neighbour share within the field alerts; the default band would say otherwise.
+    # The version does not claim that threat (a linear eraser claims the linear readers), so the headline stays
+    # as its claimed threats say, and the threat is shown with its own status.
+    within_neighbours = verdict["threats"]["context-neighbours"]
+    assert "context-neighbours" not in verdict["claimed"]
+    assert within_neighbours["status"] == "alert"
     assert any(r.startswith("within the context, the 10-NN attribute share") and r.endswith("(alert at 0)")
-               for r in verdict["reasons"])  # fmt: skip
+               for r in within_neighbours["reasons"])  # fmt: skip
     default = judge_audit(report, AuditThresholds())
     assert not any(r.endswith("(alert at 0)") for r in default.reasons)
 
