@@ -31,8 +31,12 @@ lint: $(STAMP)
 typecheck: $(STAMP)
 	$(BIN)/mypy
 
+# Two worker processes: most tests are single-threaded Python, and the 2-core machines the suite must fit on
+# (under ten minutes) run it in about three quarters of the time.  TEST_WORKERS=0 runs it in one process.
+TEST_WORKERS ?= 2
+
 unit: $(STAMP)
-	$(BIN)/pytest
+	$(BIN)/pytest -n $(TEST_WORKERS)
 
 test: lint typecheck unit
 

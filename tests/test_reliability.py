@@ -38,12 +38,24 @@ def test_each_check_passes_at_the_quick_size(group: str, tmp_path: Path) -> None
     assert_passed([*outcomes, logs_outcome(logs, [ADMIN_TOKEN])] if logs else outcomes)
 
 
-def test_the_runner_prints_the_table_and_writes_the_figures(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_the_runner_prints_the_table_and_writes_the_figures(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The runner's own job (choosing groups, the table, the JSON, the exit status), on groups that answer at once:
+    # each real group runs in test_each_check_passes_at_the_quick_size.
+    held = Outcome("crash safety: kill -9 loop", True, "3 trials")
+    broken = Outcome("faults: flipped byte", False, "1 fault", ["served the damaged version"])
+    monkeypatch.setitem(GROUPS, "crash", lambda workdir, size: [held])
+    monkeypatch.setitem(GROUPS, "faults", lambda workdir, size: [broken])
     assert main(["--quick", "--only", "crash", "--json", str(tmp_path / "out.json")]) == 0
     printed = capsys.readouterr().out
     assert "crash safety: kill -9 loop" in printed
     assert "1 of 1 checks passed" in printed
     assert '"passed": true' in (tmp_path / "out.json").read_text()
+    assert main(["--quick", "--only", "crash,faults"]) == 1
+    printed = capsys.readouterr().out
+    assert "1 of 2 checks passed" in printed
+    assert "! served the damaged version" in printed
     with pytest.raises(SystemExit):
         main(["--only", "nothing"])
 
