@@ -239,3 +239,12 @@ def test_fit_and_audit_fits_and_reads_within_the_context() -> None:
     assert within.context.after["linear"].accuracy < plain_within.after["linear"].accuracy
     with pytest.raises(ValueError, match="cannot be fitted within a context"):
         fit_and_audit(INLP(classifier="moments", max_iter=2), x, z, given=field, nonlinear=False)
+
+
+def test_fit_and_audit_refuses_a_context_it_cannot_split() -> None:
+    sample = load_harbourline_profiles()
+    x, z, field = sample.embedding[:300], sample.pronoun[:300], sample.field[:300]
+    with pytest.raises(ValueError, match="one value per row"):
+        fit_and_audit(LEACE(), x, z, given=sample.field[:350], nonlinear=False)
+    with pytest.raises(ValueError, match="takes one context column"):
+        fit_and_audit(LEACE(), x, z, given={"field": field}, nonlinear=False)

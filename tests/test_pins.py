@@ -124,3 +124,17 @@ def test_normalised_rows_hold_the_pinned_value_after_normalising(profiles: Split
     # Unit length to within the pinned values' squares (below 1e-15 here) and float64 round-off.
     norms = np.linalg.norm(erased, axis=1)
     assert np.max(np.abs(norms - 1)) <= float(np.sum(pins.values**2)) + 16 * np.finfo(np.float64).eps
+
+
+def test_a_pinned_coordinate_far_from_zero_leaves_every_normalised_row_the_same_length() -> None:
+    # A coordinate constant at 0.5 in the fitting rows (a sentinel feature, say): the map's own value there must
+    # not enter the norm, or each row's length, and with it its norm before normalising, would show.
+    rng = np.random.default_rng(3)
+    x = rng.normal(size=(400, 6))
+    z = (x[:, 0] + 0.3 * rng.normal(size=400) > 0).astype(int)
+    x[:, 3] = 0.5
+    eraser = LEACE(normalize=True).fit(x, z)
+    assert eraser.pins_.coordinates.tolist() == [3]
+    moved = x + rng.normal(scale=0.1, size=x.shape)  # serving rows: the coordinate is not constant there
+    norms = np.linalg.norm(eraser.transform(moved), axis=1)
+    np.testing.assert_allclose(norms, np.sqrt(1 + 0.5**2), rtol=8 * np.finfo(np.float64).eps)

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import inspect
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import TypeVar
 
@@ -30,6 +30,7 @@ from veil.audit.within import context_audit
 from veil.erasers._base import Erasure
 from veil.maps.artifact import MapArtifact
 from veil.maps.attribute import encode_attribute
+from veil.maps.context import checked_context
 from veil.maps.kinds import EmbeddingMap
 from veil.maps.linalg import whiten, whitening_factors
 from veil.maps.moments import MomentState
@@ -422,7 +423,9 @@ def fit_and_audit(
     indices = np.arange(raw.shape[0])
     fit_rows, held_rows = train_test_split(indices, test_size=holdout, random_state=random_state, stratify=stratify)
     task_array = None if task is None else np.asarray(task)
-    context = None if given is None else np.asarray(given)
+    if isinstance(given, Mapping) or getattr(given, "ndim", 1) == 2:
+        raise ValueError("fit_and_audit takes one context column: give the values of one column as a 1-D array")
+    context = None if given is None else checked_context(np.asarray(given), raw.shape[0])
     if context is None:
         eraser.fit(raw[fit_rows], z_array[fit_rows])
     elif "given" in inspect.signature(eraser.fit).parameters:

@@ -102,7 +102,8 @@ class Erasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
         self.pins_ = CoordinatePins.of_moments(moments)
 
     def _finish_rows(self, out: NDArray[np.floating]) -> NDArray[np.floating]:
-        return finish_rows(out, normalize=bool(self.normalize), pins=self.pins_)
+        # An eraser pickled before pins existed has none, and answers as such versions do.
+        return finish_rows(out, normalize=bool(self.normalize), pins=getattr(self, "pins_", None))
 
     def transform(self, X: ArrayLike) -> NDArray[np.floating]:
         """Erase the attribute from each row.
@@ -136,7 +137,7 @@ class Erasure(TransformerMixin, BaseEstimator):  # type: ignore[misc]
             normalize=bool(self.normalize),
             moments=self.moments_,
             history=list(getattr(self, "history_", [])),
-            pins=self.pins_,
+            pins=getattr(self, "pins_", None),
         )
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import replace
 from typing import Literal
 
@@ -267,6 +268,8 @@ class GaussianTransport(Erasure):
             self.moments_ = MomentState.from_batch(array, encoded)
             self._set_population_fit(x, codes, labels)
         else:
+            if isinstance(given, Mapping) or getattr(given, "ndim", 1) == 2:
+                raise ValueError("transport takes one context column: give the values of one column as a 1-D array")
             context = checked_context(np.asarray(given), array.shape[0])
             # With the per-value moments too: the card records the context's values and rows from them.
             self.moments_ = MomentState.from_batch(array, encoded, given=context)

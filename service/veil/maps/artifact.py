@@ -109,11 +109,16 @@ class MapArtifact:
 def finish_rows(out: NDArray[np.floating], *, normalize: bool, pins: CoordinatePins | None) -> NDArray[np.floating]:
     """The steps after any map, in place: re-normalise if asked, then write the pinned coordinates.
 
-    Pinning comes last: a pinned value divided by each row's norm would hand
-    that norm (which erasure leaves uneven) to a reader that rescales the
-    coordinate.  A unit row then differs from unit length by ``Σ c_j²``, at
-    rounding level for the near-zero coordinates pins are for.
+    The pinned coordinates are cleared before the norm is taken and written
+    after it: a pinned value divided by each row's norm would hand that norm
+    (which erasure leaves uneven) to a reader that rescales the coordinate,
+    and a norm taken with the map's own values there would leave every row
+    a different length once they are overwritten.  Every re-normalised row
+    then has the same length, ``sqrt(1 + Σ c_j²)``: 1 to rounding for the
+    near-zero coordinates of an embedding model.
     """
     if normalize:
+        if pins is not None:
+            out[:, pins.coordinates] = 0
         unit_normalize(out)
     return out if pins is None else pins.apply(out)
