@@ -188,15 +188,20 @@ async def test_the_recent_route_hands_out_the_reservoir_with_what_it_stands_for(
 ) -> None:
     rows = load_harbourline_profiles().embedding[:40].astype(np.float32)
     url, token = f"/v1/erasers/{PROFILES}/recent", {"Authorization": "Bearer data-token"}
-    async with client_for(app_for(service_registry.path, data_token="data-token")) as client:
-        assert (await client.get(url)).status_code == 401  # raw vectors: as guarded as apply
-        empty = await client.get(url, headers=token)
+    admin = {"Authorization": "Bearer admin-token"}
+    async with client_for(app_for(service_registry.path, data_token="data-token", admin_token=None)) as client:
+        # Other callers' raw vectors: an admin route, off where no admin token is configured.
+        assert (await client.get(url, headers=token)).json()["error"]["code"] == "admin_disabled"
+    async with client_for(app_for(service_registry.path, data_token="data-token", admin_token="admin-token")) as client:
+        assert (await client.get(url)).status_code == 401
+        assert (await client.get(url, headers=token)).status_code == 403  # the data token is not enough
+        empty = await client.get(url, headers=admin)
         assert (empty.json()["rows"], empty.headers["x-veil-traffic-seen"]) == (0, "0")
         for batch in (rows, rows[:10]):  # ten vectors sent twice
             sent = await client.post(f"/v1/erasers/{PROFILES}/apply", json={"vectors": batch.tolist()}, headers=token)
             assert sent.status_code == 200
-        as_json = (await client.get(url, headers=token)).json()
-        as_npy = await client.get(url, headers={**token, "Accept": "application/x-npy"})
+        as_json = (await client.get(url, headers=admin)).json()
+        as_npy = await client.get(url, headers={**admin, "Accept": "application/x-npy"})
     # Each distinct vector once; every vector cleaned counted, repeats included; the version served named.
     assert (as_json["rows"], as_json["traffic_seen"]) == (40, 50)
     assert as_json["version"] == as_npy.headers["x-veil-version"] == service_registry.leace
@@ -215,9 +220,15 @@ def _traffic(base: str, vectors: np.ndarray) -> None:
             assert response.status_code == 200
 
 
+ADMIN = {"VEIL_ADMIN_TOKEN": "patrol-admin-token"}
+
+
 def _replicas(stack: ExitStack, registry: Path, logs: Path, count: int) -> list[LiveServer]:
     """``count`` real ``veil serve`` processes started side by side (a start is mostly imports), stopped by stack."""
-    managers = [live_server(registry, names=[PROFILES], log=logs / f"replica{index}.log") for index in range(count)]
+    managers = [
+        live_server(registry, names=[PROFILES], log=logs / f"replica{index}.log", environment=ADMIN)
+        for index in range(count)
+    ]
     with ThreadPoolExecutor(count) as pool:
         starts = [pool.submit(manager.__enter__) for manager in managers]
     servers = []
@@ -231,8 +242,9 @@ def _replicas(stack: ExitStack, registry: Path, logs: Path, count: int) -> list[
 
 
 def test_three_real_replicas_checked_as_one_equal_a_check_of_the_same_vectors_on_one(
-    service_registry: ServiceRegistry, tmp_path: Path
+    service_registry: ServiceRegistry, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
+    monkeypatch.setenv("VEIL_ADMIN_TOKEN", ADMIN["VEIL_ADMIN_TOKEN"])  # what the patrol fetches the traffic with
     registry = tmp_path / "registry"
     shutil.copytree(service_registry.path, registry)
     rows = load_harbourline_profiles().embedding[:480].astype(np.float32)

@@ -400,6 +400,16 @@ def serve(args: argparse.Namespace) -> int:
     return 0
 
 
+def _admin_token() -> str | None:
+    """``VEIL_ADMIN_TOKEN``, else the file of that name in ``VEIL_SECRETS_DIR`` (where the service reads it too)."""
+    token = os.environ.get("VEIL_ADMIN_TOKEN")
+    secrets = os.environ.get("VEIL_SECRETS_DIR")
+    if token is None and secrets:
+        stored = Path(secrets) / "veil_admin_token"
+        token = stored.read_text().strip() if stored.is_file() else None
+    return token or None
+
+
 def _posted_sample(args: argparse.Namespace) -> Any:
     """The sample ``--sample`` names, as the patrol posts it (None: check the service's recent traffic)."""
     import numpy as np
@@ -478,6 +488,8 @@ def patrol(args: argparse.Namespace) -> int:
             args.name,
             service=service,
             token=os.environ.get("VEIL_DATA_TOKEN"),
+            # A replica's recent raw vectors are an admin route: other callers' embeddings.
+            admin_token=_admin_token(),
             replicas=replicas,
             sample=_posted_sample(args),
             every=args.every,

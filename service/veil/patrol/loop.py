@@ -41,6 +41,7 @@ def run_patrol(
     *,
     service: str,
     token: str | None,
+    admin_token: str | None = None,
     replicas: ReplicaSet | None = None,
     sample: PostedSample | None,
     every: float,
@@ -74,7 +75,7 @@ def run_patrol(
             client = stack.enter_context(VeilClient(service, token=token))
             one_round = _single_round(registry, name, client, service, sample, every)
         else:
-            one_round = _merged_round(registry, name, replicas, token, every)
+            one_round = _merged_round(registry, name, replicas, token, admin_token, every)
         done = 0
         while True:
             now = clock()
@@ -122,11 +123,15 @@ def _single_round(
     return one_round
 
 
-def _merged_round(registry: Registry, name: str, replicas: ReplicaSet, token: str | None, every: float) -> RoundCall:
+def _merged_round(
+    registry: Registry, name: str, replicas: ReplicaSet, token: str | None, admin_token: str | None, every: float
+) -> RoundCall:
     """A round over replicas: their recent traffic merged, one check per version served."""
 
     def one_round(now: float) -> list[RecordedRound]:
-        merged = replicas_round(registry, name, replicas, _fetch(name, token), _post(name, token), every=every, now=now)
+        merged = replicas_round(
+            registry, name, replicas, _fetch(name, admin_token), _post(name, token), every=every, now=now
+        )
         return [RecordedRound(outcome, merged) for outcome in merged.outcomes]
 
     return one_round

@@ -20,10 +20,9 @@ from starlette.responses import Response
 
 from veil.server.catalog import Catalog
 from veil.server.codecs import JSON_MEDIA_TYPE, NPY_MEDIA_TYPE, json_bytes, npy_bytes
-from veil.server.dependencies import EraserName, get_catalog, get_reservoirs, require_data_token, response_media
+from veil.server.dependencies import EraserName, get_catalog, get_reservoirs, require_admin, response_media
 from veil.server.errors import error_responses
 from veil.server.reservoir import ReservoirBank
-from veil.server.routers.erasers import DATA_TOKEN_ERRORS
 
 router = APIRouter(prefix="/v1/erasers", tags=["drift"])
 
@@ -38,7 +37,15 @@ _HEADERS = {
         "description": "every vector this replica has cleaned for the eraser since its sample began, repeats included",
     },
 }
-_ERRORS = (*DATA_TOKEN_ERRORS, "unknown_eraser", "version_unavailable", "not_acceptable", "invalid_request")
+_ERRORS = (
+    "unauthorized",
+    "admin_disabled",
+    "forbidden",
+    "unknown_eraser",
+    "version_unavailable",
+    "not_acceptable",
+    "invalid_request",
+)
 _ANSWER: dict[int | str, dict[str, Any]] = {
     200: {
         "description": "the distinct raw vectors held (zero rows before any traffic), in the format Accept names",
@@ -75,7 +82,8 @@ def _held(reservoirs: ReservoirBank, name: str, dim: int) -> tuple[NDArray[np.fl
 @router.get(
     "/{name}/recent",
     summary="The distinct raw vectors this replica has recently cleaned, how many it cleaned, and its version",
-    dependencies=[Depends(require_data_token)],
+    # The admin token, not the data token: these are other callers' raw vectors, which still carry the attribute.
+    dependencies=[Depends(require_admin)],
     response_class=Response,
     responses={**_ANSWER, **error_responses(*_ERRORS)},
 )
