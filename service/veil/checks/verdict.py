@@ -138,7 +138,8 @@ class Verdict:
         else:
             text = f"{self.status}: " + "; ".join(self.reasons)
         unmeasured = [THREATS[name][0] for name in self.claimed if not self.threats[name].measured]
-        if unmeasured:
+        # A verdict judged since unmeasured claims count as warn says so among its reasons already.
+        if unmeasured and not any(reason.startswith(NOT_MEASURED.split(":")[0]) for reason in self.reasons):
             text += "; claimed but not measured: " + ", ".join(unmeasured)
         others = [
             f"{THREATS[name][0]} {threat.status}" for name, threat in self.threats.items() if self.unclaimed(name)
@@ -277,6 +278,11 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds, claims: tuple[
         judged = [name for claim in claims if measured[claim] for name in THREATS[claim][1]] + list(ALWAYS_JUDGED)
     status = worst(levels[name] for name in judged)
     reasons = [reason for name in figures if name in judged for reason in why[name]]
+    unmeasured = [] if claims is None else [claim for claim in claims if not measured[claim]]
+    if unmeasured:
+        # A claim the audit could not check is not a pass (a sample without the context column, every value skipped).
+        reasons.append(NOT_MEASURED.format(threats=", ".join(THREATS[claim][0] for claim in unmeasured)))
+        status = max(status, "warn", key=LEVELS.index)
     if _unreadable_before(report):
         # Nothing to erase was seen, so nothing was shown erased: wrong labels or too small a sample look like this.
         reasons.append(UNREADABLE)
@@ -318,6 +324,9 @@ def _context_strongest(report: AuditReport) -> str:
     name = None if report.context is None else report.context.strongest()
     return "" if name is None else f" ({PROBE_LABELS[name]})"
 
+
+#: The reason a verdict gives when a threat the version claims was not measured.
+NOT_MEASURED = "claimed but not measured by this audit: {threats} (this is not a pass)"
 
 #: The reason a verdict gives when no probe read the attribute before erasure either.
 UNREADABLE = (
