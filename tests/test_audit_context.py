@@ -28,7 +28,7 @@ from veil.registry import Registry
 from veil.registry.card import card_audit
 from veil.reporting import version_report
 from veil.samples.harbourline import load_harbourline_profiles
-from veil_client import AsyncVeilClient
+from veil_client import AsyncVeilClient, VeilClientError
 
 from .service_fixtures import app_for
 from .test_cli import SAMPLE, run
@@ -212,6 +212,9 @@ async def test_a_live_check_with_the_context_column_reads_within_each_value(fitt
         async with AsyncVeilClient("http://veil.test", transport=transport) as client:
             within = await client.drift(NAME, x, z, context=field)
             whole = await client.drift(NAME, x, z)
+            # Without labels the figure would judge the stored probe's own guesses: refused, naming what is missing.
+            with pytest.raises(VeilClientError, match="a context needs the attribute's labels"):
+                await client.drift(NAME, x, context=field)
     context = ContextAudit.from_dict(within["context"])
     assert context.rows == len(field)
     assert sorted(v.value for v in context.values) == sorted(set(field))

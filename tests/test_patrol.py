@@ -322,6 +322,9 @@ def test_a_sample_with_a_context_posts_it_and_is_another_check(
     assert sent == [None, field.tolist()]
     # The same file and labels with a context is another check, recorded beside the first.
     assert len(check_history(registry, PROFILES)) == 2
-    refused = run(*common, "--given", "region")
+    refused = run(*common, "--attribute", "pronoun", "--given", "region")
     assert refused.code == 2
     assert "has no array 'region'" in refused.err
+    unlabelled = run(*common, "--given", "field")
+    assert unlabelled.code == 2
+    assert "--given needs the attribute's labels" in unlabelled.err

@@ -179,6 +179,9 @@ def check_drift(
         )
     prior_shift = leakage_gap = class_mean_gap = None
     leakage = class_shares = ranking = None
+    if context is not None and headline_labels is None:
+        # Pseudo-labels are the stored probe's own guesses: within a value they would judge the probe, not the data.
+        raise ValueError("a context needs the attribute's labels: post them with the sample (labels)")
     within = _within_context(x, np.asarray(erased), headline, context, random_state)
     if headline is not None:
         prior_shift, leakage, leakage_gap = headline.prior_shift, headline.leakage, headline.leakage_gap

@@ -425,6 +425,8 @@ def _posted_sample(args: argparse.Namespace) -> Any:
         if keys or args.given:
             raise DataError("--attribute and --given name columns inside a --sample file; give the sample too")
         return None
+    if args.given and not keys:
+        raise DataError("--given needs the attribute's labels (--attribute): within a value, pseudo-labels say nothing")
     path = Path(args.sample)
     if not path.is_file():
         raise DataError(f"{path} does not exist")
