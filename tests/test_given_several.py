@@ -312,6 +312,8 @@ def test_veil_fit_given_twice_end_to_end(tmp_path: Path) -> None:
     assert [entry["column"] for entry in columns] == ["field", "age_bracket"]
     assert columns[1]["values"] == np.unique(sample.age_bracket).tolist()
     assert stored.card["request"]["fit"]["given"] == ["field", "age_bracket"]
+    # The audit reads within the first column only, and the card says so.
+    assert any("reads 'field' only: 'age_bracket' guarded" in note for note in stored.card["notes"])
     _validate(_evidence(registry, "profiles", "1"))
     shown = run("show", "profiles", "1", "--registry", registry)
     both = "within each of the 5 values of 'field' and within each of the 3 values of 'age_bracket'"

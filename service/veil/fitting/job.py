@@ -236,6 +236,12 @@ def _checked_rows(sample: Sample, setup: _Setup, total: PartResult, notes: list[
         )
         notes.append(f"incomplete labels: each attribute was fitted on the fitting rows that carry it ({rows})")
     notes += list(getattr(sample, "notes", ()))
+    if len(sample.context_keys) > 1:
+        first, others = sample.context_keys[0], ", ".join(map(repr, sample.context_keys[1:]))
+        notes.append(
+            f"the audit within a context reads {first!r} only: {others} guarded on the fitting rows but not audited "
+            f"within its values here (veil audit --given COLUMN on a fresh sample does that)"
+        )
     if sample.attribute_table:
         _check_table_split(sample, total.fit_rows, total.moments, held[1])
     else:
