@@ -41,6 +41,20 @@ def _request(name: str, *, method: str = "leace", guard_population: bool = True,
     )
 
 
+def committed_fit_rows(codes: NDArray[np.intp]) -> NDArray[np.bool_]:
+    """The committed sample's rows `veil fit` fits on at its default split (held-out share 0.2, seed 0)."""
+    return ~give_every_class_both_parts(holdout_mask(codes.size, fraction=0.2, seed=0), codes)  # as tests/test_cli.py
+
+
+def live_coordinates(x: NDArray[np.float64]) -> NDArray[np.bool_]:
+    """The coordinates with spread (variance above COVARIANCE_RTOL of the largest): the guarantee is about them.
+
+    The others (veil.maps.linalg.dead_coordinates; all-MiniLM-L6-v2 has three) are pinned to one value.
+    """
+    variances = np.var(x, axis=0)
+    return np.asarray(variances > COVARIANCE_RTOL * variances.max())
+
+
 @pytest.mark.parametrize(("method", "within_only"), [("leace", False), ("meanproj", True)])
 def test_a_stored_version_makes_the_class_means_coincide_within_every_field_on_its_fitting_rows(
     tmp_path: Path, method: str, within_only: bool
@@ -56,13 +70,10 @@ def test_a_stored_version_makes_the_class_means_coincide_within_every_field_on_i
 
     sample = load_harbourline_profiles()
     codes = np.unique(sample.pronoun, return_inverse=True)[1]
-    fit = ~give_every_class_both_parts(holdout_mask(codes.size, fraction=0.2, seed=0), codes)  # as tests/test_cli.py
+    fit = committed_fit_rows(codes)
     x = sample.embedding[fit].astype(np.float64)
     z, field = sample.pronoun[fit], sample.field[fit]
-    # The map leaves coordinates with no spread as they are (variance at most COVARIANCE_RTOL of the largest,
-    # veil.maps.linalg.dead_coordinates; all-MiniLM-L6-v2 has three): the guarantee is about the others.
-    variances = np.var(x, axis=0)
-    live = variances > COVARIANCE_RTOL * variances.max()
+    live = live_coordinates(x)
     erased = stored.artifact.apply(x)
     # NumPy's np.cov within each field is the reference; exact in real arithmetic, so float64 round-off relative
     # to what was there.

@@ -20,18 +20,18 @@ from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, ReadingSpec,
 from veil.maps.artifact import MapArtifact
 from veil.maps.context import ContextMoments
 from veil.maps.given import GivenMoments
-from veil.maps.linalg import COVARIANCE_RTOL
 from veil.maps.moments import MomentState
 from veil.registry import Registry
 from veil.registry.artifact_files import decode_artifact, encode_artifact
 from veil.samples.harbourline import load_harbourline_profiles
 from veil.samples.sources import load_labelled_sample
-from veil.samples.splitting import give_every_class_both_parts, holdout_mask
+from veil.samples.splitting import holdout_mask
 from veil.samples.streaming import open_stream
 
 from .test_cli import SAMPLE, run
 from .test_context import within_covariances
 from .test_evidence_schema import _evidence, _validate
+from .test_given_fit import committed_fit_rows, live_coordinates
 
 Array = NDArray[np.float64]
 Labels = NDArray[np.str_]
@@ -298,11 +298,9 @@ def test_veil_fit_given_twice_end_to_end(tmp_path: Path) -> None:
     stored = Registry(registry).read_version("profiles", fitted.out.strip().splitlines()[-1])
     sample = load_harbourline_profiles()
     codes = np.unique(sample.pronoun, return_inverse=True)[1]
-    fit = ~give_every_class_both_parts(holdout_mask(codes.size, fraction=0.2, seed=0), codes)  # as tests/test_cli.py
+    fit = committed_fit_rows(codes)
     x = sample.embedding[fit].astype(np.float64)
-    # Coordinates without spread are left as they are (veil.maps.linalg.dead_coordinates): the guarantee is about
-    # the others.
-    live = np.var(x, axis=0) > COVARIANCE_RTOL * np.var(x, axis=0).max()
+    live = live_coordinates(x)
     labels = {"pronoun": sample.pronoun[fit]}
     given = {"field": sample.field[fit], "age_bracket": sample.age_bracket[fit]}
     scale = max(np.abs(block).max() for block in every_within(x[:, live], labels, given))
