@@ -13,7 +13,7 @@ fitted on the transported fitting rows).
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, ClassVar
 
 import numpy as np
@@ -68,6 +68,9 @@ class ContextTransportMap:
     context_intercept: Float64Array
     value_priors: Float64Array
     after: AffineLowRankMap | None = None
+    _cast: dict[np.dtype[np.floating], tuple[FloatArray, FloatArray]] = field(
+        default_factory=dict, init=False, repr=False
+    )
 
     def __post_init__(self) -> None:
         values = np.array(self.values, copy=True)
@@ -113,9 +116,17 @@ class ContextTransportMap:
     def inferred_values(self, x: FloatArray) -> NDArray[np.intp]:
         """Index of the context value each row is moved within (the classifier's most probable), shape (n,)."""
         self._check(x)
-        coef_t = self.context_coef.T.astype(x.dtype)
-        logits = x @ coef_t + self.context_intercept.astype(x.dtype)
+        coef_t, intercept = self._classifier(x.dtype)
+        logits = x @ coef_t + intercept
         return np.asarray(np.argmax(logits, axis=1), dtype=np.intp)
+
+    def _classifier(self, dtype: np.dtype[np.floating]) -> tuple[FloatArray, FloatArray]:
+        # Cast once per dtype, as the class maps do: the apply path of every request reads these.
+        cached = self._cast.get(dtype)
+        if cached is None:
+            cached = (np.ascontiguousarray(self.context_coef.T.astype(dtype)), self.context_intercept.astype(dtype))
+            self._cast[dtype] = cached
+        return cached
 
     def transport_within(self, x: FloatArray, values: NDArray[np.intp]) -> FloatArray:
         """Move each row with the map of the given value (no context inference, no map after), shape (n, d).
