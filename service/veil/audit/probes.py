@@ -15,7 +15,7 @@ from sklearn.dummy import DummyRegressor
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.linear_model import LogisticRegression, RidgeCV
 from sklearn.metrics import mean_absolute_error, r2_score
-from sklearn.model_selection import BaseCrossValidator, KFold, StratifiedKFold
+from sklearn.model_selection import BaseCrossValidator, KFold, StratifiedGroupKFold, StratifiedKFold
 from sklearn.neural_network import MLPClassifier
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
@@ -61,7 +61,13 @@ def nonlinear_probe(random_state: int) -> Pipeline:
 
 
 def held_out_predictions(
-    model: Any, x: NDArray[np.floating], y: NDArray[Any], splitter: BaseCrossValidator, *, stage: str | None = None
+    model: Any,
+    x: NDArray[np.floating],
+    y: NDArray[Any],
+    splitter: BaseCrossValidator,
+    *,
+    stage: str | None = None,
+    groups: NDArray[np.intp] | None = None,
 ) -> NDArray[Any]:
     """What ``cross_val_predict`` returns (each row predicted by a clone fitted on the other folds), fold by fold.
 
@@ -72,7 +78,7 @@ def held_out_predictions(
     times slower with two BLAS threads, and the boosted trees 2-4 times slower
     with two OpenMP threads, with the same result).
     """
-    folds = list(splitter.split(x, y))
+    folds = list(splitter.split(x, y, groups))
     parts = []
     with warnings.catch_warnings(), threadpool_limits(limits=1):
         warnings.simplefilter("ignore", ConvergenceWarning)
@@ -127,6 +133,7 @@ def classification_score(
     folds: int,
     random_state: int,
     stage: str | None = None,
+    groups: NDArray[np.intp] | None = None,
 ) -> ProbeScore:
     """Cross-validated held-out accuracy of ``model`` predicting ``codes`` from ``x``.
 
@@ -134,9 +141,8 @@ def classification_score(
     baseline is the accuracy of always predicting the commonest class.
     Finished folds are reported to ``stage`` (see :mod:`veil.progress`).
     """
-    return score_predictions(
-        codes, cross_val_labels(model, x, codes, folds=folds, random_state=random_state, stage=stage)
-    )
+    predicted = cross_val_labels(model, x, codes, folds=folds, random_state=random_state, stage=stage, groups=groups)
+    return score_predictions(codes, predicted)
 
 
 def cross_val_labels(
@@ -147,10 +153,45 @@ def cross_val_labels(
     folds: int,
     random_state: int,
     stage: str | None = None,
+    groups: NDArray[np.intp] | None = None,
 ) -> NDArray[np.intp]:
-    """Held-out predictions of ``model`` for every row (for task probes)."""
-    splitter = StratifiedKFold(n_splits=probe_folds(codes, folds), shuffle=True, random_state=random_state)
-    return held_out_predictions(model, x, codes, splitter, stage=stage)
+    """Held-out predictions of ``model`` for every row (for task probes).
+
+    With ``groups`` (each row's group, ``0 .. groups - 1``) the folds keep every group in one fold
+    (:func:`fold_splitter`).
+    """
+    splitter = fold_splitter(codes, folds, random_state=random_state, groups=groups)
+    return held_out_predictions(model, x, codes, splitter, stage=stage, groups=groups)
+
+
+def fold_splitter(
+    codes: NDArray[np.intp], folds: int, *, random_state: int, groups: NDArray[np.intp] | None = None
+) -> BaseCrossValidator:
+    """Stratified folds (:func:`probe_folds` of them), or stratified group folds that keep each group in one fold.
+
+    Group folds number at most the groups that carry the rarest class (:func:`group_folds`), so each class can
+    reach every fold's training part.
+    """
+    if groups is None:
+        return StratifiedKFold(n_splits=probe_folds(codes, folds), shuffle=True, random_state=random_state)
+    return StratifiedGroupKFold(n_splits=group_folds(codes, groups, folds), shuffle=True, random_state=random_state)
+
+
+def group_folds(codes: NDArray[np.intp], groups: NDArray[np.intp], folds: int) -> int:
+    """Group folds the rows allow (at most ``folds``): no more than the groups of the class in fewest groups.
+
+    Refuses fewer than 2, naming the class: a class carried by one group is, in any fold that holds that group,
+    absent from the training part, so no reader learns it from other people.
+    """
+    present = np.unique(codes)
+    carriers = [np.unique(groups[codes == c]).size for c in present]
+    fewest = int(np.argmin(carriers))
+    if carriers[fewest] < 2:
+        raise ValueError(
+            f"class code {int(present[fewest])} is carried by {carriers[fewest]} group; group folds need every class "
+            "in at least 2 groups (audit without the group column, or with more groups)"
+        )
+    return min(probe_folds(codes, folds), carriers[fewest])
 
 
 def regression_score(

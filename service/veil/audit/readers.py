@@ -23,7 +23,7 @@ from sklearn.model_selection import train_test_split
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import PolynomialFeatures, StandardScaler
 
-from veil.audit.probes import linear_probe, nonlinear_probe, probe_folds
+from veil.audit.probes import fold_splitter, linear_probe, nonlinear_probe, probe_folds
 from veil.audit.report import PROBES
 
 # Principal components the quadratic probe expands: 32 give 560 features (components and their pairwise
@@ -57,14 +57,27 @@ class FoldSizes:
     classes: int
 
 
-def fold_sizes(codes: NDArray[np.intp], folds: int) -> FoldSizes:
+def fold_sizes(
+    codes: NDArray[np.intp], folds: int, *, groups: NDArray[np.intp] | None = None, random_state: int = 0
+) -> FoldSizes:
     """What every training fold of the audit's stratified folds holds at least.
 
     Stratified folds put at most ``ceil(n_c / folds)`` rows of class ``c`` in
     each test fold; the probes size their parts (components, a validation
-    share) so that they fit every fold.
+    share) so that they fit every fold.  Group folds (``groups``) have no such
+    bound (a large group fills a fold): their training parts are counted.
     """
     counts = np.bincount(codes)
+    if groups is not None:
+        splitter = fold_splitter(codes, folds, random_state=random_state, groups=groups)
+        trained = [
+            np.bincount(codes[train], minlength=counts.size) for train, _ in splitter.split(codes, codes, groups)
+        ]
+        return FoldSizes(
+            rows=int(min(t.sum() for t in trained)),
+            smallest_class=int(min(t.min() for t in trained)),
+            classes=int(counts.size),
+        )
     k = probe_folds(codes, folds)
     kept = counts - -(-counts // k)
     return FoldSizes(rows=int(kept.sum()), smallest_class=int(kept.min()), classes=int(counts.size))

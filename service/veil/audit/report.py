@@ -9,6 +9,7 @@ from typing import Any
 
 from veil.audit.context_report import ContextAudit
 from veil.audit.glossary import MEANINGS, PROBE_MODELS, REGRESSION_MODELS
+from veil.audit.group_report import GroupAudit
 from veil.audit.scores import PROBE_LABELS, PROBES, ProbeScore
 
 __all__ = [
@@ -272,6 +273,10 @@ class AuditReport:
     it was recorded (``ranking`` also for a continuous attribute).
     ``context`` holds every reader within each value of a context, when the
     audited rows carried one (see :mod:`veil.audit.context_report`).
+    ``groups`` holds the linear reader on ordinary folds, on group folds and
+    as a transfer reader, when the audited rows carried a group column (the
+    probes' folds then keep each group in one fold; see
+    :mod:`veil.audit.group_report`); None means no group folds were used.
     """
 
     method: str
@@ -286,6 +291,7 @@ class AuditReport:
     protocol: ProbeProtocol | None = None
     ranking: RankingFairness | None = None
     context: ContextAudit | None = None
+    groups: GroupAudit | None = None
 
     @property
     def balanced_chance(self) -> float | None:
@@ -305,6 +311,7 @@ class AuditReport:
         protocol = data.get("protocol")
         ranking = data.get("ranking")
         context = data.get("context")
+        groups = data.get("groups")
         return cls(
             method=data["method"],
             rank=data["rank"],
@@ -318,6 +325,7 @@ class AuditReport:
             protocol=None if protocol is None else ProbeProtocol(**protocol),
             ranking=None if ranking is None else RankingFairness.from_dict(ranking),
             context=None if context is None else ContextAudit.from_dict(context),
+            groups=None if groups is None else GroupAudit.from_dict(groups),
         )
 
     @classmethod
@@ -424,6 +432,8 @@ class AuditReport:
         lines += [f"{name:{width}}  {b:>{column}}  {a:>{column}}" for name, b, a in rows]
         if self.context is not None:
             lines += self.context.lines()
+        if self.groups is not None:
+            lines += self.groups.lines()
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
 

@@ -5,14 +5,15 @@ from __future__ import annotations
 import inspect
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import TypeVar
+from typing import Any, TypeVar
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from sklearn.model_selection import train_test_split
+from sklearn.model_selection import GroupKFold, StratifiedGroupKFold, train_test_split
 from sklearn.utils.validation import check_array, check_is_fitted
 
 from veil.audit import geometry, probes, ranking, readers
+from veil.audit.groups import FittingRows, group_audit, group_codes
 from veil.audit.report import (
     FRESH_KFOLD,
     HELD_OUT_KFOLD,
@@ -34,6 +35,7 @@ from veil.maps.context import checked_context
 from veil.maps.kinds import EmbeddingMap
 from veil.maps.linalg import whiten, whitening_factors
 from veil.maps.moments import MomentState
+from veil.progress import phase
 
 E = TypeVar("E", bound=Erasure)
 NEIGHBOURS = 10
@@ -82,6 +84,9 @@ def audit(
     folds: int = 5,
     nonlinear: bool = True,
     random_state: int = 0,
+    group: object = None,
+    group_name: str | None = None,
+    fitting: FittingRows | None = None,
 ) -> AuditReport:
     """Measure leakage and utility of a fitted eraser on data it never saw.
 
@@ -119,6 +124,17 @@ def audit(
         MLP); otherwise the linear probe only.
     random_state : int, default=0
         Seeds the folds and the probes.
+    group : array-like of shape (n_heldout,), optional
+        Each row's group (an author, an account, a first name, a site): every
+        probe's folds then keep each group in one fold (stratified group folds),
+        and the report's ``groups`` section sets the linear probe on ordinary
+        folds and the transfer probe beside them (see :mod:`veil.audit.group_report`).
+    group_name : str, optional
+        The group column's name, for the report.
+    fitting : FittingRows, optional
+        The rows the eraser was fitted on (or a sample of them), with their
+        labels and groups: with ``group``, the transfer probe is trained on
+        them, cleaned, and tested on the cleaned held-out rows.
 
     Returns
     -------
@@ -134,6 +150,7 @@ def audit(
         folds=folds,
         nonlinear=nonlinear,
         random_state=random_state,
+        grouping=_Grouping(group, group_name, fitting),
     )
 
 
@@ -148,6 +165,8 @@ def audit_artifact(
     folds: int = 5,
     nonlinear: bool = True,
     random_state: int = 0,
+    group: object = None,
+    group_name: str | None = None,
 ) -> AuditReport:
     """Measure leakage and utility of a stored map on a fresh sample, as :func:`audit` does for an eraser.
 
@@ -165,6 +184,10 @@ def audit_artifact(
     given : array-like of shape (n,), optional
         Each row's context value: the probes are then also measured within each value (as :func:`audit`).
     given_name : str, optional
+    group : array-like of shape (n,), optional
+        Each row's group: every probe's folds keep each group in one fold (as :func:`audit`; no transfer
+        probe, which needs the fitting rows).
+    group_name : str, optional
 
     Returns
     -------
@@ -179,6 +202,7 @@ def audit_artifact(
         folds=folds,
         nonlinear=nonlinear,
         random_state=random_state,
+        grouping=_Grouping(group, group_name, None),
     )
 
 
@@ -201,6 +225,15 @@ class _Context:
     name: str | None
 
 
+@dataclass(frozen=True)
+class _Grouping:
+    """Each audited row's group (None: folds by row), the group column's name, and the fitting rows."""
+
+    values: object
+    name: str | None
+    fitting: FittingRows | None
+
+
 def _audit_map(
     audited: _Audited,
     X: ArrayLike,
@@ -211,6 +244,7 @@ def _audit_map(
     folds: int,
     nonlinear: bool,
     random_state: int,
+    grouping: _Grouping | None = None,
 ) -> AuditReport:
     raw = check_array(X, dtype=(np.float64, np.float32))
     attribute = encode_attribute(z, raw.shape[0])
@@ -221,10 +255,14 @@ def _audit_map(
     noise_floor: float | None
     regression_trees: tuple[RegressionScore, RegressionScore] | None = None
 
+    group_index = _group_index(grouping, attribute.labels is not None, raw.shape[0])
     if attribute.labels is not None:
         codes = attribute.codes
-        used_folds = probes.probe_folds(codes, folds)
-        sizes = readers.fold_sizes(codes, folds)
+        if group_index is None:
+            used_folds = probes.probe_folds(codes, folds)
+        else:
+            used_folds = _group_folds(codes, group_index, folds)
+        sizes = readers.fold_sizes(codes, folds, groups=group_index, random_state=random_state)
         scores: dict[str, tuple[ProbeScore, ProbeScore]] = {}
         for name in PROBES if nonlinear else ("linear",):
             model = readers.build_probe(name, random_state, sizes=sizes, features=raw.shape[1])
@@ -236,6 +274,7 @@ def _audit_map(
                     folds=folds,
                     random_state=random_state,
                     stage=f"{PROBE_LABELS[name]}, raw (folds)",
+                    groups=group_index,
                 ),
                 probes.classification_score(
                     model,
@@ -244,6 +283,7 @@ def _audit_map(
                     folds=folds,
                     random_state=random_state,
                     stage=f"{PROBE_LABELS[name]}, erased (folds)",
+                    groups=group_index,
                 ),
             )
         linear_before: ProbeScore | RegressionScore
@@ -343,8 +383,19 @@ def _audit_map(
             raise ValueError("an audit within a context needs a categorical attribute (1-D class labels z)")
         within = context_audit(
             raw, erased, codes, context.values, classes=tuple(str(label) for label in attribute.labels),
-            column=context.name, folds=folds, nonlinear=nonlinear, random_state=random_state,
+            column=context.name, folds=folds, nonlinear=nonlinear, random_state=random_state, groups=group_index,
         )  # fmt: skip
+    across = None
+    if grouping is not None and group_index is not None and codes is not None and attribute.labels is not None:
+        assert isinstance(leakage.linear_before, ProbeScore)
+        assert isinstance(leakage.linear_after, ProbeScore)
+        nonlinear_strongest = _strongest_nonlinear(leakage)
+        with phase("readers across groups"):
+            across = group_audit(
+                raw, erased, codes, attribute.labels, np.asarray(grouping.values), column=grouping.name,
+                grouped=(leakage.linear_before, leakage.linear_after), strongest=nonlinear_strongest,
+                fitting=grouping.fitting, apply=audited.apply, folds=folds, random_state=random_state,
+            )  # fmt: skip
 
     notes.extend(_dead_coordinate_notes(raw, erased))
     fitted_rows = int(audited.moments.count)
@@ -380,7 +431,33 @@ def _audit_map(
         protocol=ProbeProtocol(scheme=audited.scheme, folds=used_folds, seed=random_state, eraser_rows=fitted_rows),
         ranking=ranking_fairness,
         context=within,
+        groups=across,
     )
+
+
+def _group_index(grouping: _Grouping | None, categorical: bool, n_rows: int) -> NDArray[np.intp] | None:
+    """Each audited row's group as an index (None: no group); refuses a group with a continuous attribute."""
+    if grouping is None or grouping.values is None:
+        return None
+    if not categorical:
+        raise ValueError("group folds need a categorical attribute (1-D class labels z)")
+    return group_codes(grouping.values, n_rows)[1]
+
+
+def _group_folds(codes: NDArray[np.intp], groups: NDArray[np.intp], folds: int) -> int:
+    try:
+        return probes.group_folds(codes, groups, folds)
+    except ValueError as error:
+        raise ValueError(f"cannot keep each group in one fold: {error}") from None
+
+
+def _strongest_nonlinear(leakage: Leakage) -> str | None:
+    """The nonlinear probe with the most held-out rows right after erasure (ties: the first listed), or None."""
+    scored = [
+        (name, after) for name, _, after in leakage.probes() if name != "linear" and isinstance(after, ProbeScore)
+    ]
+    best = max(scored, key=lambda item: item[1].hits, default=None)
+    return None if best is None else best[0]
 
 
 def _task_codes(task: object, n_rows: int) -> NDArray[np.intp]:
@@ -399,6 +476,8 @@ def fit_and_audit(
     random_state: int = 0,
     folds: int = 5,
     nonlinear: bool = True,
+    group: object = None,
+    group_name: str | None = None,
 ) -> tuple[E, AuditReport]:
     """Split off a held-out part (stratified by the attribute), fit on the rest, audit on it.
 
@@ -410,6 +489,15 @@ def fit_and_audit(
         value, against what the context alone tells.
     given_name : str, optional
         The context column's name, for the report.
+    group : array-like of shape (n_samples,), optional
+        Each row's group (an author, an account, a first name, a site): the
+        held-out part is then whole groups (stratified by the attribute as far
+        as groups allow: scikit-learn's ``StratifiedGroupKFold``), so the audit
+        judges people the fit never saw; every probe's folds keep each group in
+        one fold, and the transfer probe is trained on the cleaned fitting rows
+        (see :func:`audit`).
+    group_name : str, optional
+        The group column's name, for the report.
 
     Returns
     -------
@@ -421,7 +509,11 @@ def fit_and_audit(
     z_array = np.asarray(z)
     stratify = z_array if attribute.labels is not None else None
     indices = np.arange(raw.shape[0])
-    fit_rows, held_rows = train_test_split(indices, test_size=holdout, random_state=random_state, stratify=stratify)
+    groups = None if group is None else group_codes(group, raw.shape[0])[1]
+    if groups is None:
+        fit_rows, held_rows = train_test_split(indices, test_size=holdout, random_state=random_state, stratify=stratify)
+    else:
+        fit_rows, held_rows = _group_split(indices, stratify, groups, holdout, random_state)
     task_array = None if task is None else np.asarray(task)
     if isinstance(given, Mapping) or getattr(given, "ndim", 1) == 2:
         raise ValueError("fit_and_audit takes one context column: give the values of one column as a 1-D array")
@@ -445,5 +537,30 @@ def fit_and_audit(
         folds=folds,
         nonlinear=nonlinear,
         random_state=random_state,
+        group=None if groups is None else np.asarray(group)[held_rows],
+        group_name=group_name,
+        fitting=None if groups is None else FittingRows(raw[fit_rows], z_array[fit_rows], np.asarray(group)[fit_rows]),
     )
     return eraser, report
+
+
+def _group_split(
+    indices: NDArray[np.intp], stratify: NDArray[Any] | None, groups: NDArray[np.intp], holdout: float, seed: int
+) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+    """Fitting and held-out rows with every group on one side: one fold of about ``holdout`` of the groups.
+
+    The held-out part is the first fold of ``round(1 / holdout)`` stratified group folds (group folds when the
+    attribute is continuous), so its share is ``holdout`` as far as whole groups allow.
+    """
+    splits = max(2, round(1 / holdout))
+    if np.unique(groups).size < splits:
+        raise ValueError(
+            f"a held-out part of whole groups needs at least {splits} groups for holdout={holdout}; "
+            f"there are {np.unique(groups).size}"
+        )
+    if stratify is None:
+        splitter: Any = GroupKFold(n_splits=splits)
+    else:
+        splitter = StratifiedGroupKFold(n_splits=splits, shuffle=True, random_state=seed)
+    fit_rows, held_rows = next(iter(splitter.split(indices, stratify, groups)))
+    return indices[fit_rows], indices[held_rows]

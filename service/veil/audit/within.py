@@ -66,12 +66,31 @@ def pooled_score(codes: NDArray[np.intp], predicted: NDArray[np.intp], floor: fl
 
 
 def _cross_validated(
-    name: str, x: NDArray[np.floating], codes: NDArray[np.intp], *, folds: int, random_state: int
+    name: str,
+    x: NDArray[np.floating],
+    codes: NDArray[np.intp],
+    *,
+    folds: int,
+    random_state: int,
+    groups: NDArray[np.intp] | None = None,
 ) -> NDArray[np.intp]:
-    """Held-out predictions of reader ``name`` within one value (codes compact: ``0 .. classes - 1``)."""
-    sizes = readers.fold_sizes(codes, folds)
+    """Held-out predictions of reader ``name`` within one value (codes compact: ``0 .. classes - 1``).
+
+    With ``groups``, each group of the value stays in one fold.
+    """
+    sizes = readers.fold_sizes(codes, folds, groups=groups, random_state=random_state)
     model = readers.build_probe(name, random_state, sizes=sizes, features=x.shape[1])
-    return probes.cross_val_labels(model, x, codes, folds=folds, random_state=random_state)
+    return probes.cross_val_labels(model, x, codes, folds=folds, random_state=random_state, groups=groups)
+
+
+def group_skip_reason(codes: NDArray[np.intp], groups: NDArray[np.intp], classes: tuple[str, ...]) -> str | None:
+    """Why the readers cannot keep each group in one fold within a value (None: they can)."""
+    present = np.unique(codes)
+    for c in present:
+        carriers = np.unique(groups[codes == c]).size
+        if carriers < 2:
+            return f"class {classes[int(c)]!r} is carried by {carriers} group there; group folds need 2 or more"
+    return None
 
 
 def _majority_rows(codes: NDArray[np.intp]) -> int:
@@ -100,6 +119,7 @@ def context_audit(
     folds: int,
     nonlinear: bool,
     random_state: int,
+    groups: NDArray[np.intp] | None = None,
 ) -> ContextAudit:
     """Every reader within each value of ``given``, before and after erasure, pooled by rows against the floor.
 
@@ -120,6 +140,9 @@ def context_audit(
     nonlinear : bool
         Every reader of :data:`~veil.audit.report.PROBES`, or the linear one only.
     random_state : int
+    groups : ndarray of shape (n,), optional
+        Each row's group index: within each value, every group stays in one fold (a value whose classes are not
+        each carried by two groups there is skipped, with the reason).
 
     Returns
     -------
@@ -135,11 +158,16 @@ def context_audit(
     for g, value in enumerate(values):
         rows = np.flatnonzero(groups == g)
         reason = skip_reason(codes[rows], classes)
+        value_groups = None if groups is None else groups[rows]
+        if reason is None and value_groups is not None:
+            reason = group_skip_reason(codes[rows], value_groups, classes)
         if reason is not None:
             skipped.append(SkippedValue(str(value), int(rows.size), reason))
             continue
         with phase(f"auditing within {value}"):
-            one, guesses = _one_value(raw[rows], erased[rows], codes[rows], str(value), names, folds, random_state)
+            one, guesses = _one_value(
+                raw[rows], erased[rows], codes[rows], str(value), names, folds, random_state, value_groups
+            )
         read.append(one)
         pooled_rows.append(rows)
         for key, guess in guesses.items():
@@ -158,17 +186,18 @@ def _one_value(
     names: tuple[str, ...],
     folds: int,
     random_state: int,
+    groups: NDArray[np.intp] | None = None,
 ) -> tuple[ContextValue, dict[tuple[str, str], NDArray[np.intp]]]:
     """Every reader within one value: its figures, and the predictions (the audit's class codes) by reader and side."""
     present, compact = np.unique(codes, return_inverse=True)
     compact = compact.astype(np.intp)
-    value_folds = probes.probe_folds(compact, folds)
+    value_folds = probes.probe_folds(compact, folds) if groups is None else probes.group_folds(compact, groups, folds)
     floor = _majority_rows(compact) / compact.size
     scores: dict[str, dict[str, ProbeScore]] = {"before": {}, "after": {}}
     guesses: dict[tuple[str, str], NDArray[np.intp]] = {}
     for name in names:
         for side, x in (("before", raw), ("after", erased)):
-            guess = _cross_validated(name, x, compact, folds=value_folds, random_state=random_state)
+            guess = _cross_validated(name, x, compact, folds=value_folds, random_state=random_state, groups=groups)
             scores[side][name] = pooled_score(compact, guess, floor)
             guesses[name, side] = present[guess].astype(np.intp)
     return ContextValue(value, int(codes.size), floor, scores["before"], scores["after"]), guesses

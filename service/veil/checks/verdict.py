@@ -27,6 +27,7 @@ from typing import Any
 import numpy as np
 
 from veil.audit.context_report import ContextAudit
+from veil.audit.group_report import READING_LABELS
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.thresholds import AuditThresholds
 
@@ -64,7 +65,8 @@ ALWAYS_JUDGED = ("task_loss",)
 # What each figure says, for the verdict's reasons and the report's explanations.
 MEANINGS = {
     "linear_gap": "how far a linear probe on the erased rows reads the attribute beyond the majority baseline "
-    "(the lower edge of its 95% interval above that baseline; 0 when the interval reaches it or lies below)",
+    "(the lower edge of its 95% interval above that baseline; 0 when the interval reaches it or lies below); "
+    "with a group column, the worst of its readings on ordinary folds, on group folds and as a transfer probe",
     "strongest_gap": "the same for the probe farthest from majority of all that ran (linear, quadratic, RBF kernel, "
     "boosted trees, MLP)",
     "neighbour_excess": "how much more often a row's 10 nearest neighbours share its attribute than the base rate "
@@ -183,10 +185,21 @@ def _widest(report: AuditReport) -> tuple[str, float] | None:
     return max(gaps, key=lambda item: item[1], default=None)
 
 
+def linear_reading(report: AuditReport) -> tuple[str | None, ProbeScore | RegressionScore]:
+    """The linear probe's reading the linear threat is judged on, and which reading it is.
+
+    Without a group column (every audit stored before group folds), the linear probe after erasure, as ever
+    (``None`` names it).  With one, the worst of its readings on ordinary folds, on group folds and as a
+    transfer probe (:meth:`~veil.audit.group_report.GroupAudit.worst_linear`).
+    """
+    if report.groups is None:
+        return None, report.leakage.linear_after
+    return report.groups.worst_linear()
+
+
 def audit_figures(report: AuditReport) -> dict[str, float | None]:
     """The figures a verdict judges, from an audit (None where the audit has no data for one)."""
-    leakage = report.leakage
-    linear = leakage.linear_after
+    linear = linear_reading(report)[1]
     widest = _widest(report)
     retrieval = report.retrieval
     utility = report.utility
@@ -229,8 +242,9 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds, claims: tuple[
     figures = audit_figures(report)
     bands = {name: getattr(thresholds, name) for name in figures}
     widest = _widest(report)
+    reading = linear_reading(report)[0]
     labels = {
-        "linear_gap": "the linear probe",
+        "linear_gap": "the linear probe" + ("" if reading is None else f" ({READING_LABELS[reading]})"),
         "strongest_gap": "the strongest probe" + ("" if widest is None else f" ({PROBE_LABELS[widest[0]]})"),
         "neighbour_excess": "the 10-NN attribute share",
         "task_loss": "the task probe",

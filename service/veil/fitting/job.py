@@ -37,7 +37,7 @@ from veil.fitting.contexts import check_context_options, checked_contexts
 from veil.fitting.methods import fit_collecting_notes, make_eraser
 from veil.fitting.plan import PartResult, PassPlan, concatenated
 from veil.fitting.request import FitRequest, MethodSpec, ReadingSpec
-from veil.fitting.store import FitOutcome, audit_and_store, audit_folds
+from veil.fitting.store import FitOutcome, HeldGroups, audit_and_store, audit_folds
 from veil.fitting.sweep import Target, Value, parse_target, run_sweep
 from veil.fitting.sweep import sweep_values as strengths
 from veil.maps.attribute import encode_attribute
@@ -47,6 +47,7 @@ from veil.registry import Registry
 from veil.samples.attributes import attribute_columns, present_rows
 from veil.samples.chunks import Partition, Sample
 from veil.samples.embedding_model import fitted_model
+from veil.samples.groups import group_key
 
 MOMENT_METHODS = ("leace", "meanproj")
 
@@ -120,6 +121,7 @@ def fit_version(sample: Sample, request: FitRequest, *, registry: Registry) -> F
         fit_sample=rows.fit if sample.attribute_table else _coded(rows.fit, eraser),
         held_out=rows.held,
         held_context=_held_context(sample, rows.total),
+        groups=_groups(sample, rows.total),
         reason=request.store.reason or f"fitted by veil fit ({request.fit.method}{streamed})",
         notes=notes,
         operating_points=operating_points,
@@ -133,6 +135,15 @@ def _held_context(sample: Sample, total: PartResult) -> tuple[str, NDArray[Any]]
     return sample.context_keys[0], np.concatenate(total.held_context)
 
 
+def _groups(sample: Sample, total: PartResult) -> HeldGroups | None:
+    """The group column and each fitting-sample and held-out row's group (None: the sample has no group)."""
+    column = group_key(sample)
+    if column is None:
+        return None
+    fit_group = np.concatenate(total.fit_group) if total.fit_group else np.array([], dtype=str)
+    return HeldGroups(column, fit_group, np.concatenate(total.held_group))
+
+
 def _prepare(sample: Sample, request: FitRequest) -> _Setup:
     """The eraser, the partitions and the pass plan; refuses, before any row is read, what cannot be fitted."""
     spec, reading = request.fit, request.reading
@@ -144,6 +155,8 @@ def _prepare(sample: Sample, request: FitRequest) -> _Setup:
     # Several attributes (or a continuous one) come as a table, the labels read and checked before the pass.
     if sample.attribute_table:
         _check_table_options(spec.method, eraser, spec.sweeps)
+        if group_key(sample) is not None:
+            raise DataError("group folds (--group) read one categorical attribute; fit several without --group")
     check_context_options(sample, spec)
     by_class = exact_moments and _needs_class_moments(spec, eraser)
     streams_inlp = streamed and isinstance(eraser, INLP) and eraser.classifier == "moments"

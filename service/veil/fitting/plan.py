@@ -22,7 +22,12 @@ from veil.maps.attribute import encode_attribute
 from veil.maps.moments import MomentState
 from veil.samples.attributes import is_table, split_strata
 from veil.samples.chunks import Chunk, Partition
-from veil.samples.splitting import give_every_class_both_parts, held_out_rows
+from veil.samples.splitting import (
+    give_every_class_both_groups,
+    give_every_class_both_parts,
+    held_out_groups,
+    held_out_rows,
+)
 
 # Independent hash streams for the held-out split and the two samples drawn from its sides.
 _HELD_SAMPLE_SALT, _FIT_SAMPLE_SALT = 0x5EED1, 0x5EED2
@@ -46,6 +51,9 @@ class PartResult:
     held_context: list[NDArray[Any]] = field(default_factory=list)
     #: The context values of the fitting sample's rows, part by part (empty for a sample read without a context).
     fit_context: list[NDArray[Any]] = field(default_factory=list)
+    #: The group of each row of ``held_sample`` and of ``fit_sample``, part by part (empty without ``--group``).
+    held_group: list[NDArray[Any]] = field(default_factory=list)
+    fit_group: list[NDArray[Any]] = field(default_factory=list)
 
     @classmethod
     def empty(cls) -> PartResult:
@@ -69,6 +77,8 @@ class PartResult:
             restored(self.fit_sample),
             self.held_context,
             self.fit_context,
+            self.held_group,
+            self.fit_group,
         )
 
     def merge(self, later: PartResult) -> PartResult:
@@ -83,6 +93,8 @@ class PartResult:
             fit_sample=self.fit_sample + later.fit_sample,
             held_context=self.held_context + later.held_context,
             fit_context=self.fit_context + later.fit_context,
+            held_group=self.held_group + later.held_group,
+            fit_group=self.fit_group + later.fit_group,
         )
 
 
@@ -116,7 +128,12 @@ class PassPlan:
     by_class: bool = False
 
     def split(self, chunk: Chunk) -> NDArray[np.bool_]:
-        """The held-out rows of ``chunk``."""
+        """The held-out rows of ``chunk``: by row, or by group when the chunk carries one (whole groups)."""
+        if chunk.group is not None:
+            held = held_out_groups(chunk.group, fraction=self.holdout, seed=self.seed)
+            if self.whole:
+                held = give_every_class_both_groups(held, split_strata(chunk.attribute), chunk.group)
+            return held
         held = held_out_rows(chunk.index, fraction=self.holdout, seed=self.seed)
         if self.whole:
             held = give_every_class_both_parts(held, split_strata(chunk.attribute))
@@ -144,6 +161,7 @@ class PassPlan:
         first = next(iter(chunk.contexts.values()), None)
         context = [] if first is None or not held_kept.any() else [first[held_kept]]
         fit_context = [] if first is None or not fit_drawn.any() else [first[fit_drawn]]
+        group = chunk.group
         return PartResult(
             moments=moments,
             fit_rows=int(np.count_nonzero(fit)),
@@ -151,6 +169,8 @@ class PassPlan:
             fit_sample=[fit_rows] if fit_rows[0].shape[0] else [],
             held_context=context,
             fit_context=fit_context,
+            held_group=[] if group is None or not held_kept.any() else [group[held_kept]],
+            fit_group=[] if group is None or not fit_drawn.any() else [group[fit_drawn]],
         )
 
     def process_partition(self, partition: Partition) -> PartResult:

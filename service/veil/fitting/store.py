@@ -11,6 +11,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import audit
+from veil.audit.groups import FittingRows
 from veil.audit.points import Sweep
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
@@ -64,6 +65,7 @@ def audit_and_store(
     notes: list[str],
     operating_points: Sweep | None = None,
     held_context: tuple[str, NDArray[Any]] | None = None,
+    groups: HeldGroups | None = None,
 ) -> FitOutcome:
     """Audit a fitted eraser on held-out rows, build its card, reference and report, and store the version.
 
@@ -71,7 +73,9 @@ def audit_and_store(
     attribute table; each attribute is then audited on its own (the first categorical one's audit, reference
     and plots are the version's headline figures).  ``reason`` goes in the history if an alias is moved.
     ``held_context`` names the context column and gives its value on each held-out row (a ``--given`` fit):
-    every categorical attribute is then also audited within each value.
+    every categorical attribute is then also audited within each value.  ``groups`` (a ``--group`` fit) gives
+    each fitting-sample and held-out row's group: the probes' folds then keep each group in one fold, and the
+    transfer probe learns from the fitting sample (see :mod:`veil.audit.group_report`).
     """
     seed, nonlinear = request.fit.seed, request.audit.nonlinear
     x_held, z_held, task_held = held_out
@@ -131,7 +135,7 @@ def audit_and_store(
         # The audit reports each probe's folds as a stage of its own.
         report = audit(
             eraser, x_held, z_held, task=task_held, **within_context(held_context, None, z_held), folds=folds,
-            nonlinear=nonlinear, random_state=seed,
+            nonlinear=nonlinear, random_state=seed, **_across_groups(groups, eraser, fit_sample),
         )  # fmt: skip
         x_plot = x_held
         fit_codes = fit_sample[1]
@@ -178,6 +182,27 @@ def audit_and_store(
             except AlertVerdictError as error:
                 refused = str(error)
     return FitOutcome(version_id=version_id, audit=report, card=card, promotion=promotion, refused=refused)
+
+
+@dataclass(frozen=True, eq=False)
+class HeldGroups:
+    """The group column of a ``--group`` fit, and the group of each fitting-sample and held-out row."""
+
+    column: str
+    fit: NDArray[Any]
+    held: NDArray[Any]
+
+
+def _across_groups(
+    groups: HeldGroups | None, eraser: Erasure, fit_sample: tuple[NDArray[np.floating], NDArray[Any]]
+) -> dict[str, Any]:
+    """The audit's ``group``, ``group_name`` and ``fitting`` for a ``--group`` fit (none without one)."""
+    if groups is None:
+        return {}
+    x_fit, codes = fit_sample
+    labels = np.asarray(eraser.classes_)[codes]
+    fit_groups = groups.fit if groups.fit.shape[0] == x_fit.shape[0] else None
+    return {"group": groups.held, "group_name": groups.column, "fitting": FittingRows(x_fit, labels, fit_groups)}
 
 
 def within_context(

@@ -33,6 +33,9 @@ class Chunk:
     contexts : mapping of str to ndarray of shape (n,)
         Each row's value of every context column the attribute is guarded within (``veil fit --given``), by
         column; empty without one.
+    group : ndarray of shape (n,) or None
+        Each row's group (an author, an account, a first name, a site: ``veil fit --group``), kept whole on one
+        side of the held-out split and in one fold of every reader; None without one.
     """
 
     index: NDArray[np.int64]
@@ -40,6 +43,7 @@ class Chunk:
     attribute: NDArray[Any]
     task: NDArray[Any] | None
     contexts: Mapping[str, NDArray[Any]] = field(default_factory=dict)
+    group: NDArray[Any] | None = None
 
     @classmethod
     def of_rows(

@@ -7,6 +7,8 @@ is chunked, streamed or spread over workers.
 
 from __future__ import annotations
 
+import hashlib
+
 import numpy as np
 from numpy.typing import NDArray
 
@@ -87,4 +89,44 @@ def give_every_class_both_parts(mask: NDArray[np.bool_], codes: NDArray[np.intp]
         rows = np.flatnonzero(codes == c)
         if rows.size >= 2 and (repaired[rows].all() or not repaired[rows].any()):
             repaired[rows[0]] = not repaired[rows[0]]
+    return repaired
+
+
+def group_hashes(groups: NDArray[np.generic]) -> NDArray[np.uint64]:
+    """A stable 64-bit key of each row's group, from the text of its value (the same in every process and run).
+
+    Python's own ``hash`` of a string changes from process to process; a digest of the value's text does not,
+    so a group lands on the same side of the split on every worker and in every chunk.
+    """
+    values, inverse = np.unique(np.asarray(groups).astype(str), return_inverse=True)
+    keys = np.array(
+        [int.from_bytes(hashlib.blake2b(value.encode(), digest_size=8).digest(), "little") for value in values],
+        dtype=np.uint64,
+    )
+    return keys[inverse.reshape(-1)]
+
+
+def held_out_groups(groups: NDArray[np.generic], *, fraction: float, seed: int) -> NDArray[np.bool_]:
+    """Boolean mask of the held-out rows when whole groups are held out: row ``i`` iff its group's hash is drawn.
+
+    Every row of a group falls on the same side, so the audit judges groups the fit never saw; the share of
+    held-out rows is ``fraction`` in expectation over groups (a few large groups make it vary more than rows do).
+    """
+    return held_out_rows(group_hashes(groups), fraction=fraction, seed=seed)
+
+
+def give_every_class_both_groups(
+    mask: NDArray[np.bool_], codes: NDArray[np.intp], groups: NDArray[np.generic]
+) -> NDArray[np.bool_]:
+    """:func:`give_every_class_both_parts` moving whole groups: a class on one side gets its first row's group moved.
+
+    A class carried by one group only stays on one side (moving it would put the group on both).
+    """
+    repaired = mask.copy()
+    names = np.asarray(groups).astype(str)
+    for c in np.unique(codes):
+        rows = np.flatnonzero(codes == c)
+        if np.unique(names[rows]).size >= 2 and (repaired[rows].all() or not repaired[rows].any()):
+            moved = names == names[rows[0]]
+            repaired[moved] = not repaired[rows[0]]
     return repaired
