@@ -53,6 +53,7 @@ def _sweep_values(text: str) -> list[int | None]:
 
 def _open_sample(args: argparse.Namespace, *, streamed: bool) -> Any:
     """The labelled sample ``--data`` and its label options name: read whole, or described for streaming."""
+    from veil.samples.groups import columns_to_read, with_group
     from veil.samples.sources import load_labelled_sample
     from veil.samples.streaming import open_stream
 
@@ -66,9 +67,11 @@ def _open_sample(args: argparse.Namespace, *, streamed: bool) -> Any:
         "joint": args.joint,
         "merge_classes": args.merge_classes,
         "incomplete": args.incomplete_labels,
-        "given": getattr(args, "given", None),
+        # A group column is read as a context column is, then set apart as the sample's group.
+        "given": columns_to_read(getattr(args, "given", None), getattr(args, "group", None)),
     }
-    return open_stream(args.data, **source) if streamed else load_labelled_sample(args.data, **source)
+    sample = open_stream(args.data, **source) if streamed else load_labelled_sample(args.data, **source)
+    return with_group(sample, getattr(args, "group", None))
 
 
 def _audit_thresholds(bands: list[tuple[str, tuple[float, float]]]) -> Any:
@@ -120,6 +123,7 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
         rows=args.audit_rows if streamed else None,
         thresholds=_audit_thresholds(args.audit_threshold),
         claims=None if args.claim is None else tuple(args.claim),
+        group=args.group,
     )
     reading = ReadingSpec()
     if streamed:

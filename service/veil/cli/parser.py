@@ -260,6 +260,14 @@ def build_parser() -> VeilParser:
         "give one column holding the combined value); a missing value is refused or dropped like a missing label",
     )
     fit.add_argument(
+        "--group",
+        metavar="COLUMN",
+        help="a column naming each row's group (an author, an account, a first name, a site), read as --given reads "
+        "its column: whole groups are held out, every probe's folds keep each group in one fold, and the audit "
+        "sets the linear probe on ordinary folds, on group folds and as a transfer probe (trained on the cleaned "
+        "fitting rows) side by side; the linear threat is judged on the worst of them",
+    )
+    fit.add_argument(
         "--pool-small-values",
         action="store_true",
         help=f"with --given, pool the values of a column that have a class of fewer than {MIN_CLASS_ROWS} fitting "
@@ -341,6 +349,12 @@ def build_parser() -> VeilParser:
         help="a categorical context column of the sample: every probe is then also trained and tested within each "
         "of its values, against what the context alone tells (default: the column the version was fitted with, "
         "--given, when the sample has it)",
+    )
+    audit.add_argument(
+        "--group",
+        metavar="COLUMN",
+        help="a column naming each row's group (an author, an account, a first name, a site): every probe's folds "
+        "keep each group in one fold, and the audit sets the linear probe on ordinary folds beside them",
     )
     audit.set_defaults(handler="audit")
 

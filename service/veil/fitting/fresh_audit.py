@@ -38,6 +38,7 @@ from veil.registry.card import card_claims, card_thresholds, json_safe, verdict_
 from veil.registry.records import Record
 from veil.samples.attributes import attribute_columns, is_table, present_rows
 from veil.samples.chunks import Sample
+from veil.samples.groups import group_key
 from veil.samples.splitting import held_out_rows
 
 AUDITS = "audits"
@@ -54,9 +55,12 @@ class FreshAudit:
 
 
 def _rows(
-    sample: Sample, *, max_rows: int | None, seed: int, chunk_rows: int
+    sample: Sample, *, max_rows: int | None, seed: int, chunk_rows: int, groups: list[NDArray[Any]] | None = None
 ) -> tuple[NDArray[np.floating], NDArray[Any], NDArray[Any] | None, NDArray[Any] | None]:
-    """The sample's rows, or a hash-drawn share of about ``max_rows`` of them, with their task and context labels."""
+    """The sample's rows, or a hash-drawn share of about ``max_rows`` of them, with their task and context labels.
+
+    Each kept row's group is appended to ``groups`` part by part, when the sample has a group column.
+    """
     share = 1.0 if max_rows is None else min(1.0, max_rows / max(sample.labelled_rows, 1))
     xs, zs, tasks, contexts = [], [], [], []
     for partition in sample.partitions(chunk_rows):
@@ -69,6 +73,8 @@ def _rows(
         audited = next(iter(chunk.contexts.values()), None)
         if audited is not None:
             contexts.append(audited[kept])
+        if groups is not None and chunk.group is not None:
+            groups.append(chunk.group[kept])
     if not xs or sum(len(z) for z in zs) == 0:
         raise DataError("the fresh sample has no labelled rows to audit")
     task, context = (np.concatenate(parts) if parts else None for parts in (tasks, contexts))
@@ -143,14 +149,22 @@ def audit_stored_version(
     if sample.dim != card["dim"]:
         raise DataError(f"the sample has {sample.dim} dimensions and {name} {stored.id} takes {card['dim']}")
     _check_guarded(sample.attribute_key, card, f"{name} {stored.id}")
-    settings = {"nonlinear": nonlinear, "seed": seed, "max_rows": max_rows}
+    settings: dict[str, Any] = {"nonlinear": nonlinear, "seed": seed, "max_rows": max_rows}
+    column = group_key(sample)
+    if column is not None:
+        # Only with a group: the key of an audit without one is what it was.
+        settings["group"] = column
     thresholds = card_thresholds(card)
+    group_parts: list[NDArray[Any]] = []
     with phase("reading the fresh sample"):
-        x, z, task, given = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows)
+        x, z, task, given = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows, groups=group_parts)
+    group = np.concatenate(group_parts) if group_parts else None
     context = None if given is None else (sample.context_keys[0], given)
     # Reading is cheap beside the probes: the key names the rows and labels themselves (the context too, only
     # when there is one, so that the key of an audit without one is what it was).
-    key = audit_key(stored.id, settings, x, z, task, *(() if given is None else (given,)))
+    key = audit_key(
+        stored.id, settings, x, z, task, *(() if given is None else (given,)), *(() if group is None else (group,))
+    )
     earlier = registry.record(name, stored.id, AUDITS, key)
     if earlier is not None:
         report = AuditReport.from_dict(earlier.body["audit"])
@@ -160,6 +174,8 @@ def audit_stored_version(
     if x.shape[0] < sample.labelled_rows:
         kept_notes.append(f"audited on a hash-drawn sample of {x.shape[0]} of the {sample.labelled_rows} rows")
     if is_table(z):
+        if group is not None:
+            raise DataError("group folds (--group) read one categorical attribute; audit several without --group")
         attributes = _audit_each(stored.artifact, x, z, task, context, nonlinear=nonlinear, seed=seed)
         report = attributes[0][1]
     else:
@@ -175,6 +191,7 @@ def audit_stored_version(
             folds=audit_folds(codes.astype(np.intp)),
             nonlinear=nonlinear,
             random_state=seed,
+            **_grouped(group, column),
         )
         fitted = {str(label) for label in card["attribute"]["classes"]}
         unseen = sorted({str(label) for label in labels} - fitted)
@@ -202,6 +219,7 @@ def audit_stored_version(
                 "attribute": sample.attribute_key,
                 "task": sample.task_key,
                 "context": sample.context_keys[0] if sample.context_keys else None,
+                **({} if column is None else {"group": column}),
             },
             "settings": settings,
             "audit": report.to_dict(),
@@ -213,6 +231,11 @@ def audit_stored_version(
     with phase("storing the audit"):
         record = registry.add_record(name, stored.id, AUDITS, body, key=key)
     return FreshAudit(record, report, Verdict.from_dict(judged), already_stored=False)
+
+
+def _grouped(group: NDArray[Any] | None, column: str | None) -> dict[str, Any]:
+    """The fresh audit's ``group`` and ``group_name`` (none without a group column)."""
+    return {} if group is None else {"group": group, "group_name": column}
 
 
 def _guarded_attributes(card: Mapping[str, Any]) -> list[str]:

@@ -158,6 +158,11 @@ def _prepare(sample: Sample, request: FitRequest) -> _Setup:
         if group_key(sample) is not None:
             raise DataError("group folds (--group) read one categorical attribute; fit several without --group")
     check_context_options(sample, spec)
+    if group_key(sample) != request.audit.group:
+        raise DataError(
+            f"the request's group column is {request.audit.group!r} and the sample was read with "
+            f"{group_key(sample)!r}: read it with veil.samples.groups.with_group(sample, column)"
+        )
     by_class = exact_moments and _needs_class_moments(spec, eraser)
     streams_inlp = streamed and isinstance(eraser, INLP) and eraser.classifier == "moments"
     if reading.engine == "dask" and streams_inlp:

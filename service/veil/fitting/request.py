@@ -176,6 +176,10 @@ class AuditSpec:
         is built to remove (see :meth:`FitRequest.claims`): the verdict's headline judges these and lists the
         others, measured, as not claimed.  Widen a claim a method does not make only on evidence (a transport
         version that nonlinear probes do not read on fresh samples), or narrow it.
+    group : str, optional
+        The sample's group column (``--group``; the sample is read with it, see :mod:`veil.samples.groups`):
+        whole groups are held out, the probes' folds keep each group in one fold, and the audit reads the
+        linear probe on ordinary folds, on group folds and as a transfer probe.
     """
 
     nonlinear: bool = True
@@ -183,6 +187,7 @@ class AuditSpec:
     thresholds: AuditThresholds | None = None
     live_thresholds: AlertThresholds | None = None
     claims: tuple[str, ...] | None = None
+    group: str | None = None
 
     def __post_init__(self) -> None:
         if self.rows is not None and self.rows < 2:
@@ -208,6 +213,8 @@ class AuditSpec:
             "thresholds": (self.thresholds or AuditThresholds()).to_dict(),
             "live_thresholds": (self.live_thresholds or AlertThresholds()).to_dict(),
             "claims": None if self.claims is None else list(self.claims),
+            # Only when set: the request of a fit without a group reads as it did before groups.
+            **({} if self.group is None else {"group": self.group}),
         }
 
 
