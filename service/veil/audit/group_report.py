@@ -129,6 +129,18 @@ class GroupAudit:
             )  # fmt: skip
         return rows
 
+    def headline(self) -> str:
+        """The linear probe after erasure read three ways, in one line, and the reading the verdict judges."""
+        readings = ", ".join(
+            f"{READING_LABELS[name]} {after.accuracy:.3f}" for name, after, _ in self.linear_readings()
+        )
+        name, after = self.worst_linear()
+        column = "" if self.column is None else f" by {self.column!r}"
+        return (
+            f"linear probe after: {readings} (majority {after.majority:.3f}; {self.groups} groups{column}); "
+            f"judged on {READING_LABELS[name]}"
+        )
+
     def describe(self) -> str:
         """One sentence on the groups: how many, how many folds, and whether the split kept them apart."""
         column = "the group column" if self.column is None else f"group column {self.column!r}"

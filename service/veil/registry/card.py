@@ -17,6 +17,7 @@ from importlib import metadata
 from typing import Any
 
 from veil.audit.context_report import ContextAudit
+from veil.audit.group_report import NO_GROUP_FOLDS
 from veil.audit.points import Sweep, value_text
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
 from veil.checks.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
@@ -456,6 +457,7 @@ def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
         )
     if audit.context is not None:
         rows.append(("within the context", context_headline(audit.context)))
+    rows.append(("across groups", NO_GROUP_FOLDS if audit.groups is None else audit.groups.headline()))
     if audit.ranking is not None:
         rk = audit.ranking
         rows.append((f"NDKL@{rk.k}", f"{rk.ndkl_before:.4f} → {rk.ndkl_after:.4f} (0: every prefix at the base rates)"))
@@ -532,8 +534,9 @@ def fresh_audits_text(records: list[tuple[int, dict[str, Any]]]) -> list[str]:
         verdict = Verdict.from_dict(body["verdict"])
         lines.append(
             f"  {number}. {body['audited_at']} by {body['audited_by']}: {data['attribute']} on {data['audited_rows']} "
-            f"rows of {', '.join(data['files']) or 'a sample'} (sha256 {data['fingerprint_sha256'][:12]}), "
-            f"{verdict.sentence()}"
+            f"rows of {', '.join(data['files']) or 'a sample'} (sha256 {data['fingerprint_sha256'][:12]})"
+            + ("" if "group" not in data else f", group folds by {data['group']!r}")
+            + f", {verdict.sentence()}"
         )
     return lines
 
