@@ -9,7 +9,7 @@ from __future__ import annotations
 import html
 from collections.abc import Sequence
 
-from veil.audit.group_report import NO_GROUP_FOLDS
+from veil.audit.group_report import NO_GROUP_FOLDS, READING_LABELS
 from veil.audit.report import AuditReport
 
 TITLE = "Across groups"
@@ -36,7 +36,7 @@ def groups_section(audit: AuditReport) -> str:
     text = (
         f"Every probe of this audit ran on group folds. {groups.describe()[0].upper()}{groups.describe()[1:]}. "
         "The linear probe read three ways, side by side; the verdict judges the linear threat on the worst of "
-        f"them, here the {name.replace('grouped', 'group')} reading, {after.with_interval()}."
+        f"them, here the {READING_LABELS[name]} reading, {after.with_interval()}."
     )
     header = ["reading", "before", "after [95%]", "majority", "what it means"]
     parts = [f"<h2>{TITLE}</h2>", f'<p class="muted">{html.escape(text)}</p>', table(header, groups.rows())]
