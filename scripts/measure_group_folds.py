@@ -24,7 +24,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import fit_and_audit
-from veil.erasers import LEACE, INLP, MeanProjection
+from veil.erasers import INLP, LEACE, MeanProjection
 from veil.samples.harbourline import load_harbourline_profiles
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -33,7 +33,8 @@ ROOT = Path(__file__).resolve().parents[1]
 def vocabulary_names() -> set[str]:
     """Every first name the sample generator draws from (its narrow and wide lists)."""
     spec = importlib.util.spec_from_file_location("make_profile_sample", ROOT / "scripts" / "make_profile_sample.py")
-    assert spec is not None and spec.loader is not None
+    assert spec is not None
+    assert spec.loader is not None
     module = importlib.util.module_from_spec(spec)
     sys.modules[spec.name] = module
     spec.loader.exec_module(module)

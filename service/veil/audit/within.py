@@ -148,7 +148,7 @@ def context_audit(
     -------
     ContextAudit
     """
-    values, groups = context_groups(given, codes.size)
+    values, value_of_row = context_groups(given, codes.size)
     names = PROBES if nonlinear else ("linear",)
     read: list[ContextValue] = []
     skipped: list[SkippedValue] = []
@@ -156,7 +156,7 @@ def context_audit(
     predicted: dict[tuple[str, str], NDArray[np.intp]] = {}
     neighbours: list[tuple[int, tuple[float, float, float]]] = []
     for g, value in enumerate(values):
-        rows = np.flatnonzero(groups == g)
+        rows = np.flatnonzero(value_of_row == g)
         reason = skip_reason(codes[rows], classes)
         value_groups = None if groups is None else groups[rows]
         if reason is None and value_groups is not None:
