@@ -37,6 +37,8 @@ from veil.checks.thresholds import AuditThresholds
 from veil.checks.verdict import judge_audit
 from veil.erasers import INLP, LEACE
 from veil.errors import DataError
+from veil.fitting.job import fit_version
+from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, ReadingSpec, StoreSpec
 from veil.registry import Registry
 from veil.registry.card import card_audit, format_card
 from veil.samples.groups import columns_to_read, group_key, with_group
@@ -313,3 +315,32 @@ def test_audit_takes_groups_and_fitting_rows_from_the_python_api() -> None:
     assert report.groups.transfer_after is not None
     with pytest.raises(ValueError, match="categorical attribute"):
         audit(eraser, x[~fit], x[~fit, :1], group=names[~fit], nonlinear=False)
+
+
+def test_a_streamed_fit_with_groups_holds_out_and_reads_what_the_fit_in_memory_does(tmp_path: Path) -> None:
+    files = _files(tmp_path)
+    path = files["parquet"][0]
+    options = {"attribute": "gender", "given": columns_to_read(None, "first_name")}
+    request = FitRequest(MethodSpec("leace", holdout=0.3), StoreSpec("g"), audit=AuditSpec(nonlinear=False,
+                         group="first_name"))  # fmt: skip
+    whole = fit_version(with_group(load_labelled_sample(path, **options), "first_name"), request,
+                        registry=Registry(tmp_path / "whole"))  # fmt: skip
+    streamed_request = dataclasses.replace(request, reading=ReadingSpec(chunk_rows=150))
+    streamed = fit_version(with_group(open_stream(path, **options), "first_name"), streamed_request,
+                           registry=Registry(tmp_path / "streamed"))  # fmt: skip
+    assert whole.audit.groups is not None
+    assert whole.audit.groups.shared_groups == 0
+    # The same names held out and the same rows judged, in the same order: the raw rows read alike by every
+    # reading.  (After erasure the maps agree to rounding only, the streamed moments merged chunk by chunk.)
+    one, other = whole.audit.groups, streamed.audit.groups
+    assert other is not None
+    assert (other.groups, other.fit_groups, other.shared_groups) == (one.groups, one.fit_groups, one.shared_groups)
+    assert streamed.audit.n_heldout == whole.audit.n_heldout
+    assert (other.ordinary_before, other.grouped_before, other.transfer_before) == (
+        one.ordinary_before,
+        one.grouped_before,
+        one.transfer_before,
+    )
+    # A request whose group the sample was not read with is refused before any row is read.
+    with pytest.raises(DataError, match="group column"):
+        fit_version(load_labelled_sample(path, attribute="gender"), request, registry=Registry(tmp_path / "r"))
