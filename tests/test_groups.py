@@ -315,6 +315,10 @@ def test_audit_takes_groups_and_fitting_rows_from_the_python_api() -> None:
     assert report.groups.transfer_after is not None
     with pytest.raises(ValueError, match="categorical attribute"):
         audit(eraser, x[~fit], x[~fit, :1], group=names[~fit], nonlinear=False)
+    # A class whose held-out rows all come from one name cannot be read by a probe that never saw that name.
+    lone = (names[~fit] == names[~fit][0]) | (z[~fit] != z[~fit][0])
+    with pytest.raises(ValueError, match=f"class {str(z[~fit][0])!r} is carried by 1 group"):
+        audit(eraser, x[~fit][lone], z[~fit][lone], group=names[~fit][lone], nonlinear=False)
 
 
 def test_a_streamed_fit_with_groups_holds_out_and_reads_what_the_fit_in_memory_does(tmp_path: Path) -> None:
@@ -344,3 +348,17 @@ def test_a_streamed_fit_with_groups_holds_out_and_reads_what_the_fit_in_memory_d
     # A request whose group the sample was not read with is refused before any row is read.
     with pytest.raises(DataError, match="group column"):
         fit_version(load_labelled_sample(path, attribute="gender"), request, registry=Registry(tmp_path / "r"))
+
+
+def test_veil_fit_refuses_group_folds_the_held_out_names_cannot_make_naming_the_class(tmp_path: Path) -> None:
+    rng = np.random.default_rng(0)
+    # Six names, each class on three: holding out a fifth of them leaves a class on one name or none.
+    names = np.array([f"n{i % 6}" for i in range(300)])
+    z = np.where(np.array([i % 6 for i in range(300)]) % 2 == 0, "a", "b")
+    np.savez(tmp_path / "few.npz", embedding=rng.normal(size=(300, 8)), gender=z, first_name=names)
+    refused = run("fit", "--data", tmp_path / "few.npz", "--method", "leace", "--attribute", "gender", "--group",
+                  "first_name", "--name", "f", "--registry", tmp_path / "registry", "--probes", "linear")  # fmt: skip
+    assert refused.code != 0
+    assert "--group first_name: class 'a' is carried by 1 group of the audited rows" in refused.err
+    assert "unexpected failure" not in refused.err
+    assert not (tmp_path / "registry" / "f").exists()

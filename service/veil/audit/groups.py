@@ -41,6 +41,20 @@ def group_codes(values: object, n_rows: int) -> tuple[NDArray[np.generic], NDArr
     return names, codes.reshape(-1).astype(np.intp)
 
 
+def group_fold_problem(labels: NDArray[Any], groups: NDArray[Any]) -> str | None:
+    """Why the readers cannot keep each group in one fold on these rows, naming the class (None: they can)."""
+    classes, codes = np.unique(np.asarray(labels).astype(str), return_inverse=True)
+    _, index = group_codes(groups, codes.size)
+    for code, label in enumerate(classes):
+        carriers = np.unique(index[codes.reshape(-1) == code]).size
+        if carriers < 2:
+            return (
+                f"class {str(label)!r} is carried by {carriers} group of the audited rows; group folds need every "
+                "class in at least 2 groups (more groups, a larger held-out share, or no group column)"
+            )
+    return None
+
+
 @dataclass(frozen=True)
 class FittingRows:
     """The rows the eraser was fitted on (or a sample of them), for the transfer reader.

@@ -13,7 +13,7 @@ from sklearn.model_selection import GroupKFold, StratifiedGroupKFold, train_test
 from sklearn.utils.validation import check_array, check_is_fitted
 
 from veil.audit import geometry, probes, ranking, readers
-from veil.audit.groups import FittingRows, group_audit, group_codes
+from veil.audit.groups import FittingRows, group_audit, group_codes, group_fold_problem
 from veil.audit.report import (
     FRESH_KFOLD,
     HELD_OUT_KFOLD,
@@ -261,7 +261,7 @@ def _audit_map(
         if group_index is None:
             used_folds = probes.probe_folds(codes, folds)
         else:
-            used_folds = _group_folds(codes, group_index, folds)
+            used_folds = _group_folds(codes, attribute.labels, group_index, folds)
         sizes = readers.fold_sizes(codes, folds, groups=group_index, random_state=random_state)
         scores: dict[str, tuple[ProbeScore, ProbeScore]] = {}
         for name in PROBES if nonlinear else ("linear",):
@@ -444,11 +444,11 @@ def _group_index(grouping: _Grouping | None, categorical: bool, n_rows: int) -> 
     return group_codes(grouping.values, n_rows)[1]
 
 
-def _group_folds(codes: NDArray[np.intp], groups: NDArray[np.intp], folds: int) -> int:
-    try:
-        return probes.group_folds(codes, groups, folds)
-    except ValueError as error:
-        raise ValueError(f"cannot keep each group in one fold: {error}") from None
+def _group_folds(codes: NDArray[np.intp], labels: NDArray[Any], groups: NDArray[np.intp], folds: int) -> int:
+    problem = group_fold_problem(labels[codes], groups)
+    if problem is not None:
+        raise ValueError(f"cannot keep each group in one fold: {problem}")
+    return probes.group_folds(codes, groups, folds)
 
 
 def _strongest_nonlinear(leakage: Leakage) -> str | None:

@@ -26,6 +26,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import audit_artifact
+from veil.audit.groups import group_fold_problem
 from veil.audit.report import AuditReport
 from veil.checks.verdict import Verdict
 from veil.defaults import AUDIT_ROWS, STREAM_CHUNK_ROWS
@@ -182,6 +183,9 @@ def audit_stored_version(
         labels, codes = np.unique(z, return_inverse=True)
         if labels.size < 2:
             raise DataError(f"the fresh sample holds one class of {sample.attribute_key!r}; an audit needs two or more")
+        problem = None if group is None else group_fold_problem(z, group)
+        if problem is not None:
+            raise DataError(f"--group {column}: {problem}")
         report = audit_artifact(
             stored.artifact,
             x,

@@ -11,13 +11,14 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import audit
-from veil.audit.groups import FittingRows
+from veil.audit.groups import FittingRows, group_fold_problem
 from veil.audit.points import Sweep
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
 from veil.checks.reference import REFERENCE_FILE, AttributeReference, ContinuousReference, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
 from veil.erasers import Erasure
+from veil.errors import DataError
 from veil.fitting.request import FitRequest
 from veil.maps.artifact import MapArtifact
 from veil.progress import phase
@@ -135,7 +136,7 @@ def audit_and_store(
         # The audit reports each probe's folds as a stage of its own.
         report = audit(
             eraser, x_held, z_held, task=task_held, **within_context(held_context, None, z_held), folds=folds,
-            nonlinear=nonlinear, random_state=seed, **_across_groups(groups, eraser, fit_sample),
+            nonlinear=nonlinear, random_state=seed, **_across_groups(groups, eraser, fit_sample, z_held),
         )  # fmt: skip
         x_plot = x_held
         fit_codes = fit_sample[1]
@@ -194,11 +195,17 @@ class HeldGroups:
 
 
 def _across_groups(
-    groups: HeldGroups | None, eraser: Erasure, fit_sample: tuple[NDArray[np.floating], NDArray[Any]]
+    groups: HeldGroups | None,
+    eraser: Erasure,
+    fit_sample: tuple[NDArray[np.floating], NDArray[Any]],
+    z_held: NDArray[Any],
 ) -> dict[str, Any]:
     """The audit's ``group``, ``group_name`` and ``fitting`` for a ``--group`` fit (none without one)."""
     if groups is None:
         return {}
+    problem = group_fold_problem(z_held, groups.held)
+    if problem is not None:
+        raise DataError(f"--group {groups.column}: {problem}")
     x_fit, codes = fit_sample
     labels = np.asarray(eraser.classes_)[codes]
     fit_groups = groups.fit if groups.fit.shape[0] == x_fit.shape[0] else None
