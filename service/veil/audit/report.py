@@ -9,6 +9,7 @@ from typing import Any
 
 from veil.audit.context_report import ContextAudit
 from veil.audit.glossary import MEANINGS, PROBE_MODELS, REGRESSION_MODELS
+from veil.audit.rows_curve import RowsNeeded, rows_needed_lines
 from veil.audit.scores import PROBE_LABELS, PROBES, ProbeScore
 
 __all__ = [
@@ -286,6 +287,9 @@ class AuditReport:
     protocol: ProbeProtocol | None = None
     ranking: RankingFairness | None = None
     context: ContextAudit | None = None
+    #: The held-out linear leakage against the fitting rows and the rows it projects (see
+    #: :mod:`veil.audit.rows_curve`); None where it was not measured (an audit of a stored map, an older card).
+    rows_needed: RowsNeeded | None = None
 
     @property
     def balanced_chance(self) -> float | None:
@@ -305,6 +309,7 @@ class AuditReport:
         protocol = data.get("protocol")
         ranking = data.get("ranking")
         context = data.get("context")
+        rows_needed = data.get("rows_needed")
         return cls(
             method=data["method"],
             rank=data["rank"],
@@ -318,6 +323,7 @@ class AuditReport:
             protocol=None if protocol is None else ProbeProtocol(**protocol),
             ranking=None if ranking is None else RankingFairness.from_dict(ranking),
             context=None if context is None else ContextAudit.from_dict(context),
+            rows_needed=None if rows_needed is None else RowsNeeded.from_dict(rows_needed),
         )
 
     @classmethod
@@ -424,6 +430,8 @@ class AuditReport:
         lines += [f"{name:{width}}  {b:>{column}}  {a:>{column}}" for name, b, a in rows]
         if self.context is not None:
             lines += self.context.lines()
+        if self.rows_needed is not None:
+            lines += rows_needed_lines(self.rows_needed)
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
 

@@ -31,6 +31,9 @@ SweepValue = int | None
 #: value; transport fits one class transport per value on the fitting sample's rows.
 CONTEXT_METHODS = ("leace", "meanproj", "transport")
 
+#: When the audit measures the rows a fit needs (:class:`AuditSpec`'s ``rows_curve``).
+ROWS_CURVE = ("auto", "always", "never")
+
 
 @dataclass(frozen=True)
 class MethodSpec:
@@ -176,6 +179,10 @@ class AuditSpec:
         is built to remove (see :meth:`FitRequest.claims`): the verdict's headline judges these and lists the
         others, measured, as not claimed.  Widen a claim a method does not make only on evidence (a transport
         version that nonlinear probes do not read on fresh samples), or narrow it.
+    rows_curve : {"auto", "always", "never"}, default="auto"
+        Whether the audit refits the method on 1/8, 1/4 and 1/2 of the fitting rows to measure the rows a fit
+        needs (:mod:`veil.fitting.rows`): ``auto`` for the methods whose refits are quick, ``always`` for every
+        method (INLP and R-LACE refit slowly), ``never`` to skip it.
     """
 
     nonlinear: bool = True
@@ -183,8 +190,11 @@ class AuditSpec:
     thresholds: AuditThresholds | None = None
     live_thresholds: AlertThresholds | None = None
     claims: tuple[str, ...] | None = None
+    rows_curve: str = "auto"
 
     def __post_init__(self) -> None:
+        if self.rows_curve not in ROWS_CURVE:
+            raise DataError(f"unknown rows_curve {self.rows_curve!r}; choose one of {', '.join(ROWS_CURVE)}")
         if self.rows is not None and self.rows < 2:
             raise DataError(f"the audit sample needs at least 2 rows, got {self.rows}")
         if self.claims is not None:
@@ -208,6 +218,7 @@ class AuditSpec:
             "thresholds": (self.thresholds or AuditThresholds()).to_dict(),
             "live_thresholds": (self.live_thresholds or AlertThresholds()).to_dict(),
             "claims": None if self.claims is None else list(self.claims),
+            "rows_curve": self.rows_curve,
         }
 
 

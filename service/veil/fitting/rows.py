@@ -1,0 +1,88 @@
+"""The rows a fit needs, measured during ``veil fit``'s audit: when it is measured, and on which rows.
+
+The audit refits the method on 1/8, 1/4 and 1/2 of the fitting rows and
+fits a curve to the held-out linear excess (:mod:`veil.audit.rows_curve`,
+:mod:`veil.audit.rows_measure`).  By default (``rows_curve="auto"``) only the
+methods whose refits are quick are measured; measured on the committed
+sample (2,400 fitting rows, 384 dimensions, one core; docs/methods.md,
+"Rows needed"), the three refits with their readers added:
+
+==============  ===================================================================
+method          default
+==============  ===================================================================
+leace           measured
+meanproj        measured
+transport       measured (its refits cost about as much as LEACE's)
+inlp, rlace     not measured: their refits are iterative and cost most of a minute
+                and more; ``--rows-curve always`` measures them
+==============  ===================================================================
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.audit.report import AuditReport
+from veil.audit.rows_curve import RowsNeeded
+from veil.audit.rows_measure import measure_rows_needed
+from veil.checks.thresholds import AuditThresholds
+from veil.erasers import Erasure
+from veil.fitting.request import FitRequest
+from veil.progress import phase
+
+#: The methods whose rows-needed curve the default fit measures (see the module's docstring).
+QUICK_METHODS = ("leace", "meanproj", "transport")
+
+
+@dataclass(frozen=True)
+class RefitRows:
+    """The fitting rows the refits draw from: embeddings, attribute labels and each row's context value (or None)."""
+
+    x: NDArray[np.floating]
+    z: NDArray[Any]
+    context: NDArray[Any] | None = None
+
+
+def skip_reason(request: FitRequest, refit: RefitRows | None) -> str | None:
+    """Why the fit's audit does not measure the rows needed (None: it does)."""
+    spec, mode = request.fit, request.audit.rows_curve
+    if mode == "never":
+        return "not asked for (--rows-curve never)"
+    if refit is None:
+        return "the curve reads one categorical attribute; this version erases several or a continuous one"
+    if len(spec.context_columns) > 1:
+        return "the refits guard one context column; this version guards several"
+    if mode == "auto" and spec.method not in QUICK_METHODS:
+        return f"{spec.method} refits slowly, three refits more than the fit itself; --rows-curve always measures it"
+    return None
+
+
+def rows_needed(
+    eraser: Erasure,
+    request: FitRequest,
+    refit: RefitRows | None,
+    report: AuditReport,
+    held: tuple[NDArray[np.floating], NDArray[Any]],
+    *,
+    held_context: NDArray[Any] | None,
+    fit_rows: int,
+    folds: int,
+) -> RowsNeeded:
+    """The rows-needed record of a fit's audit: measured, or why not."""
+    x_held, z_held = held
+    reason = skip_reason(request, refit)
+    if reason is not None or refit is None:
+        return RowsNeeded(dim=int(x_held.shape[1]), heldout=int(x_held.shape[0]), population=None, reason=reason)
+    thresholds = request.audit.thresholds or AuditThresholds()
+    with phase("rows needed"):
+        return measure_rows_needed(
+            eraser, refit.x, refit.z, report, x_held,
+            np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp),
+            full_rows=fit_rows, threshold=thresholds.linear_gap.warn, folds=folds, seed=request.fit.seed,
+            fit_context=refit.context if request.fit.given is not None else None,
+            held_context=held_context, context_threshold=thresholds.context_linear_gap.warn,
+        )  # fmt: skip
