@@ -55,7 +55,7 @@ def _population_excess(score: ProbeScore) -> float:
     return score.accuracy - score.majority
 
 
-def _within_excess(
+def within_excess(
     erased: NDArray[np.floating], codes: NDArray[np.intp], groups: NDArray[np.intp], *, folds: int, seed: int
 ) -> float | None:
     """The linear reader within each context value of the erased rows, pooled by rows, minus the floor.
@@ -130,8 +130,8 @@ def measure_rows_needed(
         raise ValueError("the rows-needed curve reads a categorical attribute (class labels)")
     fit_codes = np.unique(z_fit, return_inverse=True)[1].astype(np.intp)
     draws = nested_shares(fit_codes, SHARES, seed)
-    within = held_context is not None and report.context is not None and report.context.after
-    groups = None if not within else context_groups(held_context, codes_held.size)[1]
+    by_value = held_context is not None and report.context is not None and report.context.after
+    groups = None if not by_value else context_groups(held_context, codes_held.size)[1]
     rows: list[int] = []
     population: list[float] = []
     context: list[float] = []
@@ -146,11 +146,11 @@ def measure_rows_needed(
             score = probes.classification_score(probes.linear_probe(seed), erased, codes_held, folds=folds,
                                                 random_state=seed)  # fmt: skip
             if groups is not None:
-                within_excess = _within_excess(erased, codes_held, groups, folds=folds, seed=seed)
-                if within_excess is None:
+                within = within_excess(erased, codes_held, groups, folds=folds, seed=seed)
+                if within is None:
                     groups = None
                 else:
-                    context.append(within_excess)
+                    context.append(within)
         rows.append(int(drawn.size))
         population.append(_population_excess(score))
     dim = int(x_held.shape[1])
