@@ -162,8 +162,9 @@ class LearningCurve:
             scale=law.scale,
             exponent=law.exponent,
             expected=expected,
-            projected_rows=math.ceil(law.rows_for(threshold)),
-            fastest_rows=math.ceil(rows[-1] * max(expected, 0.0) / threshold),
+            # Rounded to 6 decimals first: round-off in a crossing that falls on a whole row must not add a row.
+            projected_rows=math.ceil(round(law.rows_for(threshold), 6)),
+            fastest_rows=math.ceil(round(rows[-1] * max(expected, 0.0) / threshold, 6)),
         )
 
     @property

@@ -279,8 +279,8 @@ def build_parser() -> VeilParser:
         choices=("auto", "always", "never"),
         default="auto",
         help="refit the method on 1/8, 1/4 and 1/2 of the fitting rows to project the rows that bring the held-out "
-        "linear leakage under the linear threat's warn level: auto for leace, meanproj and transport (quick "
-        "refits), always for every method (inlp and rlace too), never to skip it",
+        "linear leakage under the linear threat's warn level: auto for leace, meanproj and rlace (quick "
+        "refits), always for every method (inlp and transport too), never to skip it",
     )
     fit.add_argument(
         "--sweep",

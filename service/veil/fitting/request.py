@@ -182,7 +182,7 @@ class AuditSpec:
     rows_curve : {"auto", "always", "never"}, default="auto"
         Whether the audit refits the method on 1/8, 1/4 and 1/2 of the fitting rows to measure the rows a fit
         needs (:mod:`veil.fitting.rows`): ``auto`` for the methods whose refits are quick, ``always`` for every
-        method (INLP and R-LACE refit slowly), ``never`` to skip it.
+        method (INLP and transport refit slowly), ``never`` to skip it.
     """
 
     nonlinear: bool = True
