@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 import shutil
@@ -18,7 +19,7 @@ from sklearn.model_selection import StratifiedKFold, cross_val_predict
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
-from veil.audit import audit
+from veil.audit import audit, rows_measure
 from veil.audit.report import AuditReport
 from veil.audit.rows_curve import EXPONENT_BOUNDS, NOT_RECORDED, LearningCurve, RowsNeeded, fit_power_law
 from veil.audit.rows_measure import measure_rows_needed, nested_shares
@@ -29,7 +30,8 @@ from veil.registry import Registry
 from veil.registry.card import format_card
 from veil.reporting import version_report
 from veil.samples.harbourline import SAMPLE_FILE
-from veil.samples.sources import load_labelled_sample
+from veil.samples.sources import LabelledSample, load_labelled_sample
+from veil.samples.splitting import give_every_class_both_parts, holdout_mask
 
 from .test_cli import run
 from .test_fresh_audit import _population, _save
@@ -258,3 +260,38 @@ def test_versions_stored_before_say_the_curve_was_not_measured(tmp_path: Path) -
         page = version_report(Registry(registry), "legacy", number)
         assert "<h2>Rows needed</h2>" in page
         assert NOT_RECORDED.capitalize() in page
+
+
+def test_the_refits_fit_on_fitting_rows_only_and_read_the_audited_held_out_rows(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    x, z, _ = _population(1, n=1200)
+    held = give_every_class_both_parts(
+        holdout_mask(x.shape[0], fraction=0.2, seed=0), np.unique(z, return_inverse=True)[1]
+    )
+    fitted: list[NDArray[np.float64]] = []
+    read: list[NDArray[np.float64]] = []
+
+    class Recorded(LEACE):
+        def fit(self, X: NDArray[np.float64], z: object = None, **kwargs: object) -> Recorded:  # type: ignore[override]
+            fitted.append(np.asarray(X))
+            return super().fit(X, z, **kwargs)  # type: ignore[return-value]
+
+        def transform(self, X: NDArray[np.float64]) -> NDArray[np.float64]:
+            read.append(np.asarray(X))
+            return super().transform(X)
+
+    monkeypatch.setattr(rows_measure, "clone", lambda eraser: Recorded(**eraser.get_params()))
+    sample = LabelledSample(embeddings=x, attribute=z, attribute_key="region", task=None, task_key=None, files={})
+    outcome = fit_version(sample, FitRequest(MethodSpec("leace"), StoreSpec("held")), registry=Registry(tmp_path))
+    assert [rows.shape[0] for rows in fitted] == list(outcome.audit.rows_needed.population.rows[:-1])  # type: ignore[union-attr]
+    # Each refit's rows are fitting rows (found in x among the rows not held out, exactly), nested one in the next.
+    where = {row.tobytes(): index for index, row in enumerate(x)}
+    indices = [np.array([where[row.tobytes()] for row in rows]) for rows in fitted]
+    for smaller, larger in itertools.pairwise(indices):
+        assert not held[larger].any()
+        assert set(smaller) <= set(larger)
+    # Each refit reads exactly the held-out rows the audit read, in the same order.
+    assert len(read) == 3
+    for rows in read:
+        np.testing.assert_array_equal(rows, x[held])

@@ -25,8 +25,10 @@ from veil.audit.report import AuditReport, ProbeScore
 from veil.audit.rows_curve import MIN_POINTS, SHARES, LearningCurve, RowsNeeded
 from veil.audit.within import context_groups, skip_reason
 from veil.erasers._base import Erasure
-from veil.progress import phase
+from veil.progress import advance
 
+#: The progress stage of the refits (one bar: a bar per refit would crowd out the fit's others).
+STAGE = "rows needed (refits)"
 #: The fewest fitting rows of each class a refit is given (fewer: that share is left out of the curve).
 MIN_REFIT_CLASS_ROWS = 5
 
@@ -46,7 +48,12 @@ def nested_shares(codes: NDArray[np.intp], shares: tuple[float, ...], seed: int)
         if size < 2 * counts.size or counts[counts > 0].min() < 2 or size >= rows.size:
             drawn.append(np.array([], dtype=np.intp))
             continue
-        rows = np.sort(train_test_split(rows, train_size=size, stratify=codes[rows], random_state=seed)[0])
+        try:
+            kept = train_test_split(rows, train_size=size, stratify=codes[rows], random_state=seed)[0]
+        except ValueError:  # too few rows of a class for both sides of a stratified draw
+            drawn.append(np.array([], dtype=np.intp))
+            continue
+        rows = np.sort(kept)
         previous = share
         drawn.append(rows)
     return drawn[::-1]
@@ -136,12 +143,13 @@ def measure_rows_needed(
     rows: list[int] = []
     population: list[float] = []
     context: list[float] = []
-    for drawn in draws:
+    for step, drawn in enumerate(draws, start=1):
+        advance(STAGE, step - 1, len(draws))
         if drawn.size == 0 or np.bincount(fit_codes[drawn]).min() < MIN_REFIT_CLASS_ROWS:
             continue
         refit = clone(eraser)
         given = {} if fit_context is None else {"given": fit_context[drawn]}
-        with phase(f"rows needed: refitting on {drawn.size} rows"), warnings.catch_warnings():
+        with warnings.catch_warnings():
             # A refit on fewer rows warns as the fit did (an INLP that stops early): the card has the fit's notes.
             warnings.simplefilter("ignore")
             refit.fit(x_fit[drawn], z_fit[drawn], **given)
@@ -156,6 +164,7 @@ def measure_rows_needed(
                     context.append(within)
         rows.append(int(drawn.size))
         population.append(_population_excess(score))
+    advance(STAGE, len(draws), len(draws))
     dim = int(x_held.shape[1])
     if len(rows) + 1 < MIN_POINTS:
         return RowsNeeded(

@@ -37,7 +37,6 @@ from veil.audit.rows_measure import measure_rows_needed
 from veil.checks.thresholds import AuditThresholds
 from veil.erasers import Erasure
 from veil.fitting.request import FitRequest
-from veil.progress import phase
 
 #: The methods whose rows-needed curve the default fit measures (see the module's docstring).
 QUICK_METHODS = ("leace", "meanproj", "rlace")
@@ -83,11 +82,10 @@ def rows_needed(
     if reason is not None or refit is None:
         return RowsNeeded(dim=int(x_held.shape[1]), heldout=int(x_held.shape[0]), population=None, reason=reason)
     thresholds = request.audit.thresholds or AuditThresholds()
-    with phase("rows needed"):
-        return measure_rows_needed(
-            eraser, refit.x, refit.z, report, x_held,
-            np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp),
-            full_rows=fit_rows, threshold=thresholds.linear_gap.warn, folds=folds, seed=request.fit.seed,
-            fit_context=refit.context if request.fit.given is not None else None,
-            held_context=held_context, context_threshold=thresholds.context_linear_gap.warn,
-        )  # fmt: skip
+    return measure_rows_needed(
+        eraser, refit.x, refit.z, report, x_held,
+        np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp),
+        full_rows=fit_rows, threshold=thresholds.linear_gap.warn, folds=folds, seed=request.fit.seed,
+        fit_context=refit.context if request.fit.given is not None else None,
+        held_context=held_context, context_threshold=thresholds.context_linear_gap.warn,
+    )  # fmt: skip
