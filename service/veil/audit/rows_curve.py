@@ -126,8 +126,8 @@ class LearningCurve:
         Fitting rows at which the curve falls under ``threshold`` (at most the version's own when it already has).
     fastest_rows : int
         The same if the excess fell like ``1/rows`` from the version's own fit on (the upper bound of the
-        exponent): the fewest rows the curve's reasoning allows.  Measured on the large committed sample, the
-        rows needed lay between the two.
+        exponent): the other end of the projection.  On the large committed sample the population's measured
+        curve stayed between the two; within a context it once fell faster than ``1/rows`` (docs/methods.md).
     """
 
     rows: tuple[int, ...]
