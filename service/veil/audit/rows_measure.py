@@ -152,16 +152,19 @@ def measure_rows_needed(
         with warnings.catch_warnings():
             # A refit on fewer rows warns as the fit did (an INLP that stops early): the card has the fit's notes.
             warnings.simplefilter("ignore")
-            refit.fit(x_fit[drawn], z_fit[drawn], **given)
-            erased = refit.transform(x_held)
-            score = probes.classification_score(probes.linear_probe(seed), erased, codes_held, folds=folds,
-                                                random_state=seed)  # fmt: skip
-            if groups is not None:
-                within = within_excess(erased, codes_held, groups, folds=folds, seed=seed)
-                if within is None:
-                    groups = None
-                else:
-                    context.append(within)
+            try:
+                refit.fit(x_fit[drawn], z_fit[drawn], **given)
+            except ValueError:  # a share the method cannot fit (a context value short of a class) is left out
+                continue
+        erased = refit.transform(x_held)
+        score = probes.classification_score(probes.linear_probe(seed), erased, codes_held, folds=folds,
+                                            random_state=seed)  # fmt: skip
+        if groups is not None:
+            within = within_excess(erased, codes_held, groups, folds=folds, seed=seed)
+            if within is None:
+                groups = None
+            else:
+                context.append(within)
         rows.append(int(drawn.size))
         population.append(_population_excess(score))
     advance(STAGE, len(draws), len(draws))
