@@ -6,6 +6,7 @@ import html
 
 import numpy as np
 from matplotlib.figure import Figure
+from matplotlib.ticker import FuncFormatter
 
 from veil.audit.report import AuditReport
 from veil.audit.rows_curve import NOT_RECORDED, LearningCurve, RowsNeeded
@@ -22,6 +23,11 @@ EXPLAINED = (
     "was checked the excess fell faster than the curve as rows grew (docs/methods.md, Rows needed); the second "
     "figure is the other end, the excess falling like 1/rows from this fit on."
 )
+
+
+def _capitalized(text: str) -> str:
+    """The first letter up, the rest as it is (a context column's name keeps its case)."""
+    return text[:1].upper() + text[1:]
 
 
 def _points(name: str, curve: LearningCurve) -> list[str]:
@@ -50,6 +56,13 @@ def curve_plot(record: RowsNeeded) -> Draw | None:
         axes.axhline(curves[0][1].threshold, color=WARN, linestyle="--", label="warn level of the linear threat")
         axes.set_xscale("log")
         axes.set_yscale("log")
+        # Plain numbers on the log axes (0.05, 2,000), not powers of ten: they are read against the sentence.
+        axes.xaxis.set_major_formatter(FuncFormatter(lambda value, _: f"{value:,.0f}"))
+        # Minor ticks labelled at 2, 3 and 5 of each decade only, so their labels do not run into each other.
+        axes.yaxis.set_major_formatter(FuncFormatter(lambda value, _: f"{value:.2g}"))
+        axes.yaxis.set_minor_formatter(
+            FuncFormatter(lambda value, _: f"{value:.2g}" if f"{value:.0e}"[0] in "235" else "")
+        )
         axes.set_xlabel("fitting rows")
         axes.set_ylabel("held-out linear excess")
         axes.legend(fontsize=8)
@@ -62,10 +75,10 @@ def rows_section(audit: AuditReport) -> str:
     record = audit.rows_needed
     head = f"<h2>{TITLE}</h2>"
     if record is None:
-        return f'{head}<p class="muted">{html.escape(NOT_RECORDED.capitalize())}.</p>'
+        return f'{head}<p class="muted">{html.escape(_capitalized(NOT_RECORDED))}.</p>'
     if record.population is None:
         return f'{head}<p class="muted">Not measured: {html.escape(record.reason or "no reason recorded")}.</p>'
-    sentences = "".join(f"<p><strong>{html.escape(s.capitalize())}.</strong></p>" for s in record.sentences())
+    sentences = "".join(f"<p><strong>{html.escape(_capitalized(s))}.</strong></p>" for s in record.sentences())
     baseline = "majority" + (", and within the context above the floor" if record.context is not None else "")
     rows = _points("population", record.population)
     if record.context is not None:
