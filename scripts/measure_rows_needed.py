@@ -8,7 +8,7 @@ attribute ``pronoun``, context ``field``), split as the fitting job splits it
 (the row-index hash, held-out share 0.3, seed 0: 16,733 fitting rows and
 7,267 held-out).  The method is fitted on nested, stratified, seeded draws
 of the fitting rows (:func:`veil.audit.rows_measure.nested_shares`, seed 0),
-each half the one before: 16,733, 8,366, 4,183, 2,092, 1,046, 523 and 261
+each half the one before: 16,733, 8,366, 4,183, 2,092, 1,046, 523 and 262
 rows.  Each fit is read on all 7,267 held-out rows by the audit's own linear
 reader (standardised logistic regression, 5 stratified folds, seed 0): the
 accuracy above majority, and for ``leace-given`` also within each field,
