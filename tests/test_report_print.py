@@ -112,8 +112,9 @@ def test_the_page_opens_with_the_verdicts_and_explains_every_figure(
     assert "<h2>Live checks over time</h2><figure" in dom
     assert "24 checks from 2027-01-15 08:00 UTC to 2027-01-16 07:00 UTC: 12 ok, 0 warn, 12 alert" in dom
     assert "warn 0.5" in dom  # the mean shift's warn level, drawn and labelled
-    # The timeline, leakage, retrieval, embeddings and distortion (LEACE has no iterations; no sweep ran).
-    assert dom.count('<figure class="plot"><svg') == 5
+    # The timeline, leakage, rows needed, retrieval, embeddings and distortion (LEACE has no iterations; no sweep
+    # ran).
+    assert dom.count('<figure class="plot"><svg') == 6
     for heading in (
         "Fresh audits",
         "Every figure, and what it means",

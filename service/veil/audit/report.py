@@ -10,6 +10,7 @@ from typing import Any
 from veil.audit.context_report import ContextAudit
 from veil.audit.glossary import MEANINGS, PROBE_MODELS, REGRESSION_MODELS
 from veil.audit.group_report import GroupAudit
+from veil.audit.rows_curve import RowsNeeded, rows_needed_lines
 from veil.audit.scores import PROBE_LABELS, PROBES, ProbeScore
 
 __all__ = [
@@ -292,6 +293,9 @@ class AuditReport:
     ranking: RankingFairness | None = None
     context: ContextAudit | None = None
     groups: GroupAudit | None = None
+    #: The held-out linear leakage against the fitting rows and the rows it projects (see
+    #: :mod:`veil.audit.rows_curve`); None where it was not measured (an audit of a stored map, an older card).
+    rows_needed: RowsNeeded | None = None
 
     @property
     def balanced_chance(self) -> float | None:
@@ -312,6 +316,7 @@ class AuditReport:
         ranking = data.get("ranking")
         context = data.get("context")
         groups = data.get("groups")
+        rows_needed = data.get("rows_needed")
         return cls(
             method=data["method"],
             rank=data["rank"],
@@ -326,6 +331,7 @@ class AuditReport:
             ranking=None if ranking is None else RankingFairness.from_dict(ranking),
             context=None if context is None else ContextAudit.from_dict(context),
             groups=None if groups is None else GroupAudit.from_dict(groups),
+            rows_needed=None if rows_needed is None else RowsNeeded.from_dict(rows_needed),
         )
 
     @classmethod
@@ -434,6 +440,8 @@ class AuditReport:
             lines += self.context.lines()
         if self.groups is not None:
             lines += self.groups.lines()
+        if self.rows_needed is not None:
+            lines += rows_needed_lines(self.rows_needed)
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
 

@@ -124,6 +124,7 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
         thresholds=_audit_thresholds(args.audit_threshold),
         claims=None if args.claim is None else tuple(args.claim),
         group=args.group,
+        rows_curve=args.rows_curve,
     )
     reading = ReadingSpec()
     if streamed:

@@ -283,6 +283,14 @@ def build_parser() -> VeilParser:
     _probes_option(fit)
     _fail_on_option(fit)
     fit.add_argument(
+        "--rows-curve",
+        choices=("auto", "always", "never"),
+        default="auto",
+        help="refit the method on 1/8, 1/4 and 1/2 of the fitting rows to project the rows that bring the held-out "
+        "linear leakage under the linear threat's warn level: auto for leace, meanproj and rlace (quick "
+        "refits), always for every method (inlp and transport too), never to skip it",
+    )
+    fit.add_argument(
         "--sweep",
         nargs="?",
         const="",

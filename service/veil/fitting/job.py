@@ -37,6 +37,7 @@ from veil.fitting.contexts import check_context_options, checked_contexts
 from veil.fitting.methods import fit_collecting_notes, make_eraser
 from veil.fitting.plan import PartResult, PassPlan, concatenated
 from veil.fitting.request import FitRequest, MethodSpec, ReadingSpec
+from veil.fitting.rows import RefitRows
 from veil.fitting.store import FitOutcome, HeldGroups, audit_and_store, audit_folds
 from veil.fitting.sweep import Target, Value, parse_target, run_sweep
 from veil.fitting.sweep import sweep_values as strengths
@@ -125,6 +126,7 @@ def fit_version(sample: Sample, request: FitRequest, *, registry: Registry) -> F
         reason=request.store.reason or f"fitted by veil fit ({request.fit.method}{streamed})",
         notes=notes,
         operating_points=operating_points,
+        refit_rows=None if sample.attribute_table else RefitRows(*rows.fit, context=rows.fit_context),
     )
 
 

@@ -31,6 +31,9 @@ SweepValue = int | None
 #: value; transport fits one class transport per value on the fitting sample's rows.
 CONTEXT_METHODS = ("leace", "meanproj", "transport")
 
+#: When the audit measures the rows a fit needs (:class:`AuditSpec`'s ``rows_curve``).
+ROWS_CURVE = ("auto", "always", "never")
+
 
 @dataclass(frozen=True)
 class MethodSpec:
@@ -180,6 +183,10 @@ class AuditSpec:
         The sample's group column (``--group``; the sample is read with it, see :mod:`veil.samples.groups`):
         whole groups are held out, the probes' folds keep each group in one fold, and the audit reads the
         linear probe on ordinary folds, on group folds and as a transfer probe.
+    rows_curve : {"auto", "always", "never"}, default="auto"
+        Whether the audit refits the method on 1/8, 1/4 and 1/2 of the fitting rows to measure the rows a fit
+        needs (:mod:`veil.fitting.rows`): ``auto`` for the methods whose refits are quick, ``always`` for every
+        method (INLP and transport refit slowly), ``never`` to skip it.
     """
 
     nonlinear: bool = True
@@ -188,8 +195,11 @@ class AuditSpec:
     live_thresholds: AlertThresholds | None = None
     claims: tuple[str, ...] | None = None
     group: str | None = None
+    rows_curve: str = "auto"
 
     def __post_init__(self) -> None:
+        if self.rows_curve not in ROWS_CURVE:
+            raise DataError(f"unknown rows_curve {self.rows_curve!r}; choose one of {', '.join(ROWS_CURVE)}")
         if self.rows is not None and self.rows < 2:
             raise DataError(f"the audit sample needs at least 2 rows, got {self.rows}")
         if self.claims is not None:
@@ -215,6 +225,7 @@ class AuditSpec:
             "claims": None if self.claims is None else list(self.claims),
             # Only when set: the request of a fit without a group reads as it did before groups.
             **({} if self.group is None else {"group": self.group}),
+            "rows_curve": self.rows_curve,
         }
 
 

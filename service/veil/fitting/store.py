@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -20,6 +21,7 @@ from veil.checks.thresholds import AlertThresholds
 from veil.erasers import Erasure
 from veil.errors import DataError
 from veil.fitting.request import FitRequest
+from veil.fitting.rows import RefitRows, rows_needed
 from veil.maps.artifact import MapArtifact
 from veil.progress import phase
 from veil.registry import CARD_FILE, AlertVerdictError, HistoryEvent, Registry, current_user
@@ -67,6 +69,7 @@ def audit_and_store(
     operating_points: Sweep | None = None,
     held_context: tuple[str, NDArray[Any]] | None = None,
     groups: HeldGroups | None = None,
+    refit_rows: RefitRows | None = None,
 ) -> FitOutcome:
     """Audit a fitted eraser on held-out rows, build its card, reference and report, and store the version.
 
@@ -76,7 +79,9 @@ def audit_and_store(
     ``held_context`` names the context column and gives its value on each held-out row (a ``--given`` fit):
     every categorical attribute is then also audited within each value.  ``groups`` (a ``--group`` fit) gives
     each fitting-sample and held-out row's group: the probes' folds then keep each group in one fold, and the
-    transfer probe learns from the fitting sample (see :mod:`veil.audit.group_report`).
+    transfer probe learns from the fitting sample (see :mod:`veil.audit.group_report`).  ``refit_rows`` are the
+    fitting rows (labels, not codes) the audit refits the method on to measure the rows a fit needs (None: not
+    measured; see :mod:`veil.fitting.rows`).
     """
     seed, nonlinear = request.fit.seed, request.audit.nonlinear
     x_held, z_held, task_held = held_out
@@ -130,6 +135,9 @@ def audit_and_store(
                 if is_continuous
             )
         fit_codes = np.zeros(0, dtype=np.intp)  # the first attribute's reference is attributes[0]
+        needed = rows_needed(eraser, request, None, report, (x_held, z_held), fit_rows=fit_rows, folds=AUDIT_FOLDS,
+                             held_context=None)  # fmt: skip
+        report = dataclasses.replace(report, rows_needed=needed)
     else:
         codes_held = np.searchsorted(np.asarray(eraser.classes_), z_held).astype(np.intp)
         folds = audit_folds(codes_held)
@@ -140,6 +148,11 @@ def audit_and_store(
         )  # fmt: skip
         x_plot = x_held
         fit_codes = fit_sample[1]
+        needed = rows_needed(
+            eraser, request, refit_rows, report, (x_held, z_held), fit_rows=fit_rows, folds=folds,
+            held_context=None if held_context is None else held_context[1],
+        )  # fmt: skip
+        report = dataclasses.replace(report, rows_needed=needed)
     with phase("reference statistics"):
         reference = ReferenceStatistics.from_fit(
             artifact, fit_sample[0], fit_codes, random_state=seed, attributes=attributes, continuous=continuous

@@ -20,6 +20,7 @@ from veil.audit.context_report import ContextAudit
 from veil.audit.group_report import NO_GROUP_FOLDS
 from veil.audit.points import Sweep, value_text
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
+from veil.audit.rows_curve import rows_needed_headline
 from veil.checks.reference import LEADING_COMPONENTS, REFERENCE_FILE, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
 from veil.checks.verdict import ThreatStatus, Verdict, judge_audit, worst
@@ -458,6 +459,8 @@ def _headline(card: dict[str, Any]) -> list[tuple[str, str]]:
     if audit.context is not None:
         rows.append(("within the context", context_headline(audit.context)))
     rows.append(("across groups", NO_GROUP_FOLDS if audit.groups is None else audit.groups.headline()))
+    if isinstance(lk.linear_after, ProbeScore):
+        rows.append(("rows needed", rows_needed_headline(audit.rows_needed)))
     if audit.ranking is not None:
         rk = audit.ranking
         rows.append((f"NDKL@{rk.k}", f"{rk.ndkl_before:.4f} → {rk.ndkl_after:.4f} (0: every prefix at the base rates)"))
