@@ -120,6 +120,7 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
         rows=args.audit_rows if streamed else None,
         thresholds=_audit_thresholds(args.audit_threshold),
         claims=None if args.claim is None else tuple(args.claim),
+        live_draws=args.live_draws,
     )
     reading = ReadingSpec()
     if streamed:

@@ -19,7 +19,7 @@ from typing import Any
 
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
 from veil.checks.verdict import THREATS, check_claims
-from veil.defaults import ENGINES, STREAM_CHUNK_ROWS
+from veil.defaults import ENGINES, LIVE_PROBE_DRAWS, STREAM_CHUNK_ROWS
 from veil.errors import DataError
 from veil.registry.naming import check_name
 from veil.samples.embedding_model import EmbeddingModel
@@ -176,6 +176,11 @@ class AuditSpec:
         is built to remove (see :meth:`FitRequest.claims`): the verdict's headline judges these and lists the
         others, measured, as not claimed.  Widen a claim a method does not make only on evidence (a transport
         version that nonlinear probes do not read on fresh samples), or narrow it.
+    live_draws : int, default=40
+        No-drift live samples drawn from the held-out rows per sample size for each probe figure, to calibrate
+        the live checks' levels on the version's own noise (the shift figures draw
+        :data:`veil.checks.null_draws.SHIFT_DRAWS`); 0 stores no calibration, and the version's live checks
+        keep the fixed levels of ``live_thresholds``.  See :mod:`veil.checks.calibration`.
     """
 
     nonlinear: bool = True
@@ -183,8 +188,11 @@ class AuditSpec:
     thresholds: AuditThresholds | None = None
     live_thresholds: AlertThresholds | None = None
     claims: tuple[str, ...] | None = None
+    live_draws: int = LIVE_PROBE_DRAWS
 
     def __post_init__(self) -> None:
+        if self.live_draws != 0 and self.live_draws < 3:
+            raise DataError(f"live_draws is 0 (no calibration) or at least 3, got {self.live_draws}")
         if self.rows is not None and self.rows < 2:
             raise DataError(f"the audit sample needs at least 2 rows, got {self.rows}")
         if self.claims is not None:
@@ -208,6 +216,7 @@ class AuditSpec:
             "thresholds": (self.thresholds or AuditThresholds()).to_dict(),
             "live_thresholds": (self.live_thresholds or AlertThresholds()).to_dict(),
             "claims": None if self.claims is None else list(self.claims),
+            "live_draws": self.live_draws,
         }
 
 
