@@ -35,4 +35,4 @@ FEW_CLASS_ROWS = 30
 #: version's live-check levels (each draw is a cross-validated probe: these dominate the cost of calibrating).
 #: ``VEIL_LIVE_DRAWS`` in the environment replaces it; 0 stores no calibration (the test suite sets 0 for the
 #: fits that do not test calibration, which then keep the fixed levels).
-LIVE_PROBE_DRAWS = int(os.environ.get("VEIL_LIVE_DRAWS", "40"))
+LIVE_PROBE_DRAWS = int(os.environ.get("VEIL_LIVE_DRAWS") or 40)
