@@ -292,8 +292,13 @@ def check_drift(
 
 
 def _excess(leakage: dict[str, float] | None) -> float | None:
-    """The probe's accuracy above the majority baseline, unclipped: what a calibrated leakage p-value reads."""
-    return None if leakage is None else leakage["accuracy"] - leakage["majority"]
+    """The probe's accuracy above the majority baseline, unclipped: what a calibrated leakage p-value reads.
+
+    None without a probe, or for a continuous attribute (its leakage is an R², which no draw calibrates).
+    """
+    if leakage is None or "accuracy" not in leakage:
+        return None
+    return leakage["accuracy"] - leakage["majority"]
 
 
 def _key_of(figure: str, source: str, attribute: str) -> str:
