@@ -26,7 +26,7 @@ from veil.checks.calibration import (
     null_key,
 )
 from veil.checks.drift import check_drift
-from veil.checks.null_draws import moment_figures
+from veil.checks.null_draws import moment_figures, probe_sizes
 from veil.fitting.job import fit_version
 from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
@@ -211,3 +211,30 @@ def test_the_tail_follows_a_gamma_figure_and_a_power_law_between_sizes() -> None
     mean, sd, skew = left.curve(300)
     assert skew == 0.0
     assert left.p_value(mean + 4 * sd, 300) == pytest.approx(stats.norm.sf(4), rel=1e-9)
+
+
+def test_a_version_fitted_within_a_context_calibrates_the_leakage_within_it(tmp_path: Path) -> None:
+    x, labels = population(3000, seed=40)
+    field = np.where(np.random.default_rng(41).random(3000) < 0.5, "north", "south")
+    np.savez(tmp_path / "sample.npz", embedding=x, group=np.array(labels), field=field)
+    request = FitRequest(
+        MethodSpec("leace", given="field"), StoreSpec("fields"), audit=AuditSpec(nonlinear=False, live_draws=5)
+    )
+    registry = Registry(tmp_path / "registry")
+    outcome = fit_version(load_labelled_sample(tmp_path / "sample.npz", attribute="group", given="field"), request,
+                          registry=registry)  # fmt: skip
+    served = ServedVersion.from_stored(registry.read_version("fields", outcome.version_id), threshold_overrides=None)
+    assert served.calibration is not None
+    null = served.calibration.nulls[null_key("context_leakage_gap", "labels")]
+    # Drawn like the leakage, without replacement at the grid's sizes up to half the held-out rows (and that half).
+    assert null.sizes.tolist() == probe_sizes(served.card["data"]["heldout_rows"])
+    quiet, quiet_labels = population(300, seed=42)
+    report = check_drift(
+        served.artifact, served.reference, served.whitening, served.thresholds, quiet, classes=served.classes,
+        labels=quiet_labels, context=list(np.where(np.arange(300) % 2, "north", "south")),
+        calibration=served.calibration,
+    ).to_dict()  # fmt: skip
+    # The leakage within the posted context is judged by its own draws: a p-value, no fixed band.
+    assert report["rule"] == CALIBRATED
+    assert "context_leakage_gap" in report["p_values"]
+    assert not any("fixed level" in reason for reason in report["reasons"])

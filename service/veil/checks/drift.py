@@ -35,7 +35,8 @@ card's family-wise levels (``rule`` "calibrated"); the shift figures' p-values
 read their raw values (``mean_shift_raw``, ``covariance_shift_raw``) and the
 leakage's reads the probe's accuracy minus the majority baseline, unclipped.
 A figure without a stored distribution (a continuous attribute's leakage,
-the leakage within a context) keeps its fixed band.  A version stored before
+the leakage within a context of a version fitted without one) keeps its
+fixed band.  A version stored before
 has no calibration and is judged by the fixed bands of
 :class:`veil.checks.thresholds.AlertThresholds` (``rule`` "fixed levels").
 """
@@ -242,6 +243,7 @@ def check_drift(
         "erased_variance_ratio": ratio,
         "prior_shift": prior_shift,
         "leakage_gap": _excess(leakage),
+        "context_leakage_gap": _context_excess(within),
     }
     judged = [
         ("", figure, value, statistics.get(figure), _key_of(figure, source, headline_name))
@@ -301,9 +303,16 @@ def _excess(leakage: dict[str, float] | None) -> float | None:
     return leakage["accuracy"] - leakage["majority"]
 
 
+def _context_excess(within: ContextAudit | None) -> float | None:
+    """The linear probe's pooled accuracy within a context above the floor, unclipped (None: no context read)."""
+    if within is None or "linear" not in within.after:
+        return None
+    return within.after["linear"].accuracy - within.after["linear"].majority
+
+
 def _key_of(figure: str, source: str, attribute: str) -> str:
     """The stored null a figure is judged against (the class figures have one per labels source and attribute)."""
-    if figure in ("prior_shift", "leakage_gap"):
+    if figure in ("prior_shift", "leakage_gap", "context_leakage_gap"):
         return null_key(figure, source, attribute)
     return null_key(figure)
 

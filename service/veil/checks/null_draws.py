@@ -20,9 +20,10 @@ Two kinds of draw, because the figures read a sample in two ways:
 
 Each probe figure costs a cross-validated logistic regression per draw, and
 these dominate the time: their draws are fewer (:data:`PROBE_DRAWS`) than the
-shift figures' (:data:`SHIFT_DRAWS`).  A continuous attribute's leakage and
-the leakage within a context are not drawn: a calibrated check judges them by
-their fixed levels, and says so.
+shift figures' (:data:`SHIFT_DRAWS`).  The leakage within a context is
+drawn (with labels) when the fit had a context column; a continuous
+attribute's leakage is not drawn: a calibrated check judges it by its fixed
+level, and says so.
 """
 
 from __future__ import annotations
@@ -33,8 +34,9 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from veil.audit.within import context_audit
 from veil.checks.calibration import FigureNull, LiveCalibration, null_key
-from veil.checks.drift import MIN_ROWS, _class_figures
+from veil.checks.drift import MIN_ROWS, PROBE_FOLDS, _class_figures
 from veil.checks.reference import ReferenceStatistics
 from veil.defaults import LIVE_PROBE_DRAWS
 from veil.maps.artifact import MapArtifact
@@ -163,12 +165,15 @@ def draw_calibration(
     sizes: tuple[int, ...] = SIZES,
     shift_draws: int = SHIFT_DRAWS,
     probe_draws: int = PROBE_DRAWS,
+    context: NDArray[np.str_] | None = None,
     stage: str | None = None,
 ) -> LiveCalibration:
     """Every live figure's no-drift distribution from draws of the held-out rows ``x_held``.
 
     ``fit_rows`` (the rows the reference was estimated on) sizes the reference's own error, which live
     samples carry and the held-out rows' offset from the reference overstates (see :func:`toward_reference`).
+    ``context`` (each held-out row's value of the fit's context column, as text) adds the leakage within a
+    context: the first attribute's, with labels (a live check refuses a context without them).
     """
     rng = np.random.default_rng(random_state)
     x = np.asarray(x_held, dtype=np.float64)
@@ -178,7 +183,7 @@ def draw_calibration(
     erased = np.asarray(artifact.apply(np.asarray(x_held)))
     pseudo = [attribute.pseudo(x) for attribute in attributes]
     shifts: dict[str, dict[int, list[float]]] = {}
-    total = len(sizes) + len(attributes) * 2
+    total = len(sizes) + len(attributes) * 2 + (context is not None and bool(attributes))
     if stage is not None:
         advance(stage, 0, total)
     # The shift figures read a pool of at most SHIFT_POOL rows: their Gram matrix is pool² numbers.
@@ -220,6 +225,13 @@ def draw_calibration(
             done += 1
             if stage is not None:
                 advance(stage, done, total)
+    if context is not None and attributes:
+        first = attributes[0]
+        null = _probe_null(x, erased, whitening, reference.mean, first, first.codes, rng, sizes, probe_draws, context)
+        if null is not None:
+            nulls[null_key("context_leakage_gap", "labels", first.name)] = null
+        if stage is not None:
+            advance(stage, total, total)
     return LiveCalibration(nulls, held_out_rows=rows)
 
 
@@ -238,8 +250,13 @@ def _probe_null(
     rng: np.random.Generator,
     sizes: tuple[int, ...],
     draws: int,
+    context: NDArray[np.str_] | None = None,
 ) -> FigureNull | None:
-    """The leakage statistic (probe accuracy − majority) of draws without replacement (None: too few rows)."""
+    """The leakage statistic (probe accuracy − majority) of draws without replacement (None: too few rows).
+
+    With ``context``, the statistic within the context instead: the linear probe trained and tested within
+    each value, pooled by rows, its accuracy above the floor (as :func:`check_drift` reads a posted context).
+    """
     pool = np.flatnonzero(codes >= 0)
     by_size: dict[int, NDArray[np.float64]] = {}
     widen: dict[int, float] = {}
@@ -248,6 +265,14 @@ def _probe_null(
         for _ in range(draws):
             rows_drawn = np.sort(rng.choice(pool, size, replace=False))
             drawn_codes = codes[rows_drawn]
+            if context is not None:
+                within = context_audit(
+                    x[rows_drawn], erased[rows_drawn], drawn_codes, context[rows_drawn],
+                    classes=tuple(attribute.classes), column=None, folds=PROBE_FOLDS, nonlinear=False, random_state=0,
+                )  # fmt: skip
+                if within.after:
+                    values.append(within.after["linear"].accuracy - within.after["linear"].majority)
+                continue
             figures = _class_figures(
                 x[rows_drawn], erased[rows_drawn], whitening, mean, attribute.classes, attribute.priors,
                 _given(drawn_codes), 0,

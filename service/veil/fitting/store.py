@@ -146,6 +146,7 @@ def audit_and_store(
         calibration = draw_calibration(
             artifact, reference, reference.whitening(), x_held, _drawn_attributes(artifact, reference, z_held),
             fit_rows=fit_rows, random_state=seed, probe_draws=request.audit.live_draws, stage="live-check calibration",
+            context=None if held_context is None else np.array([str(value) for value in held_context[1]]),
         )  # fmt: skip
     with phase("report plots"):
         plots = PlotData.from_heldout(x_plot, eraser.transform(x_plot), codes_held, seed=seed)
