@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import io
 import itertools
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -32,6 +33,8 @@ from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
 from veil.samples.sources import load_labelled_sample
 from veil.server.catalog import ServedVersion
+
+from .test_cli import run
 
 DIM = 12
 PRIORS = (0.6, 0.4)
@@ -238,3 +241,23 @@ def test_a_version_fitted_within_a_context_calibrates_the_leakage_within_it(tmp_
     assert report["rule"] == CALIBRATED
     assert "context_leakage_gap" in report["p_values"]
     assert not any("fixed level" in reason for reason in report["reasons"])
+
+
+def test_a_version_of_an_older_release_is_checked_by_the_fixed_levels_and_says_so(tmp_path: Path) -> None:
+    # tests/fixtures/registry_0_1: versions written before live checks were calibrated (no calibration.npz, no
+    # live_levels on the card).
+    fixture = Path(__file__).parent / "fixtures" / "registry_0_1"
+    registry = Registry(Path(shutil.copytree(fixture / "registry", tmp_path / "registry")))
+    stored = registry.read_version("legacy", "v0001")
+    assert CALIBRATION_FILE not in stored.files
+    assert "live_levels" not in stored.card
+    old = ServedVersion.from_stored(stored, threshold_overrides=None)
+    assert old.calibration is None
+    x = np.load(fixture / "sample.npz")["embedding"]
+    report = check_drift(
+        old.artifact, old.reference, old.whitening, old.thresholds, x[:200], classes=old.classes,
+        calibration=old.calibration,
+    )  # fmt: skip
+    assert (report.rule, report.levels, report.p_values) == (FIXED, None, None)
+    shown = run("show", "legacy", "v0001", "--registry", str(tmp_path / "registry"))
+    assert "live checks: fixed levels (no calibration stored with this version)" in shown.out
