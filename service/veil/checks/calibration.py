@@ -37,7 +37,7 @@ from __future__ import annotations
 
 import io
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -214,15 +214,6 @@ class JudgedFigure:
     p_value: float | None = None
     adjusted_p_value: float | None = None
     level: str = "ok"
-    #: "calibrated", or "fixed levels" for a figure without a stored distribution.
-    rule: str = CALIBRATED
-
-
-@dataclass(frozen=True)
-class Judgement:
-    status: str
-    reasons: list[str]
-    figures: list[JudgedFigure] = field(default_factory=list)
 
 
 def at_level(p: float, level: float) -> bool:
