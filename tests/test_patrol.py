@@ -130,7 +130,7 @@ def test_the_loop_skips_a_round_the_service_cannot_answer_and_records_the_others
     assert recorded == 1
     assert "nothing to check yet" in said[0]
     assert "round skipped, the service did not answer" in said[1]
-    assert said[2].endswith("ok, recorded as check 1")
+    assert said[2].endswith("ok by fixed levels, recorded as check 1")  # a report without a rule: fixed levels
     history = check_history(registry, PROFILES)
     assert [record.body["slot"] for record in history] == ["2027-01-15T08:02:00+00:00"]  # the third slot
 

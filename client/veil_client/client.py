@@ -313,7 +313,11 @@ class VeilClient(_Requests):
         -------
         dict
             The report: ``status``, ``reasons``, the figures, ``rows`` (vectors checked), and the ``version``
-            checked; on recent traffic also ``traffic_seen`` (every vector cleaned, repeats included).
+            checked; on recent traffic also ``traffic_seen`` (every vector cleaned, repeats included).  ``rule``
+            says what judged the status: ``"calibrated"`` (each figure's p-value against the version's own
+            no-drift draws at this sample size in ``p_values``, Holm-adjusted in ``adjusted_p_values``, at the
+            family-wise ``levels``) or ``"fixed levels"`` (a version stored before calibration: the card's
+            warn and alert bands; ``p_values`` and ``levels`` are then null).
         """
         request = self._drift_request(vectors, labels, version, alias, context)
         result: dict[str, Any] = self._send(request.pop("method"), f"/v1/erasers/{name}/drift", **request).json()

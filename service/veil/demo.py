@@ -60,6 +60,9 @@ NAME = "profiles-minilm"
 # A second eraser that guards the pronoun and the age bracket together, and their intersection.
 JOINT_NAME = "profiles-minilm-pronoun-age"
 ADMIN_TOKEN = "demo-admin-token"
+#: No-drift draws per size for each probe figure of the live-check calibration (a fit's default is
+#: veil.defaults.LIVE_PROBE_DRAWS): fewer here, so that the demo's three fits stay quick.
+LIVE_DRAWS = 20
 NEIGHBOURS = 10
 
 
@@ -130,6 +133,19 @@ def _reindex(registry: Registry, version: str, corpus: Path) -> tuple[Any, dict[
     return read_index(target), manifest
 
 
+def _rule(answer: dict[str, Any]) -> str:
+    """Which rule judged a drift answer, in words: calibrated levels with their figures' p-values, or fixed ones."""
+    if answer.get("rule") != "calibrated":
+        return "fixed levels (the version stores no calibration: the card's warn and alert bands)"
+    levels = answer["levels"]
+    smallest = min(answer["p_values"].items(), key=lambda item: item[1])
+    return (
+        f"calibrated levels: p-values against the version's own no-drift draws at {answer['rows']} rows, "
+        f"{levels['correction'].title()}-adjusted over {len(answer['p_values'])} figures, warn at "
+        f"{levels['warn']:g}, alert at {levels['alert']:g} (smallest p: {smallest[0]} {smallest[1]:.2g})"
+    )
+
+
 def _signups(profiles: ProfileSample) -> tuple[Path, Path]:
     """The committed sample as two files: the profiles that signed up before March (the first 80%), and in March."""
     DEMO_DATA.mkdir(exist_ok=True)
@@ -165,7 +181,13 @@ def main() -> None:
         "held-out rows"
     )
     leace = fit_version(
-        sample, FitRequest(MethodSpec("leace"), StoreSpec(NAME, alias="live", reason="first eraser")), registry=registry
+        sample,
+        FitRequest(
+            MethodSpec("leace"),
+            StoreSpec(NAME, alias="live", reason="first eraser"),
+            audit=AuditSpec(live_draws=LIVE_DRAWS),
+        ),
+        registry=registry,
     )
     print(leace.audit.format_table())
     print(f"verdict at fitting time: {card_verdict(leace.card).sentence()}")
@@ -181,7 +203,7 @@ def main() -> None:
         FitRequest(
             MethodSpec("inlp", params={"classifier": "moments", "max_iter": 30}),
             StoreSpec(NAME),
-            audit=AuditSpec(nonlinear=False),
+            audit=AuditSpec(nonlinear=False, live_draws=LIVE_DRAWS),
         ),
         registry=registry,
     )
@@ -193,7 +215,11 @@ def main() -> None:
     both = load_labelled_sample(before_march, attribute=["pronoun", "age_bracket"], joint=True, task="field")
     joint = fit_version(
         both,
-        FitRequest(MethodSpec("leace"), StoreSpec(JOINT_NAME, alias="live"), audit=AuditSpec(nonlinear=False)),
+        FitRequest(
+            MethodSpec("leace"),
+            StoreSpec(JOINT_NAME, alias="live"),
+            audit=AuditSpec(nonlinear=False, live_draws=LIVE_DRAWS),
+        ),
         registry=registry,
     )
     print(f"stored {joint.version_id} (LEACE, rank {joint.card['rank']}, linear probes only)")
@@ -234,21 +260,32 @@ def main() -> None:
         )
 
         print("4. Drift checks on live traffic samples")
-        normal = profiles.embedding[np.random.default_rng(1).choice(profiles.embedding.shape[0], 400, replace=False)]
+        # Normal traffic: profiles the fit never saw (the March sign-ups), as live traffic is.
+        signed_up_in_march = profiles.embedding[profiles.embedding.shape[0] * 4 // 5 :]
+        normal = signed_up_in_march[np.random.default_rng(1).choice(signed_up_in_march.shape[0], 400, replace=False)]
         quiet = veil.drift(NAME, normal, labels=None)
         print(f"   a normal sample (400, unlabelled):  {quiet['status']}  {quiet['reasons'] or ''}")
+        print(f"      judged by {_rule(quiet)}")
         spread = float(np.sqrt(np.var(normal, axis=0).sum()))
         shift = np.random.default_rng(2).normal(size=normal.shape[1])
         shifted = (normal + 0.5 * spread * shift / np.linalg.norm(shift)).astype(np.float32)
         loud = veil.drift(NAME, shifted, labels=None)
         print(f"   the same sample, shifted:           {loud['status']}  {'; '.join(loud['reasons'])}")
+        print(f"      judged by {_rule(loud)}")
         several = veil.drift(JOINT_NAME, normal)
-        print(f"   the normal sample against {JOINT_NAME}: {several['status']}, by attribute (pseudo-labels):")
+        print(
+            f"   the normal sample against {JOINT_NAME}: {several['status']} ({_rule(several)}), by attribute "
+            "(pseudo-labels):"
+        )
         for attribute, figures in several["attributes"].items():
             gap = figures["leakage_gap"]
+            # The first attribute's figures are the answer's headline ones, named without a prefix.
+            name = "" if attribute == next(iter(several["attributes"])) else f"{attribute}: "
+            p_values = several.get("p_values") or {}
+            p_text = f", p = {p_values[name + 'leakage_gap']:.2g}" if name + "leakage_gap" in p_values else ""
             print(
                 f"     {attribute}: prior shift {figures['prior_shift']:.3f}, leakage gap "
-                f"{'-' if gap is None else f'{gap:.3f}'}"
+                f"{'-' if gap is None else f'{gap:.3f}'}{p_text}"
             )
         moved = veil.counterfactual(JOINT_NAME, normal[:5], {"pronoun": "she", "age_bracket": "over 50"})
         distance = np.linalg.norm(moved.vectors - veil.apply(JOINT_NAME, normal[:5]).vectors, axis=1).mean()

@@ -27,6 +27,18 @@ a sample of that size, so a small quiet sample does not raise alarms:
   with (up to 500 of) the sample's rows querying the whole sample by cosine,
   raw and erased, against the sample's class shares (labels or
   pseudo-labels).  Figures only: no threshold reads them.
+
+Two rules judge the figures.  A version stored with a calibration
+(:mod:`veil.checks.calibration`) is judged by p-values against its own
+no-drift draws at the sample's size, Holm-adjusted over the figures, at the
+card's family-wise levels (``rule`` "calibrated"); the shift figures' p-values
+read their raw values (``mean_shift_raw``, ``covariance_shift_raw``) and the
+leakage's reads the probe's accuracy minus the majority baseline, unclipped.
+A figure without a stored distribution (a continuous attribute's leakage,
+the leakage within a context of a version fitted without one) keeps its
+fixed band.  A version stored before
+has no calibration and is judged by the fixed bands of
+:class:`veil.checks.thresholds.AlertThresholds` (``rule`` "fixed levels").
 """
 
 from __future__ import annotations
@@ -43,6 +55,15 @@ from veil.audit.context_report import ContextAudit
 from veil.audit.ranking import ranking_before_after
 from veil.audit.report import ProbeScore, RankingFairness
 from veil.audit.within import context_audit
+from veil.checks.calibration import (
+    CALIBRATED,
+    FIXED,
+    JudgedFigure,
+    LiveCalibration,
+    judge_calibrated,
+    null_key,
+    reason_of,
+)
 from veil.checks.reference import ContinuousReference, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
 from veil.checks.verdict import context_figures
@@ -80,6 +101,13 @@ class DriftReport:
     #: The linear probe within each value of the posted context (None: no context was posted).
     context: ContextAudit | None = None
     context_leakage_gap: float | None = None
+    #: Which rule judged the figures: "calibrated" (p-values against the version's own noise) or "fixed levels".
+    rule: str = FIXED
+    #: The calibrated rule's family-wise levels and correction (None under fixed levels).
+    levels: dict[str, Any] | None = None
+    #: Under the calibrated rule: each judged figure's p-value, and Holm-adjusted, by the figure's name in reasons.
+    p_values: dict[str, float] | None = None
+    adjusted_p_values: dict[str, float] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -96,6 +124,7 @@ def check_drift(
     labels: list[str] | dict[str, list[Any]] | None = None,
     context: list[Any] | None = None,
     random_state: int = 0,
+    calibration: LiveCalibration | None = None,
 ) -> DriftReport:
     """Drift and leakage figures of a sample of raw live vectors (shape (n, d)), optionally with attribute labels.
 
@@ -107,6 +136,10 @@ def check_drift(
     ``context`` gives each vector's value of a context column (a field, a
     query's category): the first categorical attribute's leakage is then also
     measured within each value (labels or pseudo-labels, as the headline's).
+
+    ``calibration`` (the version's stored no-drift draws) judges the figures
+    by p-values at family-wise levels; without it, ``thresholds``' fixed bands
+    judge them.
 
     Raises
     ------
@@ -202,26 +235,35 @@ def check_drift(
         "leakage_gap": leakage_gap,
         "context_leakage_gap": None if within is None else context_figures(within)["context_linear_gap"],
     }
-    judged = [("", figure, value) for figure, value in figures.items()]
+    # Each judged figure: (prefix, figure, value, the unclipped statistic its p-value reads, its null's key).
+    headline_name = known[0] if reference.attributes else ""
+    statistics = {
+        "mean_shift": mean_raw,
+        "covariance_shift": covariance_raw,
+        "erased_variance_ratio": ratio,
+        "prior_shift": prior_shift,
+        "leakage_gap": _excess(leakage),
+        "context_leakage_gap": _context_excess(within),
+    }
+    judged = [
+        ("", figure, value, statistics.get(figure), _key_of(figure, source, headline_name))
+        for figure, value in figures.items()
+    ]
     # Every attribute of several is judged by the same bands (the first categorical one's figures are the headline's).
     judged += [
-        (f"{name}: ", figure, entry[figure])
+        (
+            f"{name}: ",
+            figure,
+            entry[figure],
+            entry["prior_shift"] if figure == "prior_shift" else _excess(entry.get("leakage")),
+            _key_of(figure, entry["labels"], name),
+        )
         for name, entry in attribute_figures.items()
         if headline is None or name != known[0]
         for figure in ("prior_shift", "leakage_gap")
         if figure in entry
     ]
-    reasons = []
-    worst = "ok"
-    for prefix, figure, value in judged:
-        band = getattr(thresholds, figure)
-        level = band.level(value)
-        if level != "ok":
-            reasons.append(
-                f"{prefix}{figure} {value:.3f} reaches {level} ({band.warn if level == 'warn' else band.alert})"
-            )
-            if level == "alert" or worst == "ok":
-                worst = level
+    worst, reasons, judgement = _judge(judged, thresholds, calibration, n)
     return DriftReport(
         rows=n,
         labels=source,
@@ -242,7 +284,84 @@ def check_drift(
         attributes=attribute_figures or None,
         context=within,
         context_leakage_gap=figures["context_leakage_gap"],
+        rule=FIXED if calibration is None else CALIBRATED,
+        levels=None if calibration is None else _levels(calibration),
+        p_values=None if judgement is None else {f.figure: f.p_value for f in judgement if f.p_value is not None},
+        adjusted_p_values=None
+        if judgement is None
+        else {f.figure: f.adjusted_p_value for f in judgement if f.adjusted_p_value is not None},
     )
+
+
+def _excess(leakage: dict[str, float] | None) -> float | None:
+    """The probe's accuracy above the majority baseline, unclipped: what a calibrated leakage p-value reads.
+
+    None without a probe, or for a continuous attribute (its leakage is an R², which no draw calibrates).
+    """
+    if leakage is None or "accuracy" not in leakage:
+        return None
+    return leakage["accuracy"] - leakage["majority"]
+
+
+def _context_excess(within: ContextAudit | None) -> float | None:
+    """The linear probe's pooled accuracy within a context above the floor, unclipped (None: no context read)."""
+    if within is None or "linear" not in within.after:
+        return None
+    return within.after["linear"].accuracy - within.after["linear"].majority
+
+
+def _key_of(figure: str, source: str, attribute: str) -> str:
+    """The stored null a figure is judged against (the class figures have one per labels source and attribute)."""
+    if figure in ("prior_shift", "leakage_gap", "context_leakage_gap"):
+        return null_key(figure, source, attribute)
+    return null_key(figure)
+
+
+def _levels(calibration: LiveCalibration) -> dict[str, Any]:
+    return {"warn": calibration.warn, "alert": calibration.alert, "correction": calibration.correction}
+
+
+def _judge(
+    judged: list[tuple[str, str, float | None, float | None, str]],
+    thresholds: AlertThresholds,
+    calibration: LiveCalibration | None,
+    rows: int,
+) -> tuple[str, list[str], list[JudgedFigure] | None]:
+    """The worst level, the reasons, and (calibrated) every figure judged by a p-value.
+
+    Under a calibration, the figures with a stored null are judged together
+    (Holm across them); any other figure, or every figure without a
+    calibration, by its fixed band.
+    """
+    calibrated: list[tuple[str, str, float, float]] = []
+    fixed: list[tuple[str, str, float | None]] = []
+    for prefix, figure, value, statistic, key in judged:
+        if value is None:
+            continue
+        if calibration is not None and statistic is not None and key in calibration.nulls:
+            calibrated.append((f"{prefix}{figure}", key, value, statistic))
+        else:
+            fixed.append((prefix, figure, value))
+    reasons = []
+    levels = []
+    judgement = None
+    if calibration is not None:
+        judgement = judge_calibrated(calibration, rows, calibrated)
+        for one in judgement:
+            if one.level != "ok":
+                reasons.append(reason_of(one, calibration))
+                levels.append(one.level)
+    for prefix, figure, value in fixed:
+        band = getattr(thresholds, figure)
+        level = band.level(value)
+        if level != "ok":
+            limit = band.warn if level == "warn" else band.alert
+            # Within a calibrated check, a figure judged by its fixed band says so.
+            rule = "" if calibration is None else ", fixed level"
+            reasons.append(f"{prefix}{figure} {value:.3f} reaches {level} ({limit}{rule})")
+            levels.append(level)
+    worst = "alert" if "alert" in levels else "warn" if "warn" in levels else "ok"
+    return worst, reasons, judgement
 
 
 def _within_context(

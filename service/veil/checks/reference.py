@@ -211,6 +211,12 @@ class ReferenceStatistics:
         """Class codes the pre-erasure probe predicts for raw rows (pseudo-labels)."""
         return _probe_codes(self.probe_weights, self.probe_bias, X)
 
+    def whitening(self) -> Float64Array:
+        """Whitening in the leading eigen-directions kept, dropping numerically null ones: shape (d, r)."""
+        values = self.eigenvalues[: self.eigenvectors.shape[1]]
+        keep = values > values[0] * 1e-10 if values.size else values.astype(bool)
+        return np.asarray(self.eigenvectors[:, keep] / np.sqrt(values[keep]), dtype=np.float64)
+
     def to_bytes(self) -> bytes:
         buffer = io.BytesIO()
         arrays: dict[str, Any] = {

@@ -125,6 +125,7 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
         claims=None if args.claim is None else tuple(args.claim),
         group=args.group,
         rows_curve=args.rows_curve,
+        live_draws=args.live_draws,
     )
     reading = ReadingSpec()
     if streamed:

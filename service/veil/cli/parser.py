@@ -16,6 +16,7 @@ from veil.defaults import (
     FEW_CLASS_ROWS,
     FIT_SAMPLE_ROWS,
     INDEX_FACTORY,
+    LIVE_PROBE_DRAWS,
     METHOD_NAMES,
     MIN_CLASS_ROWS,
     STREAM_CHUNK_ROWS,
@@ -245,6 +246,15 @@ def build_parser() -> VeilParser:
         help="a threat the version claims to guard, judged by the verdict's headline (repeatable; replaces the "
         "method's own claim: linear, with --given also context-linear); the others are measured and shown as not "
         f"claimed. Threats: {', '.join(f'{name} ({label})' for name, (label, _) in THREATS.items())}",
+    )
+    fit.add_argument(
+        "--live-draws",
+        type=int,
+        default=LIVE_PROBE_DRAWS,
+        metavar="N",
+        help="no-drift live samples drawn from the held-out rows per size for each probe figure, to calibrate the "
+        f"live checks' levels on the version's own noise (default {LIVE_PROBE_DRAWS}; 0: none, the live checks "
+        "keep the fixed levels)",
     )
     fit.add_argument("--holdout", type=float, default=0.2, help="share of rows held out for the audit (default 0.2)")
     fit.add_argument("--seed", type=int, default=0, help="seeds the split, probes and randomised methods")

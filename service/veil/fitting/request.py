@@ -19,7 +19,7 @@ from typing import Any
 
 from veil.checks.thresholds import AlertThresholds, AuditThresholds
 from veil.checks.verdict import THREATS, check_claims
-from veil.defaults import ENGINES, STREAM_CHUNK_ROWS
+from veil.defaults import ENGINES, LIVE_PROBE_DRAWS, STREAM_CHUNK_ROWS
 from veil.errors import DataError
 from veil.registry.naming import check_name
 from veil.samples.embedding_model import EmbeddingModel
@@ -187,6 +187,11 @@ class AuditSpec:
         Whether the audit refits the method on 1/8, 1/4 and 1/2 of the fitting rows to measure the rows a fit
         needs (:mod:`veil.fitting.rows`): ``auto`` for the methods whose refits are quick, ``always`` for every
         method (INLP and transport refit slowly), ``never`` to skip it.
+    live_draws : int, default=40
+        No-drift live samples drawn from the held-out rows per sample size for each probe figure, to calibrate
+        the live checks' levels on the version's own noise (the shift figures draw
+        :data:`veil.checks.null_draws.SHIFT_DRAWS`); 0 stores no calibration, and the version's live checks
+        keep the fixed levels of ``live_thresholds``.  See :mod:`veil.checks.calibration`.
     """
 
     nonlinear: bool = True
@@ -196,10 +201,13 @@ class AuditSpec:
     claims: tuple[str, ...] | None = None
     group: str | None = None
     rows_curve: str = "auto"
+    live_draws: int = LIVE_PROBE_DRAWS
 
     def __post_init__(self) -> None:
         if self.rows_curve not in ROWS_CURVE:
             raise DataError(f"unknown rows_curve {self.rows_curve!r}; choose one of {', '.join(ROWS_CURVE)}")
+        if self.live_draws != 0 and self.live_draws < 3:
+            raise DataError(f"live_draws is 0 (no calibration) or at least 3, got {self.live_draws}")
         if self.rows is not None and self.rows < 2:
             raise DataError(f"the audit sample needs at least 2 rows, got {self.rows}")
         if self.claims is not None:
@@ -226,6 +234,7 @@ class AuditSpec:
             # Only when set: the request of a fit without a group reads as it did before groups.
             **({} if self.group is None else {"group": self.group}),
             "rows_curve": self.rows_curve,
+            "live_draws": self.live_draws,
         }
 
 

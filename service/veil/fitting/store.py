@@ -16,6 +16,8 @@ from veil.audit.groups import FittingRows, group_fold_problem
 from veil.audit.points import Sweep
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
+from veil.checks.calibration import CALIBRATION_FILE, FIXED
+from veil.checks.null_draws import DrawnAttribute, draw_calibration
 from veil.checks.reference import REFERENCE_FILE, AttributeReference, ContinuousReference, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
 from veil.erasers import Erasure
@@ -157,6 +159,13 @@ def audit_and_store(
         reference = ReferenceStatistics.from_fit(
             artifact, fit_sample[0], fit_codes, random_state=seed, attributes=attributes, continuous=continuous
         )
+    calibration = None
+    if request.audit.live_draws:
+        calibration = draw_calibration(
+            artifact, reference, reference.whitening(), x_held, _drawn_attributes(artifact, reference, z_held),
+            fit_rows=fit_rows, random_state=seed, probe_draws=request.audit.live_draws, stage="live-check calibration",
+            context=None if held_context is None else np.array([str(value) for value in held_context[1]]),
+        )  # fmt: skip
     with phase("report plots"):
         plots = PlotData.from_heldout(x_plot, eraser.transform(x_plot), codes_held, seed=seed)
     card = build_card(
@@ -178,9 +187,13 @@ def audit_and_store(
         embedding_model=request.store.embedding_model,
         claims=request.claims,
     )
+    # The rule the version's live checks are judged by (a card without this entry keeps the fixed levels).
+    card["live_levels"] = calibration.card_entry() if calibration is not None else {"rule": FIXED}
     files = encode_artifact(artifact)
     files[CARD_FILE] = json.dumps(card, indent=2, sort_keys=True, allow_nan=False).encode()
     files[REFERENCE_FILE] = reference.to_bytes()
+    if calibration is not None:
+        files[CALIBRATION_FILE] = calibration.to_bytes()
     files[PLOT_DATA_FILE] = plots.to_bytes()
 
     def report_page(version_id: str) -> dict[str, bytes]:
@@ -234,6 +247,31 @@ def within_context(
         return {}
     column, values = context
     return {"given": values if rows is None else values[rows], "given_name": column}
+
+
+def _drawn_attributes(
+    artifact: MapArtifact, reference: ReferenceStatistics, z_held: NDArray[Any]
+) -> list[DrawnAttribute]:
+    """Each categorical attribute as the live-check draws see it: its classes, priors, pseudo-labels and codes."""
+    if not is_table(z_held):
+        if artifact.classes is None:
+            return []
+        classes = [str(c) for c in artifact.classes]
+        return [DrawnAttribute("", classes, reference.class_priors, reference.probe_codes, _indexed(classes, z_held))]
+    columns = {attribute: values for attribute, _, values in attribute_columns(z_held)}
+    drawn = []
+    for attribute in reference.attributes:
+        classes = [str(c) for c in attribute.classes]
+        codes = _indexed(classes, columns[attribute.name])
+        codes[~present_rows(z_held, attribute.name)] = -1
+        drawn.append(DrawnAttribute(attribute.name, classes, attribute.class_priors, attribute.probe_codes, codes))
+    return drawn
+
+
+def _indexed(classes: list[str], values: NDArray[Any]) -> NDArray[np.intp]:
+    """Each value's position in ``classes``, compared as text as a live check does (−1: not a class)."""
+    position = {label: i for i, label in enumerate(classes)}
+    return np.array([position.get(str(value), -1) for value in values], dtype=np.intp)
 
 
 def _first_categorical(z: NDArray[Any]) -> str | None:

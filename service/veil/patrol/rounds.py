@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from veil.checks.calibration import CALIBRATED, FIXED
 from veil.patrol.replicas import ReplicaSample, ReplicaSet, Resolver, Unanswered, merge_samples
 from veil.registry import Registry
 from veil.registry.records import Record
@@ -124,6 +125,8 @@ def _body(report: dict[str, Any], *, service: str, checked: dict[str, Any], ever
         "checked": checked,
         "version": report["version"],
         "status": report["status"],
+        # A service from before calibrated levels answers without a rule: its checks were all by fixed levels.
+        "rule": report.get("rule", FIXED),
         "reasons": list(report.get("reasons", [])),
         "report": report,
     }
@@ -164,11 +167,16 @@ class RecordedRound:
         body = self.outcome.record.body
         reasons = f" ({'; '.join(body['reasons'])})" if body["reasons"] else ""
         state = "already recorded" if self.outcome.already_stored else "recorded"
-        line = f"{body['checked_at']} {name} {body['version']}: {body['status']}{reasons}, {state} as check "
+        rule = _RULE_WORDS.get(body.get("rule", FIXED), body.get("rule", FIXED))
+        line = f"{body['checked_at']} {name} {body['version']}: {body['status']} by {rule}{reasons}, {state} as check "
         line += str(self.outcome.record.number)
         if "replicas" in body:
             line += "; " + replicas_summary(body["replicas"], body["checked"])
         return line
+
+
+#: How a check line names the rule that judged it.
+_RULE_WORDS = {CALIBRATED: "calibrated levels", FIXED: "fixed levels"}
 
 
 def replicas_summary(replicas: dict[str, Any], checked: dict[str, Any]) -> str:

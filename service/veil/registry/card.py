@@ -520,11 +520,28 @@ def format_card(version_id: str, card: dict[str, Any]) -> str:
     lines += ["", "audit thresholds (warn / alert):"]
     audit_bands = card_thresholds(card).to_dict()
     lines += [f"  {figure}: {band['warn']} / {band['alert']}" for figure, band in audit_bands.items()]
-    lines += ["live-check thresholds (warn / alert):"]
+    lines += [live_levels_text(card)]
+    if card.get("live_levels", {}).get("rule") == "calibrated":
+        lines += ["fixed live-check bands (warn / alert), for the figures without draws:"]
+    else:
+        lines += ["live-check thresholds (warn / alert):"]
     lines += [f"  {figure}: {band['warn']} / {band['alert']}" for figure, band in card["thresholds"].items()]
     lines.append("software: " + ", ".join(f"{k} {v}" for k, v in card["software"].items()))
     lines += [f"note: {note}" for note in card.get("notes", [])]
     return "\n".join(lines)
+
+
+def live_levels_text(card: Mapping[str, Any]) -> str:
+    """The rule the version's live checks are judged by, in one line (a card from before says fixed levels)."""
+    levels = card.get("live_levels", {})
+    if levels.get("rule") != "calibrated":
+        return "live checks: fixed levels (no calibration stored with this version)"
+    sizes = ", ".join(str(size) for size in levels["sizes"])
+    return (
+        f"live checks: calibrated levels: p-values against no-drift draws of the {levels['held_out_rows']} held-out "
+        f"rows at {sizes} rows, {levels['correction'].title()}-adjusted; warn at {levels['warn']:g}, alert at "
+        f"{levels['alert']:g}"
+    )
 
 
 def fresh_audits_text(records: list[tuple[int, dict[str, Any]]]) -> list[str]:

@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from veil.checks.calibration import CALIBRATION_FILE, LiveCalibration
 from veil.checks.reference import REFERENCE_FILE, ReferenceStatistics
 from veil.checks.thresholds import AlertThresholds
 from veil.errors import DataError
@@ -49,6 +50,8 @@ class ServedVersion:
     whitening: NDArray[np.float64] = field(repr=False)
     #: The embedding model the version was fitted on (None: its card records none, and any caller is accepted).
     embedding_model: EmbeddingModel | None = None
+    #: The live checks' no-drift draws (None: a version stored before them, judged by fixed levels).
+    calibration: LiveCalibration | None = field(default=None, repr=False)
 
     @property
     def dim(self) -> int:
@@ -62,10 +65,14 @@ class ServedVersion:
             raise IntegrityError(f"{stored.name} {stored.id}: reference statistics unreadable ({error})") from None
         card = dict(stored.card)
         thresholds = AlertThresholds.from_dict({**card.get("thresholds", {}), **(threshold_overrides or {})})
-        # Whitening in the leading eigen-directions the card keeps, dropping numerically null ones.
-        values = reference.eigenvalues[: reference.eigenvectors.shape[1]]
-        keep = values > values[0] * 1e-10 if values.size else values.astype(bool)
-        whitening = reference.eigenvectors[:, keep] / np.sqrt(values[keep])
+        whitening = reference.whitening()
+        # A version stored before live levels were calibrated has no calibration: its checks keep the fixed levels.
+        calibration = None
+        if CALIBRATION_FILE in stored.files:
+            try:
+                calibration = LiveCalibration.from_bytes(stored.files[CALIBRATION_FILE])
+            except (KeyError, ValueError) as error:
+                raise IntegrityError(f"{stored.name} {stored.id}: live calibration unreadable ({error})") from None
         try:
             model = card_model(card)
         except (KeyError, TypeError, DataError) as error:
@@ -82,6 +89,7 @@ class ServedVersion:
             classes=[str(c) for c in card.get("attribute", {}).get("classes", [])],
             whitening=whitening,
             embedding_model=model,
+            calibration=calibration,
         )
 
     def check_model(self, stated: EmbeddingModel | None) -> None:

@@ -105,6 +105,7 @@ async def _run(
             classes=served.classes,
             labels=labels,
             context=context,
+            calibration=served.calibration,
         )
     except ValueError as error:
         raise ServiceError("invalid_request", str(error)) from None
