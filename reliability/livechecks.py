@@ -292,15 +292,27 @@ def false_alarms(setup: LiveSetup, checks: int, mode: str, *, judged: bool) -> O
         f"{total.checks} undrifted checks ({by_size}); alerts {rate(total.alerts, total.checks)}, "
         f"warn or alert {rate(total.alarms, total.checks)}; {_common(total)}"
     )
-    problems = list(total.errors)
-    if judged and total.checks:
-        if 100 * total.alerts > ALERT_PERCENT * total.checks:
-            problems.append(f"alerts on {100 * total.alerts / total.checks:.1f}% of checks: target {ALERT_PERCENT}%")
-        if 100 * total.alarms > WARN_PERCENT * total.checks:
-            problems.append(f"warn or alert on {100 * total.alarms / total.checks:.1f}%: target {WARN_PERCENT}%")
-    else:
+    if not judged:
         figures += f"; targets judged from {JUDGED_ALARM_CHECKS} checks in both series"
+    problems = total.errors + (alarm_misses(total) if judged else [])
     return Outcome(f"live checks: false alarms, {mode}", not problems, figures, problems)
+
+
+def alarm_misses(tally: Tally) -> list[str]:
+    """The false-alarm targets a series of undrifted checks misses (compared in integers)."""
+    misses = []
+    if 100 * tally.alerts > ALERT_PERCENT * tally.checks:
+        misses.append(f"alerts on {100 * tally.alerts / tally.checks:.1f}% of checks: target {ALERT_PERCENT}%")
+    if 100 * tally.alarms > WARN_PERCENT * tally.checks:
+        misses.append(f"warn or alert on {100 * tally.alarms / tally.checks:.1f}%: target {WARN_PERCENT}%")
+    return misses
+
+
+def detection_misses(tally: Tally) -> list[str]:
+    """The detection target a series of checks of one planted change misses (compared in integers)."""
+    if 100 * tally.alerts >= DETECTED_PERCENT * tally.checks:
+        return []
+    return [f"alerted in {100 * tally.alerts / tally.checks:.0f}% of checks: target {DETECTED_PERCENT}%"]
 
 
 def detection(setup: LiveSetup, checks: int, mode: str) -> list[Outcome]:
@@ -312,12 +324,10 @@ def detection(setup: LiveSetup, checks: int, mode: str) -> list[Outcome]:
             f"{tally.checks} checks at {DETECTION_SIZE} rows: alerted {rate(tally.alerts, tally.checks)}, "
             f"warned {tally.statuses['warn']}, ok {tally.statuses['ok']}; {_common(tally)}"
         )
-        problems = list(tally.errors)
-        if tally.checks >= JUDGED_DETECTION_CHECKS:
-            if 100 * tally.alerts < DETECTED_PERCENT * tally.checks:
-                problems.append(f"alerted in {100 * tally.alerts / tally.checks:.0f}%: target {DETECTED_PERCENT}%")
-        else:
+        judged = tally.checks >= JUDGED_DETECTION_CHECKS
+        if not judged:
             figures += f"; target judged from {JUDGED_DETECTION_CHECKS} checks"
+        problems = tally.errors + (detection_misses(tally) if judged else [])
         outcomes.append(Outcome(f"live checks: detects {change}, {mode}", not problems, figures, problems))
     return outcomes
 
