@@ -34,6 +34,7 @@ import re
 import time
 from collections import Counter
 from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import ExitStack
 from dataclasses import dataclass, field
 from functools import partial
@@ -51,7 +52,6 @@ from reliability.planted import (
     hidden_direction,
     prior_shifted_rows,
     shift_along_leading_axis,
-    shifted_shares,
     split_population,
 )
 from reliability.server import LiveServer, live_server
@@ -205,7 +205,6 @@ def planted_changes(setup: LiveSetup) -> dict[str, Callable[[bool, int], LiveSam
     pronoun = population.held_labels["pronoun"]
     classes = [str(c) for c in setup.reference.attributes[0].classes] if setup.reference.attributes else []
     priors = setup.reference.class_priors
-    shares = shifted_shares(priors, PRIOR_SHIFT)
 
     def draw(kind: int, index: int) -> tuple[np.random.Generator, NDArray[np.intp]]:
         rng = np.random.default_rng([SEED, 2, kind, index])
@@ -226,7 +225,7 @@ def planted_changes(setup: LiveSetup) -> dict[str, Callable[[bool, int], LiveSam
 
     def prior_shift(labelled: bool, index: int) -> LiveSample:
         rng = np.random.default_rng([SEED, 3, index])
-        rows = prior_shifted_rows(pronoun, classes, shares, DETECTION_SIZE, rng)
+        rows = prior_shifted_rows(pronoun, classes, priors, PRIOR_SHIFT, DETECTION_SIZE, rng)
         return LiveSample(population.held_x[rows], _labels(population, rows) if labelled else None, replica_of(rng))
 
     return {
@@ -442,6 +441,27 @@ def _merge_problems(record: dict[str, Any], vectors: NDArray[np.float32], round_
     return problems
 
 
+def start_replicas(stack: ExitStack, registry: Path, workdir: Path, env: dict[str, str]) -> list[LiveServer]:
+    """The three replicas, started at once (each waits for its own ``/readyz``); each stopped when ``stack`` is."""
+    managers = [
+        live_server(registry, names=[LIVE], log=workdir / f"live-{i}.log", environment=env)
+        for i in range(len(TRAFFIC_SHARES))
+    ]
+    with ThreadPoolExecutor(len(managers)) as pool:
+        starting = [pool.submit(manager.__enter__) for manager in managers]
+    replicas, failures = [], []
+    for manager, started in zip(managers, starting, strict=True):
+        try:
+            replicas.append(started.result())
+        except RuntimeError as error:
+            failures.append(error)
+        else:
+            stack.push(manager.__exit__)
+    if failures:
+        raise failures[0]
+    return replicas
+
+
 def live_checks(
     workdir: Path, *, fit_rows: int, alarm_checks: int, detection_checks: int, replica_rounds: int
 ) -> list[Outcome]:
@@ -454,11 +474,7 @@ def live_checks(
         "VEIL_ADMIN_TOKEN": ADMIN_TOKEN, "VEIL_RESERVOIR_SIZE": str(RESERVOIR_ROWS), "VEIL_POLL_SECONDS": "0",
     }  # fmt: skip
     with ExitStack() as stack:
-        served = workdir / "live-registry"
-        replicas = [
-            stack.enter_context(live_server(served, names=[LIVE], log=workdir / f"live-{i}.log", environment=env))
-            for i in range(len(TRAFFIC_SHARES))
-        ]
+        replicas = start_replicas(stack, workdir / "live-registry", workdir, env)
         setup = LiveSetup(registry, version, stored.artifact, reference, population, replicas)
         outcomes = [merged_equals_single(setup, replica_rounds)]
         judged = len(MODES) * alarm_checks >= JUDGED_ALARM_CHECKS

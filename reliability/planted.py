@@ -142,15 +142,28 @@ def shifted_shares(priors: NDArray[np.float64], distance: float) -> NDArray[np.f
 
 
 def prior_shifted_rows(
-    labels: NDArray[np.str_], classes: list[str], shares: NDArray[np.float64], n: int, rng: np.random.Generator
+    labels: NDArray[np.str_],
+    classes: list[str],
+    priors: NDArray[np.float64],
+    distance: float,
+    n: int,
+    rng: np.random.Generator,
 ) -> NDArray[np.intp]:
-    """``n`` rows of ``labels`` drawn without replacement, each class ``c`` in ``shares[c] · n`` of them.
+    """``n`` rows of ``labels`` drawn without replacement, their class shares ``distance`` from ``priors``.
 
-    Counts are rounded by largest remainder, so they add up to ``n`` exactly.
+    The shares are :func:`shifted_shares`'s.  The gaining class's count is
+    rounded up and the rest shared among the others by largest remainder, so
+    the shift in whole rows is never smaller than ``distance`` (and less than
+    one row, ``1 / n``, larger): a level set at the planted distance is reached
+    by the planted rows, not by how their counts were rounded.
     """
+    shares = shifted_shares(priors, distance)
+    gainer = int(np.argmin(priors))
     exact = shares * n
     counts = np.floor(exact).astype(int)
-    for index in np.argsort(-(exact - counts), kind="stable")[: n - int(counts.sum())]:
+    counts[gainer] = int(np.ceil(exact[gainer]))
+    others = [int(i) for i in np.argsort(-(exact - np.floor(exact)), kind="stable") if i != gainer]
+    for index in others[: n - int(counts.sum())]:
         counts[index] += 1
     rows = [
         rng.choice(np.flatnonzero(labels == name), count, replace=False)

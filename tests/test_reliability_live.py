@@ -108,12 +108,14 @@ def test_the_prior_shift_is_the_distance_asked_for() -> None:
     with pytest.raises(ValueError, match="cannot be made"):
         shifted_shares(priors, 0.6)
     labels = np.array(["he"] * 600 + ["she"] * 400)
-    rows = prior_shifted_rows(labels, ["he", "she"], shares, 301, np.random.default_rng(0))
-    assert np.unique(rows).size == 301
-    counts = Counter(labels[rows].tolist())
-    assert counts["he"] + counts["she"] == 301
-    # Largest remainder: each count within one row of its exact share.
-    assert abs(counts["she"] - 301 * shares[1]) < 1
+    for n in (100, 300, 301):
+        rows = prior_shifted_rows(labels, ["he", "she"], priors, 0.2, n, np.random.default_rng(n))
+        assert np.unique(rows).size == n
+        counts = Counter(labels[rows].tolist())
+        assert counts["he"] + counts["she"] == n
+        # In whole rows the distance is at least the one asked for, and less than one row more (compared in
+        # integers: 100 · she − 49 · n ≥ 20 · n, i.e. she / n − 0.49 ≥ 0.2).
+        assert 20 * n <= 100 * counts["she"] - 49 * n < 20 * n + 100
 
 
 def tally_of(**statuses: int) -> Tally:
