@@ -66,8 +66,8 @@ QUICK = Size(
     crash_trials=8,
     fuzz_examples=10,
     live_fit_rows=3000,
-    alarm_checks=6,
-    detection_checks=2,
+    alarm_checks=3,
+    detection_checks=1,
     replica_rounds=1,
 )
 SERVED = [PROFILES, PLANTED]
