@@ -25,6 +25,7 @@ from reliability.badinput import BODY_LIMIT, bad_input_against
 from reliability.crashloop import crash_loop
 from reliability.faults import faults_while_serving
 from reliability.fuzz import fuzz_against
+from reliability.livechecks import live_checks
 from reliability.load import LoadCell, measure_load, rollback_under_load
 from reliability.outcome import Outcome, format_table
 from reliability.security import code_and_cors_outcome, logs_outcome
@@ -39,6 +40,12 @@ class Size:
     rollback_cycles: int
     crash_trials: int
     fuzz_examples: int
+    #: Live checks: rows the version is fitted on, undrifted checks per labels mode (over 100, 300 and 1,000
+    #: rows), checks per planted change and labels mode, rounds of the merged check over three replicas.
+    live_fit_rows: int
+    alarm_checks: int
+    detection_checks: int
+    replica_rounds: int
 
 
 FULL = Size(
@@ -47,6 +54,10 @@ FULL = Size(
     rollback_cycles=25,
     crash_trials=60,
     fuzz_examples=200,
+    live_fit_rows=16000,
+    alarm_checks=255,
+    detection_checks=100,
+    replica_rounds=3,
 )
 QUICK = Size(
     clients=8,
@@ -54,6 +65,10 @@ QUICK = Size(
     rollback_cycles=3,
     crash_trials=8,
     fuzz_examples=10,
+    live_fit_rows=3000,
+    alarm_checks=3,
+    detection_checks=1,
+    replica_rounds=1,
 )
 SERVED = [PROFILES, PLANTED]
 ADMIN = {"VEIL_ADMIN_TOKEN": ADMIN_TOKEN, "VEIL_MAX_BODY_BYTES": str(BODY_LIMIT)}
@@ -100,11 +115,20 @@ def crash_checks(workdir: Path, size: Size) -> list[Outcome]:
     return [crash_loop(workdir / "crash", trials=size.crash_trials)]
 
 
+def live_check_measures(workdir: Path, size: Size) -> list[Outcome]:
+    """False alarms, detection and the merged check, against three replicas of one version (reliability.livechecks)."""
+    return live_checks(
+        workdir, fit_rows=size.live_fit_rows, alarm_checks=size.alarm_checks,
+        detection_checks=size.detection_checks, replica_rounds=size.replica_rounds,
+    )  # fmt: skip
+
+
 GROUPS: dict[str, Callable[[Path, Size], list[Outcome]]] = {
     "serving": serving_checks,
     "rollback": rollback_checks,
     "faults": fault_checks,
     "crash": crash_checks,
+    "live": live_check_measures,
 }
 
 
