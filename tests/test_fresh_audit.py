@@ -45,6 +45,8 @@ def fitted(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str, Path]:
     """A registry with one LEACE version of the population, and its folder."""
     folder = tmp_path_factory.mktemp("fresh")
     data = _save(folder / "fit.npz", *_population(draw_seed=1))
+    # Written here, not by the test that reads it first: under several workers that test may run elsewhere.
+    _save(folder / "same.npz", *_population(draw_seed=2))
     registry = folder / "registry"
     result = run(
         "fit", "--data", data, "--attribute", "region", "--task", "task", "--method", "leace", "--name", "planted",
@@ -70,7 +72,7 @@ def test_the_same_population_keeps_the_fitting_verdict_and_a_shifted_one_gets_a_
     card = Registry(registry).read_version("planted", version).card
     # LEACE on a mean shift: no probe reads the attribute after it on the held-out rows (LEACE's theorem).
     assert card["verdict"]["status"] == "ok", card["verdict"]
-    same = _audit(registry, _save(folder / "same.npz", *_population(draw_seed=2)))
+    same = _audit(registry, folder / "same.npz")
     assert same["verdict"]["status"] == card["verdict"]["status"]
     # A fresh audit is judged on the threats the card claims: LEACE's, linear readers.
     assert same["verdict"]["claimed"] == card["claims"] == ["linear"]
