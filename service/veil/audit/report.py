@@ -9,6 +9,7 @@ from typing import Any
 
 from veil.audit.context_report import ContextAudit
 from veil.audit.glossary import MEANINGS, PROBE_MODELS, REGRESSION_MODELS
+from veil.audit.independence_report import NOT_RUN, IndependenceAudit
 from veil.audit.scores import PROBE_LABELS, PROBES, ProbeScore
 
 __all__ = [
@@ -272,6 +273,9 @@ class AuditReport:
     it was recorded (``ranking`` also for a continuous attribute).
     ``context`` holds every reader within each value of a context, when the
     audited rows carried one (see :mod:`veil.audit.context_report`).
+    ``independence`` holds the independence tests of the erased rows against a
+    categorical attribute (see :mod:`veil.audit.independence_report`); None in
+    audits made before them, or of a continuous attribute.
     """
 
     method: str
@@ -286,6 +290,7 @@ class AuditReport:
     protocol: ProbeProtocol | None = None
     ranking: RankingFairness | None = None
     context: ContextAudit | None = None
+    independence: IndependenceAudit | None = None
 
     @property
     def balanced_chance(self) -> float | None:
@@ -305,6 +310,7 @@ class AuditReport:
         protocol = data.get("protocol")
         ranking = data.get("ranking")
         context = data.get("context")
+        independence = data.get("independence")
         return cls(
             method=data["method"],
             rank=data["rank"],
@@ -318,6 +324,7 @@ class AuditReport:
             protocol=None if protocol is None else ProbeProtocol(**protocol),
             ranking=None if ranking is None else RankingFairness.from_dict(ranking),
             context=None if context is None else ContextAudit.from_dict(context),
+            independence=None if independence is None else IndependenceAudit.from_dict(independence),
         )
 
     @classmethod
@@ -424,6 +431,10 @@ class AuditReport:
         lines += [f"{name:{width}}  {b:>{column}}  {a:>{column}}" for name, b, a in rows]
         if self.context is not None:
             lines += self.context.lines()
+        if self.independence is not None:
+            lines += self.independence.lines()
+        elif self.classes:
+            lines.append(NOT_RUN)
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
 

@@ -13,6 +13,8 @@ from sklearn.model_selection import train_test_split
 from sklearn.utils.validation import check_array, check_is_fitted
 
 from veil.audit import geometry, probes, ranking, readers
+from veil.audit.independence_report import IndependenceAudit
+from veil.audit.independence_run import FAST, IndependenceSettings, ReaderEvidence, independence_audit
 from veil.audit.report import (
     FRESH_KFOLD,
     HELD_OUT_KFOLD,
@@ -34,6 +36,7 @@ from veil.maps.context import checked_context
 from veil.maps.kinds import EmbeddingMap
 from veil.maps.linalg import whiten, whitening_factors
 from veil.maps.moments import MomentState
+from veil.progress import phase
 
 E = TypeVar("E", bound=Erasure)
 NEIGHBOURS = 10
@@ -82,6 +85,7 @@ def audit(
     folds: int = 5,
     nonlinear: bool = True,
     random_state: int = 0,
+    independence: IndependenceSettings | None = FAST,
 ) -> AuditReport:
     """Measure leakage and utility of a fitted eraser on data it never saw.
 
@@ -119,6 +123,10 @@ def audit(
         MLP); otherwise the linear probe only.
     random_state : int, default=0
         Seeds the folds and the probes.
+    independence : IndependenceSettings, optional
+        The independence tests of the erased rows against a categorical attribute, with their power
+        (:mod:`veil.audit.independence`): the fast setting by default, ``THOROUGH`` for finer figures, None to
+        leave them out.
 
     Returns
     -------
@@ -134,6 +142,7 @@ def audit(
         folds=folds,
         nonlinear=nonlinear,
         random_state=random_state,
+        independence=independence,
     )
 
 
@@ -148,6 +157,7 @@ def audit_artifact(
     folds: int = 5,
     nonlinear: bool = True,
     random_state: int = 0,
+    independence: IndependenceSettings | None = FAST,
 ) -> AuditReport:
     """Measure leakage and utility of a stored map on a fresh sample, as :func:`audit` does for an eraser.
 
@@ -165,6 +175,8 @@ def audit_artifact(
     given : array-like of shape (n,), optional
         Each row's context value: the probes are then also measured within each value (as :func:`audit`).
     given_name : str, optional
+    independence : IndependenceSettings, optional
+        As :func:`audit`.
 
     Returns
     -------
@@ -179,6 +191,7 @@ def audit_artifact(
         folds=folds,
         nonlinear=nonlinear,
         random_state=random_state,
+        independence=independence,
     )
 
 
@@ -211,6 +224,7 @@ def _audit_map(
     folds: int,
     nonlinear: bool,
     random_state: int,
+    independence: IndependenceSettings | None = None,
 ) -> AuditReport:
     raw = check_array(X, dtype=(np.float64, np.float32))
     attribute = encode_attribute(z, raw.shape[0])
@@ -220,6 +234,8 @@ def _audit_map(
     gap_after: float | None
     noise_floor: float | None
     regression_trees: tuple[RegressionScore, RegressionScore] | None = None
+    # Each probe's held-out predictions on the erased rows: the readers' independence test uses the strongest's.
+    predicted: dict[str, NDArray[np.intp]] = {}
 
     if attribute.labels is not None:
         codes = attribute.codes
@@ -228,6 +244,10 @@ def _audit_map(
         scores: dict[str, tuple[ProbeScore, ProbeScore]] = {}
         for name in PROBES if nonlinear else ("linear",):
             model = readers.build_probe(name, random_state, sizes=sizes, features=raw.shape[1])
+            predicted[name] = probes.cross_val_labels(
+                model, erased, codes, folds=folds, random_state=random_state,
+                stage=f"{PROBE_LABELS[name]}, erased (folds)",
+            )  # fmt: skip
             scores[name] = (
                 probes.classification_score(
                     model,
@@ -237,14 +257,7 @@ def _audit_map(
                     random_state=random_state,
                     stage=f"{PROBE_LABELS[name]}, raw (folds)",
                 ),
-                probes.classification_score(
-                    model,
-                    erased,
-                    codes,
-                    folds=folds,
-                    random_state=random_state,
-                    stage=f"{PROBE_LABELS[name]}, erased (folds)",
-                ),
+                probes.score_predictions(codes, predicted[name]),
             )
         linear_before: ProbeScore | RegressionScore
         linear_after: ProbeScore | RegressionScore
@@ -337,6 +350,11 @@ def _audit_map(
         )
 
     ranking_fairness = None if codes is None else ranking.ranking_before_after(raw, erased, codes, NEIGHBOURS)
+    tests = None
+    if codes is not None and independence is not None:
+        tests = _independence(
+            raw, erased, codes, neighbours_erased, leakage, predicted, independence, folds=folds, seed=random_state
+        )
     within = None
     if context.values is not None:
         if codes is None or attribute.labels is None:
@@ -380,7 +398,42 @@ def _audit_map(
         protocol=ProbeProtocol(scheme=audited.scheme, folds=used_folds, seed=random_state, eraser_rows=fitted_rows),
         ranking=ranking_fairness,
         context=within,
+        independence=tests,
     )
+
+
+def _independence(
+    raw: NDArray[np.floating],
+    erased: NDArray[np.floating],
+    codes: NDArray[np.intp],
+    neighbours: NDArray[np.intp],
+    leakage: Leakage,
+    predicted: dict[str, NDArray[np.intp]],
+    settings: IndependenceSettings,
+    *,
+    folds: int,
+    seed: int,
+) -> IndependenceAudit:
+    """The independence tests of the erased rows, the readers' test on the strongest probe's predictions."""
+    strongest = leakage.strongest
+    reader = None
+    if strongest is not None:
+        name = strongest
+
+        def fit_predict(x: NDArray[np.floating], labels: NDArray[np.intp]) -> NDArray[np.intp]:
+            # The same reader, sized for the rows it is given, with the same folds as the audit.
+            sizes = readers.fold_sizes(labels, folds)
+            model = readers.build_probe(name, seed, sizes=sizes, features=x.shape[1])
+            return probes.cross_val_labels(model, x, labels, folds=folds, random_state=seed)
+
+        scores = {probe: after for probe, _, after in leakage.probes() if isinstance(after, ProbeScore)}
+        reader = ReaderEvidence(name, predicted[name], scores, fit_predict)
+    with phase("independence tests"):
+        return independence_audit(
+            raw, erased, codes, neighbours=neighbours,
+            find_neighbours=lambda x: geometry.nearest_neighbours(x, NEIGHBOURS), reader=reader,
+            settings=settings, seed=seed,
+        )  # fmt: skip
 
 
 def _task_codes(task: object, n_rows: int) -> NDArray[np.intp]:

@@ -1,0 +1,113 @@
+"""The family of independence tests an audit runs on its erased rows, with power, at a fast or thorough setting."""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, replace
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.audit.independence import ALPHA, corrected, kernel_test, neighbour_test, reader_test
+from veil.audit.independence_report import IndependenceAudit
+from veil.audit.power import PowerSettings, reader_run, smallest_strengths
+from veil.audit.scores import ProbeScore
+
+
+@dataclass(frozen=True)
+class IndependenceSettings:
+    """Permutations behind each p-value, and the power measured (None: not measured)."""
+
+    permutations: int
+    power: PowerSettings | None
+    thorough: bool
+
+
+#: ``veil fit`` and ``veil audit`` by default (measured times in docs/independence.md).
+FAST = IndependenceSettings(
+    permutations=200,
+    power=PowerSettings(grid=(0.1, 0.25, 0.5, 1.0), draws=10, permutations=100, readers=False),
+    thorough=False,
+)
+#: ``--thorough``: finer p-values, a finer grid and more draws.
+THOROUGH = IndependenceSettings(
+    permutations=1000,
+    power=PowerSettings(
+        grid=(0.05, 0.1, 0.15, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.85, 1.0), draws=40, permutations=200, readers=True
+    ),
+    thorough=True,
+)
+
+
+def settings_for(thorough: bool) -> IndependenceSettings:
+    return THOROUGH if thorough else FAST
+
+
+@dataclass(frozen=True)
+class ReaderEvidence:
+    """The strongest reader after erasure: its name, its held-out predictions, every reader's score, and how to
+    refit it on other rows (held-out predictions of rows), for power."""
+
+    name: str
+    predicted: NDArray[np.intp]
+    scores: Mapping[str, ProbeScore]
+    fit_predict: Callable[[NDArray[np.floating], NDArray[np.intp]], NDArray[np.intp]]
+
+
+def independence_audit(
+    raw: NDArray[np.floating],
+    erased: NDArray[np.floating],
+    codes: NDArray[np.intp],
+    *,
+    neighbours: NDArray[np.intp],
+    find_neighbours: Callable[[NDArray[np.floating]], NDArray[np.intp]],
+    reader: ReaderEvidence | None,
+    settings: IndependenceSettings,
+    seed: int,
+    alpha: float = ALPHA,
+) -> IndependenceAudit:
+    """Run the family on the erased rows, correct it (Holm), and measure each test's power on planted rows.
+
+    Parameters
+    ----------
+    raw, erased : ndarray of shape (n, d)
+        The audited rows before and after the map (the power plants between them).
+    codes : ndarray of shape (n,)
+        The attribute's class of each row.
+    neighbours : ndarray of shape (n, k)
+        Each erased row's nearest neighbours (the audit's own).
+    find_neighbours : callable
+        Finds them for other rows (power).
+    reader : ReaderEvidence, optional
+        The strongest reader; None leaves the readers' test out.
+    """
+    rng = np.random.default_rng(seed)
+    permutations = settings.permutations
+    outcomes = [
+        kernel_test(erased, codes, permutations=permutations, rng=rng, alpha=alpha),
+        neighbour_test(neighbours, codes, permutations=permutations, rng=rng, alpha=alpha),
+    ]
+    if reader is not None:
+        outcomes.insert(
+            1,
+            reader_test(
+                reader.predicted, codes, reader.scores, reader.name, permutations=permutations, rng=rng, alpha=alpha
+            ),
+        )
+    tests = corrected(outcomes)
+    power = settings.power
+    if power is None:
+        return IndependenceAudit(tests, alpha, permutations, settings.thorough, seed=seed)
+    result = smallest_strengths(
+        raw, erased, codes, neighbours=find_neighbours,
+        reader=None if reader is None else reader_run(reader.fit_predict, reader.name),
+        settings=power, rng=rng, alpha=alpha,
+    )  # fmt: skip
+    tests = tuple(
+        replace(test, smallest_strength=result.smallest.get(test.name), power_measured=test.name in result.smallest)
+        for test in tests
+    )
+    return IndependenceAudit(
+        tests, alpha, permutations, settings.thorough, power_grid=power.grid, power_draws=power.draws,
+        power_rows=result.rows, seed=seed,
+    )  # fmt: skip
