@@ -109,7 +109,7 @@ class IndependenceAudit:
     power_grid : tuple of float
         The planted strengths measured, ascending (empty: power was not measured).
     power_draws : int
-        Draws at each strength: each a random half of the rows, planted, then tested.
+        Draws at each strength: each a random quarter of the rows (stratified), planted, then tested.
     power_rows : int
         Rows in each draw.
     power_share : float

@@ -10,7 +10,7 @@ from numpy.typing import NDArray
 
 from veil.audit.independence import ALPHA, corrected, kernel_test, neighbour_test, reader_test
 from veil.audit.independence_report import IndependenceAudit
-from veil.audit.power import PowerSettings, reader_run, smallest_strengths
+from veil.audit.power import FitPredict, PowerSettings, reader_run, smallest_strengths
 from veil.audit.scores import ProbeScore
 
 
@@ -45,13 +45,14 @@ def settings_for(thorough: bool) -> IndependenceSettings:
 
 @dataclass(frozen=True)
 class ReaderEvidence:
-    """The strongest reader after erasure: its name, its held-out predictions, every reader's score, and how to
-    refit it on other rows (held-out predictions of rows), for power."""
+    """The strongest reader after erasure: its name, its held-out predictions, the rows of the fold its test reads,
+    every reader's score, and how to refit it on other rows (held-out predictions of rows), for power."""
 
     name: str
     predicted: NDArray[np.intp]
+    rows: NDArray[np.intp]
     scores: Mapping[str, ProbeScore]
-    fit_predict: Callable[[NDArray[np.floating], NDArray[np.intp]], NDArray[np.intp]]
+    fit_predict: FitPredict
 
 
 def independence_audit(
@@ -91,7 +92,14 @@ def independence_audit(
         outcomes.insert(
             1,
             reader_test(
-                reader.predicted, codes, reader.scores, reader.name, permutations=permutations, rng=rng, alpha=alpha
+                reader.predicted,
+                codes,
+                reader.scores,
+                reader.name,
+                rows=reader.rows,
+                permutations=permutations,
+                rng=rng,
+                alpha=alpha,
             ),
         )
     tests = corrected(outcomes)

@@ -153,6 +153,12 @@ def cross_val_labels(
     return held_out_predictions(model, x, codes, splitter, stage=stage)
 
 
+def first_fold(codes: NDArray[np.intp], folds: int, random_state: int) -> NDArray[np.intp]:
+    """The rows of the first test fold of :func:`cross_val_labels`' folds, in increasing order."""
+    splitter = StratifiedKFold(n_splits=probe_folds(codes, folds), shuffle=True, random_state=random_state)
+    return np.sort(next(iter(splitter.split(np.zeros((codes.size, 1)), codes)))[1])
+
+
 def regression_score(
     x: NDArray[np.floating],
     target: NDArray[np.float64],

@@ -420,14 +420,15 @@ def _independence(
     if strongest is not None:
         name = strongest
 
-        def fit_predict(x: NDArray[np.floating], labels: NDArray[np.intp]) -> NDArray[np.intp]:
+        def fit_predict(x: NDArray[np.floating], labels: NDArray[np.intp]) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
             # The same reader, sized for the rows it is given, with the same folds as the audit.
             sizes = readers.fold_sizes(labels, folds)
             model = readers.build_probe(name, seed, sizes=sizes, features=x.shape[1])
-            return probes.cross_val_labels(model, x, labels, folds=folds, random_state=seed)
+            labelled = probes.cross_val_labels(model, x, labels, folds=folds, random_state=seed)
+            return labelled, probes.first_fold(labels, folds, seed)
 
         scores = {probe: after for probe, _, after in leakage.probes() if isinstance(after, ProbeScore)}
-        reader = ReaderEvidence(name, predicted[name], scores, fit_predict)
+        reader = ReaderEvidence(name, predicted[name], probes.first_fold(codes, folds, seed), scores, fit_predict)
     with phase("independence tests"):
         return independence_audit(
             raw, erased, codes, neighbours=neighbours,
