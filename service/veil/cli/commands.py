@@ -120,6 +120,7 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
         rows=args.audit_rows if streamed else None,
         thresholds=_audit_thresholds(args.audit_threshold),
         claims=None if args.claim is None else tuple(args.claim),
+        thorough=args.thorough,
     )
     reading = ReadingSpec()
     if streamed:
@@ -241,6 +242,7 @@ def audit(args: argparse.Namespace) -> int:
         seed=args.seed,
         max_rows=args.rows,
         chunk_rows=args.chunk_rows,
+        thorough=args.thorough,
     )
     record = outcome.record
     if args.json:

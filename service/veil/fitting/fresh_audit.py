@@ -26,6 +26,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import audit_artifact
+from veil.audit.independence_run import IndependenceSettings, settings_for
 from veil.audit.report import AuditReport
 from veil.checks.verdict import Verdict
 from veil.defaults import AUDIT_ROWS, STREAM_CHUNK_ROWS
@@ -103,6 +104,7 @@ def audit_stored_version(
     max_rows: int | None = None,
     chunk_rows: int = STREAM_CHUNK_ROWS,
     notes: Sequence[str] = (),
+    thorough: bool = False,
 ) -> FreshAudit:
     """Audit version ``reference`` of ``name`` on ``sample`` and append the result to the version's audits.
 
@@ -123,6 +125,8 @@ def audit_stored_version(
         :data:`veil.defaults.AUDIT_ROWS` of a streamed one (whose rows may not fit in memory).
     notes : sequence of str
         Notes for the record (how the sample was read).
+    thorough : bool, default=False
+        The independence tests' thorough setting (see :mod:`veil.audit.independence_run`).
 
     Raises
     ------
@@ -143,7 +147,11 @@ def audit_stored_version(
     if sample.dim != card["dim"]:
         raise DataError(f"the sample has {sample.dim} dimensions and {name} {stored.id} takes {card['dim']}")
     _check_guarded(sample.attribute_key, card, f"{name} {stored.id}")
-    settings = {"nonlinear": nonlinear, "seed": seed, "max_rows": max_rows}
+    settings: dict[str, object] = {"nonlinear": nonlinear, "seed": seed, "max_rows": max_rows}
+    if thorough:
+        # Only when asked: the key of a fast audit stays what it was before the setting existed.
+        settings["thorough"] = True
+    independence = settings_for(thorough)
     thresholds = card_thresholds(card)
     with phase("reading the fresh sample"):
         x, z, task, given = _rows(sample, max_rows=max_rows, seed=seed, chunk_rows=chunk_rows)
@@ -160,7 +168,9 @@ def audit_stored_version(
     if x.shape[0] < sample.labelled_rows:
         kept_notes.append(f"audited on a hash-drawn sample of {x.shape[0]} of the {sample.labelled_rows} rows")
     if is_table(z):
-        attributes = _audit_each(stored.artifact, x, z, task, context, nonlinear=nonlinear, seed=seed)
+        attributes = _audit_each(
+            stored.artifact, x, z, task, context, nonlinear=nonlinear, seed=seed, independence=independence
+        )
         report = attributes[0][1]
     else:
         labels, codes = np.unique(z, return_inverse=True)
@@ -175,6 +185,7 @@ def audit_stored_version(
             folds=audit_folds(codes.astype(np.intp)),
             nonlinear=nonlinear,
             random_state=seed,
+            independence=independence,
         )
         fitted = {str(label) for label in card["attribute"]["classes"]}
         unseen = sorted({str(label) for label in labels} - fitted)
@@ -241,6 +252,7 @@ def _audit_each(
     *,
     nonlinear: bool,
     seed: int,
+    independence: IndependenceSettings,
 ) -> list[tuple[str, AuditReport]]:
     """Each attribute of a fresh sample of several audited on its own (the first categorical one first)."""
     for attribute, continuous, values in attribute_columns(z):
@@ -257,6 +269,7 @@ def _audit_each(
             folds=folds,
             nonlinear=nonlinear,
             random_state=seed,
+            independence=independence,
         ),
     )
     continuous_ones = {attribute for attribute, is_continuous, _ in attribute_columns(z) if is_continuous}

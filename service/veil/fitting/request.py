@@ -176,6 +176,10 @@ class AuditSpec:
         is built to remove (see :meth:`FitRequest.claims`): the verdict's headline judges these and lists the
         others, measured, as not claimed.  Widen a claim a method does not make only on evidence (a transport
         version that nonlinear probes do not read on fresh samples), or narrow it.
+    thorough : bool, default=False
+        The independence tests' thorough setting (``--thorough``): more permutations behind each p-value, and
+        power on a finer grid with more draws, the readers' test's included (see
+        :mod:`veil.audit.independence_run`; the costs are in docs/independence.md).  Fresh audits take their own.
     """
 
     nonlinear: bool = True
@@ -183,6 +187,7 @@ class AuditSpec:
     thresholds: AuditThresholds | None = None
     live_thresholds: AlertThresholds | None = None
     claims: tuple[str, ...] | None = None
+    thorough: bool = False
 
     def __post_init__(self) -> None:
         if self.rows is not None and self.rows < 2:
@@ -208,6 +213,7 @@ class AuditSpec:
             "thresholds": (self.thresholds or AuditThresholds()).to_dict(),
             "live_thresholds": (self.live_thresholds or AlertThresholds()).to_dict(),
             "claims": None if self.claims is None else list(self.claims),
+            "thorough": self.thorough,
         }
 
 

@@ -11,6 +11,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from veil.audit import audit
+from veil.audit.independence_run import settings_for
 from veil.audit.points import Sweep
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
@@ -74,6 +75,7 @@ def audit_and_store(
     every categorical attribute is then also audited within each value.
     """
     seed, nonlinear = request.fit.seed, request.audit.nonlinear
+    independence = settings_for(request.audit.thorough)
     x_held, z_held, task_held = held_out
     artifact = eraser.export()
     attribute_audits: list[tuple[str, AuditReport]] = []
@@ -91,6 +93,7 @@ def audit_and_store(
                 folds=folds,
                 nonlinear=nonlinear,
                 random_state=seed,
+                independence=independence,
             ),
         )
         first = _first_categorical(z_held)
@@ -131,7 +134,7 @@ def audit_and_store(
         # The audit reports each probe's folds as a stage of its own.
         report = audit(
             eraser, x_held, z_held, task=task_held, **within_context(held_context, None, z_held), folds=folds,
-            nonlinear=nonlinear, random_state=seed,
+            nonlinear=nonlinear, random_state=seed, independence=independence,
         )  # fmt: skip
         x_plot = x_held
         fit_codes = fit_sample[1]

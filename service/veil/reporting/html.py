@@ -29,6 +29,7 @@ from veil.reporting import headline, sections
 from veil.reporting import plots as drawn
 from veil.reporting.attributes import attributes_section
 from veil.reporting.context import context_section
+from veil.reporting.independence import independence_section
 from veil.reporting.plotdata import PLOT_DATA_FILE, PlotData
 
 REPORT_FILE = "report.html"
@@ -148,6 +149,7 @@ def render_report(
         sections.figure("Leakage before and after erasure", drawn.leakage_plot(audit), (8, 3.6), ""),
         sections.probe_table(audit),
         context_section(audit),
+        independence_section(audit),
         attributes_section(card),
         sections.figure(
             "Retrieval: who the nearest neighbours are", drawn.retrieval_plot(audit), (7, 3.4), "No retrieval figures."
