@@ -71,6 +71,49 @@ def test_p_values_are_uniform_without_dependence(name: str, classes: int) -> Non
     assert stats.binomtest(rejections, DRAWS, ALPHA).pvalue > 0.01
 
 
+def _context_null(rng: np.random.Generator) -> tuple[NDArray[np.float64], NDArray[np.intp], NDArray[np.intp]]:
+    """Rows that depend on a context of two values whose class shares differ (0.8 / 0.2), and on nothing else:
+    the class tells about the rows through the context only."""
+    groups = (np.arange(ROWS) % 2).astype(np.intp)
+    codes = (rng.random(ROWS) < np.where(groups == 0, 0.8, 0.2)).astype(np.intp)
+    x = rng.standard_normal((ROWS, DIM))
+    x[:, 0] += 3.0 * groups
+    return x, codes, groups
+
+
+@pytest.mark.parametrize("name", ["kernel", "neighbours"])
+def test_p_values_within_a_context_are_uniform_when_only_the_context_tells(name: str) -> None:
+    rng = np.random.default_rng(13)
+    p, pooled = [], []
+    for _ in range(DRAWS):
+        x, codes, groups = _context_null(rng)
+        if name == "kernel":
+            p.append(kernel_test(x, codes, permutations=PERMUTATIONS, rng=rng, bootstrap=0, groups=groups).p_value)
+            pooled.append(kernel_test(x, codes, permutations=PERMUTATIONS, rng=rng, bootstrap=0).p_value)
+        else:
+            queries = np.concatenate([np.flatnonzero(groups == g) for g in (0, 1)])
+            found = np.concatenate(
+                [np.flatnonzero(groups == g)[nearest_neighbours(x[groups == g], 10)] for g in (0, 1)]
+            )
+            p.append(
+                neighbour_test(
+                    found, codes, permutations=PERMUTATIONS, rng=rng, bootstrap=0, queries=queries, groups=groups
+                ).p_value
+            )
+            pooled.append(
+                neighbour_test(
+                    nearest_neighbours(x, 10), codes, permutations=PERMUTATIONS, rng=rng, bootstrap=0
+                ).p_value
+            )
+    values = np.asarray(p)
+    # Uniform within the context (scipy.stats.kstest) with false positives in their binomial interval
+    # (scipy.stats.binomtest) ...
+    assert stats.kstest(values, "uniform").pvalue > 0.01
+    assert stats.binomtest(int(np.count_nonzero(values < ALPHA)), DRAWS, ALPHA).pvalue > 0.01
+    # ... while the pooled test, which counts what the context tells, rejects far more often than 5%.
+    assert np.mean(np.asarray(pooled) < ALPHA) > 0.5
+
+
 def _shifted(
     rows: int, shift: float, rng: np.random.Generator
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.intp]]:

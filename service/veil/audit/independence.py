@@ -32,6 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 from scipy.stats import beta
+from threadpoolctl import ThreadpoolController
 
 from veil.audit.independence_report import IndependenceTest
 from veil.audit.scores import ProbeScore
@@ -46,6 +47,8 @@ KERNEL_SCALES = (0.5, 1.0, 2.0, 4.0, 8.0)
 KERNEL_ROWS = 2000
 #: Resamples of the rows behind the kernel and neighbour tests' upper bounds.
 BOOTSTRAP_ROUNDS = 200
+#: Found once: finding the thread pools on every call cost more than the small products it limits.
+_THREADS = ThreadpoolController()
 #: Permuted labels evaluated at a time are capped so that a block holds about this many values.
 _BLOCK_VALUES = 4_000_000
 
@@ -92,9 +95,21 @@ def holm(p_values: NDArray[np.float64] | list[float]) -> NDArray[np.float64]:
     return out
 
 
-def permuted_codes(codes: NDArray[np.intp], count: int, rng: np.random.Generator) -> NDArray[np.intp]:
-    """``count`` random permutations of ``codes``, one per row."""
-    return np.asarray(rng.permuted(np.tile(codes, (count, 1)), axis=1), dtype=np.intp)
+def permuted_codes(
+    codes: NDArray[np.intp], count: int, rng: np.random.Generator, groups: NDArray[np.intp] | None = None
+) -> NDArray[np.intp]:
+    """``count`` random permutations of ``codes``, one per row; with ``groups``, each within every group only.
+
+    Permuting within each value of a context keeps what the context alone tells about the attribute (each
+    value's class shares): the test is then of independence given the context.
+    """
+    tiled = np.tile(codes, (count, 1))
+    if groups is None:
+        return np.asarray(rng.permuted(tiled, axis=1), dtype=np.intp)
+    for group in np.unique(groups):
+        members = np.flatnonzero(groups == group)
+        tiled[:, members] = rng.permuted(tiled[:, members], axis=1)
+    return np.asarray(tiled, dtype=np.intp)
 
 
 def _blocks(total: int, per_block: int) -> list[tuple[int, int]]:
@@ -119,7 +134,16 @@ def squared_distances(x: NDArray[np.floating]) -> NDArray[np.float64]:
 
 
 def class_sums(kernel: NDArray[np.float64], labels: NDArray[np.intp], counts: NDArray[np.intp]) -> NDArray[np.float64]:
-    """``sum_c 1_c' K 1_c / n_c`` for each labelling (one per row of ``labels``), in blocks."""
+    """``sum_c 1_c' K 1_c / n_c`` for each labelling (one per row of ``labels``), in blocks.
+
+    BLAS runs on one thread: these products are small and many, and on a busy 2-core machine a second thread's
+    spin-waiting made a 60 x 400 product a thousand times slower (34 ms against 0.03 ms).
+    """
+    with _THREADS.limit(limits=1):
+        return _class_sums(kernel, labels, counts)
+
+
+def _class_sums(kernel: NDArray[np.float64], labels: NDArray[np.intp], counts: NDArray[np.intp]) -> NDArray[np.float64]:
     n, k = kernel.shape[0], counts.size
     out = np.empty(labels.shape[0])
     for start, stop in _blocks(labels.shape[0], _BLOCK_VALUES // (n * k)):
@@ -141,6 +165,7 @@ def kernel_test(
     alpha: float = ALPHA,
     max_rows: int = KERNEL_ROWS,
     bootstrap: int = BOOTSTRAP_ROUNDS,
+    groups: NDArray[np.intp] | None = None,
 ) -> Outcome:
     """The aggregated kernel two-sample test (k classes) with its effect and upper bound.
 
@@ -156,18 +181,26 @@ def kernel_test(
     its upper bound adds the spread of a bootstrap of the rows (the upper
     ``1 - alpha`` quantile less the bootstrap mean) to the estimate.
     ``bootstrap=0`` skips the bound (it is then the estimate).
+
+    With ``groups`` (each row's context value) the classes are those within each value (the cells of value and
+    class) and the labels are permuted within each value: a test of independence given the context
+    (named ``kernel-context``).
     """
+    name = "kernel" if groups is None else "kernel-context"
     n_all = codes.size
     rows = np.arange(n_all)
     if n_all > max_rows:
         rows = np.sort(rng.choice(n_all, size=max_rows, replace=False))
-    labels, counts = _recoded(codes[rows])
+    cells = codes[rows] if groups is None else groups[rows] * (int(codes.max()) + 1) + codes[rows]
+    labels, counts = _recoded(cells)
     n = labels.size
     distances = squared_distances(x[rows])
     median = float(np.median(distances[np.triu_indices(n, 1)]))
-    all_labels = np.vstack([labels, permuted_codes(labels, permutations, rng)])
+    all_labels = np.vstack(
+        [labels, permuted_codes(labels, permutations, rng, None if groups is None else groups[rows])]
+    )
     if median <= 0 or counts.size < 2:
-        return Outcome("kernel", 0.0, 1.0, 0.0, 0.0, n, detail="the rows do not differ: nothing to test")
+        return Outcome(name, 0.0, 1.0, 0.0, 0.0, n, detail="the rows do not differ: nothing to test")
     sums = np.empty((len(KERNEL_SCALES), permutations + 1))
     totals = np.empty(len(KERNEL_SCALES))
     for index, scale in enumerate(KERNEL_SCALES):
@@ -191,13 +224,14 @@ def kernel_test(
     upper = effect
     if bootstrap:
         kernel = np.exp(-distances / (2.0 * KERNEL_SCALES[best] ** 2 * median))
-        drawn = _bootstrap_shares(kernel, labels, counts.size, bootstrap, rng)
+        with _THREADS.limit(limits=1):
+            drawn = _bootstrap_shares(kernel, labels, counts.size, bootstrap, rng)
         upper = effect + float(np.quantile(drawn, 1 - alpha) - drawn.mean())
     detail = (
         f"{n} rows; Gaussian bandwidths {', '.join(f'{s:g}' for s in KERNEL_SCALES)} times the median distance "
         f"{np.sqrt(median):.3g}; strongest at {KERNEL_SCALES[best]:g}"
     )
-    return Outcome("kernel", float(largest[0]), p_value, effect, max(upper, effect), n, detail=detail)
+    return Outcome(name, float(largest[0]), p_value, effect, max(upper, effect), n, detail=detail)
 
 
 def _bootstrap_shares(
@@ -280,26 +314,34 @@ def neighbour_test(
     rng: np.random.Generator,
     alpha: float = ALPHA,
     bootstrap: int = BOOTSTRAP_ROUNDS,
+    queries: NDArray[np.intp] | None = None,
+    groups: NDArray[np.intp] | None = None,
 ) -> Outcome:
     """The nearest-neighbour two-sample test: the count of neighbours sharing a row's class, labels permuted.
 
     The neighbours stay as they are (they depend on the rows only).  The
     effect is the same-class share above its mean under permuted labels; the
     upper bound adds the spread of a bootstrap over the query rows.
+
+    ``queries`` names the rows whose neighbours ``neighbours`` holds (all rows by default).  With ``groups``
+    (each row's context value; the neighbours found within each value) the labels are permuted within each
+    value: a test of independence given the context (named ``neighbours-context``).
     """
+    name = "neighbours" if groups is None else "neighbours-context"
+    asked = np.arange(codes.size) if queries is None else queries
     n, k = neighbours.shape
-    same = int(np.count_nonzero(codes[neighbours] == codes[:, None]))
+    same = int(np.count_nonzero(codes[neighbours] == codes[asked][:, None]))
     counts = []
     for start, stop in _blocks(permutations, _BLOCK_VALUES // (n * k)):
-        labels = permuted_codes(codes, stop - start, rng)
-        counts.append(np.count_nonzero(labels[:, neighbours] == labels[:, :, None], axis=(1, 2)))
+        labels = permuted_codes(codes, stop - start, rng, groups)
+        counts.append(np.count_nonzero(labels[:, neighbours] == labels[:, asked][:, :, None], axis=(1, 2)))
     null = np.concatenate(counts)
     p_value = permutation_p_value(float(same), null, rng, 0.0)
     share = same / (n * k)
     effect = share - float(null.mean()) / (n * k)
     upper = effect
     if bootstrap:
-        per_row = np.mean(codes[neighbours] == codes[:, None], axis=1)
+        per_row = np.mean(codes[neighbours] == codes[asked][:, None], axis=1)
         drawn = np.concatenate(
             [
                 per_row[rng.integers(0, n, size=(stop - start, n))].mean(axis=1)
@@ -307,8 +349,9 @@ def neighbour_test(
             ]
         )
         upper = effect + float(np.quantile(drawn, 1 - alpha) - drawn.mean())
+    where = "" if groups is None else " within each context value"
     return Outcome(
-        "neighbours", share, p_value, effect, max(upper, effect), n, detail=f"{n} rows, {k} neighbours by cosine"
+        name, share, p_value, effect, max(upper, effect), n, detail=f"{n} rows, {k} neighbours by cosine{where}"
     )
 
 

@@ -9,13 +9,15 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass
 from typing import Any
 
-#: The tests, in the order tables list them.
-TESTS = ("kernel", "readers", "neighbours")
+#: The tests, in the order tables list them; the last two run within a context, when the audit has one.
+TESTS = ("kernel", "readers", "neighbours", "kernel-context", "neighbours-context")
 
 TEST_LABELS = {
     "kernel": "aggregated kernel two-sample test",
     "readers": "classifier two-sample test (strongest reader)",
     "neighbours": "nearest-neighbour two-sample test (10-NN)",
+    "kernel-context": "within the context: aggregated kernel two-sample test",
+    "neighbours-context": "within the context: nearest-neighbour two-sample test (10-NN)",
 }
 
 #: What each test asks of the erased rows, for tables.
@@ -27,11 +29,20 @@ TEST_MEANINGS = {
     "shuffled? Effect: its accuracy above majority; the bound covers every reader that ran",
     "neighbours": "do a row's 10 nearest neighbours share its class more often than with the labels shuffled? "
     "Effect: the 10-NN same-class share above its mean under shuffled labels",
+    "kernel-context": "the kernel test within each value of the context: the classes are compared within each "
+    "value and the labels shuffled within each value, so what the context alone tells is not counted",
+    "neighbours-context": "the neighbour test within each value of the context: neighbours found among rows of "
+    "the same value, the labels shuffled within each value",
 }
 
 #: The threat of :data:`veil.checks.verdict.THREATS` a rejected test is an alert for (the readers' test: that of
 #: the reader it used, see :meth:`IndependenceTest.threat`).
-TEST_THREATS = {"kernel": "nonlinear", "neighbours": "neighbours"}
+TEST_THREATS = {
+    "kernel": "nonlinear",
+    "neighbours": "neighbours",
+    "kernel-context": "context-nonlinear",
+    "neighbours-context": "context-neighbours",
+}
 
 
 @dataclass(frozen=True)
@@ -168,7 +179,7 @@ class IndependenceAudit:
     def strength_text(self, test: IndependenceTest) -> str:
         """The smallest strength detected, as text: a value, "above the grid", or "not measured"."""
         if not self.power_grid or not test.power_measured:
-            return "with --thorough" if self.power_grid else "not measured"
+            return "with --thorough" if self.power_grid and test.name == "readers" else "not measured"
         if test.smallest_strength is None:
             return f"> {self.power_grid[-1]:g}"
         return f"{test.smallest_strength:g}"

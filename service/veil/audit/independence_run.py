@@ -66,6 +66,7 @@ def independence_audit(
     settings: IndependenceSettings,
     seed: int,
     alpha: float = ALPHA,
+    groups: NDArray[np.intp] | None = None,
 ) -> IndependenceAudit:
     """Run the family on the erased rows, correct it (Holm), and measure each test's power on planted rows.
 
@@ -81,6 +82,9 @@ def independence_audit(
         Finds them for other rows (power).
     reader : ReaderEvidence, optional
         The strongest reader; None leaves the readers' test out.
+    groups : ndarray of shape (n,), optional
+        Each row's context value: the kernel and neighbour tests also run within the context (labels permuted
+        within each value), in the same family.  Their power is not measured.
     """
     rng = np.random.default_rng(seed)
     permutations = settings.permutations
@@ -102,6 +106,16 @@ def independence_audit(
                 alpha=alpha,
             ),
         )
+    if groups is not None:
+        outcomes.append(kernel_test(erased, codes, permutations=permutations, rng=rng, alpha=alpha, groups=groups))
+        within = _neighbours_within(erased, groups, find_neighbours)
+        if within is not None:
+            queries, found = within
+            outcomes.append(
+                neighbour_test(
+                    found, codes, permutations=permutations, rng=rng, alpha=alpha, queries=queries, groups=groups
+                )
+            )
     tests = corrected(outcomes)
     power = settings.power
     if power is None:
@@ -119,3 +133,26 @@ def independence_audit(
         tests, alpha, permutations, settings.thorough, power_grid=power.grid, power_draws=power.draws,
         power_rows=result.rows, seed=seed,
     )  # fmt: skip
+
+
+def _neighbours_within(
+    x: NDArray[np.floating],
+    groups: NDArray[np.intp],
+    find_neighbours: Callable[[NDArray[np.floating]], NDArray[np.intp]],
+) -> tuple[NDArray[np.intp], NDArray[np.intp]] | None:
+    """Each row's neighbours among the rows of its own context value, as indices of all rows, and those rows.
+
+    Values with too few rows for every neighbour are left out (None: no value has enough).
+    """
+    queries, found = [], []
+    for group in np.unique(groups):
+        members = np.flatnonzero(groups == group)
+        try:
+            neighbours = find_neighbours(x[members])
+        except ValueError:
+            continue  # fewer rows than neighbours in this value
+        queries.append(members)
+        found.append(members[neighbours])
+    if not queries:
+        return None
+    return np.concatenate(queries), np.concatenate(found)

@@ -28,7 +28,7 @@ from veil.audit.report import (
     Retrieval,
     Utility,
 )
-from veil.audit.within import context_audit
+from veil.audit.within import context_audit, context_groups
 from veil.erasers._base import Erasure
 from veil.maps.artifact import MapArtifact
 from veil.maps.attribute import encode_attribute
@@ -244,21 +244,14 @@ def _audit_map(
         scores: dict[str, tuple[ProbeScore, ProbeScore]] = {}
         for name in PROBES if nonlinear else ("linear",):
             model = readers.build_probe(name, random_state, sizes=sizes, features=raw.shape[1])
+            before = probes.classification_score(
+                model, raw, codes, folds=folds, random_state=random_state, stage=f"{PROBE_LABELS[name]}, raw (folds)"
+            )
             predicted[name] = probes.cross_val_labels(
                 model, erased, codes, folds=folds, random_state=random_state,
                 stage=f"{PROBE_LABELS[name]}, erased (folds)",
             )  # fmt: skip
-            scores[name] = (
-                probes.classification_score(
-                    model,
-                    raw,
-                    codes,
-                    folds=folds,
-                    random_state=random_state,
-                    stage=f"{PROBE_LABELS[name]}, raw (folds)",
-                ),
-                probes.score_predictions(codes, predicted[name]),
-            )
+            scores[name] = (before, probes.score_predictions(codes, predicted[name]))
         linear_before: ProbeScore | RegressionScore
         linear_after: ProbeScore | RegressionScore
         linear_before, linear_after = scores.pop("linear")
@@ -352,9 +345,11 @@ def _audit_map(
     ranking_fairness = None if codes is None else ranking.ranking_before_after(raw, erased, codes, NEIGHBOURS)
     tests = None
     if codes is not None and independence is not None:
+        groups = None if context.values is None else context_groups(context.values, raw.shape[0])[1]
         tests = _independence(
-            raw, erased, codes, neighbours_erased, leakage, predicted, independence, folds=folds, seed=random_state
-        )
+            raw, erased, codes, neighbours_erased, leakage, predicted, independence, folds=folds, seed=random_state,
+            groups=groups,
+        )  # fmt: skip
     within = None
     if context.values is not None:
         if codes is None or attribute.labels is None:
@@ -413,6 +408,7 @@ def _independence(
     *,
     folds: int,
     seed: int,
+    groups: NDArray[np.intp] | None,
 ) -> IndependenceAudit:
     """The independence tests of the erased rows, the readers' test on the strongest probe's predictions."""
     strongest = leakage.strongest
@@ -433,7 +429,7 @@ def _independence(
         return independence_audit(
             raw, erased, codes, neighbours=neighbours,
             find_neighbours=lambda x: geometry.nearest_neighbours(x, NEIGHBOURS), reader=reader,
-            settings=settings, seed=seed,
+            settings=settings, seed=seed, groups=groups,
         )  # fmt: skip
 
 
