@@ -256,7 +256,9 @@ def test_promote_rollback_and_history(fitted: Fitted, tmp_path: Path) -> None:
     # INLP stopped at 12 classifiers leaves a linear trace the classifier two-sample test finds (Holm p < 0.05):
     # its verdict is alert, so promoting it is forced.
     assert run("promote", NAME, "3", "--registry", registry, "--reason", "smaller leakage", "--force").code == 0
-    assert run("promote", NAME, "2", "--alias", "canary", "--registry", registry).code == 0
+    # So does mean projection read by the linear probe only (the same test finds its linear trace).
+    canary = ("--alias", "canary", "--force", "--reason", "canary trial")
+    assert run("promote", NAME, "2", *canary, "--registry", registry).code == 0
     rolled = run("rollback", NAME, "--registry", registry)
     assert rolled.code == 0
     assert f"-> {fitted.ids['leace']}" in rolled.out
@@ -290,12 +292,19 @@ def test_a_linear_eraser_is_judged_on_the_threats_it_claims_and_a_wider_claim_is
     assert any(line.split()[:2] == ["nonlinear", "readers"] and "not claimed: alert" in line for line in shown)
     assert any(line.split()[:2] == ["linear", "readers"] and " claimed: " in line for line in shown)
     assert "not claimed: nonlinear readers alert" in fitted.outputs["leace"].out
-    # Mean projection, linear probe only: its neighbours are not claimed, so not judged; no nonlinear probe ran,
-    # so nonlinear readers are not measured (not listed).
+    # Mean projection, linear probe only: its neighbours are not claimed, so not judged. The linear probe is the
+    # strongest reader, and the classifier two-sample test on it rejects independence at the Holm-corrected
+    # level: an alert for the linear readers it claims. No nonlinear probe ran, but the kernel test measures
+    # what any reader could see, so nonlinear readers are measured, by it alone.
     meanproj = registry.read_version(NAME, fitted.ids["meanproj"]).card
-    assert meanproj["verdict"]["status"] != "alert"
+    assert meanproj["verdict"]["status"] == "alert"
+    linear = meanproj["verdict"]["threats"]["linear"]
+    assert linear["status"] == "alert"
+    assert any("classifier two-sample test" in reason for reason in linear["reasons"])
     assert meanproj["verdict"]["threats"]["neighbours"]["status"] == "alert"
-    assert meanproj["verdict"]["threats"]["nonlinear"]["measured"] is False
+    nonlinear = meanproj["verdict"]["threats"]["nonlinear"]
+    assert nonlinear["measured"] is True
+    assert all("kernel two-sample test" in reason for reason in nonlinear["reasons"])
 
 
 def _alert_fit(registry: Path, *extra: str) -> Result:

@@ -5,7 +5,9 @@ Small rows, few dimensions and few permutations keep the whole file to seconds.
 
 from __future__ import annotations
 
+import html
 from collections.abc import Callable
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -24,9 +26,12 @@ from veil.audit.independence import (
     reader_test,
     squared_distances,
 )
-from veil.audit.independence_report import NOT_RUN, IndependenceAudit
+from veil.audit.independence_report import NOT_RUN, TEST_LABELS, TEST_MEANINGS, IndependenceAudit
 from veil.audit.power import PowerSettings, planted, reader_run, smallest_strengths
 from veil.audit.report import AuditReport
+from veil.checks.thresholds import AuditThresholds
+from veil.checks.verdict import THREATS, judge_audit
+from veil.reporting.independence import independence_section
 
 DRAWS = 200
 ROWS = 60
@@ -287,3 +292,41 @@ def profiles_report() -> AuditReport:
     fit, held = rows % 5 != 0, rows % 5 == 0
     eraser = LEACE().fit(sample.embedding[fit], sample.pronoun[fit])
     return audit(eraser, sample.embedding[held], sample.pronoun[held], nonlinear=False)
+
+
+def _with_only(report: AuditReport, rejected: str) -> AuditReport:
+    """``report`` with its tests' Holm p-values set so that only the test ``rejected`` rejects."""
+    family = report.independence
+    assert family is not None
+    tests = tuple(replace(test, p_holm=0.001 if test.name == rejected else 0.5) for test in family.tests)
+    return replace(report, independence=replace(family, tests=tests))
+
+
+@pytest.mark.parametrize(("rejected", "threat"), [("neighbours", "neighbours"), ("kernel", "nonlinear")])
+def test_a_rejected_test_is_an_alert_for_its_threat_judged_as_claimed(
+    profiles_report: AuditReport, rejected: str, threat: str
+) -> None:
+    report = _with_only(profiles_report, rejected)
+    loose = AuditThresholds.from_dict({name: {"warn": 1.0, "alert": 1.0} for name in AuditThresholds().to_dict()})
+    quiet = judge_audit(_with_only(profiles_report, "none"), loose, claims=("linear", threat))
+    assert quiet.status != "alert"
+    claimed = judge_audit(report, loose, claims=("linear", threat))
+    assert claimed.status == "alert"
+    assert claimed.threats[threat].status == "alert"
+    assert any(TEST_LABELS[rejected] in reason for reason in claimed.reasons)
+    # Not claimed: shown with its own status, the headline unchanged.
+    shown = judge_audit(report, loose, claims=("linear",))
+    assert shown.status == "ok"
+    assert shown.threats[threat].status == "alert"
+    assert f"not claimed: {THREATS[threat][0]} alert" in shown.sentence()
+
+
+def test_the_report_shows_one_table_of_the_tests_each_line_with_its_meaning(profiles_report: AuditReport) -> None:
+    family = profiles_report.independence
+    assert family is not None
+    page = independence_section(profiles_report)
+    assert page.count("<tr data-test=") == len(family.tests)
+    for test in family.tests:
+        assert TEST_MEANINGS[test.name] in html.unescape(page)
+    old = replace(profiles_report, independence=None)
+    assert NOT_RUN in html.unescape(independence_section(old))

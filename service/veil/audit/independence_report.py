@@ -167,8 +167,8 @@ class IndependenceAudit:
                 (
                     label,
                     f"{test.statistic:.3f}",
-                    f"{test.p_value:.3f}",
-                    f"{test.p_holm:.3f}" + (" reject" if test.p_holm < self.alpha else ""),
+                    f"{test.p_value:.4f}",
+                    f"{test.p_holm:.4f}" + (" reject" if test.p_holm < self.alpha else ""),
                     f"{test.effect:+.4f}",
                     f"{test.effect_upper:.4f}",
                     self.strength_text(test),

@@ -277,6 +277,7 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds, claims: tuple[
     for threat, alerts in tested.items():
         before = threats[threat]
         threats[threat] = ThreatStatus("alert", [*before.reasons, *alerts], measured=True)
+        measured[threat] = True
     if claims is None:
         judged = list(figures)
     else:
