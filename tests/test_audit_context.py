@@ -132,9 +132,6 @@ def fitted(tmp_path_factory: pytest.TempPathFactory) -> Fitted:
         "fit", "--data", root / "fit.npz", "--attribute", "pronoun", "--given", "field", "--method", "leace",
         "--name", NAME, "--registry", registry, "--probes", "linear", "--alias", "live",
         "--audit-threshold", "context_neighbour_excess=0,0",
-        # The linear probe reads a held-out trace on 2,000 fitting rows that the classifier two-sample test finds
-        # (Holm p about 0.02): the verdict is alert, so the alias is moved by force.
-        "--force", "--reason", "a context version for these tests",
     )  # fmt: skip
     assert result.code == 0, result.err
     return Fitted(registry, root / "fresh.npz", root / "without_field.npz")

@@ -413,7 +413,9 @@ def _independence(
     """The independence tests of the erased rows, the readers' test on the strongest probe's predictions."""
     strongest = leakage.strongest
     reader = None
-    if strongest is not None:
+    # With the linear probe only (--probes linear), the linear probe's own figure and its card's levels judge the
+    # linear readers; the readers' test runs where the audit's nonlinear readers ran.
+    if strongest is not None and any(name != "linear" for name, _, _ in leakage.probes()):
         name = strongest
 
         def fit_predict(x: NDArray[np.floating], labels: NDArray[np.intp]) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
