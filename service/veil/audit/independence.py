@@ -49,8 +49,9 @@ KERNEL_ROWS = 2000
 BOOTSTRAP_ROUNDS = 200
 #: Found once: finding the thread pools on every call cost more than the small products it limits.
 _THREADS = ThreadpoolController()
-#: Permuted labels evaluated at a time are capped so that a block holds about this many values.
-_BLOCK_VALUES = 4_000_000
+#: Permuted labels evaluated at a time are capped so that a block holds about this many values (2 MB of float64
+#: or int64 per array: a streamed fit's peak stays that of its chunks).
+_BLOCK_VALUES = 250_000
 
 
 @dataclass(frozen=True)

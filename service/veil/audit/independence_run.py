@@ -10,7 +10,7 @@ from numpy.typing import NDArray
 
 from veil.audit.independence import ALPHA, corrected, kernel_test, neighbour_test, reader_test
 from veil.audit.independence_report import IndependenceAudit
-from veil.audit.power import FitPredict, PowerSettings, reader_run, smallest_strengths
+from veil.audit.power import DRAW_SHARE, FitPredict, PowerSettings, reader_run, smallest_strengths
 from veil.audit.scores import ProbeScore
 
 
@@ -118,7 +118,7 @@ def independence_audit(
             )
     tests = corrected(outcomes)
     power = settings.power
-    if power is None:
+    if power is None or not _can_draw(codes):
         return IndependenceAudit(tests, alpha, permutations, settings.thorough, seed=seed)
     result = smallest_strengths(
         raw, erased, codes, neighbours=find_neighbours,
@@ -156,3 +156,15 @@ def _neighbours_within(
     if not queries:
         return None
     return np.concatenate(queries), np.concatenate(found)
+
+
+#: Power is measured where a draw holds at least this many rows, and each class in it enough for the readers'
+#: folds: a handful of rows has no 10 neighbours to count and no folds to cross-validate.
+MIN_DRAW_ROWS = 40
+MIN_DRAW_CLASS_ROWS = 5
+
+
+def _can_draw(codes: NDArray[np.intp]) -> bool:
+    """Whether a power draw of these rows is large enough to run every test."""
+    smallest = int(np.bincount(codes).min())
+    return codes.size * DRAW_SHARE >= MIN_DRAW_ROWS and smallest * DRAW_SHARE >= MIN_DRAW_CLASS_ROWS
