@@ -141,6 +141,7 @@ def test_fit_prints_the_audit_then_the_version_id_last(fitted: Fitted) -> None:
         "MLP probe, erased (folds)",
         "task probe, raw (folds)",
         "task probe, erased (folds)",
+        "independence tests",
         "rows needed (refits)",
         "reference statistics",
         "report plots",
@@ -288,12 +289,16 @@ def test_a_linear_eraser_is_judged_on_the_threats_it_claims_and_a_wider_claim_is
     assert any(line.split()[:2] == ["nonlinear", "readers"] and "not claimed: alert" in line for line in shown)
     assert any(line.split()[:2] == ["linear", "readers"] and " claimed: " in line for line in shown)
     assert "not claimed: nonlinear readers alert" in fitted.outputs["leace"].out
-    # Mean projection, linear probe only: its neighbours are not claimed, so not judged; no nonlinear probe ran,
-    # so nonlinear readers are not measured (not listed).
+    # Mean projection, linear probe only: its neighbours are not claimed, so not judged. No nonlinear probe ran,
+    # but the kernel two-sample test sees what any reader could: it rejects independence, so nonlinear readers
+    # are measured, by it alone, and alert (not claimed, so not judged).
     meanproj = registry.read_version(NAME, fitted.ids["meanproj"]).card
     assert meanproj["verdict"]["status"] != "alert"
     assert meanproj["verdict"]["threats"]["neighbours"]["status"] == "alert"
-    assert meanproj["verdict"]["threats"]["nonlinear"]["measured"] is False
+    nonlinear = meanproj["verdict"]["threats"]["nonlinear"]
+    assert nonlinear["measured"] is True
+    assert nonlinear["reasons"]
+    assert all("kernel two-sample test" in reason for reason in nonlinear["reasons"])
 
 
 def _alert_fit(registry: Path, *extra: str) -> Result:

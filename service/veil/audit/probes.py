@@ -194,6 +194,14 @@ def group_folds(codes: NDArray[np.intp], groups: NDArray[np.intp], folds: int) -
     return min(probe_folds(codes, folds), carriers[fewest])
 
 
+def first_fold(
+    codes: NDArray[np.intp], folds: int, random_state: int, *, groups: NDArray[np.intp] | None = None
+) -> NDArray[np.intp]:
+    """The rows of the first test fold of :func:`cross_val_labels`' folds (the same ``groups``), in increasing order."""
+    splitter = fold_splitter(codes, folds, random_state=random_state, groups=groups)
+    return np.sort(next(iter(splitter.split(np.zeros((codes.size, 1)), codes, groups)))[1])
+
+
 def regression_score(
     x: NDArray[np.floating],
     target: NDArray[np.float64],

@@ -10,6 +10,7 @@ from typing import Any
 from veil.audit.context_report import ContextAudit
 from veil.audit.glossary import MEANINGS, PROBE_MODELS, REGRESSION_MODELS
 from veil.audit.group_report import GroupAudit
+from veil.audit.independence_report import NOT_RUN, IndependenceAudit
 from veil.audit.rows_curve import RowsNeeded, rows_needed_lines
 from veil.audit.scores import PROBE_LABELS, PROBES, ProbeScore
 
@@ -278,6 +279,9 @@ class AuditReport:
     as a transfer reader, when the audited rows carried a group column (the
     probes' folds then keep each group in one fold; see
     :mod:`veil.audit.group_report`); None means no group folds were used.
+    ``independence`` holds the independence tests of the erased rows against a
+    categorical attribute (see :mod:`veil.audit.independence_report`); None in
+    audits made before them, or of a continuous attribute.
     """
 
     method: str
@@ -296,6 +300,7 @@ class AuditReport:
     #: The held-out linear leakage against the fitting rows and the rows it projects (see
     #: :mod:`veil.audit.rows_curve`); None where it was not measured (an audit of a stored map, an older card).
     rows_needed: RowsNeeded | None = None
+    independence: IndependenceAudit | None = None
 
     @property
     def balanced_chance(self) -> float | None:
@@ -317,6 +322,7 @@ class AuditReport:
         context = data.get("context")
         groups = data.get("groups")
         rows_needed = data.get("rows_needed")
+        independence = data.get("independence")
         return cls(
             method=data["method"],
             rank=data["rank"],
@@ -332,6 +338,7 @@ class AuditReport:
             context=None if context is None else ContextAudit.from_dict(context),
             groups=None if groups is None else GroupAudit.from_dict(groups),
             rows_needed=None if rows_needed is None else RowsNeeded.from_dict(rows_needed),
+            independence=None if independence is None else IndependenceAudit.from_dict(independence),
         )
 
     @classmethod
@@ -442,6 +449,10 @@ class AuditReport:
             lines += self.groups.lines()
         if self.rows_needed is not None:
             lines += rows_needed_lines(self.rows_needed)
+        if self.independence is not None:
+            lines += self.independence.lines()
+        elif self.classes:
+            lines.append(NOT_RUN)
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
 

@@ -14,6 +14,8 @@ from sklearn.utils.validation import check_array, check_is_fitted
 
 from veil.audit import geometry, probes, ranking, readers
 from veil.audit.groups import FittingRows, group_audit, group_codes, group_fold_problem
+from veil.audit.independence_report import IndependenceAudit
+from veil.audit.independence_run import FAST, IndependenceSettings, ReaderEvidence, independence_audit
 from veil.audit.report import (
     FRESH_KFOLD,
     HELD_OUT_KFOLD,
@@ -27,7 +29,7 @@ from veil.audit.report import (
     Retrieval,
     Utility,
 )
-from veil.audit.within import context_audit
+from veil.audit.within import context_audit, context_groups
 from veil.erasers._base import Erasure
 from veil.maps.artifact import MapArtifact
 from veil.maps.attribute import encode_attribute
@@ -87,6 +89,7 @@ def audit(
     group: object = None,
     group_name: str | None = None,
     fitting: FittingRows | None = None,
+    independence: IndependenceSettings | None = FAST,
 ) -> AuditReport:
     """Measure leakage and utility of a fitted eraser on data it never saw.
 
@@ -135,6 +138,10 @@ def audit(
         The rows the eraser was fitted on (or a sample of them), with their
         labels and groups: with ``group``, the transfer probe is trained on
         them, cleaned, and tested on the cleaned held-out rows.
+    independence : IndependenceSettings, optional
+        The independence tests of the erased rows against a categorical attribute, with their power
+        (:mod:`veil.audit.independence`): the fast setting by default, ``THOROUGH`` for finer figures, None to
+        leave them out.
 
     Returns
     -------
@@ -151,6 +158,7 @@ def audit(
         nonlinear=nonlinear,
         random_state=random_state,
         grouping=_Grouping(group, group_name, fitting),
+        independence=independence,
     )
 
 
@@ -167,6 +175,7 @@ def audit_artifact(
     random_state: int = 0,
     group: object = None,
     group_name: str | None = None,
+    independence: IndependenceSettings | None = FAST,
 ) -> AuditReport:
     """Measure leakage and utility of a stored map on a fresh sample, as :func:`audit` does for an eraser.
 
@@ -188,6 +197,8 @@ def audit_artifact(
         Each row's group: every probe's folds keep each group in one fold (as :func:`audit`; no transfer
         probe, which needs the fitting rows).
     group_name : str, optional
+    independence : IndependenceSettings, optional
+        As :func:`audit`.
 
     Returns
     -------
@@ -203,6 +214,7 @@ def audit_artifact(
         nonlinear=nonlinear,
         random_state=random_state,
         grouping=_Grouping(group, group_name, None),
+        independence=independence,
     )
 
 
@@ -245,6 +257,7 @@ def _audit_map(
     nonlinear: bool,
     random_state: int,
     grouping: _Grouping | None = None,
+    independence: IndependenceSettings | None = None,
 ) -> AuditReport:
     raw = check_array(X, dtype=(np.float64, np.float32))
     attribute = encode_attribute(z, raw.shape[0])
@@ -254,6 +267,8 @@ def _audit_map(
     gap_after: float | None
     noise_floor: float | None
     regression_trees: tuple[RegressionScore, RegressionScore] | None = None
+    # Each probe's held-out predictions on the erased rows: the readers' independence test uses the strongest's.
+    predicted: dict[str, NDArray[np.intp]] = {}
 
     group_index = _group_index(grouping, attribute.labels is not None, raw.shape[0])
     if attribute.labels is not None:
@@ -266,26 +281,20 @@ def _audit_map(
         scores: dict[str, tuple[ProbeScore, ProbeScore]] = {}
         for name in PROBES if nonlinear else ("linear",):
             model = readers.build_probe(name, random_state, sizes=sizes, features=raw.shape[1])
-            scores[name] = (
-                probes.classification_score(
-                    model,
-                    raw,
-                    codes,
-                    folds=folds,
-                    random_state=random_state,
-                    stage=f"{PROBE_LABELS[name]}, raw (folds)",
-                    groups=group_index,
-                ),
-                probes.classification_score(
-                    model,
-                    erased,
-                    codes,
-                    folds=folds,
-                    random_state=random_state,
-                    stage=f"{PROBE_LABELS[name]}, erased (folds)",
-                    groups=group_index,
-                ),
+            before = probes.classification_score(
+                model,
+                raw,
+                codes,
+                folds=folds,
+                random_state=random_state,
+                stage=f"{PROBE_LABELS[name]}, raw (folds)",
+                groups=group_index,
             )
+            predicted[name] = probes.cross_val_labels(
+                model, erased, codes, folds=folds, random_state=random_state,
+                stage=f"{PROBE_LABELS[name]}, erased (folds)", groups=group_index,
+            )  # fmt: skip
+            scores[name] = (before, probes.score_predictions(codes, predicted[name]))
         linear_before: ProbeScore | RegressionScore
         linear_after: ProbeScore | RegressionScore
         linear_before, linear_after = scores.pop("linear")
@@ -377,6 +386,13 @@ def _audit_map(
         )
 
     ranking_fairness = None if codes is None else ranking.ranking_before_after(raw, erased, codes, NEIGHBOURS)
+    tests = None
+    if codes is not None and independence is not None:
+        strata = None if context.values is None else context_groups(context.values, raw.shape[0])[1]
+        tests = _independence(
+            raw, erased, codes, neighbours_erased, leakage, predicted, independence, folds=folds, seed=random_state,
+            strata=strata, group_index=group_index,
+        )  # fmt: skip
     within = None
     if context.values is not None:
         if codes is None or attribute.labels is None:
@@ -432,6 +448,7 @@ def _audit_map(
         ranking=ranking_fairness,
         context=within,
         groups=across,
+        independence=tests,
     )
 
 
@@ -458,6 +475,47 @@ def _strongest_nonlinear(leakage: Leakage) -> str | None:
     ]
     best = max(scored, key=lambda item: item[1].hits, default=None)
     return None if best is None else best[0]
+
+
+def _independence(
+    raw: NDArray[np.floating],
+    erased: NDArray[np.floating],
+    codes: NDArray[np.intp],
+    neighbours: NDArray[np.intp],
+    leakage: Leakage,
+    predicted: dict[str, NDArray[np.intp]],
+    settings: IndependenceSettings,
+    *,
+    folds: int,
+    seed: int,
+    strata: NDArray[np.intp] | None,
+    group_index: NDArray[np.intp] | None,
+) -> IndependenceAudit:
+    """The independence tests of the erased rows, the readers' test on the strongest probe's predictions."""
+    strongest = leakage.strongest
+    reader = None
+    # With the linear probe only (--probes linear), the linear probe's own figure and its card's levels judge the
+    # linear readers; the readers' test runs where the audit's nonlinear readers ran.
+    if strongest is not None and any(name != "linear" for name, _, _ in leakage.probes()):
+        name = strongest
+
+        def fit_predict(x: NDArray[np.floating], labels: NDArray[np.intp]) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+            # The same reader, sized for the rows it is given, with the same folds as the audit.
+            sizes = readers.fold_sizes(labels, folds)
+            model = readers.build_probe(name, seed, sizes=sizes, features=x.shape[1])
+            labelled = probes.cross_val_labels(model, x, labels, folds=folds, random_state=seed)
+            return labelled, probes.first_fold(labels, folds, seed)
+
+        scores = {probe: after for probe, _, after in leakage.probes() if isinstance(after, ProbeScore)}
+        # The rows of the audit's first test fold (a group fold with --group), where the predictions came from.
+        held = probes.first_fold(codes, folds, seed, groups=group_index)
+        reader = ReaderEvidence(name, predicted[name], held, scores, fit_predict)
+    with phase("independence tests"):
+        return independence_audit(
+            raw, erased, codes, neighbours=neighbours,
+            find_neighbours=lambda x: geometry.nearest_neighbours(x, NEIGHBOURS), reader=reader,
+            settings=settings, seed=seed, groups=strata,
+        )  # fmt: skip
 
 
 def _task_codes(task: object, n_rows: int) -> NDArray[np.intp]:

@@ -29,6 +29,7 @@ import numpy as np
 from veil.audit.context_report import ContextAudit
 from veil.audit.group_report import READING_LABELS
 from veil.audit.report import PROBE_LABELS, AuditReport, ProbeScore, RegressionScore
+from veil.checks.independence import independence_alerts
 from veil.checks.thresholds import AuditThresholds
 
 LEVELS = ("ok", "warn", "alert")
@@ -37,7 +38,8 @@ RULE = (
     "(linear readers, nonlinear readers, neighbours, and these within a context) is at the worst level of its "
     "figures. The status is that of the threats the version claims to guard and of the task's cost: ok when every "
     "figure judged there is below its warn level, warn when any reaches its warn level, and alert when any reaches "
-    "its alert level. Threats not claimed are measured and shown, not judged. An audit whose raw rows show no "
+    "its alert level or an independence test for the threat rejects at the Holm-corrected level. Threats not "
+    "claimed are measured and shown, not judged. An audit whose raw rows show no "
     "attribute to any probe is at least warn: it proves nothing."
 )
 
@@ -284,6 +286,12 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds, claims: tuple[
         )
         for threat, (_, names) in THREATS.items()
     }
+    # A test rejecting independence at the corrected level is an alert for the threat it measures.
+    tested = independence_alerts(report)
+    for threat, alerts in tested.items():
+        before = threats[threat]
+        threats[threat] = ThreatStatus("alert", [*before.reasons, *alerts], measured=True)
+        measured[threat] = True
     if claims is None:
         judged = list(figures)
     else:
@@ -292,6 +300,10 @@ def judge_audit(report: AuditReport, thresholds: AuditThresholds, claims: tuple[
         judged = [name for claim in claims if measured[claim] for name in THREATS[claim][1]] + list(ALWAYS_JUDGED)
     status = worst(levels[name] for name in judged)
     reasons = [reason for name in figures if name in judged for reason in why[name]]
+    for threat, alerts in tested.items():
+        if claims is None or threat in claims:
+            status = "alert"
+            reasons += alerts
     unmeasured = [] if claims is None else [claim for claim in claims if not measured[claim]]
     if unmeasured:
         # A claim the audit could not check is not a pass (a sample without the context column, every value skipped).

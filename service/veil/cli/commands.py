@@ -126,6 +126,7 @@ def _fit_request(args: argparse.Namespace, *, streamed: bool) -> Any:
         group=args.group,
         rows_curve=args.rows_curve,
         live_draws=args.live_draws,
+        thorough=args.thorough,
     )
     reading = ReadingSpec()
     if streamed:
@@ -247,6 +248,7 @@ def audit(args: argparse.Namespace) -> int:
         seed=args.seed,
         max_rows=args.rows,
         chunk_rows=args.chunk_rows,
+        thorough=args.thorough,
     )
     record = outcome.record
     if args.json:

@@ -163,6 +163,17 @@ def _sample_options(command: argparse.ArgumentParser) -> None:
     command.add_argument("--chunk-rows", type=int, default=STREAM_CHUNK_ROWS, help="rows per chunk when streaming")
 
 
+def _thorough_option(command: argparse.ArgumentParser) -> None:
+    """``--thorough``: the independence tests' thorough setting, the same for ``veil fit`` and ``veil audit``."""
+    command.add_argument(
+        "--thorough",
+        action="store_true",
+        help="independence tests with 1000 permutations (200 by default) and their power on a finer grid with "
+        "more draws, the strongest reader's test included (refitted on every draw); minutes rather than seconds "
+        "(docs/independence.md)",
+    )
+
+
 def _probes_option(command: argparse.ArgumentParser) -> None:
     """``--probes``: which probes an audit runs, the same for ``veil fit`` and ``veil audit``."""
     command.add_argument(
@@ -291,6 +302,7 @@ def build_parser() -> VeilParser:
         "context itself says about the attribute (a field skewed by it) then stays readable",
     )
     _probes_option(fit)
+    _thorough_option(fit)
     _fail_on_option(fit)
     fit.add_argument(
         "--rows-curve",
@@ -357,6 +369,7 @@ def build_parser() -> VeilParser:
     audit.add_argument("version", help="a version id, its sequence number (3 or v3), or an alias")
     _sample_options(audit)
     _probes_option(audit)
+    _thorough_option(audit)
     _fail_on_option(audit)
     audit.add_argument("--seed", type=int, default=0, help="seeds the folds, the probes and the row draw")
     audit.add_argument("--rows", type=int, help="audit a hash-drawn share of about this many rows (default: all)")

@@ -27,6 +27,7 @@ from numpy.typing import NDArray
 
 from veil.audit import audit_artifact
 from veil.audit.groups import group_fold_problem
+from veil.audit.independence_run import IndependenceSettings, settings_for
 from veil.audit.report import AuditReport
 from veil.checks.verdict import Verdict
 from veil.defaults import AUDIT_ROWS, STREAM_CHUNK_ROWS
@@ -110,6 +111,7 @@ def audit_stored_version(
     max_rows: int | None = None,
     chunk_rows: int = STREAM_CHUNK_ROWS,
     notes: Sequence[str] = (),
+    thorough: bool = False,
 ) -> FreshAudit:
     """Audit version ``reference`` of ``name`` on ``sample`` and append the result to the version's audits.
 
@@ -130,6 +132,8 @@ def audit_stored_version(
         :data:`veil.defaults.AUDIT_ROWS` of a streamed one (whose rows may not fit in memory).
     notes : sequence of str
         Notes for the record (how the sample was read).
+    thorough : bool, default=False
+        The independence tests' thorough setting (see :mod:`veil.audit.independence_run`).
 
     Raises
     ------
@@ -155,6 +159,10 @@ def audit_stored_version(
     if column is not None:
         # Only with a group: the key of an audit without one is what it was.
         settings["group"] = column
+    if thorough:
+        # Only when asked: the key of a fast audit stays what it was before the setting existed.
+        settings["thorough"] = True
+    independence = settings_for(thorough)
     thresholds = card_thresholds(card)
     group_parts: list[NDArray[Any]] = []
     with phase("reading the fresh sample"):
@@ -177,7 +185,9 @@ def audit_stored_version(
     if is_table(z):
         if group is not None:
             raise DataError("group folds (--group) read one categorical attribute; audit several without --group")
-        attributes = _audit_each(stored.artifact, x, z, task, context, nonlinear=nonlinear, seed=seed)
+        attributes = _audit_each(
+            stored.artifact, x, z, task, context, nonlinear=nonlinear, seed=seed, independence=independence
+        )
         report = attributes[0][1]
     else:
         labels, codes = np.unique(z, return_inverse=True)
@@ -196,6 +206,7 @@ def audit_stored_version(
             nonlinear=nonlinear,
             random_state=seed,
             **_grouped(group, column),
+            independence=independence,
         )
         fitted = {str(label) for label in card["attribute"]["classes"]}
         unseen = sorted({str(label) for label in labels} - fitted)
@@ -268,6 +279,7 @@ def _audit_each(
     *,
     nonlinear: bool,
     seed: int,
+    independence: IndependenceSettings,
 ) -> list[tuple[str, AuditReport]]:
     """Each attribute of a fresh sample of several audited on its own (the first categorical one first)."""
     for attribute, continuous, values in attribute_columns(z):
@@ -284,6 +296,7 @@ def _audit_each(
             folds=folds,
             nonlinear=nonlinear,
             random_state=seed,
+            independence=independence,
         ),
     )
     continuous_ones = {attribute for attribute, is_continuous, _ in attribute_columns(z) if is_continuous}

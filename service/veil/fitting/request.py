@@ -192,6 +192,10 @@ class AuditSpec:
         the live checks' levels on the version's own noise (the shift figures draw
         :data:`veil.checks.null_draws.SHIFT_DRAWS`); 0 stores no calibration, and the version's live checks
         keep the fixed levels of ``live_thresholds``.  See :mod:`veil.checks.calibration`.
+    thorough : bool, default=False
+        The independence tests' thorough setting (``--thorough``): more permutations behind each p-value, and
+        power on a finer grid with more draws, the readers' test's included (see
+        :mod:`veil.audit.independence_run`; the costs are in docs/independence.md).  Fresh audits take their own.
     """
 
     nonlinear: bool = True
@@ -202,6 +206,7 @@ class AuditSpec:
     group: str | None = None
     rows_curve: str = "auto"
     live_draws: int = LIVE_PROBE_DRAWS
+    thorough: bool = False
 
     def __post_init__(self) -> None:
         if self.rows_curve not in ROWS_CURVE:
@@ -235,6 +240,7 @@ class AuditSpec:
             **({} if self.group is None else {"group": self.group}),
             "rows_curve": self.rows_curve,
             "live_draws": self.live_draws,
+            "thorough": self.thorough,
         }
 
 

@@ -13,6 +13,7 @@ from numpy.typing import NDArray
 
 from veil.audit import audit
 from veil.audit.groups import FittingRows, group_fold_problem
+from veil.audit.independence_run import settings_for
 from veil.audit.points import Sweep
 from veil.audit.probes import probe_folds
 from veil.audit.report import AuditReport
@@ -86,6 +87,7 @@ def audit_and_store(
     measured; see :mod:`veil.fitting.rows`).
     """
     seed, nonlinear = request.fit.seed, request.audit.nonlinear
+    independence = settings_for(request.audit.thorough)
     x_held, z_held, task_held = held_out
     artifact = eraser.export()
     attribute_audits: list[tuple[str, AuditReport]] = []
@@ -103,6 +105,7 @@ def audit_and_store(
                 folds=folds,
                 nonlinear=nonlinear,
                 random_state=seed,
+                independence=independence,
             ),
         )
         first = _first_categorical(z_held)
@@ -146,7 +149,8 @@ def audit_and_store(
         # The audit reports each probe's folds as a stage of its own.
         report = audit(
             eraser, x_held, z_held, task=task_held, **within_context(held_context, None, z_held), folds=folds,
-            nonlinear=nonlinear, random_state=seed, **_across_groups(groups, eraser, fit_sample, z_held),
+            nonlinear=nonlinear, random_state=seed, independence=independence,
+            **_across_groups(groups, eraser, fit_sample, z_held),
         )  # fmt: skip
         x_plot = x_held
         fit_codes = fit_sample[1]

@@ -30,6 +30,7 @@ from veil.reporting import plots as drawn
 from veil.reporting.attributes import attributes_section
 from veil.reporting.context import context_section
 from veil.reporting.groups import groups_section
+from veil.reporting.independence import independence_section
 from veil.reporting.plotdata import PLOT_DATA_FILE, PlotData
 from veil.reporting.rows import rows_section
 
@@ -152,6 +153,7 @@ def render_report(
         context_section(audit),
         groups_section(audit),
         rows_section(audit),
+        independence_section(audit),
         attributes_section(card),
         sections.figure(
             "Retrieval: who the nearest neighbours are", drawn.retrieval_plot(audit), (7, 3.4), "No retrieval figures."

@@ -1,0 +1,170 @@
+"""The family of independence tests an audit runs on its erased rows, with power, at a fast or thorough setting."""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, replace
+
+import numpy as np
+from numpy.typing import NDArray
+
+from veil.audit.independence import ALPHA, corrected, kernel_test, neighbour_test, reader_test
+from veil.audit.independence_report import IndependenceAudit
+from veil.audit.power import DRAW_SHARE, FitPredict, PowerSettings, reader_run, smallest_strengths
+from veil.audit.scores import ProbeScore
+
+
+@dataclass(frozen=True)
+class IndependenceSettings:
+    """Permutations behind each p-value, and the power measured (None: not measured)."""
+
+    permutations: int
+    power: PowerSettings | None
+    thorough: bool
+
+
+#: ``veil fit`` and ``veil audit`` by default (measured times in docs/independence.md).
+FAST = IndependenceSettings(
+    permutations=200,
+    power=PowerSettings(grid=(0.1, 0.25, 0.5, 1.0), draws=10, permutations=100, readers=False),
+    thorough=False,
+)
+#: ``--thorough``: finer p-values, a finer grid and more draws.
+THOROUGH = IndependenceSettings(
+    permutations=1000,
+    power=PowerSettings(
+        grid=(0.05, 0.1, 0.15, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.85, 1.0), draws=40, permutations=200, readers=True
+    ),
+    thorough=True,
+)
+
+
+def settings_for(thorough: bool) -> IndependenceSettings:
+    return THOROUGH if thorough else FAST
+
+
+@dataclass(frozen=True)
+class ReaderEvidence:
+    """The strongest reader after erasure: its name, its held-out predictions, the rows of the fold its test reads,
+    every reader's score, and how to refit it on other rows (held-out predictions of rows), for power."""
+
+    name: str
+    predicted: NDArray[np.intp]
+    rows: NDArray[np.intp]
+    scores: Mapping[str, ProbeScore]
+    fit_predict: FitPredict
+
+
+def independence_audit(
+    raw: NDArray[np.floating],
+    erased: NDArray[np.floating],
+    codes: NDArray[np.intp],
+    *,
+    neighbours: NDArray[np.intp],
+    find_neighbours: Callable[[NDArray[np.floating]], NDArray[np.intp]],
+    reader: ReaderEvidence | None,
+    settings: IndependenceSettings,
+    seed: int,
+    alpha: float = ALPHA,
+    groups: NDArray[np.intp] | None = None,
+) -> IndependenceAudit:
+    """Run the family on the erased rows, correct it (Holm), and measure each test's power on planted rows.
+
+    Parameters
+    ----------
+    raw, erased : ndarray of shape (n, d)
+        The audited rows before and after the map (the power plants between them).
+    codes : ndarray of shape (n,)
+        The attribute's class of each row.
+    neighbours : ndarray of shape (n, k)
+        Each erased row's nearest neighbours (the audit's own).
+    find_neighbours : callable
+        Finds them for other rows (power).
+    reader : ReaderEvidence, optional
+        The strongest reader; None leaves the readers' test out.
+    groups : ndarray of shape (n,), optional
+        Each row's context value: the kernel and neighbour tests also run within the context (labels permuted
+        within each value), in the same family.  Their power is not measured.
+    """
+    rng = np.random.default_rng(seed)
+    permutations = settings.permutations
+    outcomes = [
+        kernel_test(erased, codes, permutations=permutations, rng=rng, alpha=alpha),
+        neighbour_test(neighbours, codes, permutations=permutations, rng=rng, alpha=alpha),
+    ]
+    if reader is not None:
+        outcomes.insert(
+            1,
+            reader_test(
+                reader.predicted,
+                codes,
+                reader.scores,
+                reader.name,
+                rows=reader.rows,
+                permutations=permutations,
+                rng=rng,
+                alpha=alpha,
+            ),
+        )
+    if groups is not None:
+        outcomes.append(kernel_test(erased, codes, permutations=permutations, rng=rng, alpha=alpha, groups=groups))
+        within = _neighbours_within(erased, groups, find_neighbours)
+        if within is not None:
+            queries, found = within
+            outcomes.append(
+                neighbour_test(
+                    found, codes, permutations=permutations, rng=rng, alpha=alpha, queries=queries, groups=groups
+                )
+            )
+    tests = corrected(outcomes)
+    power = settings.power
+    if power is None or not _can_draw(codes):
+        return IndependenceAudit(tests, alpha, permutations, settings.thorough, seed=seed)
+    result = smallest_strengths(
+        raw, erased, codes, neighbours=find_neighbours,
+        reader=None if reader is None else reader_run(reader.fit_predict, reader.name),
+        settings=power, rng=rng, alpha=alpha,
+    )  # fmt: skip
+    tests = tuple(
+        replace(test, smallest_strength=result.smallest.get(test.name), power_measured=test.name in result.smallest)
+        for test in tests
+    )
+    return IndependenceAudit(
+        tests, alpha, permutations, settings.thorough, power_grid=power.grid, power_draws=power.draws,
+        power_rows=result.rows, seed=seed,
+    )  # fmt: skip
+
+
+def _neighbours_within(
+    x: NDArray[np.floating],
+    groups: NDArray[np.intp],
+    find_neighbours: Callable[[NDArray[np.floating]], NDArray[np.intp]],
+) -> tuple[NDArray[np.intp], NDArray[np.intp]] | None:
+    """Each row's neighbours among the rows of its own context value, as indices of all rows, and those rows.
+
+    Values with too few rows for every neighbour are left out (None: no value has enough).
+    """
+    queries, found = [], []
+    for group in np.unique(groups):
+        members = np.flatnonzero(groups == group)
+        try:
+            neighbours = find_neighbours(x[members])
+        except ValueError:
+            continue  # fewer rows than neighbours in this value
+        queries.append(members)
+        found.append(members[neighbours])
+    if not queries:
+        return None
+    return np.concatenate(queries), np.concatenate(found)
+
+
+#: Power is measured where a draw holds at least this many rows, and each class in it enough for the readers'
+#: folds: a handful of rows has no 10 neighbours to count and no folds to cross-validate.
+MIN_DRAW_ROWS = 40
+MIN_DRAW_CLASS_ROWS = 5
+
+
+def _can_draw(codes: NDArray[np.intp]) -> bool:
+    """Whether a power draw of these rows is large enough to run every test."""
+    smallest = int(np.bincount(codes).min())
+    return codes.size * DRAW_SHARE >= MIN_DRAW_ROWS and smallest * DRAW_SHARE >= MIN_DRAW_CLASS_ROWS
