@@ -102,7 +102,7 @@ def test_the_carrying_distance_is_half_the_class_mean_distance() -> None:
     # Two classes of a known layout: class means at −1 and +3 along the first axis (a distance of 4, half of it 2),
     # the rows symmetric about each mean so the sample means are the layout's exactly.
     offsets = np.array([[0.5, 1.0], [-0.5, -1.0], [0.5, -1.0], [-0.5, 1.0]])
-    x = np.vstack([offsets + [-1.0, 0.0], offsets + [3.0, 0.0], offsets + [3.0, 0.0]])
+    x = np.vstack([offsets + np.array([-1.0, 0.0]), offsets + np.array([3.0, 0.0]), offsets + np.array([3.0, 0.0])])
     labels = np.array(["a"] * 4 + ["b"] * 8)
     assert carrying_distance(x, labels) == pytest.approx(2.0, abs=8 * np.finfo(np.float64).eps)
     # Every row moved ± that distance by class along a direction the classes do not differ on: along it their
