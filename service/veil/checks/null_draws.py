@@ -182,7 +182,6 @@ def draw_calibration(
     white = (x - reference.mean) @ whitening
     removed = np.asarray(artifact.map.component(x), dtype=np.float64)
     erased = np.asarray(artifact.apply(np.asarray(x_held)))
-    coordinates = erased_coordinates(erased, reference)
     pseudo = [attribute.pseudo(x) for attribute in attributes]
     shifts: dict[str, dict[int, list[float]]] = {}
     total = len(sizes) + len(attributes) * 2 + (context is not None and bool(attributes))
@@ -192,8 +191,10 @@ def draw_calibration(
     pool = np.sort(rng.choice(rows, min(rows, SHIFT_POOL), replace=False))
     keep = toward_reference(pool.size, fit_rows)
     pool_white = _shrunk_offset(white[pool], keep)
+    # The class-mean gap's coordinates (wider than the rows) only for the pool it is drawn from.
+    coordinates = erased_coordinates(erased[pool], reference)
     gap_pools = {
-        (attribute.name, source): _gap_pool(coordinates[pool], codes[pool])
+        (attribute.name, source): _gap_pool(coordinates, codes[pool])
         for attribute, guessed in zip(attributes, pseudo, strict=True)
         for source, codes in (("labels", attribute.codes), ("pseudo-labels", guessed))
     }
@@ -230,7 +231,7 @@ def draw_calibration(
     done = len(sizes)
     for attribute, guessed in zip(attributes, pseudo, strict=True):
         for source, codes in (("labels", attribute.codes), ("pseudo-labels", guessed)):
-            null = _probe_null(x, erased, coordinates, attribute, codes, rng, sizes, probe_draws)
+            null = _probe_null(x, erased, reference, attribute, codes, rng, sizes, probe_draws)
             if null is not None:
                 nulls[null_key("leakage_gap", source, attribute.name)] = null
             done += 1
@@ -238,7 +239,7 @@ def draw_calibration(
                 advance(stage, done, total)
     if context is not None and attributes:
         first = attributes[0]
-        null = _probe_null(x, erased, coordinates, first, first.codes, rng, sizes, probe_draws, context)
+        null = _probe_null(x, erased, reference, first, first.codes, rng, sizes, probe_draws, context)
         if null is not None:
             nulls[null_key("context_leakage_gap", "labels", first.name)] = null
         if stage is not None:
@@ -322,7 +323,7 @@ def _given(codes: NDArray[np.intp]) -> Callable[[NDArray[np.floating]], NDArray[
 def _probe_null(
     x: NDArray[np.float64],
     erased: NDArray[np.floating],
-    coordinates: NDArray[np.float64],
+    reference: ReferenceStatistics,
     attribute: DrawnAttribute,
     codes: NDArray[np.intp],
     rng: np.random.Generator,
@@ -352,7 +353,8 @@ def _probe_null(
                     values.append(within.after["linear"].accuracy - within.after["linear"].majority)
                 continue
             figures = _class_figures(
-                x[rows_drawn], erased[rows_drawn], coordinates[rows_drawn], attribute.classes, attribute.priors,
+                x[rows_drawn], erased[rows_drawn], erased_coordinates(erased[rows_drawn], reference),
+                attribute.classes, attribute.priors,
                 _given(drawn_codes), 0,
             )  # fmt: skip
             if figures.leakage is not None:
