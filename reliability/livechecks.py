@@ -13,7 +13,11 @@ sent in those shares.
   at most 5% checks at warn or alert, in each series.
 - **Detection.** At 300 rows, each planted change of
   :mod:`reliability.planted`, with labels and with pseudo-labels.  Target:
-  alerted in at least 95% of the checks.
+  alerted in at least 95% of the checks.  The sub-population carrying the
+  pronoun along a hidden direction is planted at the strength the data sets
+  (half the raw class-mean distance of the held-out rows), and also, reported
+  but not judged, at :data:`WEAK_CARRYING_SD` standard deviations of the
+  held-out rows along the direction, to show where detection stops.
 - **Replicas.** Traffic sent to the three replicas, every replica's sample
   fetched and merged by :func:`veil.patrol.rounds.replicas_round` (what
   ``veil patrol`` with three ``--service`` runs), and the vectors it merged
@@ -49,10 +53,12 @@ from reliability.outcome import Outcome
 from reliability.planted import (
     Population,
     carry_along_hidden_direction,
+    carrying_distance,
     hidden_direction,
     prior_shifted_rows,
     shift_along_leading_axis,
     split_population,
+    spread_along,
 )
 from reliability.server import LiveServer, live_server
 from reliability.workbench import ADMIN_TOKEN, ALIAS
@@ -87,10 +93,11 @@ JUDGED_DETECTION_CHECKS = 100
 ALERT_PERCENT = 1
 WARN_PERCENT = 5
 DETECTED_PERCENT = 95
-#: The sub-population carrying the attribute: its share of the rows, and how far each class is moved (in
-#: held-out standard deviations along the hidden direction: the two classes' means 4 of them apart).
+#: The sub-population carrying the attribute: its share of the rows.  How far each class is moved is set by the
+#: data (:func:`reliability.planted.carrying_distance`); the weaker line reported beside it moves each class this
+#: many held-out standard deviations along the hidden direction instead (not judged).
 CARRYING_SHARE = 0.2
-CARRYING_STRENGTH = 2.0
+WEAK_CARRYING_SD = 2.0
 PRIOR_SHIFT = 0.2
 CHECK_TIMEOUT = 300.0
 SEED = 2026
@@ -198,11 +205,22 @@ def undrifted(population: Population, size: int, labelled: bool, index: int) -> 
     return LiveSample(population.held_x[rows], labels, replica_of(rng))
 
 
-def planted_changes(setup: LiveSetup) -> dict[str, Callable[[bool, int], LiveSample]]:
-    """Each planted change by name: a function of (labelled, index) giving one check's drifted sample."""
+@dataclass(frozen=True)
+class PlantedChange:
+    """One planted change: a function of (labelled, index) giving one check's drifted sample, and whether the
+    detection target judges it (a weaker strength is reported to show where detection stops)."""
+
+    make: Callable[[bool, int], LiveSample]
+    judged: bool = True
+
+
+def planted_changes(setup: LiveSetup) -> dict[str, PlantedChange]:
+    """Each planted change by name."""
     population = setup.population
-    direction = hidden_direction(setup.artifact, population, seed=SEED)
+    direction = hidden_direction(setup.artifact, seed=SEED)
     pronoun = population.held_labels["pronoun"]
+    strong = carrying_distance(population.held_x, pronoun)
+    weak = WEAK_CARRYING_SD * spread_along(population.held_x, direction)
     classes = [str(c) for c in setup.reference.attributes[0].classes] if setup.reference.attributes else []
     priors = setup.reference.class_priors
 
@@ -215,12 +233,11 @@ def planted_changes(setup: LiveSetup) -> dict[str, Callable[[bool, int], LiveSam
         shifted = shift_along_leading_axis(population.held_x[rows], setup.reference)
         return LiveSample(shifted, _labels(population, rows) if labelled else None, replica_of(rng))
 
-    def carrying(labelled: bool, index: int) -> LiveSample:
+    def carrying(strength: float, labelled: bool, index: int) -> LiveSample:
         rng, rows = draw(2, index)
         x, _ = carry_along_hidden_direction(
-            population.held_x[rows], pronoun[rows], direction, share=CARRYING_SHARE, strength=CARRYING_STRENGTH,
-            rng=rng,
-        )  # fmt: skip
+            population.held_x[rows], pronoun[rows], direction, share=CARRYING_SHARE, strength=strength, rng=rng
+        )
         return LiveSample(x, _labels(population, rows) if labelled else None, replica_of(rng))
 
     def prior_shift(labelled: bool, index: int) -> LiveSample:
@@ -228,10 +245,14 @@ def planted_changes(setup: LiveSetup) -> dict[str, Callable[[bool, int], LiveSam
         rows = prior_shifted_rows(pronoun, classes, priors, PRIOR_SHIFT, DETECTION_SIZE, rng)
         return LiveSample(population.held_x[rows], _labels(population, rows) if labelled else None, replica_of(rng))
 
+    carried = f"{CARRYING_SHARE:.0%} carrying the pronoun along a hidden direction"
     return {
-        "mean shift of 1 SD along the leading axis": mean_shift,
-        f"{CARRYING_SHARE:.0%} carrying the pronoun along a hidden direction": carrying,
-        f"pronoun prior shift of {PRIOR_SHIFT} in total variation": prior_shift,
+        "mean shift of 1 SD along the leading axis": PlantedChange(mean_shift),
+        f"{carried} at half its class-mean distance ({strong:.3f})": PlantedChange(partial(carrying, strong)),
+        f"{carried} at {WEAK_CARRYING_SD:g} SD ({weak:.3f}; not judged)": PlantedChange(
+            partial(carrying, weak), judged=False
+        ),
+        f"pronoun prior shift of {PRIOR_SHIFT} in total variation": PlantedChange(prior_shift),
     }
 
 
@@ -317,14 +338,16 @@ def detection_misses(tally: Tally) -> list[str]:
 def detection(setup: LiveSetup, checks: int, mode: str) -> list[Outcome]:
     """``checks`` checks of each planted change at :data:`DETECTION_SIZE` rows."""
     outcomes = []
-    for change, make in planted_changes(setup).items():
-        tally = ask(setup.urls, partial(make, mode == "labels"), checks)
+    for change, planted in planted_changes(setup).items():
+        tally = ask(setup.urls, partial(planted.make, mode == "labels"), checks)
         figures = (
             f"{tally.checks} checks at {DETECTION_SIZE} rows: alerted {rate(tally.alerts, tally.checks)}, "
             f"warned {tally.statuses['warn']}, ok {tally.statuses['ok']}; {_common(tally)}"
         )
-        judged = tally.checks >= JUDGED_DETECTION_CHECKS
-        if not judged:
+        judged = planted.judged and tally.checks >= JUDGED_DETECTION_CHECKS
+        if not planted.judged:
+            figures += "; reported, not judged: where detection stops"
+        elif not judged:
             figures += f"; target judged from {JUDGED_DETECTION_CHECKS} checks"
         problems = tally.errors + (detection_misses(tally) if judged else [])
         outcomes.append(Outcome(f"live checks: detects {change}, {mode}", not problems, figures, problems))

@@ -12,7 +12,10 @@ exactly:
 - :func:`carry_along_hidden_direction`: a sub-population (a share of the
   rows) moved along a direction the version's map leaves untouched, towards
   one side for one class and the other side for the other, so that the
-  attribute is readable again on those rows after erasure;
+  attribute is readable again on those rows after erasure.  How far is set by
+  the data (:func:`carrying_distance`): each moved row carries the attribute
+  as strongly as the whole population carried it before erasure, its class
+  half the raw class-mean distance from the other side;
 - :func:`prior_shifted_rows`: a draw whose class shares differ from the
   fitted priors by a given total-variation distance.
 """
@@ -74,8 +77,8 @@ def shift_along_leading_axis(x: NDArray[np.floating], reference: ReferenceStatis
     return np.asarray(x + np.sqrt(reference.eigenvalues[0]) * axis, dtype=np.float32)
 
 
-def hidden_direction(artifact: MapArtifact, population: Population, *, seed: int) -> NDArray[np.float64]:
-    """A unit direction the version's map leaves as it is, scaled to one standard deviation of the held-out rows.
+def hidden_direction(artifact: MapArtifact, *, seed: int) -> NDArray[np.float64]:
+    """A unit direction the version's map leaves as it is.
 
     Random, then restricted to the coordinates the version does not pin and
     made orthogonal there to the map's read-out ``V`` (``x' = x − U Vᵀ(x − μ)``
@@ -92,9 +95,26 @@ def hidden_direction(artifact: MapArtifact, population: Population, *, seed: int
     direction = np.zeros(d)
     draw = np.random.default_rng(seed).normal(size=int(free.sum()))
     direction[free] = draw - readout @ (readout.T @ draw)
-    direction /= np.linalg.norm(direction)
-    spread = float(np.std(population.held_x.astype(np.float64) @ direction))
-    return direction * spread
+    return np.asarray(direction / np.linalg.norm(direction))
+
+
+def spread_along(x: NDArray[np.floating], direction: NDArray[np.float64]) -> float:
+    """One standard deviation of the rows along a unit direction."""
+    return float(np.std(np.asarray(x, dtype=np.float64) @ direction))
+
+
+def carrying_distance(x: NDArray[np.floating], labels: NDArray[np.str_]) -> float:
+    """Half the Euclidean distance between the first class's raw mean and the other classes' (in sorted order).
+
+    Rows moved ``±`` this along a unit direction, by the same split of the
+    classes as :func:`carry_along_hidden_direction` makes, carry the attribute
+    along it with the class-mean distance the rows had before erasure.
+    """
+    rows = np.asarray(x, dtype=np.float64)
+    first = labels == np.unique(labels)[0]
+    if first.all():
+        raise ValueError("a carrying distance needs at least two classes")
+    return float(np.linalg.norm(rows[first].mean(axis=0) - rows[~first].mean(axis=0))) / 2
 
 
 def carry_along_hidden_direction(
@@ -107,6 +127,8 @@ def carry_along_hidden_direction(
     rng: np.random.Generator,
 ) -> tuple[NDArray[np.float32], NDArray[np.intp]]:
     """``round(share · n)`` rows, drawn at random, moved ``±strength · direction`` by class; the rows moved.
+
+    ``direction`` is a unit vector, ``strength`` a distance in the rows' units.
 
     The first class (in sorted order) goes towards ``+direction``, every other
     class towards ``−direction``: on those rows the attribute is then read

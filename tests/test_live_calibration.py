@@ -15,8 +15,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 from numpy.typing import NDArray
-from scipy import stats
+from scipy import linalg, stats
+from sklearn.metrics import calinski_harabasz_score
 
+from reliability.planted import carry_along_hidden_direction, carrying_distance, hidden_direction
 from veil.checks.calibration import (
     CALIBRATED,
     CALIBRATION_FILE,
@@ -26,8 +28,9 @@ from veil.checks.calibration import (
     holm_adjusted,
     null_key,
 )
-from veil.checks.drift import check_drift
-from veil.checks.null_draws import moment_figures, probe_sizes
+from veil.checks.drift import check_drift, class_mean_gap, erased_coordinates
+from veil.checks.null_draws import GapPool, class_gap_draws, moment_figures, probe_sizes
+from veil.checks.reference import ReferenceStatistics
 from veil.fitting.job import fit_version
 from veil.fitting.request import AuditSpec, FitRequest, MethodSpec, StoreSpec
 from veil.registry import Registry
@@ -174,6 +177,8 @@ def test_a_version_without_calibration_keeps_the_fixed_levels_and_says_so(tmp_pa
     x, _ = population(300, seed=3)
     report = check(old, x + 3 * old.reference.eigenvectors[:, 0] * np.sqrt(old.reference.eigenvalues[0]))
     assert (report["rule"], report["p_values"], report["levels"]) == (FIXED, None, None)
+    # No fixed band reads the class-mean gap: reported, judged by neither rule, and the answer says so.
+    assert report["not_judged"] == ["class_mean_gap"]
     # The fixed band's reason, as before calibration: the figure and the level it reaches.
     assert report["status"] == "alert"
     assert any(reason.startswith("mean_shift") and "reaches alert (1.0)" in reason for reason in report["reasons"])  # type: ignore[attr-defined]
@@ -261,3 +266,136 @@ def test_a_version_of_an_older_release_is_checked_by_the_fixed_levels_and_says_s
     assert (report.rule, report.levels, report.p_values) == (FIXED, None, None)
     shown = run("show", "legacy", "v0001", "--registry", str(tmp_path / "registry"))
     assert "live checks: fixed levels (no calibration stored with this version)" in shown.out
+
+
+def quiet_gaps(served: ServedVersion, x: NDArray[np.float64], labels: list[str]) -> dict[str, float]:
+    """The class-mean gap of a sample with its labels and with the pre-erasure probe's pseudo-labels."""
+    coordinates = erased_coordinates(served.artifact.apply(x), served.reference)
+    codes = np.array([served.classes.index(label) for label in labels], dtype=np.intp)
+    return {
+        "labels": class_mean_gap(coordinates, codes),
+        "pseudo-labels": class_mean_gap(coordinates, served.reference.probe_codes(x)),
+    }
+
+
+def test_the_class_mean_gap_is_the_between_class_spread() -> None:
+    # scikit-learn's Calinski-Harabasz index is [tr(B) / (K − 1)] / [tr(W) / (n − K)] with tr(B) = Σ_c n_c ‖m_c − m‖²
+    # and tr(W) the within-class sum of squares: the gap is sqrt(tr(B) / n).
+    rng = np.random.default_rng(11)
+    rows = rng.normal(size=(90, 7))
+    codes = rng.integers(0, 3, 90).astype(np.intp)
+    within = sum(float(np.sum((rows[codes == c] - rows[codes == c].mean(axis=0)) ** 2)) for c in range(3))
+    between = calinski_harabasz_score(rows, codes) * (3 - 1) / (90 - 3) * within
+    assert class_mean_gap(rows, codes) == pytest.approx(np.sqrt(between / 90), rel=1e-12)
+    # One class: no class mean lies apart from the overall mean.
+    assert class_mean_gap(rows, np.zeros(90, dtype=np.intp)) == 0.0
+
+
+def test_erased_coordinates_read_the_leading_directions_whitened_and_the_rest_at_its_mean_variance() -> None:
+    # 140 dimensions, of which the reference keeps 128 eigenvectors (and every eigenvalue).
+    d = 140
+    rng = np.random.default_rng(12)
+    vectors, _ = np.linalg.qr(rng.normal(size=(d, d)))
+    values = np.sort(rng.uniform(0.5, 20.0, d))[::-1]
+    reference = ReferenceStatistics(
+        mean=rng.normal(size=d), eigenvalues=values, eigenvectors=vectors[:, :128], erased_variance_share=0.0,
+        class_priors=np.array([0.5, 0.5]), class_means=np.zeros((2, d)), probe_weights=np.zeros((1, d)),
+        probe_bias=np.zeros(1),
+    )  # fmt: skip
+    rows = rng.normal(size=(5, d)) * 3
+    coordinates = erased_coordinates(rows, reference)
+    assert coordinates.shape == (5, 128 + d)
+    # Squared norms are the Mahalanobis form of C = V₁ Λ₁ V₁ᵀ + σ² (I − V₁ V₁ᵀ), σ² the mean of the other
+    # eigenvalues, solved densely by scipy.linalg.solve.
+    lead = vectors[:, :128]
+    covariance = (lead * values[:128]) @ lead.T + values[128:].mean() * (np.eye(d) - lead @ lead.T)
+    centred = rows - reference.mean
+    expected = np.einsum("ij,ji->i", centred, linalg.solve(covariance, centred.T, assume_a="pos"))
+    np.testing.assert_allclose(np.sum(coordinates**2, axis=1), expected, rtol=1e-9)
+
+
+def test_the_drawn_class_mean_gap_is_the_live_checks(served: ServedVersion) -> None:
+    calibration = served.calibration
+    assert calibration is not None
+    for source in ("labels", "pseudo-labels"):
+        assert calibration.nulls[null_key("class_mean_gap", source)].sizes.tolist() == [100, 300, 1000, 3000]
+    x, labels = population(250, seed=2)
+    coordinates = erased_coordinates(served.artifact.apply(x), served.reference)
+    for given, codes in ((labels, np.array([served.classes.index(c) for c in labels])), (None, None)):
+        report = check(served, x, given)
+        if codes is None:
+            codes = served.reference.probe_codes(x)
+        # The draws' sum, weighted by how often each row is drawn, on the check's rows once each: float64
+        # round-off over a few hundred terms is far below 1e-9 of the figure.
+        drawn = class_gap_draws(GapPool(coordinates, codes.astype(np.intp)), np.ones((1, 250)))
+        assert float(drawn[0]) == pytest.approx(report["class_mean_gap"], rel=1e-9)
+        assert "class_mean_gap" in report["p_values"]  # type: ignore[operator]
+    # A bootstrap draw (rows twice, rows left out) is the figure of the rows it repeats.
+    counts = np.random.default_rng(3).multinomial(250, np.full(250, 1 / 250))
+    repeated = np.repeat(np.arange(250), counts)
+    pool = GapPool(coordinates, np.asarray(codes, dtype=np.intp))
+    np.testing.assert_allclose(
+        class_gap_draws(pool, counts[None, :].astype(np.float64)),
+        [class_mean_gap(coordinates[repeated], pool.codes[repeated])],
+        rtol=1e-9,
+    )
+
+
+def test_quiet_traffic_gives_uniform_class_mean_gap_p_values(served: ServedVersion) -> None:
+    calibration = served.calibration
+    assert calibration is not None
+    p_values: dict[str, list[float]] = {"labels": [], "pseudo-labels": []}
+    for seed in range(400):
+        x, labels = population(300, seed=2000 + seed)
+        for source, gap in quiet_gaps(served, x, labels).items():
+            p_values[source].append(calibration.nulls[null_key("class_mean_gap", source)].p_value(gap, 300))
+    for source, values in p_values.items():
+        # Kolmogorov-Smirnov against the uniform (scipy.stats.kstest), at the loose level of the shift figures.
+        assert stats.kstest(values, "uniform").pvalue > 1e-3, source
+
+
+def test_a_sub_population_carrying_the_attribute_along_a_hidden_direction_alerts_at_300_rows(
+    served: ServedVersion,
+) -> None:
+    fit_x, fit_labels = population(ROWS, seed=0)
+    direction = hidden_direction(served.artifact, seed=5)
+    # Each moved row as far from the other side as the raw class means are apart.
+    strength = carrying_distance(fit_x, np.array(fit_labels))
+    for seed in range(4):
+        x, labels = population(300, seed=9200 + seed)
+        moved, _ = carry_along_hidden_direction(
+            x, np.array(labels), direction, share=0.2, strength=strength, rng=np.random.default_rng(seed)
+        )
+        for given in (labels, None):
+            report = check(served, moved.astype(np.float64), given)
+            assert report["status"] == "alert"
+            p_values = report["p_values"]
+            assert isinstance(p_values, dict)
+            assert p_values["class_mean_gap"] < 1e-4
+            # What reads it is the class-mean gap: the probe's leakage on 300 rows does not reach a level.
+            assert any(reason.startswith("class_mean_gap") for reason in report["reasons"])  # type: ignore[attr-defined]
+
+
+def test_a_calibration_stored_before_the_class_mean_gap_leaves_it_unjudged_and_says_so(
+    served: ServedVersion,
+) -> None:
+    calibration = served.calibration
+    assert calibration is not None
+    older = LiveCalibration(
+        {key: null for key, null in calibration.nulls.items() if not key.startswith("class_mean_gap")},
+        calibration.held_out_rows,
+    )
+    again = LiveCalibration.from_bytes(older.to_bytes())
+    x, labels = population(300, seed=4)
+    report = check_drift(
+        served.artifact, served.reference, served.whitening, served.thresholds, x, classes=served.classes,
+        labels=labels, calibration=again,
+    ).to_dict()  # fmt: skip
+    assert report["rule"] == CALIBRATED
+    assert report["class_mean_gap"] is not None
+    assert "class_mean_gap" not in report["p_values"]
+    assert report["not_judged"] == ["class_mean_gap"]
+    # The figures it does hold are judged as before.
+    assert set(report["p_values"]) == {
+        "mean_shift", "covariance_shift", "erased_variance_ratio", "prior_shift", "leakage_gap",
+    }  # fmt: skip

@@ -25,12 +25,13 @@ from reliability.livechecks import (
     tolerance,
 )
 from reliability.planted import (
-    Population,
     carry_along_hidden_direction,
+    carrying_distance,
     hidden_direction,
     prior_shifted_rows,
     shift_along_leading_axis,
     shifted_shares,
+    spread_along,
 )
 from reliability.workbench import planted_population
 from veil.checks.reference import ReferenceStatistics
@@ -72,19 +73,19 @@ def test_the_hidden_direction_survives_erasure_and_carries_the_attribute_again()
     eraser = LEACE().fit(x[:4000], z[:4000])
     artifact = eraser.export()
     held = x[4000:]
-    population = Population(x[:4000], {"region": z[:4000]}, held, {"region": z[4000:]})
-    direction = hidden_direction(artifact, population, seed=3)
-    # One held-out standard deviation long, along a direction the map passes unchanged.
-    assert np.std(held.astype(np.float64) @ (direction / np.linalg.norm(direction))) == pytest.approx(
-        float(np.linalg.norm(direction)), rel=1e-9
-    )
-    before, after = artifact.apply(held.astype(np.float64)), artifact.apply(held.astype(np.float64) + direction)
+    direction = hidden_direction(artifact, seed=3)
+    # A unit direction the map passes unchanged.
+    assert np.linalg.norm(direction) == pytest.approx(1.0, abs=8 * np.finfo(np.float64).eps)
+    strength = 2 * spread_along(held, direction)
+    before = artifact.apply(held.astype(np.float64))
+    after = artifact.apply(held.astype(np.float64) + strength * direction)
     # Both sides go through U Vᵀ(x − μ): they differ by the round-off of d-term sums of that size.
     mapping = artifact.map
     scale = float(np.abs(held).max()) * (1 + np.linalg.norm(mapping.u) * np.linalg.norm(mapping.v))
-    assert np.allclose(after - before, direction, rtol=0, atol=4 * held.shape[1] * np.finfo(np.float64).eps * scale)
+    atol = 4 * held.shape[1] * np.finfo(np.float64).eps * scale
+    assert np.allclose(after - before, strength * direction, rtol=0, atol=atol)
     moved_x, moved = carry_along_hidden_direction(
-        held, z[4000:], direction, share=0.2, strength=2.0, rng=np.random.default_rng(4)
+        held, z[4000:], direction, share=0.2, strength=strength, rng=np.random.default_rng(4)
     )
     assert moved.size == 400
     untouched = np.setdiff1d(np.arange(held.shape[0]), moved)
@@ -95,6 +96,26 @@ def test_the_hidden_direction_survives_erasure_and_carries_the_attribute_again()
     on_rest = cross_val_score(LogisticRegression(max_iter=2000), erased[untouched], z[4000:][untouched], cv=5).mean()
     assert on_moved > 0.95
     assert on_rest < 0.6
+
+
+def test_the_carrying_distance_is_half_the_class_mean_distance() -> None:
+    # Two classes of a known layout: class means at −1 and +3 along the first axis (a distance of 4, half of it 2),
+    # the rows symmetric about each mean so the sample means are the layout's exactly.
+    offsets = np.array([[0.5, 1.0], [-0.5, -1.0], [0.5, -1.0], [-0.5, 1.0]])
+    x = np.vstack([offsets + np.array([-1.0, 0.0]), offsets + np.array([3.0, 0.0]), offsets + np.array([3.0, 0.0])])
+    labels = np.array(["a"] * 4 + ["b"] * 8)
+    assert carrying_distance(x, labels) == pytest.approx(2.0, abs=8 * np.finfo(np.float64).eps)
+    # Every row moved ± that distance by class along a direction the classes do not differ on: along it their
+    # means are then as far apart as the raw class means were (the first class goes towards +direction).
+    moved, rows = carry_along_hidden_direction(
+        x, labels, np.array([0.0, 1.0]), share=1.0, strength=2.0, rng=np.random.default_rng(0)
+    )
+    assert rows.size == 12
+    gap = moved[labels == "a"].mean(axis=0) - moved[labels == "b"].mean(axis=0)
+    # float32 rows of size a few: a float32 step of them.
+    assert gap.tolist() == pytest.approx([-4.0, 4.0], abs=16 * float(np.finfo(np.float32).eps))
+    with pytest.raises(ValueError, match="two classes"):
+        carrying_distance(x[:4], labels[:4])
 
 
 def test_the_prior_shift_is_the_distance_asked_for() -> None:

@@ -317,7 +317,8 @@ class VeilClient(_Requests):
             says what judged the status: ``"calibrated"`` (each figure's p-value against the version's own
             no-drift draws at this sample size in ``p_values``, Holm-adjusted in ``adjusted_p_values``, at the
             family-wise ``levels``) or ``"fixed levels"`` (a version stored before calibration: the card's
-            warn and alert bands; ``p_values`` and ``levels`` are then null).
+            warn and alert bands; ``p_values`` and ``levels`` are then null).  ``not_judged`` names the
+            figures neither rule judged (a class-mean gap the version stored no draws for).
         """
         request = self._drift_request(vectors, labels, version, alias, context)
         result: dict[str, Any] = self._send(request.pop("method"), f"/v1/erasers/{name}/drift", **request).json()

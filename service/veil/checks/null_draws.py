@@ -3,7 +3,8 @@
 Two kinds of draw, because the figures read a sample in two ways:
 
 - The shift figures (mean and covariance shift, erased-variance ratio, prior
-  shift) compare a sample with the fit's reference.  They are drawn *with*
+  shift, and the erased class-mean gap of each categorical attribute with
+  labels and with pseudo-labels) need no probe.  They are drawn *with*
   replacement, at every size (larger than the held-out rows too): a
   bootstrap sample's spread around the reference is that of independent rows.
   At sizes far beyond the held-out rows the held-out rows' own distance from
@@ -36,7 +37,7 @@ from numpy.typing import NDArray
 
 from veil.audit.within import context_audit
 from veil.checks.calibration import FigureNull, LiveCalibration, null_key
-from veil.checks.drift import MIN_ROWS, PROBE_FOLDS, _class_figures
+from veil.checks.drift import MIN_ROWS, PROBE_FOLDS, _class_figures, erased_coordinates
 from veil.checks.reference import ReferenceStatistics
 from veil.defaults import LIVE_PROBE_DRAWS
 from veil.maps.artifact import MapArtifact
@@ -190,6 +191,13 @@ def draw_calibration(
     pool = np.sort(rng.choice(rows, min(rows, SHIFT_POOL), replace=False))
     keep = toward_reference(pool.size, fit_rows)
     pool_white = _shrunk_offset(white[pool], keep)
+    # The class-mean gap's coordinates (wider than the rows) only for the pool it is drawn from.
+    coordinates = erased_coordinates(erased[pool], reference)
+    gap_pools = {
+        (attribute.name, source): _gap_pool(coordinates, codes[pool])
+        for attribute, guessed in zip(attributes, pseudo, strict=True)
+        for source, codes in (("labels", attribute.codes), ("pseudo-labels", guessed))
+    }
     for step, size in enumerate(sizes):
         counts = np.stack(
             [np.bincount(rng.integers(0, pool.size, size), minlength=pool.size) for _ in range(shift_draws)]
@@ -211,6 +219,10 @@ def draw_calibration(
                 counts = rng.multinomial(size, shares, size=shift_draws)
                 tv = 0.5 * np.abs(counts / size - attribute.priors).sum(axis=1)
                 shifts.setdefault(null_key("prior_shift", source, attribute.name), {})[size] = list(tv)
+                gap_pool = gap_pools[attribute.name, source]
+                if gap_pool.codes.size:
+                    gaps = _class_gap_draws(gap_pool, size, shift_draws, rng)
+                    shifts.setdefault(null_key("class_mean_gap", source, attribute.name), {})[size] = list(gaps)
         if stage is not None:
             advance(stage, step + 1, total)
     nulls = {
@@ -219,7 +231,7 @@ def draw_calibration(
     done = len(sizes)
     for attribute, guessed in zip(attributes, pseudo, strict=True):
         for source, codes in (("labels", attribute.codes), ("pseudo-labels", guessed)):
-            null = _probe_null(x, erased, whitening, reference.mean, attribute, codes, rng, sizes, probe_draws)
+            null = _probe_null(x, erased, reference, attribute, codes, rng, sizes, probe_draws)
             if null is not None:
                 nulls[null_key("leakage_gap", source, attribute.name)] = null
             done += 1
@@ -227,12 +239,80 @@ def draw_calibration(
                 advance(stage, done, total)
     if context is not None and attributes:
         first = attributes[0]
-        null = _probe_null(x, erased, whitening, reference.mean, first, first.codes, rng, sizes, probe_draws, context)
+        null = _probe_null(x, erased, reference, first, first.codes, rng, sizes, probe_draws, context)
         if null is not None:
             nulls[null_key("context_leakage_gap", "labels", first.name)] = null
         if stage is not None:
             advance(stage, total, total)
     return LiveCalibration(nulls, held_out_rows=rows)
+
+
+@dataclass(frozen=True)
+class GapPool:
+    """The rows the class-mean gap is drawn from: their coordinates (shape (N, D)) and class codes (all ≥ 0)."""
+
+    coordinates: NDArray[np.float64]
+    codes: NDArray[np.intp]
+
+
+def _gap_pool(coordinates: NDArray[np.float64], codes: NDArray[np.intp]) -> GapPool:
+    """The pool's labelled rows, each class's offset from the overall mean scaled to the population's.
+
+    The pool's class means lie apart by the population's class-mean gap after
+    erasure (the fit's own error with labels, the pre-erasure probe's lean
+    with pseudo-labels: what every live sample carries) plus the pool's own
+    sampling noise (which no live sample carries; left in, it raised the
+    pseudo-label curve of a 12-dimensional test population well above what
+    fresh samples read).  With ``N`` rows and within-class covariances
+    ``S_c`` the pool's squared gap exceeds the population's by
+    ``Σ_c (1 − n_c / N) tr(S_c) / N`` on average; the offsets are scaled so
+    that their squared gap is the pool's less that (none if it is less).
+    """
+    rows = codes >= 0
+    kept, kept_codes = coordinates[rows], codes[rows]
+    n = kept.shape[0]
+    if n == 0:
+        return GapPool(kept, kept_codes)
+    overall = kept.mean(axis=0)
+    classes = np.unique(kept_codes)
+    offsets = {int(code): kept[kept_codes == code].mean(axis=0) - overall for code in classes}
+    squared = sum(float(np.sum(kept_codes == code)) / n * float(np.sum(offsets[code] ** 2)) for code in offsets)
+    noise = 0.0
+    for code in offsets:
+        members = kept[kept_codes == code]
+        if members.shape[0] > 1:
+            noise += (1 - members.shape[0] / n) * float(np.sum(members.var(axis=0, ddof=1))) / n
+    scale = float(np.sqrt(max(0.0, squared - noise) / squared)) if squared > 0 else 1.0
+    moved = kept.copy()
+    for code, offset in offsets.items():
+        moved[kept_codes == code] -= (1 - scale) * offset
+    return GapPool(moved, kept_codes)
+
+
+def class_gap_draws(pool: GapPool, counts: NDArray[np.float64]) -> NDArray[np.float64]:
+    """The class-mean gap of bootstrap draws: each row of ``counts`` (shape (B, N)) how often each row is drawn.
+
+    :func:`veil.checks.drift.class_mean_gap` of the drawn rows, from sums
+    weighted by the counts, so that no draw is materialised.
+    """
+    n = counts.sum(axis=1)
+    overall = counts @ pool.coordinates / n[:, None]
+    total = np.zeros(counts.shape[0])
+    for code in np.unique(pool.codes):
+        weights = counts[:, pool.codes == code]
+        n_class = weights.sum(axis=1)
+        sums = weights @ pool.coordinates[pool.codes == code]
+        present = n_class > 0
+        means = np.divide(sums, n_class[:, None], out=np.zeros_like(sums), where=present[:, None])
+        total += np.where(present, n_class / n * np.sum((means - overall) ** 2, axis=1), 0.0)
+    return np.asarray(np.sqrt(total))
+
+
+def _class_gap_draws(pool: GapPool, size: int, draws: int, rng: np.random.Generator) -> NDArray[np.float64]:
+    """``draws`` bootstrap samples of ``size`` rows of the pool, their class-mean gaps."""
+    rows = pool.codes.size
+    counts = np.stack([np.bincount(rng.integers(0, rows, size), minlength=rows) for _ in range(draws)])
+    return class_gap_draws(pool, counts.astype(np.float64))
 
 
 def _given(codes: NDArray[np.intp]) -> Callable[[NDArray[np.floating]], NDArray[np.intp]]:
@@ -243,8 +323,7 @@ def _given(codes: NDArray[np.intp]) -> Callable[[NDArray[np.floating]], NDArray[
 def _probe_null(
     x: NDArray[np.float64],
     erased: NDArray[np.floating],
-    whitening: NDArray[np.float64],
-    mean: NDArray[np.float64],
+    reference: ReferenceStatistics,
     attribute: DrawnAttribute,
     codes: NDArray[np.intp],
     rng: np.random.Generator,
@@ -274,7 +353,8 @@ def _probe_null(
                     values.append(within.after["linear"].accuracy - within.after["linear"].majority)
                 continue
             figures = _class_figures(
-                x[rows_drawn], erased[rows_drawn], whitening, mean, attribute.classes, attribute.priors,
+                x[rows_drawn], erased[rows_drawn], erased_coordinates(erased[rows_drawn], reference),
+                attribute.classes, attribute.priors,
                 _given(drawn_codes), 0,
             )  # fmt: skip
             if figures.leakage is not None:
