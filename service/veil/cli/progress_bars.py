@@ -27,6 +27,10 @@ class ProgressBars:
         bar.update(done - bar.n)
         if total is not None and done >= total:
             bar.refresh()  # tqdm skips updates within 0.1 s of the last; a finished stage shows as finished
+            # A finished stage gives its line back: tqdm hides bars beyond the screen's height (20 lines when it
+            # cannot tell), and a fit reports more stages than that.
+            bar.close()
+            del self._bars[stage]
 
     def __enter__(self) -> ProgressBars:
         return self
