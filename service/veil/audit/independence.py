@@ -27,8 +27,10 @@ With a group column (``--group``: a first name, an author) the rows of a
 group share both their place and, usually, their label, so labels permuted
 row by row ask whether rows are exchangeable, not whether the attribute
 leaks beyond the group: on data where each group has its own offset and its
-own label and nothing is shared across groups, the row-level kernel and
-neighbour tests rejected in nearly every draw (tests/test_independence_groups.py).
+own label and nothing is shared across groups (tests/test_independence_groups.py:
+24 groups of 2 to 8 rows), the row-level kernel and neighbour tests rejected
+at 0.05 in 98.5% and 100% of 200 draws; permuted by whole groups, in 4.5% and
+5.5% (the readers' test on a group fold in 3%), with uniform p-values.
 Where the attribute is constant within every group, the labels are permuted
 at the group level instead (each group's labels move as one block to another
 group's rows: :data:`PERMUTE_GROUPS`), the neighbour test counts only
