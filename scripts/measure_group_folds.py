@@ -7,7 +7,13 @@ here.  The fit holds out whole names (``fit_and_audit(..., group=)``), so
 the judged rows' names are names the eraser never saw, and the audit reads
 the linear probe three ways (docs/methods.md, "Across groups").
 
-    .venv/bin/python scripts/measure_group_folds.py [--large] [--holdout 0.5] [--probes all]
+    .venv/bin/python scripts/measure_group_folds.py [--large] [--holdout 0.5] [--probes all] [--independence]
+
+With ``--independence`` it also runs the kernel and neighbour independence
+tests on the judged rows, raw and after the map, with labels permuted row by
+row and by whole names (docs/independence.md, "With a group column"), and
+prints the audit's own family (with the readers' test) with the names as
+groups.
 """
 
 from __future__ import annotations
@@ -22,8 +28,12 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
+from sklearn.model_selection import StratifiedGroupKFold
 
 from veil.audit import fit_and_audit
+from veil.audit.geometry import nearest_neighbours
+from veil.audit.groups import group_codes
+from veil.audit.independence_run import FAST, independence_audit
 from veil.erasers import INLP, LEACE, MeanProjection
 from veil.samples.harbourline import load_harbourline_profiles
 
@@ -57,6 +67,7 @@ def main() -> None:
     parser.add_argument("--probes", choices=("linear", "all"), default="linear")
     parser.add_argument("--method", choices=("leace", "meanproj", "inlp"), default="leace")
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--independence", action="store_true", help="also the independence tests, rows and names")
     args = parser.parse_args()
     size = "large" if args.large else "small"
     sample = load_harbourline_profiles(size)
@@ -92,6 +103,46 @@ def main() -> None:
     out["strongest_group_folds"] = report.strongest_after()
     print(json.dumps(out, indent=2))
     print("\n".join(across.lines()))
+    if args.independence:
+        assert report.independence is not None
+        print("\n".join(report.independence.lines()))
+        print(json.dumps(independence_by_permutation(x, z, groups, eraser, args.holdout, args.seed), indent=2))
+
+
+def independence_by_permutation(
+    x: NDArray[np.floating], z: NDArray[Any], groups: NDArray[np.str_], eraser: Any, holdout: float, seed: int
+) -> dict[str, Any]:
+    """The kernel and neighbour tests on the judged rows, raw and erased, labels permuted by rows and by names.
+
+    The split is ``fit_and_audit``'s: the first fold of ``round(1 / holdout)`` stratified group folds, seeded.
+    """
+    classes, codes = np.unique(z, return_inverse=True)
+    codes = codes.reshape(-1).astype(np.intp)
+    names = group_codes(groups, codes.size)[1]
+    splitter = StratifiedGroupKFold(n_splits=max(2, round(1 / holdout)), shuffle=True, random_state=seed)
+    fit_rows, held = next(iter(splitter.split(x, codes, names)))
+    fitted = eraser.fit(x[fit_rows], classes[codes[fit_rows]])
+    raw = np.asarray(x[held], dtype=np.float64)
+    views = {"raw": raw, "after": np.asarray(fitted.transform(x[held]), dtype=np.float64)}
+    out: dict[str, Any] = {"judged_rows": int(held.size), "judged_names": int(np.unique(names[held]).size)}
+    for view, rows in views.items():
+        for permuted, grouped in (("rows", None), ("names", names[held])):
+            family = independence_audit(
+                raw, rows, codes[held], neighbours=nearest_neighbours(rows, 10),
+                find_neighbours=lambda v, apart: nearest_neighbours(v, 10, apart), reader=None, settings=FAST,
+                seed=seed, grouped=grouped,
+            )  # fmt: skip
+            out[f"{view}, permuted by {permuted}"] = {
+                test.name: {
+                    "statistic": round(test.statistic, 3),
+                    "p": round(test.p_value, 4),
+                    "effect": round(test.effect, 4),
+                    "smallest_t": test.smallest_strength if test.power_measured else "not measured",
+                    "permutation": test.permutation,
+                }
+                for test in family.tests
+            }
+    return out
 
 
 if __name__ == "__main__":

@@ -40,8 +40,11 @@ PERMUTATIONS = 99
 ALPHA = 0.05
 
 
-def _predictions(x: NDArray[np.floating], codes: NDArray[np.intp]) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+def _predictions(
+    x: NDArray[np.floating], codes: NDArray[np.intp], groups: NDArray[np.intp] | None = None
+) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
     """Held-out predictions of a cheap linear reader (scikit-learn's LDA, 5 stratified folds), and the first fold."""
+    assert groups is None
     folds = StratifiedKFold(n_splits=5, shuffle=True, random_state=0)
     predicted = np.asarray(cross_val_predict(LinearDiscriminantAnalysis(), x, codes, cv=folds), dtype=np.intp)
     return predicted, next(iter(folds.split(x, codes)))[1]
@@ -137,7 +140,7 @@ def test_planted_dependence_is_detected_at_the_power_reported() -> None:
     raw, erased, codes = _shifted(480, 3.0, rng)
     settings = PowerSettings(grid=(0.2, 0.4, 0.6, 0.8, 1.0), draws=20, permutations=PERMUTATIONS, readers=True)
     result = smallest_strengths(
-        raw, erased, codes, neighbours=lambda x: nearest_neighbours(x, 10),
+        raw, erased, codes, neighbours=lambda x, apart: nearest_neighbours(x, 10, apart),
         reader=reader_run(_predictions, "linear"), settings=settings, rng=rng,
     )  # fmt: skip
     assert result.rows == 120

@@ -29,17 +29,24 @@ def mean_cosine(raw: NDArray[np.floating], erased: NDArray[np.floating]) -> floa
     return float(np.mean(np.sum(unit(raw) * unit(erased), axis=1)))
 
 
-def nearest_neighbours(x: NDArray[np.floating], k: int) -> NDArray[np.intp]:
-    """Indices of each row's ``k`` nearest other rows by cosine, shape (n, k), in blocks of rows."""
+def nearest_neighbours(x: NDArray[np.floating], k: int, apart: NDArray[np.intp] | None = None) -> NDArray[np.intp]:
+    """Indices of each row's ``k`` nearest other rows by cosine, shape (n, k), in blocks of rows.
+
+    With ``apart`` (each row's group), a row's neighbours are found among the rows of the other groups only.
+    """
     rows = unit(x)
     n = rows.shape[0]
     if n <= k:
         raise ValueError(f"need more than {k} rows for {k}-nearest-neighbour figures, got {n}")
+    if apart is not None and n - int(np.bincount(apart).max()) < k:
+        raise ValueError(f"need {k} rows outside each row's group for {k}-nearest-neighbour figures across groups")
     out = np.empty((n, k), dtype=np.intp)
     for start in range(0, n, _BLOCK):
         stop = min(start + _BLOCK, n)
         similarity = rows[start:stop] @ rows.T
         similarity[np.arange(stop - start), np.arange(start, stop)] = -np.inf
+        if apart is not None:
+            similarity[apart[start:stop, None] == apart[None, :]] = -np.inf
         out[start:stop] = np.argpartition(-similarity, k, axis=1)[:, :k]
     return out
 

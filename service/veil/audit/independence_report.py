@@ -35,6 +35,14 @@ TEST_MEANINGS = {
     "the same value, the labels shuffled within each value",
 }
 
+#: How a test's labels were permuted, and what that means, for tables and the report.
+PERMUTATIONS = {
+    "rows": "row by row",
+    "groups": "whole groups: each group's labels moved as one block to another group's rows",
+    "within groups": "within each group (a group holds more than one class, so its block cannot move)",
+    "within context values": "within each context value",
+}
+
 #: The threat of :data:`veil.checks.verdict.THREATS` a rejected test is an alert for (the readers' test: that of
 #: the reader it used, see :meth:`IndependenceTest.threat`).
 TEST_THREATS = {
@@ -78,6 +86,10 @@ class IndependenceTest:
     power_measured : bool
         Whether this test's power was measured (the readers' test only with the thorough setting: it refits the
         reader on every draw).
+    permutation : str
+        How the labels were permuted, one of :data:`PERMUTATIONS`: row by row; with a group column, whole groups'
+        labels moved as units ("groups") or, where a group holds more than one class, within each group; the
+        context tests within each context value.
     """
 
     name: str
@@ -91,6 +103,7 @@ class IndependenceTest:
     detail: str = ""
     smallest_strength: float | None = None
     power_measured: bool = False
+    permutation: str = "rows"
 
     @property
     def threat(self) -> str:
@@ -101,7 +114,9 @@ class IndependenceTest:
 
     @classmethod
     def from_dict(cls, data: dict[str, Any]) -> IndependenceTest:
-        return cls(**data)
+        # Records stored before the field: the context tests permuted within each context value, the rest rows.
+        default = "within context values" if str(data.get("name", "")).endswith("-context") else "rows"
+        return cls(**{"permutation": default, **data})
 
 
 @dataclass(frozen=True)
@@ -158,8 +173,8 @@ class IndependenceAudit:
             }
         )
 
-    def table(self) -> list[tuple[str, str, str, str, str, str, str]]:
-        """``(test, statistic, p, Holm p, effect, upper bound, smallest t)`` rows, as text."""
+    def table(self) -> list[tuple[str, str, str, str, str, str, str, str]]:
+        """``(test, statistic, p, Holm p, effect, upper bound, smallest t, labels permuted)`` rows, as text."""
         rows = []
         for test in self.tests:
             label = TEST_LABELS[test.name] + ("" if test.reader is None else f": {test.reader}")
@@ -172,6 +187,7 @@ class IndependenceAudit:
                     f"{test.effect:+.4f}",
                     f"{test.effect_upper:.4f}",
                     self.strength_text(test),
+                    test.permutation,
                 )
             )
         return rows
@@ -191,7 +207,7 @@ class IndependenceAudit:
             f"independence tests ({setting}: {self.permutations} permutations each, Holm-corrected across "
             f"{len(self.tests)} at alpha {self.alpha:g}; upper bounds one-sided at {1 - self.alpha:.0%})"
         )
-        labels = ("test", "statistic", "p", "Holm p", "effect", "upper", "smallest t")
+        labels = ("test", "statistic", "p", "Holm p", "effect", "upper", "smallest t", "permuted")
         rows = [labels, *self.table()]
         widths = [max(len(row[i]) for row in rows) for i in range(len(labels))]
         lines = [head]
@@ -202,6 +218,8 @@ class IndependenceAudit:
                 f"{self.power_share:.0%} of {self.power_draws} draws of {self.power_rows} rows at alpha "
                 f"{self.alpha:g} (grid {', '.join(f'{t:g}' for t in self.power_grid)})"
             )
+        for way in sorted({test.permutation for test in self.tests} - {"rows", "within context values"}):
+            lines.append(f"  permuted {way}: {PERMUTATIONS[way]}")
         return lines
 
 

@@ -499,12 +499,16 @@ def _independence(
     if strongest is not None and any(name != "linear" for name, _, _ in leakage.probes()):
         name = strongest
 
-        def fit_predict(x: NDArray[np.floating], labels: NDArray[np.intp]) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
-            # The same reader, sized for the rows it is given, with the same folds as the audit.
-            sizes = readers.fold_sizes(labels, folds)
+        def fit_predict(
+            x: NDArray[np.floating], labels: NDArray[np.intp], groups: NDArray[np.intp] | None
+        ) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+            # The same reader, sized for the rows it is given, with the same kind of folds as the audit.
+            if groups is not None:
+                groups = np.unique(groups, return_inverse=True)[1].reshape(-1).astype(np.intp)
+            sizes = readers.fold_sizes(labels, folds, groups=groups, random_state=seed)
             model = readers.build_probe(name, seed, sizes=sizes, features=x.shape[1])
-            labelled = probes.cross_val_labels(model, x, labels, folds=folds, random_state=seed)
-            return labelled, probes.first_fold(labels, folds, seed)
+            labelled = probes.cross_val_labels(model, x, labels, folds=folds, random_state=seed, groups=groups)
+            return labelled, probes.first_fold(labels, folds, seed, groups=groups)
 
         scores = {probe: after for probe, _, after in leakage.probes() if isinstance(after, ProbeScore)}
         # The rows of the audit's first test fold (a group fold with --group), where the predictions came from.
@@ -513,8 +517,8 @@ def _independence(
     with phase("independence tests"):
         return independence_audit(
             raw, erased, codes, neighbours=neighbours,
-            find_neighbours=lambda x: geometry.nearest_neighbours(x, NEIGHBOURS), reader=reader,
-            settings=settings, seed=seed, groups=strata,
+            find_neighbours=lambda x, apart: geometry.nearest_neighbours(x, NEIGHBOURS, apart), reader=reader,
+            settings=settings, seed=seed, groups=strata, grouped=group_index,
         )  # fmt: skip
 
 
