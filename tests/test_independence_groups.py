@@ -231,3 +231,24 @@ def test_the_audit_records_how_each_test_permuted() -> None:
     old = {key: value for key, value in asdict(audit.tests[0]).items() if key != "permutation"}
     assert IndependenceTest.from_dict(old).permutation == "rows"
     assert IndependenceTest.from_dict({**old, "name": "kernel-context"}).permutation == "within context values"
+
+
+def test_with_a_group_column_the_tests_within_a_context_are_left_out() -> None:
+    # Rows of one group share position and label; a row-by-row permutation within each context value would
+    # reject where nothing leaks beyond the group, so the family holds the tests across groups only.
+    rng = np.random.default_rng(5)
+    x, codes, groups = _grouped(rng)
+    context = rng.integers(0, 2, size=codes.size).astype(np.intp)
+    settings = IndependenceSettings(permutations=PERMUTATIONS, power=None, thorough=False)
+    audit = independence_audit(
+        x, x, codes, neighbours=nearest_neighbours(x, 10),
+        find_neighbours=lambda x, apart=None: nearest_neighbours(x, 10, apart), reader=None, settings=settings,
+        seed=0, groups=context, grouped=groups,
+    )  # fmt: skip
+    assert [test.permutation for test in audit.tests] == [PERMUTE_GROUPS, PERMUTE_GROUPS]
+    alone = independence_audit(
+        x, x, codes, neighbours=nearest_neighbours(x, 10),
+        find_neighbours=lambda x, apart=None: nearest_neighbours(x, 10, apart), reader=None, settings=settings,
+        seed=0, groups=context,
+    )  # fmt: skip
+    assert len(alone.tests) == 4  # without a group column the context's two tests run beside the family's two

@@ -399,3 +399,51 @@ def test_a_calibration_stored_before_the_class_mean_gap_leaves_it_unjudged_and_s
     assert set(report["p_values"]) == {
         "mean_shift", "covariance_shift", "erased_variance_ratio", "prior_shift", "leakage_gap",
     }  # fmt: skip
+
+
+def test_quiet_samples_larger_than_any_drawn_do_not_alarm() -> None:
+    # A mean-shift figure carries the reference's own error e (fixed) plus the sample's: ‖e + x̄_n‖ with x̄_n drawn
+    # as N(0, I/n) (the sampling law of a mean of n standard Gaussian rows; a textbook fact, not a measurement).
+    # Its curve levels off at ‖e‖; a curve extended along its fall from 1,000 and 3,000 rows would sink below it.
+    rng = np.random.default_rng(11)
+    d, fit_rows = 128, 1920
+    error = rng.standard_normal(d) / np.sqrt(fit_rows)
+
+    def figure(n: int, count: int) -> NDArray[np.float64]:
+        return np.linalg.norm(error + rng.standard_normal((count, d)) / np.sqrt(n), axis=1)
+
+    null = FigureNull.from_draws({n: figure(n, 300) for n in (100, 300, 1000, 3000)})
+    for n in (6000, 20000):
+        p = np.array([null.p_value(float(value), n) for value in figure(n, 200)])
+        assert np.isfinite(p).all()
+        # An alert needs about 1e-4 per figure after Holm over ten; quiet samples must not reach it
+        # (one-sided binomial bound at 1%, scipy.stats.binomtest).
+        alarms = int(np.count_nonzero(p <= 1e-4))
+        assert stats.binomtest(alarms, p.size, 1e-4, alternative="greater").pvalue > 0.01, (n, alarms)
+
+
+def test_a_size_whose_draws_did_not_spread_gives_finite_p_values() -> None:
+    null = FigureNull.from_draws({100: np.zeros(20), 300: np.linspace(-0.1, 0.1, 20)})
+    for n in (20, 100, 200, 300, 1000, 100000):
+        for value in (0.0, 0.05, 1.0):
+            p = null.p_value(value, n)
+            assert 0.0 <= p <= 1.0, (n, value, p)
+
+
+@pytest.mark.parametrize(
+    "damage", ["empty", "truncated", "lengths", "not finite"], ids=lambda damage: damage.replace(" ", "-")
+)
+def test_a_damaged_calibration_is_refused_by_name(served: ServedVersion, damage: str) -> None:
+    assert served.calibration is not None
+    data = served.calibration.to_bytes()
+    with np.load(io.BytesIO(data)) as stored:
+        arrays = {name: stored[name] for name in stored.files}
+    if damage == "lengths":
+        arrays["0.mean"] = arrays["0.mean"][:-1]
+    if damage == "not finite":
+        arrays["0.sd"] = np.full_like(arrays["0.sd"], np.nan)
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays)
+    written = {"empty": b"", "truncated": data[: len(data) // 2]}.get(damage, buffer.getvalue())
+    with pytest.raises(ValueError, match=r"calibration|curve"):
+        LiveCalibration.from_bytes(written)

@@ -58,6 +58,7 @@ class ReaderEvidence:
     every reader's score, and how to refit it on other rows (held-out predictions of rows), for power."""
 
     name: str
+    #: Held-out predictions, shape (readers, n): the named reader's first, then every other reader's.
     predicted: NDArray[np.intp]
     rows: NDArray[np.intp]
     scores: Mapping[str, ProbeScore]
@@ -124,7 +125,9 @@ def independence_audit(
                 grouping=grouping,
             ),
         )
-    if groups is not None:
+    # With a group column as well, the tests within the context are left out: they permute row by row within each
+    # value, and rows of one group share both their position and their label, so their null would be wrong.
+    if groups is not None and grouped is None:
         outcomes.append(kernel_test(erased, codes, permutations=permutations, rng=rng, alpha=alpha, groups=groups))
         within = _neighbours_within(erased, groups, find_neighbours)
         if within is not None:

@@ -513,7 +513,9 @@ def _independence(
         scores = {probe: after for probe, _, after in leakage.probes() if isinstance(after, ProbeScore)}
         # The rows of the audit's first test fold (a group fold with --group), where the predictions came from.
         held = probes.first_fold(codes, folds, seed, groups=group_index)
-        reader = ReaderEvidence(name, predicted[name], held, scores, fit_predict)
+        # Every reader's predictions, the strongest first: the test takes the most hits of any of them on the fold.
+        every = np.stack([predicted[name], *(labels for probe, labels in predicted.items() if probe != name)])
+        reader = ReaderEvidence(name, every, held, scores, fit_predict)
     with phase("independence tests"):
         return independence_audit(
             raw, erased, codes, neighbours=neighbours,

@@ -19,13 +19,14 @@ is exactly gamma).  A skewness estimated below 0 is taken as 0: a left-skewed
 curve ends on the right, and would call any figure beyond that end
 impossible, which no finite number of draws can show.  The empirical
 quantiles stay stored beside the curve, so that the fit can be checked
-against them (``veil show`` and the tests do).
+against them (the tests do).
 
 Between sizes, the mean (in logs when positive at both ends: norms shrink as
 a power of ``n``), the logarithm of the standard deviation and the skewness
-are interpolated linearly in ``log n``; beyond the sizes drawn the nearest
-two sizes are extrapolated the same way (one size alone: the spread shrinks
-as ``1 / sqrt(n)``, the mean and skewness stay).
+are interpolated linearly in ``log n``.  Above the largest size drawn the
+largest size's curve holds (see :meth:`FigureNull.curve`); below the
+smallest the first two sizes are extrapolated the same way (one size alone:
+the spread grows as ``1 / sqrt(n)``, the mean and skewness stay).
 
 A live check computes each figure's p-value at its own sample size, adjusts
 them across the figures judged by Holm's step-down method (family-wise error
@@ -37,6 +38,7 @@ from __future__ import annotations
 
 import io
 import math
+import zipfile
 from dataclasses import dataclass
 from typing import Any
 
@@ -103,18 +105,32 @@ class FigureNull:
         )
 
     def curve(self, n: int) -> tuple[float, float, float]:
-        """The ``(mean, sd, skew)`` at sample size ``n``, interpolated (or extrapolated) in ``log n``."""
+        """The ``(mean, sd, skew)`` at sample size ``n``: interpolated in ``log n`` between the sizes drawn.
+
+        Beyond the largest size drawn the largest size's curve holds.  The shift figures level off at the
+        reference's own error, which every live sample carries, so a mean extended along its fall would sink
+        below that floor while the spread shrank, and large quiet samples would alarm; held, a larger sample is
+        judged by a wider curve than its own, which can only miss, never invent, a change.  Below the smallest
+        size the first segment is extended (smaller samples spread more, and the extension widens the curve).
+        """
         logs = np.log(self.sizes.astype(np.float64))
-        u = math.log(n)
+        last = self.sizes.size - 1
+        if n >= self.sizes[last]:
+            return float(self.mean[last]), float(self.sd[last]), float(self.skew[last])
         if self.sizes.size == 1:
             return float(self.mean[0]), float(self.sd[0] * math.sqrt(self.sizes[0] / n)), float(self.skew[0])
-        # The segment holding n, or the nearest one beyond either end.
+        u = math.log(n)
+        # The segment holding n, or the first one when n lies below the smallest size.
         i = int(np.clip(np.searchsorted(logs, u) - 1, 0, self.sizes.size - 2))
         t = (u - logs[i]) / (logs[i + 1] - logs[i])
         a, b = float(self.mean[i]), float(self.mean[i + 1])
         mean = math.exp((1 - t) * math.log(a) + t * math.log(b)) if a > 0 and b > 0 else (1 - t) * a + t * b
-        sd_a, sd_b = (max(float(s), _TINY) for s in self.sd[i : i + 2])
-        sd = math.exp((1 - t) * math.log(sd_a) + t * math.log(sd_b))
+        sd_a, sd_b = (float(s) for s in self.sd[i : i + 2])
+        if min(sd_a, sd_b) > 0:
+            sd = math.exp((1 - t) * math.log(sd_a) + t * math.log(sd_b))
+        else:
+            # A size whose draws did not spread at all: logs would overflow or vanish; a straight line does neither.
+            sd = max(0.0, (1 - t) * sd_a + t * sd_b)
         skew = float(np.clip((1 - t) * self.skew[i] + t * self.skew[i + 1], self.skew.min(), self.skew.max()))
         return mean, sd, skew
 
@@ -125,10 +141,9 @@ class FigureNull:
         scale = max(abs(mean), abs(value), 1.0)
         if sd <= scale * 1e-12:
             return 1.0 if value <= mean + scale * 1e-9 else 0.0
-        return float(stats.pearson3.sf(value, skew, loc=mean, scale=sd))
-
-
-_TINY = 1e-300
+        p = float(stats.pearson3.sf(value, skew, loc=mean, scale=sd))
+        # A figure or curve that is not a number says nothing about drift: it never alarms.
+        return p if math.isfinite(p) else 1.0
 
 
 @dataclass(frozen=True, eq=False)
@@ -175,20 +190,44 @@ class LiveCalibration:
 
     @classmethod
     def from_bytes(cls, data: bytes) -> LiveCalibration:
-        """Read what :meth:`to_bytes` wrote (``ValueError`` or ``KeyError`` if it is not that)."""
-        with np.load(io.BytesIO(data), allow_pickle=False) as stored:
-            arrays = {name: stored[name] for name in stored.files}
-        version = int(arrays["format"])
-        if version != CALIBRATION_FORMAT:
-            raise ValueError(f"calibration format {version} is not one this veil reads ({CALIBRATION_FORMAT})")
-        nulls = {
-            str(key): FigureNull(
-                *(arrays[f"{position}.{part}"] for part in ("sizes", "draws", "mean", "sd", "skew", "quantiles"))
-            )
-            for position, key in enumerate(arrays["keys"])
-        }
-        warn, alert = (float(level) for level in arrays["levels"])
-        return cls(nulls, int(arrays["held_out_rows"]), warn, alert)
+        """Read what :meth:`to_bytes` wrote (``ValueError`` if it is not that, naming what is wrong)."""
+        try:
+            with np.load(io.BytesIO(data), allow_pickle=False) as stored:
+                arrays = {name: stored[name] for name in stored.files}
+            version = int(arrays["format"])
+            if version != CALIBRATION_FORMAT:
+                raise ValueError(f"calibration format {version} is not one this veil reads ({CALIBRATION_FORMAT})")
+            nulls = {
+                str(key): _checked_null(
+                    str(key), *(arrays[f"{position}.{part}"] for part in ("sizes", "draws", "mean", "sd", "skew",
+                                                                           "quantiles"))
+                )
+                for position, key in enumerate(arrays["keys"])
+            }  # fmt: skip
+            warn, alert = (float(level) for level in arrays["levels"])
+            return cls(nulls, int(arrays["held_out_rows"]), warn, alert)
+        except ValueError:
+            raise
+        # np.load and the conversions raise these on bytes that are not a calibration file.
+        except (KeyError, TypeError, IndexError, EOFError, OSError, zipfile.BadZipFile) as error:
+            raise ValueError(f"not a calibration file ({type(error).__name__}: {error})") from None
+
+
+def _checked_null(key: str, *parts: NDArray[Any]) -> FigureNull:
+    """One stored figure's curve, refused unless its sizes increase from 1 and every part is finite and aligned."""
+    sizes, draws, mean, sd, skew, quantiles = (np.asarray(part) for part in parts)
+    k = sizes.shape[0] if sizes.ndim == 1 else 0
+    aligned = k > 0 and all(part.shape == (k,) for part in (draws, mean, sd, skew))
+    if not aligned or quantiles.shape != (k, len(QUANTILES)):
+        raise ValueError(f"the curve of {key} has parts of different lengths")
+    if sizes[0] < 1 or np.any(np.diff(sizes) <= 0):
+        raise ValueError(f"the sizes of {key} do not increase from 1")
+    if not all(np.isfinite(part).all() for part in (mean, sd, skew, quantiles)) or np.any(sd < 0):
+        raise ValueError(f"the curve of {key} holds a value that is not finite, or a negative spread")
+    return FigureNull(
+        sizes.astype(np.int64), draws.astype(np.int64), mean.astype(np.float64), sd.astype(np.float64),
+        skew.astype(np.float64), quantiles.astype(np.float64),
+    )  # fmt: skip
 
 
 def holm_adjusted(p_values: list[float]) -> list[float]:
