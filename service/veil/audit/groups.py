@@ -25,7 +25,7 @@ from threadpoolctl import threadpool_limits
 from veil.audit import probes, readers
 from veil.audit.group_report import GroupAudit
 from veil.audit.scores import ProbeScore
-from veil.maps.attribute import as_label_array
+from veil.maps.attribute import indexed_column
 
 #: The nonlinear transfer reader learns from at most this many fitting rows (a stratified, seeded draw): one
 #: fit of it costs what one fold of the audit's costs.  The linear transfer reader learns from every row given.
@@ -34,11 +34,7 @@ TRANSFER_NONLINEAR_ROWS = 4000
 
 def group_codes(values: object, n_rows: int) -> tuple[NDArray[np.generic], NDArray[np.intp]]:
     """The groups' sorted values and each row's index among them; ``ValueError`` naming what is wrong."""
-    array = np.asarray(values)
-    if array.ndim != 1 or array.shape[0] != n_rows:
-        raise ValueError(f"the group column needs one value per row: got shape {array.shape} for {n_rows} rows")
-    names, codes = np.unique(as_label_array(array, what="group values"), return_inverse=True)
-    return names, codes.reshape(-1).astype(np.intp)
+    return indexed_column(values, n_rows, column="the group column", what="group values")
 
 
 def group_fold_problem(labels: NDArray[Any], groups: NDArray[Any]) -> str | None:

@@ -17,7 +17,7 @@ from veil.audit import geometry, probes, readers
 from veil.audit.context_report import ContextAudit, ContextValue, SkippedValue
 from veil.audit.report import PROBES, ProbeScore
 from veil.audit.stats import wilson_interval
-from veil.maps.attribute import as_label_array
+from veil.maps.attribute import indexed_column
 from veil.progress import phase
 
 NEIGHBOURS = 10
@@ -27,11 +27,7 @@ MIN_CLASS_ROWS = 2
 
 def context_groups(given: object, n_rows: int) -> tuple[NDArray[np.generic], NDArray[np.intp]]:
     """The context's sorted values and each row's index among them; ``ValueError`` naming what is wrong."""
-    array = np.asarray(given)
-    if array.ndim != 1 or array.shape[0] != n_rows:
-        raise ValueError(f"the context needs one value per row: got shape {array.shape} for {n_rows} rows")
-    values, groups = np.unique(as_label_array(array, what="context values"), return_inverse=True)
-    return values, groups.astype(np.intp)
+    return indexed_column(given, n_rows, column="the context", what="context values")
 
 
 def skip_reason(codes: NDArray[np.intp], classes: tuple[str, ...]) -> str | None:

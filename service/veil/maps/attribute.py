@@ -111,6 +111,20 @@ def as_label_array(z: NDArray[np.generic], *, what: str = "attribute labels") ->
     return z
 
 
+def indexed_column(
+    values: object, n_rows: int, *, column: str, what: str
+) -> tuple[NDArray[np.generic], NDArray[np.intp]]:
+    """A per-row column's sorted values and each row's index among them; ``ValueError`` naming what is wrong.
+
+    ``column`` names the column in the shape message (``"the context"``), ``what`` its values in the others.
+    """
+    array = np.asarray(values)
+    if array.ndim != 1 or array.shape[0] != n_rows:
+        raise ValueError(f"{column} needs one value per row: got shape {array.shape} for {n_rows} rows")
+    names, index = np.unique(as_label_array(array, what=what), return_inverse=True)
+    return names, index.reshape(-1).astype(np.intp)
+
+
 def encode_attribute(z: object, n_rows: int, *, require_categorical: bool = False) -> EncodedAttribute:
     """Validate ``z`` against ``n_rows`` rows of ``X`` and encode it.
 
